@@ -1,0 +1,132 @@
+"""The ``nodekeep`` command: a thin click layer over the library.
+
+Commands are imported only when called (``--help`` stays fast). Every expected failure is a
+:class:`archive.errors.NodekeepError`; :func:`main` turns it into a one-line reason on
+stderr and an exit code, in this one place. ``--debug`` shows the traceback instead.
+"""
+
+from __future__ import annotations
+
+import importlib
+import os
+from typing import Any
+
+import click
+
+from archive import __version__
+from archive.cli.options import CliState
+
+# name -> "module:attribute". Groups nest with the same mechanism.
+COMMANDS: dict[str, str] = {
+    "init": "archive.cli.init:init",
+    "upgrade": "archive.cli.init:upgrade",
+    "survey": "archive.cli.survey:survey",
+    "history": "archive.cli.history:history",
+    "verify": "archive.cli.verify:verify",
+    "load": "archive.cli.main:load",
+    "logs": "archive.cli.fixes:logs",
+    "fixes": "archive.cli.fixes:fixes",
+    "inputs": "archive.cli.inputs:inputs",
+    "dem": "archive.cli.inputs:dem",
+    "params": "archive.cli.solve:params",
+    "solve": "archive.cli.solve:solve",
+    "runs": "archive.cli.solve:runs",
+    "show": "archive.cli.solve:show",
+    "edit": "archive.cli.edit:edit",
+    "edits": "archive.cli.edit:edits",
+    "deliver": "archive.cli.deliver:deliver",
+    "trace": "archive.cli.lineage:trace",
+    "reproduce": "archive.cli.lineage:reproduce",
+    "diff": "archive.cli.lineage:diff",
+    "where": "archive.cli.lineage:where",
+    "qc": "archive.cli.qc:qc",
+    "report": "archive.cli.qc:report",
+    "demo": "archive.cli.demo:demo",
+    "migrate": "archive.cli.migrate:migrate",
+}
+
+LOAD_COMMANDS: dict[str, str] = {
+    "fixes": "archive.cli.load_fixes:load_fixes",
+    "stations": "archive.cli.inputs:load_stations",
+    "deployments": "archive.cli.inputs:load_deployments",
+    "control": "archive.cli.inputs:load_control",
+    "dem": "archive.cli.inputs:load_dem",
+}
+
+
+class LazyGroup(click.Group):
+    """A group whose commands are imported from ``module:attribute`` on first use."""
+
+    def __init__(self, *args: Any, lazy: dict[str, str] | None = None, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self.lazy = lazy or {}
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        return sorted(set(super().list_commands(ctx)) | set(self.lazy))
+
+    def get_command(self, ctx: click.Context, name: str) -> click.Command | None:
+        if name in self.lazy:
+            module_name, attr = self.lazy[name].split(":")
+            return getattr(importlib.import_module(module_name), attr)
+        return super().get_command(ctx, name)
+
+
+class RootGroup(LazyGroup):
+    """The top group: the one place where failures become a message and an exit code."""
+
+    def invoke(self, ctx: click.Context) -> Any:
+        from archive.errors import NodekeepError
+
+        try:
+            return super().invoke(ctx)
+        except (click.exceptions.Exit, click.ClickException, click.exceptions.Abort):
+            raise
+        except NodekeepError as exc:
+            if _debug(ctx):
+                raise
+            click.echo(f"error: {exc}", err=True)
+            ctx.exit(exc.exit_code)
+        except KeyboardInterrupt:
+            click.echo("interrupted", err=True)
+            ctx.exit(130)
+        except Exception as exc:  # noqa: BLE001 - last resort: one line, traceback on --debug
+            if _debug(ctx):
+                raise
+            from archive.store.db import mask_url
+
+            click.echo(f"internal error: {type(exc).__name__}: {mask_url(str(exc))} "
+                       "(run with --debug for the traceback)", err=True)
+            ctx.exit(70)
+
+
+def _debug(ctx: click.Context) -> bool:
+    state = ctx.obj
+    return bool(getattr(state, "debug", False)) or bool(os.environ.get("NODEKEEP_DEBUG"))
+
+
+@click.group(cls=RootGroup, lazy=COMMANDS, context_settings={"help_option_names": ["-h", "--help"]})
+@click.option("--archive", "-A", "archive_dir", metavar="DIR", default=None,
+              help="Archive folder (default: $NODEKEEP_ARCHIVE, else the nearest folder above "
+                   "the current one that holds an archive).")
+@click.option("--actor", default=None, metavar="NAME",
+              help="Who is acting, for the ledger (default: $NODEKEEP_ACTOR, else the OS user).")
+@click.option("--debug", is_flag=True, default=False, help="Show tracebacks on errors.")
+@click.version_option(__version__, prog_name="nodekeep")
+@click.pass_context
+def cli(ctx: click.Context, archive_dir: str | None, actor: str | None, debug: bool) -> None:
+    """nodekeep: receiver positions from node GPS logs, with their chain of custody.
+
+    Load node logs and survey inputs, solve one position per deployed station, check
+    them, deliver them, and trace any delivered coordinate back to its raw bytes.
+    """
+    ctx.obj = CliState(archive_dir, actor, debug or bool(os.environ.get("NODEKEEP_DEBUG")))
+
+
+@click.group(cls=LazyGroup, lazy=LOAD_COMMANDS)
+def load() -> None:
+    """Load raw fix logs and survey inputs into the archive."""
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Console entry point."""
+    cli.main(args=argv, prog_name="nodekeep")

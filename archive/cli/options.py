@@ -1,0 +1,77 @@
+"""Options shared by several commands, so one flag keeps one meaning everywhere.
+
+Catalogue:
+- ``--json`` (every command): machine-readable output on stdout instead of text.
+- ``--quiet`` (every command): no progress bar, no chatter; results and errors still print.
+- ``--survey NAME`` (commands acting on one survey): which survey; defaults to the only one.
+- ``--run RUN`` (show, deliver, qc, report): a run id or a unique prefix of one; defaults to
+  the newest run of the survey.
+- ``--force`` (commands writing files): overwrite an existing output file.
+- ``--to FILE`` (commands writing files): where to write.
+The archive itself (``--archive/-A``), ``--actor`` and ``--debug`` are options of the
+``nodekeep`` group, placed before the command name.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+import click
+
+
+def _set_flag(name: str) -> Callable[[click.Context, click.Parameter, Any], Any]:
+    def callback(ctx: click.Context, _param: click.Parameter, value: Any) -> Any:
+        if value:
+            setattr(ctx.find_object(CliState), name, True)
+        return value
+
+    return callback
+
+
+def output_options(f: Callable[..., Any]) -> Callable[..., Any]:
+    """Add ``--json`` and ``--quiet`` to a command (stored on the shared state)."""
+    f = click.option("--json", "as_json", is_flag=True, expose_value=False, is_eager=True,
+                     callback=_set_flag("as_json"),
+                     help="Print machine-readable JSON instead of text.")(f)
+    f = click.option("--quiet", "-q", is_flag=True, expose_value=False, is_eager=True,
+                     callback=_set_flag("quiet"), help="No progress bar or chatter.")(f)
+    return f
+
+
+survey_option = click.option(
+    "--survey", "survey_name", default=None, metavar="NAME",
+    help="Survey to act on (default: the only survey of the archive).",
+)
+
+run_option = click.option(
+    "--run", "run_ref", default=None, metavar="RUN",
+    help="Run id or unique prefix (default: the newest run).",
+)
+
+force_option = click.option("--force", is_flag=True, help="Overwrite an existing output file.")
+
+
+class CliState:
+    """What the ``nodekeep`` group knows, shared with every command through ``ctx.obj``."""
+
+    def __init__(self, archive_dir: str | None, actor: str | None, debug: bool) -> None:
+        self.archive_dir = archive_dir
+        self.actor = actor
+        self.debug = debug
+        self.as_json = False
+        self.quiet = False
+        self._archive = None
+
+    def archive(self, *, check_schema: bool = True):
+        """Open the archive once per invocation; it is closed when the command ends."""
+        if self._archive is None:
+            from archive.store.archive import Archive
+
+            self._archive = Archive.open(self.archive_dir, actor=self.actor,
+                                         check_schema=check_schema)
+            click.get_current_context().call_on_close(self._archive.close)
+        return self._archive
+
+
+pass_state = click.make_pass_decorator(CliState)

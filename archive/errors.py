@@ -1,0 +1,99 @@
+"""One exception root for everything nodekeep refuses or cannot do.
+
+Each subclass carries the data of the problem and builds its own message; the command line
+turns any :class:`NodekeepError` into a one-line reason and an exit code in one place
+(``archive.cli.main``). Library users catch :class:`NodekeepError`.
+"""
+
+from __future__ import annotations
+
+
+class NodekeepError(Exception):
+    """Root of every expected failure. ``exit_code`` is what the command line returns."""
+
+    exit_code = 1
+
+    def __init__(self, message: str, *, hint: str | None = None) -> None:
+        self.hint = hint
+        super().__init__(message)
+
+    def __str__(self) -> str:
+        base = super().__str__()
+        return f"{base} ({self.hint})" if self.hint else base
+
+
+class UsageError(NodekeepError):
+    """The request itself is wrong: bad option values, missing survey, unknown names."""
+
+    exit_code = 2
+
+
+class ArchiveNotFound(NodekeepError):
+    """No archive at the given place, nor in NODEKEEP_ARCHIVE, nor above the current folder."""
+
+    def __init__(self, where: str) -> None:
+        super().__init__(
+            f"no nodekeep archive found {where}",
+            hint="create one with 'nodekeep init DIR' or pass --archive DIR",
+        )
+
+
+class SchemaBehind(NodekeepError):
+    """The catalog schema is older than this version of nodekeep."""
+
+    def __init__(self, current: str | None, head: str) -> None:
+        self.current, self.head = current, head
+        super().__init__(
+            f"the archive catalog is at schema revision {current or 'none'}, this nodekeep needs {head}",
+            hint="run 'nodekeep upgrade' to migrate it",
+        )
+
+
+class SchemaAhead(NodekeepError):
+    """The catalog was written by a newer nodekeep than this one."""
+
+    def __init__(self, current: str) -> None:
+        super().__init__(
+            f"the archive catalog is at schema revision {current}, unknown to this nodekeep",
+            hint="upgrade nodekeep itself (pip install -U nodekeep)",
+        )
+
+
+class InputError(NodekeepError):
+    """A file given as input cannot be used. Names the file and, where known, line and columns."""
+
+    def __init__(
+        self,
+        path: str,
+        problem: str,
+        *,
+        line: int | None = None,
+        columns: str | None = None,
+        expected: str | None = None,
+        hint: str | None = None,
+    ) -> None:
+        self.path, self.problem, self.line = path, problem, line
+        self.columns, self.expected = columns, expected
+        where = path if line is None else f"{path}:{line}"
+        msg = f"{where}: {problem}"
+        if columns:
+            msg += f" (columns {columns})"
+        if expected:
+            msg += f"; expected {expected}"
+        super().__init__(msg, hint=hint)
+
+
+class CRSProblem(NodekeepError):
+    """A coordinate reference system is unknown, of the wrong kind, or needs a missing grid."""
+
+
+class IntegrityError(NodekeepError):
+    """Stored data does not match its hash, or a reference does not resolve."""
+
+    exit_code = 3
+
+
+class Refused(NodekeepError):
+    """A request the archive refuses on purpose (would overwrite, unacknowledged flags, ...)."""
+
+    exit_code = 4

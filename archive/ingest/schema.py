@@ -1,0 +1,56 @@
+"""The canonical fix table and the rejects table: the contract between readers and the rest.
+
+Every reader (NMEA 0183, delimited text) produces exactly these schemas. One fix is one epoch
+of one node: a time, a position and what the receiver said about its quality. Columns that a
+log does not carry are null, never invented.
+"""
+
+from __future__ import annotations
+
+import pyarrow as pa
+
+UTC_TIME = pa.timestamp("us", tz="UTC")
+
+FIX_SCHEMA = pa.schema(
+    [
+        pa.field("node", pa.string(), nullable=False),  # node serial, per raw file
+        pa.field("time", UTC_TIME, nullable=False),  # epoch time, UTC
+        pa.field("lat", pa.float64(), nullable=False),  # degrees, + north (geographic CRS of the log, WGS 84)
+        pa.field("lon", pa.float64(), nullable=False),  # degrees, + east
+        pa.field("h_ell", pa.float64()),  # ellipsoidal height, m (null when unknown)
+        pa.field("h_msl", pa.float64()),  # altitude above mean sea level as logged, m
+        pa.field("geoid_sep", pa.float64()),  # geoid separation N (ellipsoid minus geoid), m
+        pa.field("quality", pa.int8(), nullable=False),  # GGA fix quality 0-8 (-1 unknown)
+        pa.field("fix_type", pa.int8()),  # GSA fix type 1 none, 2 2-D, 3 3-D (null unknown)
+        pa.field("valid", pa.bool_(), nullable=False),  # quality > 0 and RMC status not V
+        pa.field("n_sats", pa.int16()),  # satellites used
+        pa.field("pdop", pa.float32()),
+        pa.field("hdop", pa.float32()),
+        pa.field("vdop", pa.float32()),
+        pa.field("raw_hash", pa.string(), nullable=False),  # SHA-256 of the raw file
+        pa.field("raw_line", pa.int64(), nullable=False),  # 1-based line of the position record
+    ],
+    metadata={"nodekeep.table": "fixes", "nodekeep.schema_version": "1"},
+)
+
+REJECT_SCHEMA = pa.schema(
+    [
+        pa.field("raw_line", pa.int64(), nullable=False),  # 1-based line number in the raw file
+        pa.field("reason", pa.string(), nullable=False),  # one of REJECT_REASONS
+        pa.field("text", pa.string(), nullable=False),  # offending text, truncated to 120 chars
+    ],
+    metadata={"nodekeep.table": "rejects", "nodekeep.schema_version": "1"},
+)
+
+# Reason classes of rejected lines (kept short and stable: they are summarised per file).
+REJECT_REASONS = {
+    "checksum": "checksum does not match the sentence",
+    "truncated": "sentence cut short (missing fields or checksum)",
+    "malformed": "a field could not be read (bad number, hemisphere, time)",
+    "binary": "non-text bytes (junk after a power loss, corrupt storage)",
+    "no-date": "no date known for this epoch (no RMC/ZDA before it and no --date)",
+    "out-of-range": "a value outside its possible range (latitude > 90, minutes >= 60, ...)",
+    "unreadable": "line not understood by the delimited profile",
+}
+
+FIXES_SORT_KEYS = [("node", "ascending"), ("time", "ascending"), ("raw_line", "ascending")]

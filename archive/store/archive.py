@@ -1,0 +1,236 @@
+"""The archive: a catalog database, an object store and a ledger, opened together.
+
+An archive is a folder holding ``nodekeep.toml`` (where the catalog and objects live), by
+default a SQLite catalog ``catalog.sqlite`` and an ``objects/`` folder beside it. The catalog
+may instead be a PostgreSQL database and the objects an S3-compatible bucket.
+
+Write pattern (the custody rule): put objects first, then open one transaction that inserts
+the rows referencing them, registers the objects and appends the ledger event::
+
+    h, size = arc.objects.put_file(path)
+    with arc.transaction() as tx:
+        arc.register_object(tx, h, size, "raw")
+        tx.add(row)
+        arc.log(tx, "load.fixes", {"raw": h}, survey_id=survey.id, rows=[row])
+"""
+
+from __future__ import annotations
+
+import getpass
+import os
+import tomllib
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import Engine, select
+from sqlalchemy.dialects.postgresql import insert as pg_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
+from sqlalchemy.orm import Session
+
+from archive.errors import ArchiveNotFound, UsageError
+from archive.store import ledger
+from archive.store.db import make_engine, mask_url, sqlite_url
+from archive.store.models import LedgerEvent, StoredObject, Survey, utcnow
+from archive.store.objects import ObjectStore
+
+CONFIG_NAME = "nodekeep.toml"
+ENV_ARCHIVE = "NODEKEEP_ARCHIVE"
+ENV_ACTOR = "NODEKEEP_ACTOR"
+
+
+def default_actor() -> str:
+    """The actor recorded in the ledger: NODEKEEP_ACTOR, else the OS user."""
+    actor = os.environ.get(ENV_ACTOR)
+    if actor:
+        return actor
+    try:
+        return getpass.getuser()
+    except Exception:  # noqa: BLE001 - no user database (containers)
+        return f"uid-{os.getuid()}"
+
+
+def locate(start: str | Path | None = None) -> Path:
+    """Find an archive folder: the given one, then NODEKEEP_ARCHIVE, then up from the cwd."""
+    if start is not None:
+        p = Path(start)
+        if (p / CONFIG_NAME).is_file():
+            return p.resolve()
+        raise ArchiveNotFound(f"at {p}")
+    env = os.environ.get(ENV_ARCHIVE)
+    if env:
+        p = Path(env)
+        if (p / CONFIG_NAME).is_file():
+            return p.resolve()
+        raise ArchiveNotFound(f"at {p} (from {ENV_ARCHIVE})")
+    here = Path.cwd().resolve()
+    for folder in (here, *here.parents):
+        if (folder / CONFIG_NAME).is_file():
+            return folder
+    raise ArchiveNotFound(f"in {here} or any folder above it")
+
+
+def _quote(value: str) -> str:
+    return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+
+
+class Archive:
+    """An open archive. Use :meth:`init` or :meth:`open`; close with :meth:`close`."""
+
+    def __init__(self, root: Path, config: dict[str, Any], *, actor: str | None = None,
+                 read_only: bool = False) -> None:
+        self.root = root
+        self.config = config
+        self.actor = actor or default_actor()
+        self.read_only = read_only
+        self.db_url = self._resolve_db(config["db"])
+        self.objects_url = self._resolve_objects(config["objects"])
+        self.engine: Engine = make_engine(self.db_url)
+        self.objects = ObjectStore(self.objects_url, read_only=read_only)
+
+    # -- creation and opening -----------------------------------------------------------
+    def _resolve_db(self, db: str) -> str:
+        if db.startswith("sqlite:///") and not db.startswith("sqlite:////"):
+            rel = db.removeprefix("sqlite:///")
+            return sqlite_url(self.root / rel)
+        return db
+
+    def _resolve_objects(self, objects: str) -> str:
+        if "://" in objects:
+            return objects
+        return str((self.root / objects).resolve())
+
+    @classmethod
+    def init(cls, root: str | Path, *, db_url: str | None = None, objects_url: str | None = None,
+             actor: str | None = None) -> Archive:
+        """Create a new archive in ``root`` (created if needed) and migrate its catalog."""
+        from archive.store import migrate
+
+        root = Path(root)
+        if (root / CONFIG_NAME).exists():
+            raise UsageError(f"{root} already holds a nodekeep archive")
+        root.mkdir(parents=True, exist_ok=True)
+        config = {
+            "format": 1,
+            "db": db_url or "sqlite:///catalog.sqlite",
+            "objects": objects_url or "objects",
+        }
+        arc = cls(root.resolve(), config, actor=actor)
+        if arc.objects.is_local:
+            arc.objects.root.mkdir(parents=True, exist_ok=True)
+        before = migrate.current_revision(arc.engine)
+        if before is not None:
+            arc.close()
+            raise UsageError(
+                f"the database {mask_url(arc.db_url)} already holds a nodekeep catalog",
+                hint="use an empty database, or open the existing archive",
+            )
+        migrate.upgrade(arc.engine)
+        with arc.transaction() as tx:
+            arc.log(tx, "archive.init", {"format": 1, "schema": migrate.head_revision(),
+                                         "db_backend": arc.engine.dialect.name})
+        text = "\n".join(
+            ["# nodekeep archive: where its catalog and objects live", "[archive]",
+             f"format = {config['format']}", f"db = {_quote(config['db'])}",
+             f"objects = {_quote(config['objects'])}", ""]
+        )
+        tmp = root / (CONFIG_NAME + ".tmp")
+        tmp.write_text(text, encoding="utf-8")
+        os.replace(tmp, root / CONFIG_NAME)
+        return arc
+
+    @classmethod
+    def open(cls, root: str | Path | None = None, *, actor: str | None = None,
+             check_schema: bool = True, read_only: bool = False) -> Archive:
+        """Open an existing archive (see :func:`locate`), checking its schema revision."""
+        from archive.store import migrate
+
+        folder = locate(root)
+        with open(folder / CONFIG_NAME, "rb") as fh:
+            config = tomllib.load(fh)["archive"]
+        arc = cls(folder, config, actor=actor, read_only=read_only)
+        if check_schema:
+            try:
+                migrate.check_schema(arc.engine)
+            except Exception:
+                arc.close()
+                raise
+        return arc
+
+    def close(self) -> None:
+        """Release database connections."""
+        self.engine.dispose()
+
+    def __enter__(self) -> Archive:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # -- sessions -----------------------------------------------------------------------
+    @contextmanager
+    def transaction(self) -> Iterator[Session]:
+        """A write transaction: committed on success, rolled back on any exception."""
+        if self.read_only:
+            from archive.errors import Refused
+
+            raise Refused(f"the archive {self.root} is open read-only")
+        with self.engine.connect().execution_options(nodekeep_write=True) as conn:
+            with Session(bind=conn, expire_on_commit=False) as session:
+                conn.begin()
+                try:
+                    yield session
+                    session.flush()
+                    conn.commit()
+                except BaseException:
+                    conn.rollback()
+                    raise
+
+    @contextmanager
+    def session(self) -> Iterator[Session]:
+        """A read-only session (nothing it does is committed)."""
+        with Session(self.engine, expire_on_commit=False) as session:
+            try:
+                yield session
+            finally:
+                session.rollback()
+
+    # -- custody helpers ----------------------------------------------------------------
+    def log(self, session: Session, action: str, payload: dict[str, Any], *,
+            survey_id: int | None = None, rows: list[Any] | None = None) -> LedgerEvent:
+        """Append a ledger event in ``session``'s transaction (see :func:`ledger.append`)."""
+        return ledger.append(session, actor=self.actor, action=action, payload=payload,
+                             survey_id=survey_id, rows=rows)
+
+    def register_object(self, session: Session, h: str, size: int, kind: str) -> None:
+        """Record in the catalog that object ``h`` is referenced (idempotent)."""
+        values = {"hash": h, "size": size, "kind": kind, "created_at": utcnow()}
+        if self.engine.dialect.name == "postgresql":
+            stmt = pg_insert(StoredObject).values(**values).on_conflict_do_nothing()
+        else:
+            stmt = sqlite_insert(StoredObject).values(**values).on_conflict_do_nothing()
+        session.execute(stmt)
+
+    def survey(self, session: Session, name: str | None = None) -> Survey:
+        """The survey called ``name``, or the only survey when ``name`` is None."""
+        if name is not None:
+            found = session.execute(select(Survey).where(Survey.name == name)).scalar_one_or_none()
+            if found is None:
+                names = session.execute(select(Survey.name)).scalars().all()
+                raise UsageError(f"no survey named {name!r}",
+                                 hint=f"known surveys: {', '.join(names) or 'none'}")
+            return found
+        surveys = session.execute(select(Survey).order_by(Survey.id)).scalars().all()
+        if len(surveys) == 1:
+            return surveys[0]
+        if not surveys:
+            raise UsageError("the archive has no survey yet",
+                             hint="create one with 'nodekeep survey create NAME --crs EPSG:NNNN'")
+        raise UsageError("the archive holds several surveys; choose one with --survey",
+                         hint="known surveys: " + ", ".join(s.name for s in surveys))
+
+    def describe(self) -> dict[str, Any]:
+        """Where this archive's parts live (database URL with any password masked)."""
+        return {"root": str(self.root), "db": mask_url(self.db_url), "objects": self.objects_url,
+                "actor": self.actor}

@@ -1,0 +1,109 @@
+"""Canonical hashing: SHA-256 of bytes, files, canonical JSON and Arrow tables.
+
+Every hash nodekeep records is a lower-case hex SHA-256. Canonical JSON is UTF-8, keys
+sorted, no insignificant whitespace, floats written by ``repr`` (shortest round-trip form),
+so the same value always gives the same bytes on every platform.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import re
+from collections.abc import Iterable
+from datetime import date, datetime
+from pathlib import Path
+from typing import Any, BinaryIO
+
+import pyarrow as pa
+
+CHUNK = 1 << 20
+HASH_RE = re.compile(r"^[0-9a-f]{64}$")
+
+
+def is_hash(value: str) -> bool:
+    """True when ``value`` looks like a lower-case hex SHA-256."""
+    return bool(HASH_RE.match(value or ""))
+
+
+def sha256_bytes(data: bytes) -> str:
+    """Hex SHA-256 of ``data``."""
+    return hashlib.sha256(data).hexdigest()
+
+
+def sha256_stream(stream: BinaryIO) -> tuple[str, int]:
+    """Hex SHA-256 and size of everything left in a binary stream, read in 1 MiB chunks."""
+    h = hashlib.sha256()
+    size = 0
+    while chunk := stream.read(CHUNK):
+        h.update(chunk)
+        size += len(chunk)
+    return h.hexdigest(), size
+
+
+def sha256_file(path: str | Path) -> tuple[str, int]:
+    """Hex SHA-256 and size of a file, streamed."""
+    with open(path, "rb") as fh:
+        return sha256_stream(fh)
+
+
+def _default(value: Any) -> Any:
+    if isinstance(value, datetime):
+        if value.tzinfo is None:
+            raise TypeError("naive datetime in canonical JSON; use UTC-aware datetimes")
+        return value.isoformat()
+    if isinstance(value, date):
+        return value.isoformat()
+    if isinstance(value, (set, frozenset)):
+        return sorted(value)
+    if isinstance(value, Path):
+        return str(value)
+    if hasattr(value, "item"):  # numpy scalars
+        return value.item()
+    raise TypeError(f"cannot write {type(value).__name__} as canonical JSON")
+
+
+def _check_floats(value: Any) -> None:
+    if isinstance(value, float) and not math.isfinite(value):
+        raise ValueError("canonical JSON cannot carry NaN or infinity; use null")
+    if isinstance(value, dict):
+        for v in value.values():
+            _check_floats(v)
+    elif isinstance(value, (list, tuple)):
+        for v in value:
+            _check_floats(v)
+
+
+def canonical_json(value: Any) -> bytes:
+    """Canonical UTF-8 JSON bytes of ``value`` (sorted keys, compact, no NaN)."""
+    _check_floats(value)
+    return json.dumps(
+        value, sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=_default,
+        allow_nan=False,
+    ).encode("utf-8")
+
+
+def canonical_hash(value: Any) -> str:
+    """SHA-256 of the canonical JSON of ``value``."""
+    return sha256_bytes(canonical_json(value))
+
+
+def table_digest(table: pa.Table) -> str:
+    """SHA-256 over a table's content: schema and values, independent of chunking.
+
+    The table is written as one Arrow IPC stream after ``combine_chunks``; two tables with
+    the same schema (metadata included) and the same values give the same digest. This is
+    what "bit-identical table" means in run records.
+    """
+    sink = pa.BufferOutputStream()
+    combined = table.combine_chunks()
+    with pa.ipc.new_stream(sink, combined.schema) as writer:
+        for batch in combined.to_batches():
+            writer.write_batch(batch)
+    return sha256_bytes(sink.getvalue().to_pybytes())
+
+
+def chain_hash(parts: Iterable[str]) -> str:
+    """SHA-256 of the strings joined by newlines (used for ordered sets of hashes)."""
+    return sha256_bytes("\n".join(parts).encode("utf-8"))

@@ -1,0 +1,70 @@
+"""Schema migrations run by the library (alembic), from the scripts shipped in the package.
+
+In a checkout the scripts are the top-level ``migrations/`` folder; an installed wheel carries
+the same files as ``archive.migrations``.
+"""
+
+from __future__ import annotations
+
+from importlib import resources
+from pathlib import Path
+
+from alembic import command
+from alembic.config import Config
+from alembic.runtime.migration import MigrationContext
+from alembic.script import ScriptDirectory
+from sqlalchemy import Engine
+
+from archive.errors import SchemaAhead, SchemaBehind
+
+
+def script_location() -> str:
+    """Folder of the alembic scripts: inside the installed package, else the checkout's."""
+    try:
+        loc = resources.files("archive.migrations")
+        path = Path(str(loc))
+        if (path / "env.py").is_file():
+            return str(path)
+    except ModuleNotFoundError:
+        pass
+    checkout = Path(__file__).resolve().parents[2] / "migrations"
+    return str(checkout)
+
+
+def alembic_config(engine: Engine | None = None) -> Config:
+    """An alembic Config pointing at the shipped scripts (and at ``engine`` when given)."""
+    cfg = Config()
+    cfg.set_main_option("script_location", script_location())
+    if engine is not None:
+        cfg.attributes["engine"] = engine
+    return cfg
+
+
+def head_revision() -> str:
+    """The newest revision this nodekeep knows."""
+    return ScriptDirectory.from_config(alembic_config()).get_current_head()
+
+
+def current_revision(engine: Engine) -> str | None:
+    """The revision the catalog is at (None for an empty database)."""
+    with engine.connect() as conn:
+        return MigrationContext.configure(conn).get_current_revision()
+
+
+def upgrade(engine: Engine, revision: str = "head") -> tuple[str | None, str]:
+    """Migrate the catalog to ``revision``; returns (before, after)."""
+    before = current_revision(engine)
+    command.upgrade(alembic_config(engine), revision)
+    return before, current_revision(engine) or ""
+
+
+def check_schema(engine: Engine) -> None:
+    """Raise SchemaBehind / SchemaAhead unless the catalog is at this nodekeep's head."""
+    current = current_revision(engine)
+    head = head_revision()
+    if current == head:
+        return
+    known = {s.revision for s in ScriptDirectory.from_config(alembic_config()).walk_revisions()}
+    if current is not None and current not in known:
+        raise SchemaAhead(current)
+    raise SchemaBehind(current, head)

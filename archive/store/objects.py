@@ -1,0 +1,236 @@
+"""Content-addressed object store: files named by the SHA-256 of their bytes.
+
+An object is written once (temporary file, fsync, atomic rename), made read-only and never
+rewritten; putting bytes that are already stored is a no-op that returns the same hash.
+Objects live under ``<root>/<h[:2]>/<h[2:4]>/<h>``. The local backend works on a folder;
+any other URL (``s3://bucket/prefix``) goes through a :mod:`pyarrow.fs` filesystem, where an
+upload only becomes visible once complete, so the same guarantees hold.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import io
+import os
+import stat
+import tempfile
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import BinaryIO
+
+import pyarrow as pa
+import pyarrow.fs as pafs
+import pyarrow.parquet as pq
+
+from archive.errors import IntegrityError, Refused
+from archive.store.hashing import CHUNK, is_hash
+
+PARQUET_OPTIONS = {"compression": "zstd", "compression_level": 3, "write_statistics": True}
+
+
+def fanout(h: str) -> str:
+    """Relative path of an object: two levels of two hex characters, then the full hash."""
+    if not is_hash(h):
+        raise ValueError(f"not a SHA-256 hex digest: {h!r}")
+    return f"{h[:2]}/{h[2:4]}/{h}"
+
+
+class ObjectStore:
+    """Put, open and check objects by hash. ``read_only`` refuses every write."""
+
+    def __init__(self, url: str | Path, *, read_only: bool = False) -> None:
+        self.url = str(url)
+        self.read_only = read_only
+        if "://" in self.url and not self.url.startswith("file://"):
+            fs, base = pafs.FileSystem.from_uri(self.url)
+            self._fs: pafs.FileSystem | None = fs
+            self._base = base.rstrip("/")
+            self.root: Path | None = None
+        else:
+            self._fs = None
+            self.root = Path(self.url.removeprefix("file://"))
+            self._base = str(self.root)
+
+    # -- naming -------------------------------------------------------------------------
+    @property
+    def is_local(self) -> bool:
+        """True for a folder on this machine."""
+        return self.root is not None
+
+    def location(self, h: str) -> str:
+        """Where the object lives: a local path or a filesystem path inside the bucket."""
+        return f"{self._base}/{fanout(h)}"
+
+    def local_path(self, h: str) -> Path | None:
+        """Local path of an object (``None`` on a remote store)."""
+        return None if self.root is None else self.root / fanout(h)
+
+    # -- queries ------------------------------------------------------------------------
+    def exists(self, h: str) -> bool:
+        """True when an object with this hash is stored."""
+        if self.root is not None:
+            return (self.root / fanout(h)).is_file()
+        info = self._fs.get_file_info(self.location(h))
+        return info.type == pafs.FileType.File
+
+    def size(self, h: str) -> int:
+        """Size in bytes of a stored object."""
+        if self.root is not None:
+            return (self.root / fanout(h)).stat().st_size
+        return self._fs.get_file_info(self.location(h)).size
+
+    def iter_hashes(self) -> Iterator[str]:
+        """Every object hash present in the store (temporary files excluded)."""
+        if self.root is not None:
+            if not self.root.exists():
+                return
+            for first in sorted(self.root.iterdir()):
+                if len(first.name) != 2 or not first.is_dir():
+                    continue
+                for second in sorted(first.iterdir()):
+                    for f in sorted(second.iterdir()):
+                        if is_hash(f.name):
+                            yield f.name
+            return
+        sel = pafs.FileSelector(self._base, recursive=True, allow_not_found=True)
+        for info in self._fs.get_file_info(sel):
+            name = info.base_name
+            if info.type == pafs.FileType.File and is_hash(name) and "/tmp/" not in info.path:
+                yield name
+
+    # -- reading ------------------------------------------------------------------------
+    def open(self, h: str) -> BinaryIO:
+        """Open an object for reading (binary). Raises IntegrityError when it is missing."""
+        try:
+            if self.root is not None:
+                return open(self.root / fanout(h), "rb")  # noqa: SIM115
+            return self._fs.open_input_stream(self.location(h))
+        except (FileNotFoundError, OSError) as exc:
+            raise IntegrityError(f"object {h} is missing from the object store") from exc
+
+    def read_bytes(self, h: str) -> bytes:
+        """Whole content of an object."""
+        with self.open(h) as fh:
+            return fh.read()
+
+    def parquet_file(self, h: str) -> pq.ParquetFile:
+        """A ParquetFile over a stored Parquet object (for streaming by row group)."""
+        if self.root is not None:
+            path = self.root / fanout(h)
+            if not path.is_file():
+                raise IntegrityError(f"object {h} is missing from the object store")
+            return pq.ParquetFile(str(path), memory_map=True)
+        return pq.ParquetFile(self._fs.open_input_file(self.location(h)))
+
+    def read_table(self, h: str, columns: list[str] | None = None) -> pa.Table:
+        """Read a stored Parquet object as an Arrow table."""
+        return self.parquet_file(h).read(columns=columns)
+
+    def check(self, h: str) -> bool:
+        """Re-hash a stored object; True when its bytes still match its name."""
+        digest = hashlib.sha256()
+        with self.open(h) as fh:
+            while chunk := fh.read(CHUNK):
+                digest.update(chunk)
+        return digest.hexdigest() == h
+
+    # -- writing ------------------------------------------------------------------------
+    def _refuse_if_read_only(self) -> None:
+        if self.read_only:
+            raise Refused(f"the object store {self.url} is open read-only")
+
+    def put_bytes(self, data: bytes) -> tuple[str, int]:
+        """Store bytes; returns (hash, size). Idempotent."""
+        return self.put_stream(io.BytesIO(data))
+
+    def put_file(self, path: str | Path) -> tuple[str, int]:
+        """Store a file's bytes, streamed; returns (hash, size). Idempotent."""
+        with open(path, "rb") as fh:
+            return self.put_stream(fh)
+
+    def put_table(self, table: pa.Table) -> tuple[str, int]:
+        """Store an Arrow table as Parquet (zstd); returns (hash, size) of the Parquet bytes."""
+        sink = pa.BufferOutputStream()
+        pq.write_table(table, sink, **PARQUET_OPTIONS)
+        return self.put_bytes(sink.getvalue().to_pybytes())
+
+    def put_stream(self, stream: BinaryIO) -> tuple[str, int]:
+        """Store everything left in a binary stream; returns (hash, size). Idempotent."""
+        self._refuse_if_read_only()
+        if self.root is not None:
+            return self._put_local(stream)
+        return self._put_remote(stream)
+
+    def _put_local(self, stream: BinaryIO) -> tuple[str, int]:
+        tmpdir = self.root / "tmp"
+        tmpdir.mkdir(parents=True, exist_ok=True)
+        digest = hashlib.sha256()
+        size = 0
+        fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix="put-")
+        try:
+            with os.fdopen(fd, "wb") as out:
+                while chunk := stream.read(CHUNK):
+                    digest.update(chunk)
+                    size += len(chunk)
+                    out.write(chunk)
+                out.flush()
+                os.fsync(out.fileno())
+            h = digest.hexdigest()
+            final = self.root / fanout(h)
+            if final.is_file():
+                os.unlink(tmp)
+                return h, size
+            final.parent.mkdir(parents=True, exist_ok=True)
+            os.chmod(tmp, stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
+            os.replace(tmp, final)
+            _fsync_dir(final.parent)
+            return h, size
+        except BaseException:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+            raise
+
+    def _put_remote(self, stream: BinaryIO) -> tuple[str, int]:
+        digest = hashlib.sha256()
+        size = 0
+        tmp = f"{self._base}/tmp/{uuid.uuid4().hex}"
+        with self._fs.open_output_stream(tmp) as out:
+            while chunk := stream.read(CHUNK):
+                digest.update(chunk)
+                size += len(chunk)
+                out.write(chunk)
+        h = digest.hexdigest()
+        try:
+            if not self.exists(h):
+                self._fs.copy_file(tmp, self.location(h))
+        finally:
+            self._fs.delete_file(tmp)
+        return h, size
+
+    def remove_temporaries(self) -> int:
+        """Delete leftover temporary files of interrupted writes; returns how many."""
+        self._refuse_if_read_only()
+        count = 0
+        if self.root is not None:
+            tmpdir = self.root / "tmp"
+            if tmpdir.is_dir():
+                for f in tmpdir.iterdir():
+                    f.unlink()
+                    count += 1
+        return count
+
+
+def _fsync_dir(path: Path) -> None:
+    """Flush a directory entry so a rename survives a power loss (no-op where unsupported)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)

@@ -1,0 +1,1 @@
+"""Alembic scripts of the nodekeep catalog (shipped as ``archive.migrations``)."""
