@@ -176,25 +176,25 @@ class Archive:
             from archive.errors import Refused
 
             raise Refused(f"the archive {self.root} is open read-only")
-        with self.engine.connect().execution_options(nodekeep_write=True) as conn:
-            with Session(bind=conn, expire_on_commit=False) as session:
-                conn.begin()
-                try:
-                    yield session
-                    session.flush()
-                    conn.commit()
-                except BaseException:
-                    conn.rollback()
-                    raise
+        with (
+            self.engine.connect().execution_options(nodekeep_write=True) as conn,
+            Session(bind=conn, expire_on_commit=False) as session,
+        ):
+            conn.begin()
+            try:
+                yield session
+                session.flush()
+                conn.commit()
+            except BaseException:
+                conn.rollback()
+                raise
 
     @contextmanager
     def session(self) -> Iterator[Session]:
         """A read-only session (nothing it does is committed)."""
-        with Session(self.engine, expire_on_commit=False) as session:
-            try:
-                yield session
-            finally:
-                session.rollback()
+        # Closing (not rolling back) ends the read transaction and keeps loaded rows usable.
+        with Session(self.engine, expire_on_commit=False, autoflush=False) as session:
+            yield session
 
     # -- custody helpers ----------------------------------------------------------------
     def log(self, session: Session, action: str, payload: dict[str, Any], *,

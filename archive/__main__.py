@@ -1,0 +1,5 @@
+"""``python -m archive`` runs the nodekeep command."""
+
+from archive.cli.main import main
+
+main()

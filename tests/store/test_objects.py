@@ -1,0 +1,78 @@
+"""Object store: content addressing, idempotence, read-only files, streaming."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import stat
+
+import pyarrow as pa
+import pytest
+
+from archive.errors import IntegrityError, Refused
+from archive.store.objects import ObjectStore, fanout
+
+
+def test_put_bytes_is_named_by_sha256(tmp_path):
+    store = ObjectStore(tmp_path / "o")
+    data = b"$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47\r\n"
+    h, size = store.put_bytes(data)
+    # The name is the SHA-256 of the bytes, computed independently with hashlib.
+    assert h == hashlib.sha256(data).hexdigest()
+    assert size == len(data)
+    assert store.read_bytes(h) == data
+    path = store.local_path(h)
+    assert path.relative_to(tmp_path / "o").as_posix() == f"{h[:2]}/{h[2:4]}/{h}"
+
+
+def test_put_twice_is_a_no_op_and_objects_are_read_only(tmp_path):
+    store = ObjectStore(tmp_path / "o")
+    h1, _ = store.put_bytes(b"abc")
+    mtime = os.stat(store.local_path(h1)).st_mtime_ns
+    h2, _ = store.put_bytes(b"abc")
+    assert h1 == h2
+    assert os.stat(store.local_path(h1)).st_mtime_ns == mtime
+    mode = os.stat(store.local_path(h1)).st_mode
+    assert not mode & (stat.S_IWUSR | stat.S_IWGRP | stat.S_IWOTH)
+    assert list(store.iter_hashes()) == [h1]
+    assert not any((tmp_path / "o" / "tmp").iterdir())
+
+
+def test_put_file_streams_large_file(tmp_path):
+    big = tmp_path / "big.bin"
+    block = os.urandom(1 << 16)
+    with open(big, "wb") as fh:
+        for _ in range(64):  # 4 MiB, several read chunks
+            fh.write(block)
+    store = ObjectStore(tmp_path / "o")
+    h, size = store.put_file(big)
+    assert size == 64 * len(block)
+    assert h == hashlib.sha256(big.read_bytes()).hexdigest()
+    assert store.check(h)
+
+
+def test_tables_round_trip_and_check_detects_flipped_byte(tmp_path):
+    store = ObjectStore(tmp_path / "o")
+    t = pa.table({"a": [1, 2, 3], "b": ["x", "y", "z"]})
+    h, _ = store.put_table(t)
+    assert store.read_table(h).equals(t)
+    p = store.local_path(h)
+    os.chmod(p, 0o644)
+    raw = bytearray(p.read_bytes())
+    raw[10] ^= 0x01
+    p.write_bytes(bytes(raw))
+    assert not store.check(h)
+
+
+def test_missing_object_and_read_only_store(tmp_path):
+    store = ObjectStore(tmp_path / "o")
+    with pytest.raises(IntegrityError, match="missing"):
+        store.read_bytes("0" * 64)
+    ro = ObjectStore(tmp_path / "o", read_only=True)
+    with pytest.raises(Refused, match="read-only"):
+        ro.put_bytes(b"x")
+
+
+def test_fanout_refuses_non_hash():
+    with pytest.raises(ValueError):
+        fanout("../../etc/passwd")
