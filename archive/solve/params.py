@@ -1,0 +1,178 @@
+"""Solver parameters: every threshold with its default, read from TOML, stored with each run.
+
+Parameters are a flat table of named values grouped into sections (``[window]``,
+``[screen]``, ``[estimate]``, ``[uncertainty]``, ``[height]``, ``[flags]``, ``[clusters]``).
+:func:`default_params` is the reference: a parameter file may override any subset, and any
+key it names that is not a known parameter is refused (a typo must not silently fall back
+to a default). The fully resolved parameters go into the run manifest, so a run records
+exactly what it used.
+"""
+
+from __future__ import annotations
+
+import copy
+import tomllib
+from pathlib import Path
+from typing import Any
+
+from archive.errors import InputError, UsageError
+
+ESTIMATORS = ("huber", "tukey", "geomedian", "mean")
+UNCERTAINTY_METHODS = ("batch", "ar1")
+
+# section -> key -> (default, help). Order here is the order printed by ``nodekeep params``.
+_SPEC: dict[str, dict[str, tuple[Any, str]]] = {
+    "window": {
+        "settle_start_min": (30.0, "minutes dropped after the logged deployment time"),
+        "settle_end_min": (30.0, "minutes dropped before the logged retrieval time"),
+    },
+    "screen": {
+        "min_quality": (1, "lowest GGA fix quality kept (0 = no fix)"),
+        "require_3d": (True, "keep only 3-D fixes (GSA fix type 3) when the log says"),
+        "min_sats": (4, "fewest satellites in use"),
+        "max_pdop": (6.0, "largest PDOP kept"),
+        "max_hdop": (4.0, "largest HDOP kept"),
+    },
+    "estimate": {
+        "estimator": ("huber", "huber | tukey | geomedian | mean"),
+        "sigma0": (3.0, "per-axis error at HDOP 1, m (sigma_i = sigma0 * HDOP_i)"),
+        "huber_k": (1.345, "Huber tuning constant (95 % efficiency at the normal, 1-D)"),
+        "tukey_c": (4.685, "Tukey biweight tuning constant (95 % efficiency, 1-D)"),
+        "reject_quantile": (0.999, "chi-square (2 dof) quantile beyond which a fix is rejected"),
+        "iterations": (8, "IRLS iterations per scale update (same for every cloud)"),
+        "scale_updates": (4, "times the MAD scale is re-estimated"),
+        "scale_sample": (2048, "most fixes per cloud used for the median and MAD"),
+    },
+    "uncertainty": {
+        "method": ("batch", "batch (batch means) | ar1 (AR(1) effective sample size)"),
+        "batch_hours": (3.0, "batch length, hours (several times the error correlation time)"),
+        "min_batches": (4, "fewest batches; shorter windows use shorter batches"),
+        "floor": (0.3, "per-axis error that never averages out (multipath bias, offsets), m"),
+    },
+    "height": {
+        "model_sigma": (0.2, "one-sigma error of the elevation model itself, m"),
+        "gnss_floor": (2.0, "one-sigma error of an averaged GNSS height that never averages out, m"),
+        "slope_step": (2.0, "distance used to measure the model slope, m"),
+    },
+    "flags": {
+        "min_fixes": (120, "fewest used fixes before 'few-fixes'"),
+        "min_span_hours": (6.0, "shortest span of used fixes before 'short-span', hours"),
+        "spread_factor": (3.0, "'wide-spread' when the robust scale per HDOP exceeds this x sigma0"),
+        "move_step": (5.0, "smallest persistent step of the cloud centre reported as a move, m"),
+        "move_min_hours": (4.0, "shortest part on each side of a move, hours"),
+        "move_block_min": (60.0, "block length of the running centre used to find moves, minutes"),
+        "move_z": (4.0, "step must also exceed this many standard errors"),
+        "far_from_plan": (20.0, "distance to the preplot station before 'far-from-plan', m"),
+        "height_tol": (6.0, "|GNSS - model height| before 'height-mismatch', m"),
+    },
+    "clusters": {
+        "radius": (10.0, "stationary cluster radius R, m"),
+        "min_hours": (2.0, "shortest stationary cluster T reported as unlogged, hours"),
+        "chunk_min": (10.0, "time chunk whose mean position tracks the node, minutes"),
+        "match_tol": (20.0, "farthest a cluster may be from a station to be reported, m"),
+    },
+}
+
+
+def default_params() -> dict[str, dict[str, Any]]:
+    """Every solver parameter with its default, as ``{section: {key: value}}``."""
+    return {sec: {k: v[0] for k, v in keys.items()} for sec, keys in _SPEC.items()}
+
+
+def _check_type(where: str, default: Any, value: Any) -> Any:
+    if isinstance(default, bool):
+        if not isinstance(value, bool):
+            raise UsageError(f"{where} must be true or false, not {value!r}")
+        return value
+    if isinstance(default, int):
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise UsageError(f"{where} must be a whole number, not {value!r}")
+        return value
+    if isinstance(default, float):
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise UsageError(f"{where} must be a number, not {value!r}")
+        return float(value)
+    if not isinstance(value, str):
+        raise UsageError(f"{where} must be text, not {value!r}")
+    return value
+
+
+def resolve_params(overrides: dict[str, Any] | None = None, *, source: str = "parameters"
+                   ) -> dict[str, dict[str, Any]]:
+    """Defaults updated by ``overrides`` (same nesting); unknown keys and bad types refused."""
+    params = default_params()
+    for sec, keys in (overrides or {}).items():
+        if sec not in _SPEC:
+            raise UsageError(f"{source}: unknown section [{sec}]",
+                             hint=f"known sections: {', '.join(_SPEC)}")
+        if not isinstance(keys, dict):
+            raise UsageError(f"{source}: [{sec}] must be a table of parameters")
+        for key, value in keys.items():
+            if key not in _SPEC[sec]:
+                raise UsageError(f"{source}: unknown parameter {sec}.{key}",
+                                 hint=f"parameters of [{sec}]: {', '.join(_SPEC[sec])}; "
+                                      "'nodekeep params' prints them all")
+            params[sec][key] = _check_type(f"{source}: {sec}.{key}", _SPEC[sec][key][0], value)
+    _validate(params, source)
+    return params
+
+
+def _validate(p: dict[str, dict[str, Any]], source: str) -> None:
+    est = p["estimate"]
+    if est["estimator"] not in ESTIMATORS:
+        raise UsageError(f"{source}: estimate.estimator {est['estimator']!r} is unknown",
+                         hint=f"use one of {', '.join(ESTIMATORS)}")
+    if p["uncertainty"]["method"] not in UNCERTAINTY_METHODS:
+        raise UsageError(f"{source}: uncertainty.method {p['uncertainty']['method']!r} is unknown",
+                         hint=f"use one of {', '.join(UNCERTAINTY_METHODS)}")
+    if not 0.5 < est["reject_quantile"] <= 1.0:
+        raise UsageError(f"{source}: estimate.reject_quantile must be in (0.5, 1]; 1 rejects nothing")
+    positive = [("estimate", "sigma0"), ("estimate", "huber_k"), ("estimate", "tukey_c"),
+                ("uncertainty", "batch_hours"), ("clusters", "radius"), ("clusters", "chunk_min"),
+                ("flags", "move_block_min")]
+    for sec, key in positive:
+        if p[sec][key] <= 0:
+            raise UsageError(f"{source}: {sec}.{key} must be positive")
+    for sec, key in (("estimate", "iterations"), ("estimate", "scale_updates"),
+                     ("estimate", "scale_sample"), ("uncertainty", "min_batches")):
+        if p[sec][key] < 1:
+            raise UsageError(f"{source}: {sec}.{key} must be at least 1")
+    if p["uncertainty"]["min_batches"] < 2:
+        raise UsageError(f"{source}: uncertainty.min_batches must be at least 2")
+
+
+def load_params(path: str | Path) -> dict[str, dict[str, Any]]:
+    """Read a TOML parameter file and resolve it against the defaults."""
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            data = tomllib.load(fh)
+    except FileNotFoundError:
+        raise InputError(str(path), "file not found",
+                         hint="'nodekeep params > solve.toml' writes a file to start from") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(str(path), f"not valid TOML: {exc}") from None
+    return resolve_params(data, source=str(path))
+
+
+def _toml_value(value: Any) -> str:
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, str):
+        return '"' + value.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    return repr(value)
+
+
+def params_toml(params: dict[str, dict[str, Any]] | None = None) -> str:
+    """Commented TOML of the parameters (the defaults when none are given)."""
+    params = copy.deepcopy(params) if params is not None else default_params()
+    lines = ["# nodekeep solver parameters. Any subset may be given to 'nodekeep solve --params';",
+             "# unknown names are refused. Units: metres, minutes or hours as named.", ""]
+    for sec, keys in _SPEC.items():
+        lines.append(f"[{sec}]")
+        width = max(len(f"{k} = {_toml_value(params[sec][k])}") for k in keys)
+        for key, (_default, text) in keys.items():
+            item = f"{key} = {_toml_value(params[sec][key])}"
+            lines.append(f"{item.ljust(width)}  # {text}")
+        lines.append("")
+    return "\n".join(lines)
