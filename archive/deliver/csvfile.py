@@ -1,0 +1,47 @@
+"""CSV of final positions at full precision, for everyone who is not a seismic processor.
+
+Numbers are written in their shortest round-trip form (no rounding); ``flags`` is a
+``;``-separated list (empty when none); times are ISO 8601 UTC with a ``Z``. The ``crs`` and
+``vertical_datum`` columns repeat the survey's EPSG code and vertical datum on every row so
+the file cannot be separated from what its numbers mean.
+"""
+
+from __future__ import annotations
+
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+
+from archive.deliver.context import DeliveryContext
+
+CSV_COLUMNS = (
+    "line", "point", "index", "node", "easting", "northing", "height", "height_source",
+    "sigma_e", "sigma_n", "r95", "n_used", "n_rejected", "flags", "source",
+    "lat", "lon", "t_end",
+)
+
+
+def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
+    """The columns written to CSV, in order (times as ISO 8601 text)."""
+    cols, names = [], []
+    for name in CSV_COLUMNS:
+        if name not in table.column_names:
+            continue
+        col = table.column(name)
+        if pa.types.is_timestamp(col.type):
+            col = pc.binary_join_element_wise(
+                pc.strftime(col, format="%Y-%m-%dT%H:%M:%S"), pa.scalar("Z"), "")
+        cols.append(col)
+        names.append(name)
+    n = table.num_rows
+    cols += [pa.array([f"EPSG:{ctx.crs_epsg}"] * n), pa.array([ctx.vertical_datum] * n)]
+    names += ["crs", "vertical_datum"]
+    return pa.table(cols, names=names)
+
+
+def write_csv(table: pa.Table, ctx: DeliveryContext) -> bytes:
+    """CSV bytes (UTF-8, header row, LF line ends, quotes only where needed)."""
+    sink = pa.BufferOutputStream()
+    opts = pacsv.WriteOptions(include_header=True, quoting_style="needed")
+    pacsv.write_csv(csv_table(table, ctx), sink, write_options=opts)
+    return sink.getvalue().to_pybytes()

@@ -1,0 +1,93 @@
+"""GIS outputs of final positions: GeoJSON (RFC 7946) and GeoPackage (through pyogrio/GDAL).
+
+GeoJSON: a FeatureCollection of Points in WGS 84 longitude/latitude (RFC 7946 §4 allows no
+other CRS), computed from the delivered grid coordinates with pyproj; the grid easting and
+northing stay in the properties together with the survey's EPSG code. GeoPackage: one point
+layer ``receivers`` in the survey's projected CRS, every attribute of the CSV.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+
+from archive.deliver.context import DeliveryContext, column
+from archive.deliver.csvfile import csv_table
+from archive.errors import Refused
+from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+
+LAYER = "receivers"
+
+
+def _require_positions(table: pa.Table, fmt: str) -> tuple[np.ndarray, np.ndarray]:
+    east, north = column(table, "easting"), column(table, "northing")
+    bad = ~(np.isfinite(east) & np.isfinite(north))
+    if bad.any():
+        from archive.deliver.context import station_label
+
+        i = int(np.flatnonzero(bad)[0])
+        raise Refused(f"{fmt}: {station_label(table, i)} has no position",
+                      hint="set one with 'nodekeep edit set-position' or reject the station "
+                           "with 'nodekeep edit reject'")
+    return east, north
+
+
+def wgs84_lonlat(table: pa.Table, ctx: DeliveryContext) -> tuple[np.ndarray, np.ndarray]:
+    """WGS 84 longitude/latitude of the grid coordinates (pyproj, always_xy)."""
+    east, north = _require_positions(table, "GeoJSON")
+    lon, lat = transformer(ctx.crs_epsg, WGS84_GEOGRAPHIC).transform(east, north)
+    return np.asarray(lon), np.asarray(lat)
+
+
+def write_geojson(table: pa.Table, ctx: DeliveryContext) -> bytes:
+    """RFC 7946 FeatureCollection (UTF-8), coordinates [lon, lat, height] to 1e-9 degree."""
+    lon, lat = wgs84_lonlat(table, ctx)
+    height = column(table, "height")
+    props = csv_table(table, ctx).to_pylist()
+    features = []
+    for i, p in enumerate(props):  # one feature per station: JSON needs Python objects
+        coords = [round(float(lon[i]), 9), round(float(lat[i]), 9)]
+        if np.isfinite(height[i]):
+            coords.append(float(height[i]))
+        features.append({"type": "Feature", "geometry": {"type": "Point", "coordinates": coords},
+                         "properties": p})
+    doc = {
+        "type": "FeatureCollection",
+        "nodekeep": {"survey": ctx.survey, "grid_crs": f"EPSG:{ctx.crs_epsg}",
+                     "vertical_datum": ctx.vertical_datum, "run": ctx.run_id,
+                     "edit_set": ctx.edit_set_hash},
+        "features": features,
+    }
+    return (json.dumps(doc, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+            + "\n").encode("utf-8")
+
+
+def point_wkb(x: np.ndarray, y: np.ndarray) -> pa.Array:
+    """Little-endian WKB 2-D points (ISO/OGC Simple Features: byte order 1, type 1, x, y)."""
+    rec = np.zeros(len(x), dtype=[("order", "u1"), ("type", "<u4"), ("x", "<f8"), ("y", "<f8")])
+    rec["order"], rec["type"], rec["x"], rec["y"] = 1, 1, x, y
+    fixed = pa.FixedSizeBinaryArray.from_buffers(pa.binary(21), len(x),
+                                                 [None, pa.py_buffer(rec.tobytes())])
+    return fixed.cast(pa.binary())
+
+
+def write_gpkg(table: pa.Table, ctx: DeliveryContext) -> bytes:
+    """GeoPackage bytes: layer ``receivers`` of points in the survey CRS."""
+    from pyogrio.raw import write_arrow
+
+    east, north = _require_positions(table, "GeoPackage")
+    attrs = csv_table(table, ctx)
+    data = attrs.append_column("geometry", point_wkb(east, north))
+    with tempfile.TemporaryDirectory(prefix="nodekeep-gpkg-") as tmp:
+        path = Path(tmp) / "out.gpkg"
+        write_arrow(data, str(path), layer=LAYER, driver="GPKG", geometry_name="geometry",
+                    geometry_type="Point", crs=f"EPSG:{ctx.crs_epsg}")
+        out = path.read_bytes()
+        for leftover in Path(tmp).iterdir():
+            os.unlink(leftover)
+    return out

@@ -1,0 +1,182 @@
+"""SEG-P1 (SEG 1983 positional exchange) receiver file: 20 H header records, 80-column data.
+
+Data record columns (1-based, inclusive):
+1 record id (blank) · 2-17 line name, left-justified · 18-25 point number I8 ·
+26 reshoot code (blank) · 27-35 latitude DDMMSSss + N/S · 36-45 longitude DDDMMSSss + E/W ·
+46-53 easting F8 · 54-61 northing F8 · 62-66 elevation F5 · 67-68 year I2 ·
+69-71 day of year I3 · 72-77 time hhmmss (UTC) · 78-80 spare.
+
+Latitude and longitude are on the geographic CRS of the survey's projected CRS (the datum the
+header names), computed from the delivered grid coordinates with pyproj, to 0.01 arc-second
+with an implied decimal point. The grid and elevation fields are written with one decimal
+when every value of the file fits, else as whole metres; the header says which. A value
+that does not fit even as whole metres, a point number that is not a whole number, or a
+point index other than 1 (the format has no index field) is refused, never spilled into
+the next columns.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyarrow as pa
+
+from archive.deliver.context import (
+    POSITION_MAPPED,
+    TIME_BASIS,
+    DeliveryContext,
+    column,
+    fixed_field,
+    numbers_text,
+    station_label,
+    time_fields,
+)
+from archive.deliver.sps import header_record
+from archive.errors import Refused
+from archive.survey.crs import transformer
+
+FORMAT = "SEG-P1"
+SUGGEST = "SPS (--format sps) or CSV (--format csv)"
+N_HEADER = 20
+
+SHORT_PARAM = {
+    "Latitude of natural origin": "lat0", "Longitude of natural origin": "lon0",
+    "Scale factor at natural origin": "k0", "False easting": "FE", "False northing": "FN",
+    "Latitude of false origin": "latF", "Longitude of false origin": "lonF",
+    "Latitude of 1st standard parallel": "lat1", "Latitude of 2nd standard parallel": "lat2",
+    "Easting at false origin": "EF", "Northing at false origin": "NF",
+}
+UNIT_SHORT = {"degree": "deg", "metre": "m", "unity": ""}
+
+
+def dms_fields(degrees: np.ndarray, deg_width: int, pos: str, neg: str) -> np.ndarray:
+    """Degrees -> 'DDMMSSss' + hemisphere text (seconds to 0.01", implied decimal point)."""
+    d = np.asarray(degrees, dtype=np.float64)
+    total = np.round(np.abs(d) * 360000.0).astype(np.int64)  # hundredths of arc-second
+    deg = total // 360000
+    minutes = (total // 6000) % 60
+    hundredths = total % 6000
+    text = np.char.add(np.char.mod(f"%0{deg_width}d", deg), np.char.mod("%02d", minutes))
+    text = np.char.add(text, np.char.mod("%04d", hundredths))
+    return np.char.add(text, np.where(d < 0, neg, pos))
+
+
+def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str,
+          ) -> tuple[np.ndarray, int]:
+    """Format with one decimal when every value fits, else whole metres (refuse otherwise)."""
+    v = values[np.isfinite(values)]
+    one = np.char.str_len(np.char.mod("%.1f", v)) if v.size else np.zeros(0)
+    decimals = 1 if (one <= width).all() else 0
+    text = fixed_field(values, f"%{width}.{decimals}f", width, table=table, field_name=label,
+                       fmt_name=FORMAT, columns=cols, suggest=SUGGEST)
+    return text, decimals
+
+
+def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]:
+    """Exactly 20 H records: survey, datum/spheroid, projection and parameters, units, time
+    basis, what position is mapped, producing run and edit set."""
+    crs = ctx.crs
+    params = " ".join(
+        f"{SHORT_PARAM.get(n, n)}={v:.10g}{UNIT_SHORT.get(u, ' ' + u)}" for n, v, u in crs.params
+    )
+    chunks = [params[i:i + 48] for i in range(0, max(len(params), 1), 48)]
+    chunks = (chunks + ["", "", ""])[:3]
+
+    def prec(name: str) -> str:
+        return "0.1 m" if precision.get(name, 0) == 1 else "1 m"
+
+    produced = ctx.produced_at.strftime("%Y-%m-%d %H:%M UTC") if ctx.produced_at else ""
+    recs = [
+        ("H01", "Survey", ctx.survey + (f", {ctx.area}" if ctx.area else "")),
+        ("H02", "Client", ctx.client),
+        ("H03", "Contractor", ctx.contractor),
+        ("H04", "Geodetic datum", crs.datum),
+        ("H05", "Spheroid", f"{crs.ellipsoid} a={crs.semi_major:.3f} "
+                            f"1/f={crs.inverse_flattening:.9f}"),
+        ("H06", "Coordinate reference system", f"{crs.name} EPSG:{crs.epsg}"),
+        ("H07", "Projection", f"{crs.method} (EPSG method {crs.method_code})"),
+        ("H08", "Projection parameters (1/3)", chunks[0]),
+        ("H09", "Projection parameters (2/3)", chunks[1]),
+        ("H10", "Projection parameters (3/3)", chunks[2]),
+        ("H11", "Grid units and precision", f"{crs.unit}; E {prec('easting')}, "
+                                            f"N {prec('northing')}"),
+        ("H12", "Latitude/longitude", f"{crs.geographic_name} EPSG:{crs.geographic_epsg}, "
+                                      "DDMMSSss 0.01 sec"),
+        ("H13", "Elevation", f"{ctx.vertical_datum or 'datum not stated'}, "
+                             f"metre, {prec('height')}"),
+        ("H14", "Time basis", "UTC; " + TIME_BASIS),
+        ("H15", "Position mapped", POSITION_MAPPED),
+        ("H16", "Producing run (1/2)", ctx.run_id[:32]),
+        ("H17", "Producing run (2/2)", ctx.run_id[32:]),
+        ("H18", "Edit set (1/2)", ctx.edit_set_hash[:32]),
+        ("H19", "Edit set (2/2)", ctx.edit_set_hash[32:]),
+        ("H20", "Produced", f"{produced} nodekeep {ctx.code_version}, "
+                            f"{len(ctx.edit_ids)} edits"),
+    ]
+    assert len(recs) == N_HEADER
+    return [header_record(*r) for r in recs]
+
+
+def data_records(table: pa.Table, ctx: DeliveryContext) -> tuple[list[str], dict[str, int]]:
+    """The 80-column data records and the decimals written for easting/northing/height."""
+    n = table.num_rows
+    if n == 0:
+        return [], {"easting": 1, "northing": 1, "height": 1}
+    index = column(table, "index", 1.0)
+    if (index != 1).any():
+        i = int(np.flatnonzero(index != 1)[0])
+        raise Refused(f"{FORMAT}: {station_label(table, i)}: the format has no point index "
+                      "field, only index 1 can be written", hint=f"deliver as {SUGGEST}")
+    east, north = column(table, "easting"), column(table, "northing")
+    for name, v in (("easting", east), ("northing", north)):
+        if (~np.isfinite(v)).any():
+            i = int(np.flatnonzero(~np.isfinite(v))[0])
+            raise Refused(f"{FORMAT}: {station_label(table, i)} has no {name}",
+                          hint="set a position with 'nodekeep edit set-position' or reject "
+                               "the station with 'nodekeep edit reject'")
+    line_t = numbers_text(column(table, "line"))
+    if (np.char.str_len(line_t) > 16).any():
+        i = int(np.flatnonzero(np.char.str_len(line_t) > 16)[0])
+        raise Refused(f"{FORMAT}: {station_label(table, i)}: line name {line_t[i]} does not "
+                      "fit 16 columns (2-17)", hint=f"deliver as {SUGGEST}")
+    point = column(table, "point")
+    frac = point != np.round(point)
+    if frac.any():
+        i = int(np.flatnonzero(frac)[0])
+        raise Refused(f"{FORMAT}: {station_label(table, i)}: point number {point[i]:g} is not "
+                      "a whole number (columns 18-25, I8)", hint=f"deliver as {SUGGEST}")
+    point_t = fixed_field(point, "%8.0f", 8, table=table, field_name="point number",
+                          fmt_name=FORMAT, columns="18-25", suggest=SUGGEST)
+    geo = ctx.crs.geographic_epsg or 4326
+    lon, lat = transformer(ctx.crs_epsg, geo).transform(east, north)
+    east_t, de = _grid(table, east, 8, "easting", "46-53")
+    north_t, dn = _grid(table, north, 8, "northing", "54-61")
+    height_t, dh = _grid(table, column(table, "height"), 5, "elevation", "62-66")
+    valid, year, doy, hh, mm, ss = time_fields(table)
+    parts = [
+        np.full(n, " "),
+        np.char.ljust(line_t, 16),
+        point_t,
+        np.full(n, " "),
+        dms_fields(lat, 2, "N", "S"),
+        dms_fields(lon, 3, "E", "W"),
+        east_t,
+        north_t,
+        height_t,
+        np.where(valid, np.char.mod("%02d", year % 100), "  "),
+        np.where(valid, np.char.mod("%3d", doy), "   "),
+        np.where(valid, np.char.mod("%02d", hh), "  "),
+        np.where(valid, np.char.mod("%02d", mm), "  "),
+        np.where(valid, np.char.mod("%02d", ss), "  "),
+        np.full(n, "   "),
+    ]
+    out = parts[0]
+    for p in parts[1:]:
+        out = np.char.add(out, p)
+    return out.tolist(), {"easting": de, "northing": dn, "height": dh}
+
+
+def write_segp1(table: pa.Table, ctx: DeliveryContext) -> bytes:
+    """The whole SEG-P1 file: 20 header records then one data record per station."""
+    records, precision = data_records(table, ctx)
+    lines = header_records(ctx, precision) + records
+    return ("\n".join(lines) + "\n").encode("ascii", errors="replace")
