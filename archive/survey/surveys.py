@@ -10,8 +10,9 @@ from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.models import Survey, utcnow
 from archive.survey.crs import survey_crs
+from archive.survey.heights import HEIGHT_MODES, check_height_mode
 
-HEIGHT_MODES = ("gga", "constant", "grid")
+__all__ = ["HEIGHT_MODES", "create_survey", "list_surveys", "survey_dict"]
 
 
 def create_survey(
@@ -30,16 +31,7 @@ def create_survey(
     name = name.strip()
     if not name:
         raise UsageError("a survey needs a name")
-    if height_mode not in HEIGHT_MODES:
-        raise UsageError(f"unknown height mode {height_mode!r}",
-                         hint=f"use one of {', '.join(HEIGHT_MODES)}")
-    if height_mode == "constant":
-        try:
-            float(height_param)
-        except ValueError:
-            raise UsageError("height mode 'constant' needs a separation in metres") from None
-    if height_mode == "grid" and not height_param:
-        raise UsageError("height mode 'grid' needs the name of a PROJ geoid grid")
+    check_height_mode(height_mode, height_param)  # a missing geoid grid is refused here
     scrs = survey_crs(crs)
     with arc.transaction() as tx:
         if tx.execute(select(Survey.id).where(Survey.name == name)).first():
