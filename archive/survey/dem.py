@@ -194,3 +194,25 @@ def open_dem(arc: Any, survey_id: int, version: int | None = None) -> DemSampler
         return DemSampler(local, datum, source_hash=row.source_hash)
     with arc.objects.open(row.source_hash) as fh:
         return DemSampler(fh, datum, source_hash=row.source_hash)
+
+
+def spot_sample(arc: Any, survey_id: int, easting: float, northing: float,
+                epsg: int | None = None, version: int | None = None) -> dict[str, Any]:
+    """The model's elevation at one point (default CRS: the survey's), for spot checks."""
+    from archive.errors import UsageError
+    from archive.store.models import Survey
+
+    with arc.session() as s:
+        survey = s.get(Survey, survey_id)
+    epsg = int(epsg or survey.crs_epsg)
+    sampler = open_dem(arc, survey_id, version)
+    if sampler is None:
+        raise UsageError("the survey has no elevation model yet",
+                         hint="load one with 'nodekeep load dem FILE --vertical-datum TEXT'")
+    with sampler:
+        z = float(sampler.sample(np.array([easting]), np.array([northing]), epsg)[0])
+        return {"easting": easting, "northing": northing, "crs": f"EPSG:{epsg}",
+                "elevation": None if np.isnan(z) else z,
+                "vertical_datum": sampler.vertical_datum, "dem_hash": sampler.source_hash,
+                "dem_crs": f"EPSG:{sampler.crs_epsg}" if sampler.crs_epsg else sampler.crs.name,
+                "area_or_point": sampler.area_or_point}

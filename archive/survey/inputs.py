@@ -208,3 +208,9 @@ def list_inputs(arc: Archive, survey_id: int, all_versions: bool = False) -> lis
             out.append(d)
     order = {k: i for i, k in enumerate(INPUT_KINDS)}
     return sorted(out, key=lambda d: (order.get(d["kind"], 99), d["version"]))
+
+
+def survey_for(arc: Archive, name: str | None = None) -> Survey:
+    """The survey called ``name``, or the only survey of the archive."""
+    with arc.session() as s:
+        return arc.survey(s, name)
