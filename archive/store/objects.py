@@ -19,6 +19,7 @@ import uuid
 from collections.abc import Iterator
 from pathlib import Path
 from typing import BinaryIO
+from urllib.parse import urlsplit
 
 import pyarrow as pa
 import pyarrow.fs as pafs
@@ -37,6 +38,28 @@ def fanout(h: str) -> str:
     return f"{h[:2]}/{h[2:4]}/{h}"
 
 
+def remote_filesystem(url: str) -> tuple[pafs.FileSystem, str]:
+    """The pyarrow filesystem and base path of a non-local object store URL.
+
+    For ``s3://bucket/prefix`` on an S3-compatible service other than AWS, the endpoint
+    comes from ``AWS_ENDPOINT_URL_S3`` or ``AWS_ENDPOINT_URL`` (``http://host:port`` or
+    ``https://host``), the region from ``AWS_REGION`` or ``AWS_DEFAULT_REGION``; credentials
+    come from the AWS SDK's usual chain (``AWS_ACCESS_KEY_ID`` / ``AWS_SECRET_ACCESS_KEY`` /
+    ``AWS_SESSION_TOKEN``, then profile files and instance roles). Without an endpoint, or
+    when the URL carries its own query options, pyarrow resolves the URL itself.
+    """
+    parts = urlsplit(url)
+    endpoint = os.environ.get("AWS_ENDPOINT_URL_S3") or os.environ.get("AWS_ENDPOINT_URL")
+    if parts.scheme != "s3" or not endpoint or parts.query:
+        return pafs.FileSystem.from_uri(url)
+    ep = urlsplit(endpoint if "://" in endpoint else f"https://{endpoint}")
+    options: dict[str, str] = {"endpoint_override": ep.netloc, "scheme": ep.scheme or "https"}
+    region = os.environ.get("AWS_REGION") or os.environ.get("AWS_DEFAULT_REGION")
+    if region:
+        options["region"] = region
+    return pafs.S3FileSystem(**options), f"{parts.netloc}{parts.path}".rstrip("/")
+
+
 class ObjectStore:
     """Put, open and check objects by hash. ``read_only`` refuses every write."""
 
@@ -44,7 +67,7 @@ class ObjectStore:
         self.url = str(url)
         self.read_only = read_only
         if "://" in self.url and not self.url.startswith("file://"):
-            fs, base = pafs.FileSystem.from_uri(self.url)
+            fs, base = remote_filesystem(self.url)
             self._fs: pafs.FileSystem | None = fs
             self._base = base.rstrip("/")
             self.root: Path | None = None
