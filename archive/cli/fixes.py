@@ -1,0 +1,82 @@
+"""``nodekeep fixes`` (export one node's fixes) and ``nodekeep logs`` (list raw logs)."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import click
+
+from archive.cli.options import (
+    CliState,
+    force_option,
+    output_options,
+    pass_state,
+    survey_option,
+)
+from archive.cli.output import emit, human_bytes, table
+
+
+def _time(value: str | None, name: str) -> dt.datetime | None:
+    from archive.errors import UsageError
+
+    if value is None:
+        return None
+    try:
+        t = dt.datetime.fromisoformat(value.replace("Z", "+00:00"))
+    except ValueError:
+        raise UsageError(f"{name} {value!r} is not an ISO 8601 time",
+                         hint="e.g. 2024-03-01T06:00:00Z") from None
+    return t if t.tzinfo else t.replace(tzinfo=dt.UTC)
+
+
+@click.command("fixes")
+@click.argument("serial")
+@click.option("--start", default=None, metavar="T", help="First time (ISO 8601, UTC if no zone).")
+@click.option("--end", default=None, metavar="T", help="End time, excluded (ISO 8601).")
+@click.option("--to", "to", required=True, type=click.Path(dir_okay=False),
+              help="Output FILE.csv or FILE.parquet.")
+@force_option
+@survey_option
+@output_options
+@pass_state
+def fixes(state: CliState, serial: str, start: str | None, end: str | None, to: str,
+          force: bool, survey_name: str | None) -> None:
+    """Write the fixes of node SERIAL (all its raw files, one fix per time) to a file."""
+    from archive.ingest.read import node_fixes, write_fixes
+
+    arc = state.archive()
+    with arc.session() as s:
+        survey_id = arc.survey(s, survey_name).id
+    t = node_fixes(arc, survey_id, serial, _time(start, "--start"), _time(end, "--end"))
+    path = write_fixes(t, to, force=force)
+    emit(state, {"node": serial, "n_fixes": t.num_rows, "path": str(path)},
+         f"wrote {t.num_rows} fixes of node {serial} to {path}")
+
+
+@click.command("logs")
+@click.option("--node", default=None, metavar="SERIAL", help="Only the logs of this node.")
+@survey_option
+@output_options
+@pass_state
+def logs(state: CliState, node: str | None, survey_name: str | None) -> None:
+    """List the raw fix logs loaded into the survey, with their line counts and rejects."""
+    from archive.ingest.read import list_raw_files
+
+    arc = state.archive()
+    with arc.session() as s:
+        survey_id = arc.survey(s, survey_name).id
+    rows = list_raw_files(arc, survey_id, node)
+
+    def text() -> str:
+        if not rows:
+            return "no raw fix logs loaded yet"
+        body = [(r["node"], r["name"], human_bytes(r["size"]), r["n_lines"], r["n_fixes"],
+                 r["n_valid"], r["n_rejected"],
+                 ", ".join(f"{k} {v}" for k, v in r["rejects"].items()),
+                 r["t_first"].strftime("%Y-%m-%d %H:%M") if r["t_first"] else "",
+                 r["t_last"].strftime("%Y-%m-%d %H:%M") if r["t_last"] else "",
+                 r["raw_hash"][:12]) for r in rows]
+        return table(body, ["node", "file", "size", "lines", "fixes", "valid", "rejected",
+                            "rejects by reason", "first (UTC)", "last (UTC)", "raw"])
+
+    emit(state, rows, text)

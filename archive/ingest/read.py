@@ -1,0 +1,106 @@
+"""Reading loaded fixes back: one node across its raw files, the list of raw files, exports."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+from sqlalchemy import select
+
+from archive.errors import Refused, UsageError
+from archive.ingest.result import sort_fixes
+from archive.ingest.schema import FIX_SCHEMA
+from archive.store.archive import Archive
+from archive.store.models import RawFile
+from archive.store.objects import PARQUET_OPTIONS
+
+
+def _utc(t: dt.datetime | None) -> dt.datetime | None:
+    if t is None:
+        return None
+    if t.tzinfo is None:
+        raise UsageError(f"time {t.isoformat()} has no time zone", hint="give UTC times")
+    return t.astimezone(dt.UTC)
+
+
+def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | None = None,
+               end: dt.datetime | None = None) -> pa.Table:
+    """Every fix of ``node`` in the survey (start <= time < end), deduplicated by time, sorted.
+
+    When several raw files hold a fix at the same time (overlapping downloads of one
+    node), the one from the earliest loaded raw file is kept.
+    """
+    start, end = _utc(start), _utc(end)
+    with arc.session() as s:
+        rows = s.execute(select(RawFile.fixes_hash).where(
+            RawFile.survey_id == survey_id, RawFile.node == node,
+            RawFile.fixes_hash.is_not(None)).order_by(RawFile.id)).scalars().all()
+    parts = []
+    for order, h in enumerate(rows):
+        t = arc.objects.read_table(h)
+        mask = None
+        if start is not None:
+            mask = pc.greater_equal(t.column("time"), pa.scalar(start, FIX_SCHEMA.field("time").type))
+        if end is not None:
+            m2 = pc.less(t.column("time"), pa.scalar(end, FIX_SCHEMA.field("time").type))
+            mask = m2 if mask is None else pc.and_(mask, m2)
+        if mask is not None:
+            t = t.filter(mask)
+        parts.append(t.append_column("_order", pa.array(np.full(t.num_rows, order, np.int32))))
+    if not parts:
+        return FIX_SCHEMA.empty_table()
+    t = pa.concat_tables(parts).combine_chunks()
+    t = t.sort_by([("time", "ascending"), ("_order", "ascending"), ("raw_line", "ascending")])
+    times = t.column("time").to_numpy().astype(np.int64)
+    first = np.ones(len(times), dtype=bool)
+    first[1:] = times[1:] != times[:-1]
+    t = t.filter(pa.array(first)).drop_columns(["_order"])
+    return sort_fixes(t.cast(FIX_SCHEMA))
+
+
+def write_fixes(table: pa.Table, path: str | Path, *, force: bool = False) -> Path:
+    """Write fixes as CSV (time in ISO 8601 UTC) or Parquet, chosen by the file suffix."""
+    path = Path(path)
+    suffix = path.suffix.lower()
+    if suffix not in (".csv", ".parquet"):
+        raise UsageError(f"{path}: unknown output type {suffix or '(none)'}",
+                         hint="name the output FILE.csv or FILE.parquet")
+    if path.exists() and not force:
+        raise Refused(f"{path} already exists", hint="use --force to overwrite it")
+    tmp = path.with_name(path.name + ".part")
+    if suffix == ".parquet":
+        pq.write_table(table, tmp, **PARQUET_OPTIONS)
+    else:
+        iso = pc.strftime(table.column("time"), format="%Y-%m-%dT%H:%M:%SZ")
+        out = table.set_column(table.schema.get_field_index("time"), "time", iso)
+        pacsv.write_csv(out, tmp)
+    tmp.replace(path)
+    return path
+
+
+def raw_file_dict(r: RawFile) -> dict[str, Any]:
+    """A raw file row as plain data (with its reject counts by reason)."""
+    details = json.loads(r.details or "{}")
+    return {"id": r.id, "node": r.node, "name": r.original_name, "format": r.format,
+            "raw_hash": r.object_hash, "size": r.size, "n_lines": r.n_lines,
+            "n_accepted": r.n_accepted, "n_rejected": r.n_rejected, "n_ignored": r.n_ignored,
+            "n_fixes": r.n_fixes, "n_valid": r.n_valid, "t_first": r.t_first,
+            "t_last": r.t_last, "fixes_hash": r.fixes_hash, "rejects_hash": r.rejects_hash,
+            "rejects": details.get("rejects", {}), "received_at": r.received_at,
+            "received_by": r.received_by}
+
+
+def list_raw_files(arc: Archive, survey_id: int, node: str | None = None) -> list[dict[str, Any]]:
+    """The raw fix logs loaded into a survey (optionally of one node), oldest first."""
+    q = select(RawFile).where(RawFile.survey_id == survey_id)
+    if node:
+        q = q.where(RawFile.node == node)
+    with arc.session() as s:
+        return [raw_file_dict(r) for r in s.scalars(q.order_by(RawFile.id))]
