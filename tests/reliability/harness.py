@@ -1,0 +1,298 @@
+"""Fault injection harness: kill a writing command at chosen moments, then check the archive.
+
+A *campaign* runs one command (``python -m archive ...`` or any module) once without
+interruption to measure how long it takes and what it produces, then runs it again in
+fresh copies of the same starting archive and sends SIGKILL after a delay drawn from that
+measured duration (stratified: one delay in each of ``n`` equal slices of the run, so the
+kills spread over start-up, object writing and committing, seeded for reproducibility).
+After each kill it checks that ``verify`` passes (unreferenced objects are allowed and
+counted as dangling), that the ledger chain is whole, then re-runs the command to the end
+and compares its result with the uninterrupted run.
+
+Used by ``tests/reliability`` (a short campaign in CI) and ``bench/soak.py`` (long ones).
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import time
+import uuid
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from sqlalchemy import func, select
+
+from archive.store.archive import CONFIG_NAME, Archive
+from archive.store.models import LedgerEvent
+from archive.store.verify import verify_archive
+
+REPO = Path(__file__).resolve().parents[2]
+
+
+def child_env(extra: dict[str, str] | None = None) -> dict[str, str]:
+    """Environment of a child process: this interpreter's, the repository importable."""
+    env = dict(os.environ)
+    env["PYTHONPATH"] = str(REPO) + os.pathsep + env.get("PYTHONPATH", "")
+    env.pop("NODEKEEP_DEBUG", None)
+    env.setdefault("NODEKEEP_ACTOR", "reliability")
+    if extra:
+        env.update(extra)
+    return env
+
+
+def cli_argv(root: Path, *args: str) -> list[str]:
+    """Command line of ``nodekeep -A root ARGS`` through this interpreter."""
+    return [sys.executable, "-m", "archive", "-A", str(root), *args]
+
+
+def run(argv: list[str], *, timeout: float = 300, env: dict[str, str] | None = None
+        ) -> subprocess.CompletedProcess[str]:
+    """Run a command to the end and capture its output."""
+    return subprocess.run(argv, capture_output=True, text=True, timeout=timeout,
+                          env=env or child_env(), cwd=REPO, check=False)
+
+
+def run_killed(argv: list[str], delay: float, *, env: dict[str, str] | None = None
+               ) -> tuple[bool, int | None]:
+    """Start a command and SIGKILL it after ``delay`` seconds.
+
+    Returns (killed, returncode): ``killed`` is False when it had already finished.
+    """
+    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            env=env or child_env(), cwd=REPO)
+    try:
+        proc.wait(timeout=delay)
+        return False, proc.returncode
+    except subprocess.TimeoutExpired:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        return True, proc.returncode
+
+
+def kill_delays(duration: float, n: int, seed: int, *, start: float = 0.0) -> list[float]:
+    """``n`` kill delays, one drawn uniformly in each of ``n`` equal slices of
+    ``[start, duration]`` (stratified sampling), shuffled by the seeded generator."""
+    rng = np.random.default_rng(seed)
+    edges = np.linspace(start, duration, n + 1)
+    delays = edges[:-1] + rng.random(n) * np.diff(edges)
+    rng.shuffle(delays)
+    return [float(d) for d in delays]
+
+
+# -- starting archives -----------------------------------------------------------------
+
+
+class ArchiveTemplate:
+    """A prepared archive copied afresh for every trial (SQLite folder copy, or PostgreSQL
+    ``CREATE DATABASE ... TEMPLATE`` plus a copy of the object folder)."""
+
+    def __init__(self, root: Path, pg_url: str | None = None) -> None:
+        self.root = Path(root)
+        self.pg_url = pg_url
+        self._databases: list[str] = []
+
+    def clone(self, dest: Path) -> Path:
+        """A copy of the template archive at ``dest`` (its own catalog and objects)."""
+        shutil.copytree(self.root, dest, symlinks=True)
+        if self.pg_url is None:
+            return dest
+        from sqlalchemy import create_engine, text
+        from sqlalchemy.engine import make_url
+
+        base = make_url(self.pg_url)
+        name = f"nk_{uuid.uuid4().hex[:12]}"
+        admin = create_engine(base.set(database="postgres"), isolation_level="AUTOCOMMIT")
+        try:
+            with admin.connect() as c:
+                c.execute(text(f'CREATE DATABASE "{name}" TEMPLATE "{base.database}"'))
+        finally:
+            admin.dispose()
+        self._databases.append(name)
+        url = base.set(database=name).render_as_string(hide_password=False)
+        cfg = (dest / CONFIG_NAME).read_text(encoding="utf-8").splitlines()
+        cfg = [f'db = "{url}"' if line.startswith("db = ") else line for line in cfg]
+        (dest / CONFIG_NAME).write_text("\n".join(cfg) + "\n", encoding="utf-8")
+        return dest
+
+    def cleanup(self) -> None:
+        """Drop the databases made by :meth:`clone`."""
+        if self.pg_url is None or not self._databases:
+            return
+        from sqlalchemy import create_engine, text
+        from sqlalchemy.engine import make_url
+
+        admin = create_engine(make_url(self.pg_url).set(database="postgres"),
+                              isolation_level="AUTOCOMMIT")
+        try:
+            with admin.connect() as c:
+                for name in self._databases:
+                    c.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
+                                   "WHERE datname = :n"), {"n": name})
+                    c.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
+        finally:
+            admin.dispose()
+        self._databases.clear()
+
+
+# -- one trial -------------------------------------------------------------------------
+
+
+@dataclass
+class Snapshot:
+    """What an archive holds, enough to tell how far a killed command got."""
+
+    events: int
+    stored: frozenset[str]
+
+
+def snapshot(root: Path) -> Snapshot:
+    """Count ledger events and list stored objects."""
+    with Archive.open(root) as arc, arc.session() as s:
+        n = s.scalar(select(func.count()).select_from(LedgerEvent)) or 0
+        return Snapshot(int(n), frozenset(arc.objects.iter_hashes()))
+
+
+def phase_of(before: Snapshot, after: Snapshot, finished: Snapshot, killed: bool) -> str:
+    """Where a kill landed, judged from what it left behind."""
+    if not killed:
+        return "after the end"
+    if after.events > before.events:
+        return "during commits" if after.events < finished.events else "after the last commit"
+    if after.stored - before.stored:
+        return "objects written, not committed"
+    return "before any write"
+
+
+@dataclass
+class Trial:
+    """The outcome of one killed run and its re-run."""
+
+    index: int
+    delay: float
+    killed: bool
+    phase: str
+    verify_ok: bool
+    problems: list[str]
+    dangling: int
+    rerun_exit: int
+    same_result: bool
+    seconds: float
+
+    @property
+    def ok(self) -> bool:
+        return self.verify_ok and self.rerun_exit == 0 and self.same_result
+
+
+@dataclass
+class Campaign:
+    """Every trial of one command on one backend."""
+
+    name: str
+    backend: str
+    baseline_seconds: float
+    startup_seconds: float
+    trials: list[Trial] = field(default_factory=list)
+
+    @property
+    def problems(self) -> int:
+        return sum(not t.ok for t in self.trials)
+
+    def phases(self) -> dict[str, int]:
+        out: dict[str, int] = {}
+        for t in self.trials:
+            out[t.phase] = out.get(t.phase, 0) + 1
+        return out
+
+    def summary(self) -> dict[str, Any]:
+        return {
+            "name": self.name, "backend": self.backend, "trials": len(self.trials),
+            "killed": sum(t.killed for t in self.trials),
+            "baseline_seconds": round(self.baseline_seconds, 2),
+            "startup_seconds": round(self.startup_seconds, 2),
+            "phases": self.phases(), "problems": self.problems,
+            "dangling_objects": sum(t.dangling for t in self.trials),
+            "lost": sum(not t.same_result for t in self.trials),
+        }
+
+
+def check_archive(root: Path) -> tuple[bool, list[str], int]:
+    """verify (with re-hash): (ok, problems as text, dangling count)."""
+    with Archive.open(root) as arc:
+        report = verify_archive(arc)
+    return (report.ok, [f"{p.kind}: {p.subject}: {p.detail}" for p in report.problems],
+            len(report.dangling))
+
+
+def campaign(
+    name: str,
+    template: ArchiveTemplate,
+    workdir: Path,
+    argv_for: Callable[[Path], list[str]],
+    result_of: Callable[[Path], Any],
+    *,
+    n: int,
+    seed: int,
+    backend: str = "sqlite",
+    rerun: Callable[[Path], tuple[int, str]] | None = None,
+) -> Campaign:
+    """Measure one uninterrupted run, then ``n`` killed runs each followed by a re-run.
+
+    ``argv_for(root)`` is the command for an archive at ``root``; ``result_of(root)`` reads
+    what the command produced (compared between the uninterrupted run and each re-run).
+    ``rerun(root) -> (exit code, message)`` re-runs the command to the end (default: the
+    same command line in a new process; an in-process call saves the interpreter start-up).
+
+    Kill moments: the uninterrupted run gives the whole duration; a second run on its
+    finished archive (nothing left to do) gives the start-up cost. Delays are stratified
+    over [0.8 x start-up, whole duration] so most kills land while the command works.
+    """
+    env = child_env()
+
+    def default_rerun(root: Path) -> tuple[int, str]:
+        done = run(argv_for(root), env=env)
+        return done.returncode, done.stderr[-1000:]
+
+    rerun = rerun or default_rerun
+    base_root = template.clone(workdir / "baseline")
+    before = snapshot(base_root)
+    t0 = time.monotonic()
+    done = run(argv_for(base_root), env=env)
+    duration = time.monotonic() - t0
+    if done.returncode != 0:
+        raise RuntimeError(f"uninterrupted run of {name} failed ({done.returncode}): "
+                           f"{done.stderr[-2000:]}")
+    expected = result_of(base_root)
+    finished = snapshot(base_root)
+    t0 = time.monotonic()
+    idle = run(argv_for(base_root), env=env)
+    startup = time.monotonic() - t0
+    if idle.returncode != 0 or result_of(base_root) != expected:
+        raise RuntimeError(f"a second run of {name} on a finished archive changed it or failed: "
+                           f"{idle.stderr[-2000:]}")
+    result = Campaign(name, backend, duration, startup)
+    delays = kill_delays(duration, n, seed, start=min(0.8 * startup, 0.9 * duration))
+    for i, delay in enumerate(delays):
+        t1 = time.monotonic()
+        root = template.clone(workdir / f"trial-{i:03d}")
+        killed, _ = run_killed(argv_for(root), delay, env=env)
+        after = snapshot(root)
+        ok, problems, dangling = check_archive(root)
+        code, message = rerun(root)
+        ok2, problems2, _ = check_archive(root)
+        same = code == 0 and result_of(root) == expected
+        result.trials.append(Trial(
+            index=i, delay=delay, killed=killed,
+            phase=phase_of(before, after, finished, killed), verify_ok=ok and ok2,
+            problems=problems + problems2 + ([message] if code else []),
+            dangling=dangling, rerun_exit=code, same_result=same,
+            seconds=time.monotonic() - t1,
+        ))
+        shutil.rmtree(root, ignore_errors=True)
+    return result
