@@ -1,0 +1,287 @@
+"""Manual edits: immutable, reasoned decisions on stations, each ledgered on its own.
+
+Kinds (payloads in :mod:`archive.store.edit_log`): ``set-position`` (from a check point,
+the preplot or given coordinates), ``set-height``, ``exclude-span`` (a time span of a node's
+fixes left out at the next solve), ``reject-station`` (not delivered), ``ack-flag`` (a review
+flag accepted by a person) and ``undo`` (takes an edit out of force).
+
+Superseding: a new ``set-position``, ``set-height`` or ``reject-station`` for a station
+supersedes the edit of the same kind in force for that station, and a new ``ack-flag`` the
+one in force for the same station and flag. ``exclude-span`` edits add up (a station may
+have several bad spans); take one out with ``undo``. An undo returns the station to what
+the solver gives (it does not bring back an edit the undone one had replaced).
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import UTC, datetime
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.compute as pc
+from sqlalchemy import select
+
+from archive.errors import UsageError
+from archive.solve.schema import FLAGS
+from archive.store.archive import Archive
+from archive.store.edit_log import edits_in_force
+from archive.store.hashing import canonical_hash, canonical_json
+from archive.store.ledger import row_digest
+from archive.store.models import Edit, utcnow
+
+SOURCES = ("control", "preplot", "given")
+AUTO_SUPERSEDE = ("set-position", "set-height", "reject-station", "ack-flag")
+
+
+def _station_text(line: float, point: float, index: int) -> str:
+    def n(v: float) -> str:
+        return str(int(v)) if float(v).is_integer() else f"{v:g}"
+
+    return f"{n(line)}/{n(point)}" + (f" index {index}" if index != 1 else "")
+
+
+def _match(table: pa.Table, line: float, point: float, index: int) -> pa.Table:
+    mask = pc.and_(pc.and_(pc.equal(table["line"], line), pc.equal(table["point"], point)),
+                   pc.equal(table["index"], index))
+    return table.filter(mask)
+
+
+def _stations(arc: Archive, survey_id: int) -> tuple[Any, pa.Table]:
+    from archive.survey.inputs import current_input
+
+    found = current_input(arc, survey_id, "stations")
+    if found is None or found[1] is None:
+        raise UsageError("the survey has no stations (preplot) loaded, so no station can be "
+                         "edited", hint="load them with 'nodekeep load stations FILE'")
+    return found
+
+
+def station_row(arc: Archive, survey_id: int, line: float, point: float,
+                index: int = 1) -> dict[str, Any]:
+    """The preplot row of a station, or UsageError naming the station and stations version."""
+    version, table = _stations(arc, survey_id)
+    rows = _match(table, line, point, index).to_pylist()
+    if not rows:
+        raise UsageError(
+            f"unknown station {_station_text(line, point, index)}: not in the preplot "
+            f"(stations version {version.version}, {version.original_name})",
+            hint="check the line and point numbers (and --index), or load a corrected preplot")
+    return rows[0] | {"stations_version": version.version, "stations_hash": version.table_hash}
+
+
+def _control_row(arc: Archive, survey_id: int, line: float, point: float,
+                 index: int) -> dict[str, Any]:
+    from archive.survey.inputs import current_input
+
+    found = current_input(arc, survey_id, "control")
+    if found is None or found[1] is None:
+        raise UsageError("the survey has no check points loaded",
+                         hint="load them with 'nodekeep load control FILE', or use another "
+                              "--from source")
+    version, table = found
+    rows = _match(table, line, point, index).to_pylist()
+    if not rows:
+        raise UsageError(f"no check point at station {_station_text(line, point, index)} "
+                         f"(control version {version.version})",
+                         hint="use --from preplot or --from given with coordinates")
+    row = rows[-1]  # surveyed again: the last record of the file
+    return row | {"control_version": version.version, "control_hash": version.table_hash}
+
+
+def _require_reason(reason: str | None) -> str:
+    text = (reason or "").strip()
+    if not text:
+        raise UsageError("an edit needs a reason", hint="say why with --reason TEXT")
+    return text
+
+
+def _finite(value: Any, what: str) -> float:
+    try:
+        v = float(value)
+    except (TypeError, ValueError):
+        raise UsageError(f"{what} must be a number, got {value!r}") from None
+    if v != v or v in (float("inf"), float("-inf")):
+        raise UsageError(f"{what} must be a finite number")
+    return v
+
+
+def _utc(value: str | datetime, what: str) -> datetime:
+    if isinstance(value, datetime):
+        dt = value
+    else:
+        try:
+            dt = datetime.fromisoformat(str(value).strip().replace("Z", "+00:00"))
+        except ValueError:
+            raise UsageError(f"{what} {value!r} is not an ISO 8601 time",
+                             hint="write it like 2024-03-14T05:00:00Z") from None
+    if dt.tzinfo is None:
+        raise UsageError(f"{what} {value!r} has no time zone", hint="add Z for UTC")
+    return dt.astimezone(UTC)
+
+
+def _create(arc: Archive, survey_id: int, kind: str, line: float, point: float, index: int,
+            payload: dict[str, Any], reason: str, *, supersedes: int | None = None) -> Edit:
+    """Insert one edit, superseding what it replaces, with its ledger event."""
+    with arc.transaction() as tx:
+        if supersedes is None and kind in AUTO_SUPERSEDE:
+            for live in edits_in_force(tx, survey_id, kinds=(kind,)):
+                same = (live.line, live.point, live.point_index) == (line, point, index)
+                if same and (kind != "ack-flag"
+                             or json.loads(live.payload).get("flag") == payload.get("flag")):
+                    supersedes = live.id
+        edit = Edit(survey_id=survey_id, kind=kind, line=float(line), point=float(point),
+                    point_index=int(index), payload=canonical_json(payload).decode("utf-8"),
+                    reason=reason, supersedes=supersedes, created_at=utcnow(),
+                    created_by=arc.actor)
+        tx.add(edit)
+        tx.flush()
+        arc.log(tx, f"edit.{kind}",
+                {"edit": edit.id, "kind": kind, "station": [edit.line, edit.point, index],
+                 "payload": payload, "reason": reason, "supersedes": supersedes},
+                survey_id=survey_id, rows=[edit])
+    return edit
+
+
+def set_position(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
+                 reason: str, source: str = "given", easting: float | None = None,
+                 northing: float | None = None) -> Edit:
+    """Set a station's delivered position from a check point, the preplot or coordinates."""
+    reason = _require_reason(reason)
+    pre = station_row(arc, survey_id, line, point, index)
+    if source == "given":
+        if easting is None or northing is None:
+            raise UsageError("--from given needs --easting and --northing")
+        payload = {"source": "given", "easting": _finite(easting, "easting"),
+                   "northing": _finite(northing, "northing")}
+    elif source == "preplot":
+        payload = {"source": "preplot", "easting": pre["easting"], "northing": pre["northing"],
+                   "input": {"kind": "stations", "version": pre["stations_version"],
+                             "table": pre["stations_hash"]}}
+    elif source == "control":
+        c = _control_row(arc, survey_id, line, point, index)
+        payload = {"source": "control", "easting": c["easting"], "northing": c["northing"],
+                   "sigma_e": c.get("sigma_e"), "sigma_n": c.get("sigma_n"),
+                   "input": {"kind": "control", "version": c["control_version"],
+                             "table": c["control_hash"]}}
+    else:
+        raise UsageError(f"unknown position source {source!r}", hint=f"use one of {SOURCES}")
+    payload = {k: (None if isinstance(v, float) and v != v else v) for k, v in payload.items()}
+    return _create(arc, survey_id, "set-position", line, point, index, payload, reason)
+
+
+def set_height(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
+               reason: str, source: str = "given", height: float | None = None) -> Edit:
+    """Set a station's delivered height from a check point, the preplot or a given value."""
+    reason = _require_reason(reason)
+    pre = station_row(arc, survey_id, line, point, index)
+    if source == "given":
+        if height is None:
+            raise UsageError("--from given needs --height")
+        payload: dict[str, Any] = {"source": "given", "height": _finite(height, "height")}
+    elif source == "preplot":
+        if pre.get("elevation") is None:
+            raise UsageError(f"the preplot has no elevation for station "
+                             f"{_station_text(line, point, index)}",
+                             hint="use --from control or --from given --height H")
+        payload = {"source": "preplot", "height": pre["elevation"],
+                   "input": {"kind": "stations", "version": pre["stations_version"],
+                             "table": pre["stations_hash"]}}
+    elif source == "control":
+        c = _control_row(arc, survey_id, line, point, index)
+        if c.get("height") is None:
+            raise UsageError(f"the check point at {_station_text(line, point, index)} has "
+                             "no height", hint="use --from given --height H")
+        payload = {"source": "control", "height": c["height"],
+                   "input": {"kind": "control", "version": c["control_version"],
+                             "table": c["control_hash"]}}
+    else:
+        raise UsageError(f"unknown height source {source!r}", hint=f"use one of {SOURCES}")
+    return _create(arc, survey_id, "set-height", line, point, index, payload, reason)
+
+
+def exclude_span(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
+                 node: str, start: str | datetime, end: str | datetime, reason: str) -> Edit:
+    """Leave a node's fixes between ``start`` and ``end`` (UTC) out of the next solve."""
+    reason = _require_reason(reason)
+    station_row(arc, survey_id, line, point, index)
+    node = (node or "").strip()
+    if not node:
+        raise UsageError("exclude needs the node serial (--node)")
+    t0, t1 = _utc(start, "start"), _utc(end, "end")
+    if t1 <= t0:
+        raise UsageError(f"the span ends ({t1.isoformat()}) before it starts ({t0.isoformat()})")
+    payload = {"node": node, "start": t0.isoformat(), "end": t1.isoformat()}
+    return _create(arc, survey_id, "exclude-span", line, point, index, payload, reason)
+
+
+def reject_station(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
+                   reason: str) -> Edit:
+    """Mark a station as not to be delivered."""
+    reason = _require_reason(reason)
+    station_row(arc, survey_id, line, point, index)
+    return _create(arc, survey_id, "reject-station", line, point, index, {}, reason)
+
+
+def ack_flag(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
+             flag: str, reason: str) -> Edit:
+    """Acknowledge a review flag of a station (it no longer blocks a delivery)."""
+    reason = _require_reason(reason)
+    if flag not in FLAGS:
+        raise UsageError(f"unknown flag {flag!r}", hint=f"flags are: {', '.join(FLAGS)}")
+    station_row(arc, survey_id, line, point, index)
+    return _create(arc, survey_id, "ack-flag", line, point, index, {"flag": flag}, reason)
+
+
+def undo(arc: Archive, survey_id: int, edit_id: int, *, reason: str) -> Edit:
+    """Take edit ``edit_id`` out of force with a new ``undo`` edit."""
+    reason = _require_reason(reason)
+    with arc.session() as s:
+        target = s.get(Edit, int(edit_id))
+        if target is None or target.survey_id != survey_id:
+            raise UsageError(f"no edit {edit_id} in this survey",
+                             hint="list the edits with 'nodekeep edits --all'")
+        if target.kind == "undo":
+            raise UsageError(f"edit {edit_id} is itself an undo; an undo cannot be undone",
+                             hint=f"make a new edit of the kind edit {target.supersedes} was")
+        later = s.scalars(select(Edit).where(Edit.supersedes == target.id)).first()
+        if later is not None:
+            raise UsageError(f"edit {edit_id} is no longer in force: edit {later.id} "
+                             f"({later.kind}) superseded it", hint="undo that edit instead")
+    return _create(arc, survey_id, "undo", target.line, target.point, target.point_index,
+                   {}, reason, supersedes=target.id)
+
+
+def edit_dict(e: Edit, *, in_force: bool | None = None) -> dict[str, Any]:
+    """An edit as plain data."""
+    d = {"id": e.id, "kind": e.kind, "line": e.line, "point": e.point, "index": e.point_index,
+         "payload": json.loads(e.payload or "{}"), "reason": e.reason,
+         "supersedes": e.supersedes, "created_at": e.created_at, "created_by": e.created_by}
+    if in_force is not None:
+        d["in_force"] = in_force
+    return d
+
+
+def list_edits(arc: Archive, survey_id: int, *, all_edits: bool = False,
+               line: float | None = None, point: float | None = None,
+               as_of: datetime | None = None) -> list[dict[str, Any]]:
+    """Edits of a survey, oldest first: those in force, or every edit with ``all_edits``."""
+    with arc.session() as s:
+        live = {e.id for e in edits_in_force(s, survey_id, as_of=as_of)}
+        q = select(Edit).where(Edit.survey_id == survey_id).order_by(Edit.id)
+        if as_of is not None:
+            q = q.where(Edit.created_at <= as_of)
+        rows = list(s.scalars(q))
+    out = [edit_dict(e, in_force=e.id in live) for e in rows
+           if (all_edits or e.id in live)
+           and (line is None or e.line == line) and (point is None or e.point == point)]
+    return out
+
+
+def edit_set(arc: Archive, survey_id: int, *, as_of: datetime | None = None,
+             ) -> tuple[list[Edit], str]:
+    """The edits in force and the hash naming that set (over their row digests)."""
+    with arc.session() as s:
+        live = edits_in_force(s, survey_id, as_of=as_of)
+    return live, canonical_hash([[e.id, row_digest(e)] for e in live])
+

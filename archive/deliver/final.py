@@ -1,0 +1,169 @@
+"""Final positions: a run's delivered rows with the edits in force applied.
+
+Every row says where its values came from in ``source``: ``solver``, or the edits that
+changed it (``edit:12``, ``edit:12;edit:15``). ``flags`` keeps only the run's review flags
+that no ``ack-flag`` edit has acknowledged (those go to ``flags_acknowledged``). Rejected
+stations are dropped. A ``set-position`` for a station the run did not position (a node
+that died, an unoccupied station) adds a row. Latitude/longitude (WGS 84) are recomputed
+with pyproj from the final grid coordinates, so they always agree with them.
+"""
+
+from __future__ import annotations
+
+import json
+from datetime import datetime
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from archive.deliver.edits import edit_set
+from archive.deliver.runs import run_positions
+from archive.store.archive import Archive
+from archive.store.models import Run
+from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+
+UTC_TIME = pa.timestamp("us", tz="UTC")
+
+FINAL_SCHEMA = pa.schema(
+    [
+        pa.field("line", pa.float64(), nullable=False),
+        pa.field("point", pa.float64(), nullable=False),
+        pa.field("index", pa.int8(), nullable=False),
+        pa.field("node", pa.string()),
+        pa.field("easting", pa.float64()),
+        pa.field("northing", pa.float64()),
+        pa.field("height", pa.float64()),
+        pa.field("height_source", pa.string()),
+        pa.field("lat", pa.float64()),
+        pa.field("lon", pa.float64()),
+        pa.field("sigma_e", pa.float64()),
+        pa.field("sigma_n", pa.float64()),
+        pa.field("r95", pa.float64()),
+        pa.field("n_used", pa.int64()),
+        pa.field("n_rejected", pa.int64()),
+        pa.field("t_start", UTC_TIME),
+        pa.field("t_end", UTC_TIME),
+        pa.field("flags", pa.string(), nullable=False),
+        pa.field("flags_acknowledged", pa.string(), nullable=False),
+        pa.field("source", pa.string(), nullable=False),
+    ],
+    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "1"},
+)
+
+Key = tuple[float, float, int]
+
+
+def _key(line: Any, point: Any, index: Any) -> Key:
+    return (float(line), float(point), int(index))
+
+
+def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int) -> pa.Table:
+    """Apply edits (Edit rows in force, oldest first) to a run's delivered rows."""
+    cols = {name: delivered.column(name).to_pylist() if name in delivered.column_names
+            else [None] * delivered.num_rows for name in FINAL_SCHEMA.names}
+    cols["flags_acknowledged"] = [""] * delivered.num_rows
+    cols["source"] = ["solver"] * delivered.num_rows
+    cols["flags"] = [f or "" for f in cols["flags"]]
+    rows = {_key(a, b, c): i for i, (a, b, c) in
+            enumerate(zip(cols["line"], cols["point"], cols["index"], strict=True))}
+    rejected: set[Key] = set()
+
+    def row_of(key: Key, create: bool) -> int | None:
+        if key in rows:
+            return rows[key]
+        if not create:
+            return None
+        for name in cols:
+            cols[name].append(None)
+        i = len(cols["line"]) - 1
+        cols["line"][i], cols["point"][i], cols["index"][i] = key
+        cols["flags"][i], cols["flags_acknowledged"][i] = "", ""
+        cols["source"][i], cols["n_used"][i], cols["n_rejected"][i] = "", 0, 0
+        rows[key] = i
+        return i
+
+    def mark(i: int, edit_id: int) -> None:
+        tag = f"edit:{edit_id}"
+        old = cols["source"][i]
+        cols["source"][i] = tag if old in ("", "solver") else f"{old};{tag}"
+
+    for e in sorted(edits, key=lambda e: (e.kind != "set-position", e.id)):
+        key = _key(e.line, e.point, e.point_index)
+        p = json.loads(e.payload or "{}")
+        if e.kind == "reject-station":
+            rejected.add(key)
+        elif e.kind == "set-position":
+            i = row_of(key, create=True)
+            cols["easting"][i], cols["northing"][i] = p["easting"], p["northing"]
+            cols["sigma_e"][i], cols["sigma_n"][i] = p.get("sigma_e"), p.get("sigma_n")
+            cols["r95"][i] = None
+            mark(i, e.id)
+        elif e.kind == "set-height":
+            i = row_of(key, create=False)
+            if i is None:
+                continue  # a height alone gives no position: applied once one exists
+            cols["height"][i], cols["height_source"][i] = p["height"], p["source"]
+            mark(i, e.id)
+        elif e.kind == "ack-flag":
+            i = row_of(key, create=False)
+            if i is None:
+                continue
+            flags = [f for f in cols["flags"][i].split(";") if f]
+            if p["flag"] in flags:
+                flags.remove(p["flag"])
+                acked = [f for f in cols["flags_acknowledged"][i].split(";") if f]
+                cols["flags_acknowledged"][i] = ";".join([*acked, p["flag"]])
+                cols["flags"][i] = ";".join(flags)
+    table = pa.table({n: pa.array(cols[n], FINAL_SCHEMA.field(n).type)
+                      for n in FINAL_SCHEMA.names}, schema=FINAL_SCHEMA)
+    if rejected:
+        keep = np.array([_key(a, b, c) not in rejected for a, b, c in
+                         zip(cols["line"], cols["point"], cols["index"], strict=True)], bool)
+        table = table.filter(pa.array(keep))
+    table = _with_lonlat(table, epsg)
+    order = pc.sort_indices(table, [("line", "ascending"), ("point", "ascending"),
+                                    ("index", "ascending")])
+    return table.take(order)
+
+
+def _with_lonlat(table: pa.Table, epsg: int) -> pa.Table:
+    east = table.column("easting").to_numpy(zero_copy_only=False).astype(np.float64)
+    north = table.column("northing").to_numpy(zero_copy_only=False).astype(np.float64)
+    ok = np.isfinite(east) & np.isfinite(north)
+    lon = np.full(len(east), np.nan)
+    lat = np.full(len(east), np.nan)
+    if ok.any():
+        lon[ok], lat[ok] = transformer(epsg, WGS84_GEOGRAPHIC).transform(east[ok], north[ok])
+    table = table.set_column(table.schema.get_field_index("lat"), FINAL_SCHEMA.field("lat"),
+                             pa.array(lat, mask=~ok))
+    return table.set_column(table.schema.get_field_index("lon"), FINAL_SCHEMA.field("lon"),
+                            pa.array(lon, mask=~ok))
+
+
+def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,
+                    *, edits: list[Any] | None = None) -> pa.Table:
+    """The run's delivered rows plus the survey's edits in force (as of a time, if given).
+
+    ``edits`` overrides the edits applied (Edit rows, e.g. the set a delivery recorded).
+    """
+    from archive.store.models import Survey
+
+    positions = run_positions(arc, run)
+    delivered = positions.filter(pc.equal(positions["delivered"], True))
+    if edits is None:
+        edits, _ = edit_set(arc, survey_id, as_of=as_of)
+    with arc.session() as s:
+        epsg = s.get(Survey, survey_id).crs_epsg
+    return apply_edits(delivered, edits, epsg)
+
+
+def unacknowledged_flags(final: pa.Table) -> dict[str, int]:
+    """How many stations carry each flag still unacknowledged."""
+    counts: dict[str, int] = {}
+    for text in final.column("flags").to_pylist():
+        for f in (text or "").split(";"):
+            if f:
+                counts[f] = counts.get(f, 0) + 1
+    return dict(sorted(counts.items()))

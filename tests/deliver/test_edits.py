@@ -1,0 +1,123 @@
+"""Edits: validation, superseding, undo, and their effect on final positions."""
+
+from __future__ import annotations
+
+import pyarrow.compute as pc
+import pytest
+from pyproj import Transformer
+from sqlalchemy import select
+
+from archive.deliver import edits as ed
+from archive.deliver.final import final_positions, unacknowledged_flags
+from archive.errors import UsageError
+from archive.store.models import Edit, LedgerEvent
+from archive.store.verify import verify_archive
+from tests.deliver.builders import delivery_archive
+
+
+@pytest.fixture
+def setup(survey_arc, tmp_path):
+    flags = ["", "far-from-plan;moved", "", "", "", "", "", ""]
+    sid, final, run, _ = delivery_archive(survey_arc, tmp_path, flags=flags)
+    return survey_arc, sid, final, run
+
+
+def _row(table, line, point):
+    m = pc.and_(pc.equal(table["line"], line), pc.equal(table["point"], point))
+    rows = table.filter(m).to_pylist()
+    return rows[0] if rows else None
+
+
+def test_every_edit_is_ledgered_with_its_row(setup):
+    arc, sid, _final, _run = setup
+    e = ed.reject_station(arc, sid, 1001, 2003, reason="node found in a puddle")
+    assert e.created_by == "tester" and e.created_at.tzinfo is not None
+    with arc.session() as s:
+        ev = s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq.desc())).first()
+    assert ev.action == "edit.reject-station" and f'"key":"{e.id}"' in ev.payload
+    assert verify_archive(arc).ok
+
+
+def test_refusals_have_clear_messages(setup):
+    arc, sid, _final, _run = setup
+    with pytest.raises(UsageError, match="needs a reason"):
+        ed.reject_station(arc, sid, 1001, 2001, reason="  ")
+    with pytest.raises(UsageError, match=r"unknown station 1009/2001.*not in the preplot"):
+        ed.reject_station(arc, sid, 1009, 2001, reason="typo test")
+    with pytest.raises(UsageError, match="no edit 999"):
+        ed.undo(arc, sid, 999, reason="nothing")
+    with pytest.raises(UsageError, match="unknown flag"):
+        ed.ack_flag(arc, sid, 1001, 2002, flag="wobbly", reason="x")
+    with pytest.raises(UsageError, match="no check point at station 1001/2004"):
+        ed.set_position(arc, sid, 1001, 2004, source="control", reason="x")
+    with pytest.raises(UsageError, match="ends .* before it starts"):
+        ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00Z",
+                        end="2024-03-11T00:00:00Z", reason="x")
+    with pytest.raises(UsageError, match="no time zone"):
+        ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00",
+                        end="2024-03-13T00:00:00Z", reason="x")
+    u = ed.undo(arc, sid, ed.reject_station(arc, sid, 1001, 2001, reason="a").id, reason="b")
+    with pytest.raises(UsageError, match="itself an undo"):
+        ed.undo(arc, sid, u.id, reason="c")
+
+
+def test_supersede_and_undo(setup):
+    arc, sid, _final, run = setup
+    a = ed.set_position(arc, sid, 1001, 2001, source="given", easting=612000.5,
+                        northing=3512000.25, reason="stake found by the crew")
+    b = ed.set_position(arc, sid, 1001, 2001, source="preplot", reason="crew stake was wrong")
+    assert b.supersedes == a.id
+    live = ed.list_edits(arc, sid)
+    assert [e["id"] for e in live] == [b.id]
+    with pytest.raises(UsageError, match=f"superseded it.*|edit {b.id}"):
+        ed.undo(arc, sid, a.id, reason="too late")
+    ed.undo(arc, sid, b.id, reason="back to the solver")
+    assert ed.list_edits(arc, sid) == []
+    assert len(ed.list_edits(arc, sid, all_edits=True)) == 3
+    final = final_positions(arc, sid, run)
+    assert _row(final, 1001, 2001)["source"] == "solver"
+
+
+def test_final_positions_apply_edits(setup):
+    arc, sid, final_in, run = setup
+    pos = ed.set_position(arc, sid, 1001, 2001, source="control", reason="RTK shot on sensor")
+    hgt = ed.set_height(arc, sid, 1001, 2001, source="given", height=401.25,
+                        reason="levelled by the crew")
+    ed.reject_station(arc, sid, 1001, 2003, reason="node in a cattle trough")
+    ack = ed.ack_flag(arc, sid, 1001, 2002, flag="moved", reason="moved 3 m by a cow, later "
+                      "part is correct")
+    final = final_positions(arc, sid, run)
+    assert final.num_rows == final_in.num_rows - 1
+    assert _row(final, 1001, 2003) is None
+    r = _row(final, 1001, 2001)
+    # check point = solver input easting + 0.4, northing - 0.2 (tests/deliver/builders.py)
+    e0, n0 = _row(final_in, 1001, 2001)["easting"], _row(final_in, 1001, 2001)["northing"]
+    assert r["easting"] == pytest.approx(e0 + 0.4, abs=1e-3)
+    assert r["northing"] == pytest.approx(n0 - 0.2, abs=1e-3)
+    assert r["sigma_e"] == pytest.approx(0.02) and r["r95"] is None
+    assert r["height"] == 401.25 and r["height_source"] == "given"
+    assert r["source"] == f"edit:{pos.id};edit:{hgt.id}"
+    # lat/lon follow the edited grid coordinates (pyproj reference)
+    lon, lat = Transformer.from_crs(32614, 4326, always_xy=True).transform(r["easting"],
+                                                                           r["northing"])
+    assert (r["lon"], r["lat"]) == pytest.approx((lon, lat), abs=1e-10)
+    f = _row(final, 1001, 2002)
+    assert f["flags"] == "far-from-plan" and f["flags_acknowledged"] == "moved"
+    assert f["source"] == "solver"  # an acknowledgement does not change values
+    assert unacknowledged_flags(final) == {"far-from-plan": 1}
+    assert ack.payload == '{"flag":"moved"}'
+    # as of before the edits: the solver's values
+    before = final_positions(arc, sid, run, as_of=pos.created_at.replace(year=2000))
+    assert _row(before, 1001, 2001)["source"] == "solver"
+
+
+def test_exclude_spans_accumulate(setup):
+    arc, sid, _final, _run = setup
+    a = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-11T00:00:00Z",
+                        end="2024-03-11T02:00:00Z", reason="carried by the crew")
+    b = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00Z",
+                        end="2024-03-12T01:00:00Z", reason="flooded")
+    assert b.supersedes is None
+    assert {e["id"] for e in ed.list_edits(arc, sid)} == {a.id, b.id}
+    with arc.session() as s:
+        assert s.get(Edit, a.id).payload.startswith('{"end":"2024-03-11T02:00:00+00:00"')
