@@ -1,0 +1,244 @@
+"""Deliveries: write final positions in an exchange format, keep a copy, record who got what.
+
+One delivery = the file's bytes stored by hash, the final-positions table stored as Parquet,
+a lineage manifest (JSON) stored by hash and written beside the file as
+``<file>.lineage.json``, a :class:`Delivery` row and a ``deliver`` ledger event. The file is
+written to a temporary name in the target folder first and renamed into place only after
+the transaction committed, so there is never a delivered file without its record.
+
+Refusals: unacknowledged review flags (unless ``allow_flags``), an existing file (unless
+``force``), a station without a position, a value that does not fit its format's field.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import json
+import os
+import tempfile
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+from sqlalchemy import func, select
+
+from archive import __version__
+from archive.deliver.context import DeliveryContext, station_label
+from archive.deliver.edits import edit_dict, edit_set
+from archive.deliver.final import final_positions, unacknowledged_flags
+from archive.deliver.formats import writer
+from archive.deliver.runs import get_run, manifest_inputs, run_manifest
+from archive.errors import Refused, UsageError
+from archive.store.archive import Archive
+from archive.store.hashing import table_digest
+from archive.store.ledger import row_digest
+from archive.store.models import Delivery, LedgerHead, RawFile, Run, Survey, utcnow
+
+LINEAGE_SUFFIX = ".lineage.json"
+
+
+@dataclass
+class DeliveryResult:
+    """What a delivery wrote and recorded."""
+
+    delivery_id: int
+    path: str
+    lineage_path: str
+    format: str
+    file_hash: str
+    manifest_hash: str
+    final_hash: str
+    run_id: str
+    n_stations: int
+    edit_ids: list[int] = field(default_factory=list)
+    edit_set_hash: str = ""
+    recipient: str = ""
+    unacknowledged_flags: dict[str, int] = field(default_factory=dict)
+    allowed_flags: bool = False
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for printing."""
+        return asdict(self)
+
+
+def _flag_refusal(final: pa.Table, flags: dict[str, int], run: Run) -> Refused:
+    flagged = [i for i, f in enumerate(final.column("flags").to_pylist()) if f]
+    listed = ", ".join(f"{k} ({v})" for k, v in flags.items())
+    examples = "; ".join(f"{station_label(final, i)}: {final.column('flags')[i].as_py()}"
+                         for i in flagged[:3])
+    return Refused(
+        f"run {run.id[:12]} has {len(flagged)} station(s) with unacknowledged review flags: "
+        f"{listed} (e.g. {examples})",
+        hint="review them and acknowledge each with 'nodekeep edit ack LINE POINT --flag NAME "
+             "--reason TEXT' (or fix/reject the station), or deliver anyway with --allow-flags",
+    )
+
+
+def _check_positions(final: pa.Table) -> None:
+    missing = [i for i, (e, n) in enumerate(zip(final.column("easting").to_pylist(),
+                                                final.column("northing").to_pylist(),
+                                                strict=True)) if e is None or n is None]
+    if missing:
+        names = ", ".join(station_label(final, i) for i in missing[:5])
+        raise Refused(f"{len(missing)} station(s) to deliver have no position: {names}",
+                      hint="set one with 'nodekeep edit set-position LINE POINT --from "
+                           "preplot|control|given --reason TEXT', or reject the station with "
+                           "'nodekeep edit reject LINE POINT --reason TEXT'")
+
+
+def raw_files_of(arc: Archive, survey_id: int, fix_hashes: list[str]) -> list[dict[str, Any]]:
+    """The raw files whose parsed fixes are among ``fix_hashes`` (as received)."""
+    if not fix_hashes:
+        return []
+    with arc.session() as s:
+        rows = s.scalars(select(RawFile).where(RawFile.survey_id == survey_id,
+                                               RawFile.fixes_hash.in_(fix_hashes))
+                         .order_by(RawFile.id)).all()
+    return [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
+             "format": r.format, "size": r.size, "fixes": r.fixes_hash,
+             "received_at": r.received_at, "received_by": r.received_by} for r in rows]
+
+
+def _json_bytes(doc: dict[str, Any]) -> bytes:
+    def default(v: Any) -> Any:
+        if hasattr(v, "isoformat"):
+            return v.isoformat()
+        raise TypeError(type(v).__name__)
+
+    return (json.dumps(doc, indent=2, sort_keys=True, ensure_ascii=False, default=default,
+                       allow_nan=False) + "\n").encode("utf-8")
+
+
+def _temp_beside(target: Path, data: bytes) -> Path:
+    """Write ``data`` to a fsynced temporary file in ``target``'s folder."""
+    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
+    with os.fdopen(fd, "wb") as fh:
+        fh.write(data)
+        fh.flush()
+        os.fsync(fh.fileno())
+    return Path(tmp)
+
+
+def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str | Path,
+            recipient: str, note: str = "", allow_flags: bool = False,
+            force: bool = False) -> DeliveryResult:
+    """Deliver the final positions of a run (plus edits in force) as ``fmt`` to ``to``."""
+    write = writer(fmt)
+    recipient = (recipient or "").strip()
+    if not recipient:
+        raise UsageError("a delivery needs a recipient", hint="say who gets it with --recipient")
+    target = Path(to)
+    lineage_path = target.with_name(target.name + LINEAGE_SUFFIX)
+    for p in (target, lineage_path):
+        if p.exists() and not force:
+            raise Refused(f"{p} already exists",
+                          hint="pass --force to overwrite it (earlier deliveries stay in the "
+                               "archive by hash), or choose another --to")
+    if not target.parent.is_dir():
+        raise UsageError(f"the folder {target.parent} does not exist")
+
+    run = get_run(arc, survey_id, run_ref)
+    edits, edit_hash = edit_set(arc, survey_id)
+    final = final_positions(arc, survey_id, run, edits=edits)
+    flags = unacknowledged_flags(final)
+    if flags and not allow_flags:
+        raise _flag_refusal(final, flags, run)
+    _check_positions(final)
+    with arc.session() as s:
+        survey = s.get(Survey, survey_id)
+    produced = utcnow()
+    ctx = DeliveryContext(
+        survey=survey.name, crs_epsg=survey.crs_epsg, client=survey.client,
+        contractor=survey.contractor, area=survey.area, vertical_datum=survey.vertical_datum,
+        run_id=run.id, edit_set_hash=edit_hash, edit_ids=tuple(e.id for e in edits),
+        code_version=__version__, produced_at=produced)
+    data = write(final, ctx)
+
+    manifest = run_manifest(arc, run)
+    inputs = manifest_inputs(manifest)
+    file_hash, file_size = arc.objects.put_bytes(data)
+    final_hash, final_size = arc.objects.put_table(final)
+    tmp_file = _temp_beside(target, data)
+    tmp_lineage = None
+    try:
+        with arc.transaction() as tx:
+            # Serialise deliveries so the next id is ours (the ledger head is the write lock).
+            tx.execute(select(LedgerHead).where(LedgerHead.id == 1).with_for_update())
+            next_id = (tx.execute(select(func.max(Delivery.id))).scalar_one_or_none() or 0) + 1
+            lineage = {
+                "nodekeep_lineage": 1,
+                "delivery": {"id": next_id, "format": fmt, "file_name": target.name,
+                             "file_hash": file_hash, "size": file_size,
+                             "recipient": recipient, "note": note, "actor": arc.actor,
+                             "at": produced, "allowed_flags": bool(allow_flags),
+                             "unacknowledged_flags": flags, "n_stations": final.num_rows},
+                "survey": {"name": survey.name, "crs": f"EPSG:{survey.crs_epsg}",
+                           "crs_name": survey.crs_name, "unit": survey.linear_unit,
+                           "vertical_datum": survey.vertical_datum, "client": survey.client,
+                           "contractor": survey.contractor},
+                "run": {"id": run.id, "manifest_hash": run.manifest_hash,
+                        "positions_hash": run.positions_hash,
+                        "positions_digest": run.positions_digest,
+                        "code_version": run.code_version, "created_at": run.created_at,
+                        "created_by": run.created_by, "manifest": manifest},
+                "edit_set_hash": edit_hash,
+                "edits": [edit_dict(e) | {"digest": row_digest(e)} for e in edits],
+                "inputs": inputs,
+                "raw_files": raw_files_of(arc, survey_id, inputs.get("fixes", [])),
+                "final_positions": {"hash": final_hash, "digest": table_digest(final),
+                                    "rows": final.num_rows},
+                "code_version": __version__,
+            }
+            lineage_bytes = _json_bytes(lineage)
+            manifest_hash, manifest_size = arc.objects.put_bytes(lineage_bytes)
+            tmp_lineage = _temp_beside(lineage_path, lineage_bytes)
+            arc.register_object(tx, file_hash, file_size, "delivery")
+            arc.register_object(tx, final_hash, final_size, "table")
+            arc.register_object(tx, manifest_hash, manifest_size, "lineage")
+            row = Delivery(
+                id=next_id, survey_id=survey_id, run_id=run.id, edit_set_hash=edit_hash,
+                edit_ids=json.dumps([e.id for e in edits]), format=fmt, file_hash=file_hash,
+                manifest_hash=manifest_hash, final_hash=final_hash, file_name=target.name,
+                recipient=recipient, note=note, allowed_flags=bool(allow_flags),
+                created_at=produced, created_by=arc.actor)
+            tx.add(row)
+            tx.flush()
+            arc.log(tx, "deliver",
+                    {"delivery": next_id, "run": run.id, "format": fmt, "file": file_hash,
+                     "name": target.name, "final": final_hash, "lineage": manifest_hash,
+                     "recipient": recipient, "edit_set": edit_hash,
+                     "edits": [e.id for e in edits], "allowed_flags": bool(allow_flags),
+                     "unacknowledged_flags": flags},
+                    survey_id=survey_id, rows=[row])
+    except BaseException:
+        for tmp in (tmp_file, tmp_lineage):
+            if tmp is not None:
+                with contextlib.suppress(FileNotFoundError):
+                    tmp.unlink()
+        raise
+    os.replace(tmp_file, target)
+    os.replace(tmp_lineage, lineage_path)
+    return DeliveryResult(
+        delivery_id=next_id, path=str(target), lineage_path=str(lineage_path), format=fmt,
+        file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash, run_id=run.id,
+        n_stations=final.num_rows, edit_ids=[e.id for e in edits], edit_set_hash=edit_hash,
+        recipient=recipient, unacknowledged_flags=flags, allowed_flags=bool(allow_flags))
+
+
+def delivery_dict(d: Delivery) -> dict[str, Any]:
+    """A delivery row as plain data."""
+    return {"id": d.id, "run": d.run_id, "format": d.format, "file_name": d.file_name,
+            "file_hash": d.file_hash, "lineage_hash": d.manifest_hash,
+            "final_hash": d.final_hash, "edit_set_hash": d.edit_set_hash,
+            "edit_ids": json.loads(d.edit_ids or "[]"), "recipient": d.recipient,
+            "note": d.note, "allowed_flags": d.allowed_flags, "created_at": d.created_at,
+            "created_by": d.created_by}
+
+
+def list_deliveries(arc: Archive, survey_id: int) -> list[dict[str, Any]]:
+    """Every delivery of a survey, oldest first."""
+    with arc.session() as s:
+        rows = s.scalars(select(Delivery).where(Delivery.survey_id == survey_id)
+                         .order_by(Delivery.id)).all()
+    return [delivery_dict(d) for d in rows]
