@@ -115,3 +115,30 @@ def _no_real_aws(monkeypatch: pytest.MonkeyPatch) -> None:
     """Never reach a real AWS account from these tests, whatever the machine's profile."""
     if "AWS_ENDPOINT_URL" not in os.environ:
         monkeypatch.setenv("AWS_EC2_METADATA_DISABLED", "true")
+
+
+@pytest.fixture(scope="session")
+def small_scenario(tmp_path_factory: pytest.TempPathFactory):
+    """The invented Kestrel Flats 3D scenario at its "small" size, generated once."""
+    from archive.seeds.scenario import generate
+
+    return generate(tmp_path_factory.mktemp("kestrel"), seed=7, size="small")
+
+
+def populate(arc, scenario, n_logs: int | None = 4) -> int:
+    """Load the scenario's inputs and ``n_logs`` node logs with the real loaders; survey id."""
+    from archive.ingest.load import load_fix_files
+    from archive.survey.inputs import load_input
+    from archive.survey.surveys import create_survey
+
+    survey = create_survey(arc, scenario.survey_name, f"EPSG:{scenario.epsg}",
+                           vertical_datum=scenario.vertical_datum, client=scenario.client,
+                           contractor=scenario.contractor)
+    load_input(arc, survey.id, "stations", scenario.preplot)
+    load_input(arc, survey.id, "deployments", scenario.deployments)
+    load_input(arc, survey.id, "control", scenario.control)
+    load_input(arc, survey.id, "dem", scenario.dem, vertical_datum=scenario.vertical_datum)
+    logs = scenario.logs if n_logs is None else scenario.logs[:n_logs]
+    report = load_fix_files(arc, survey.id, logs, workers=1)
+    assert report.ok, [f.error for f in report.failed]
+    return survey.id
