@@ -118,7 +118,7 @@ def dem() -> None:
     """Spot checks of the survey's elevation model."""
 
 
-@dem.command("sample")
+@dem.command("sample", context_settings={"ignore_unknown_options": True})  # negative E/N
 @click.argument("easting", type=float)
 @click.argument("northing", type=float)
 @click.option("--crs", default=None, metavar="EPSG:NNNN",

@@ -69,7 +69,7 @@ class CsvColumns:
         idx = np.flatnonzero(bad)
         first = int(idx[0])
         more = f"; {len(idx) - 1} more such records" if len(idx) > 1 else ""
-        value = self.columns[name][first]
+        value = str(self.columns[name][first])
         raise InputError(self.path, f"cannot read {value!r} as {name}{more}",
                          line=int(self.lines[first]), columns=name, expected=expected,
                          hint="correct the file and load it again")

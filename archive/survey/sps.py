@@ -125,7 +125,7 @@ def read_sps(data: bytes, path: str = "<sps>") -> SpsFile:
         n_bad = int(np.logical_or.reduce([t[1] for t in bad]).sum())
         more = f"; {n_bad - 1} more malformed records" if n_bad > 1 else ""
         cols = str(first) if first == last else f"{first}-{last}"
-        shown = "blank" if text[i] == "" else repr(text[i])
+        shown = "blank" if text[i] == "" else repr(str(text[i]))
         raise InputError(path, f"{name.replace('_', ' ')} is {shown}{more}",
                          line=int(rec_lines[i]), columns=cols, expected=expected,
                          hint="correct the record (columns per SPS rev 2.1) and load again")
