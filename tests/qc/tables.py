@@ -184,3 +184,29 @@ def synthetic_cloud(easting: float, northing: float, *, n: int = 400, seed: int 
         "reason": pa.array(np.where(status == "rejected", "outlier", "").tolist()),
         "raw_hash": pa.array(["0" * 64] * n), "raw_line": pa.array(np.arange(n) + 1, pa.int64()),
     })
+
+
+SURVEY = {"id": 1, "name": "Kestrel Flats 3D", "crs": "EPSG:32614",
+          "crs_name": "WGS 84 / UTM zone 14N", "unit": "metre", "vertical_datum": "NAVD88 (model)",
+          "client": "Harrow Basin Energy", "contractor": "Bluestem Geophysical crew 7", "area": ""}
+
+
+def run_data(positions: pa.Table, control: pa.Table | None, stations: pa.Table | None):
+    """RunData as the archive would give it, for rendering without an archive."""
+    from archive.qc.sources import InputInfo, RunData
+
+    run = {"id": "ab" * 32, "label": "first pass", "code_version": "0.1.0",
+           "n_positions": positions.num_rows, "n_flagged": 0, "positions_hash": "cd" * 32,
+           "manifest_hash": "ef" * 32, "created_at": T0 + timedelta(days=6),
+           "created_by": "survey data manager"}
+    manifest = {"code_version": "0.1.0",
+                "params": {"screen": {"max_hdop": 4.0, "min_sats": 5},
+                           "estimate": {"estimator": "huber", "huber_k": 1.345}},
+                "inputs": {"stations": "12" * 32, "deployments": "34" * 32,
+                           "fixes": ["56" * 32, "78" * 32]}}
+    inputs = {"control": InputInfo("control", 1, "9a" * 32, "9b" * 32, "check.csv",
+                                   control.num_rows if control is not None else 0),
+              "stations": InputInfo("stations", 2, "9c" * 32, "9d" * 32, "preplot.sps",
+                                    stations.num_rows if stations is not None else 0)}
+    return RunData(survey=dict(SURVEY), run=run, manifest=manifest, positions=positions,
+                   control=control, stations=stations, inputs=inputs)

@@ -1,0 +1,291 @@
+"""The HTML report of a run: one self-contained file people can open and read.
+
+Sections: cautions, lineage (run id, parameters, input hashes, code version), summary
+against the check points (solved and preplot side by side), overview map, error vectors,
+distributions, stations beyond tolerance, flagged stations with their fix clouds, and the
+definitions. Cloud plots are drawn only for stations needing review (beyond the tolerance
+or flagged by the solver), at most ``max_clouds``; the overview is decimated along lines.
+The report only reads the archive.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from html import escape
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from archive import __version__
+from archive.errors import NodekeepError, Refused, UsageError
+from archive.progress import NoProgress, Progress
+from archive.qc import figures, html, notes
+from archive.qc.check import QcResult, qc_of, summary_rows
+from archive.qc.clouds import Station, cloud_figure
+from archive.qc.sources import RunData, cloud_reader, load_run_data
+from archive.qc.stats import delivered
+from archive.store.archive import Archive
+
+MAX_CLOUDS = 40
+"""Stations drawn with their fix cloud; the rest of the review list is tabled only."""
+MAX_TABLE_ROWS = 1000
+BEYOND = "beyond-check"  # review reason added by qc: farther than the tolerance from its check point
+
+CloudReader = Callable[[float, float, int], "pa.Table | None"]
+
+
+@dataclass
+class ReportWritten:
+    """What was written."""
+
+    path: Path
+    size_bytes: int
+    n_figures: int
+    n_clouds: int
+    n_review: int
+    run: str
+    seconds: float
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for printing."""
+        return {"path": str(self.path), "size_bytes": self.size_bytes,
+                "n_figures": self.n_figures, "n_clouds": self.n_clouds,
+                "n_review": self.n_review, "run": self.run, "seconds": round(self.seconds, 2)}
+
+
+def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
+    """Stations to review: beyond the tolerance first (largest first), then solver flags."""
+    pos = delivered(data.positions).to_pandas()
+    pts = result.comparison.points.select(
+        ["line", "point", "index", "dist", "check_e", "check_n"]).to_pandas()
+    df = pos.merge(pts, on=["line", "point", "index"], how="left")
+    df["dist_preplot"] = df["dist_preplot"].fillna(
+        np.hypot(df["easting"] - df["preplot_e"], df["northing"] - df["preplot_n"]))
+    df["beyond"] = df["dist"] > result.tolerance
+    df = df[(df["flags"] != "") | df["beyond"]].copy()
+    df["reasons"] = np.where(df["beyond"], np.where(df["flags"] != "", BEYOND + ";" + df["flags"],
+                                                    BEYOND), df["flags"])
+    df["_d"] = df["dist"].where(df["beyond"], -1.0)
+    return df.sort_values(["_d", "line", "point", "index"], ascending=[False, True, True, True],
+                          kind="stable").reset_index(drop=True)
+
+
+def _summary_section(result: QcResult) -> str:
+    d = result.as_dict()
+    rows = [(label, html.pct(a) if unit == "fraction" else html.num(a),
+             html.pct(b) if unit == "fraction" else html.num(b))
+            for label, a, b, unit in summary_rows(d)]
+    body = (f"<p>{result.n_checked:,} stations have both a delivered position and an RTK check "
+            f"point ({result.n_check_points:,} check points loaded). Both columns use the same "
+            "stations.</p>"
+            + html.table(["against the check points (metres)", "solved", "preplot"], rows,
+                         numeric=(1, 2), cls="summary"))
+    if d["within_own_r95"] is not None:
+        body += (f"<p>{html.pct(d['within_own_r95'])} of the check points lie inside the "
+                 "solver's own 95 % radius of their station (about 95 % if the check points "
+                 "marked the node itself; the sensor offset lowers it).</p>")
+    body += "".join(f'<p class="note">{escape(n)}</p>' for n in result.notes[:4])
+    return html.section("summary", "Summary against the check points", body)
+
+
+def _lineage_section(data: RunData) -> str:
+    run, m = data.run, data.manifest or {}
+    facts = [("run id", run["id"]), ("label", run.get("label") or "–"),
+             ("created", html._short(run["created_at"])), ("by", str(run["created_by"])),
+             ("code version", str(m.get("code_version", run["code_version"]))),
+             ("positions table", run["positions_hash"]), ("manifest", run["manifest_hash"])]
+    body = html.kv_table(facts)
+    body += "<h3>Inputs of the run</h3>" + html.kv_table(html.flatten(m.get("inputs", {})))
+    body += ("<details><summary>Parameters of the run</summary>"
+             + html.kv_table(html.flatten(m.get("params", {}))) + "</details>")
+    qc_inputs = [(f"{k} (version {v.version})" if v.version else k,
+                  v.table_hash or "not loaded") for k, v in data.inputs.items()]
+    body += ("<h3>Inputs read by this report (current versions)</h3>"
+             + html.kv_table(qc_inputs))
+    return html.section("lineage", "Lineage", body)
+
+
+def _review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
+    if df.empty:
+        return "<p>No station needs review.</p>"
+    rows = []
+    for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
+        name = f"{r.line:g} / {r.point:g}"
+        link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
+        rows.append((link, r.index, escape(str(r.node)), escape(r.reasons.replace(";", ", ")),
+                     html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
+                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}"))
+    more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more stations are not listed; '
+            "'nodekeep qc --json' lists every one.</p>" if len(df) > MAX_TABLE_ROWS else "")
+    return ('<div class="scroll">' + html.table(
+        ["station (line / point)", "index", "node", "reasons", "to check point (m)",
+         "to preplot (m)", "own R95 (m)", "fixes used", "rejected"], rows,
+        numeric=(1, 4, 5, 6, 7, 8), raw=(0, 2, 3)) + "</div>" + more)
+
+
+def _station(r: Any) -> Station:
+    return Station(line=r.line, point=r.point, index=int(r.index), easting=r.easting,
+                   northing=r.northing, ell_major=r.ell_major, ell_minor=r.ell_minor,
+                   ell_bearing=r.ell_bearing, preplot_e=r.preplot_e, preplot_n=r.preplot_n,
+                   check_e=r.check_e, check_n=r.check_n, flags=r.reasons)
+
+
+def _clouds(df: pd.DataFrame, read_cloud: CloudReader | None, max_clouds: int,
+            progress: Progress) -> tuple[str, int]:
+    parts = []
+    for i, r in enumerate(df.head(max_clouds).itertuples()):
+        cloud, problem = None, ""
+        if read_cloud is not None:
+            try:
+                cloud = read_cloud(float(r.line), float(r.point), int(r.index))
+            except NodekeepError as exc:
+                problem = f"fixes unavailable: {exc}"
+        uri, caption = cloud_figure(_station(r), cloud)
+        caption = f"{r.reasons.replace(';', ', ')}. {caption}" + (f"; {problem}" if problem else "")
+        parts.append(html.figure(uri, caption, "cloud", f"fix cloud of station {r.line:g}/{r.point:g}")
+                     .replace('id="fig-cloud"', f'id="cloud-{i}"'))
+        progress.advance(1, f"{r.line:g}/{r.point:g}")
+    note = ""
+    if len(df) > max_clouds:
+        note = (f'<p class="note">Fix clouds are drawn for the first {max_clouds} of '
+                f"{len(df):,} stations needing review (those beyond the tolerance first); the "
+                "table above lists them all.</p>")
+    return note + '<div class="clouds">' + "".join(parts) + "</div>", len(parts)
+
+
+def _definitions() -> str:
+    from archive.solve.schema import FLAGS
+
+    flags = dict(FLAGS)
+    flags[BEYOND] = "farther from its RTK check point than the qc tolerance"
+    items = [("Differences", notes.SIGN_NOTE), ("Horizontal distance",
+              "sqrt(dE^2 + dN^2) per station; its mean, median, RMS (root mean square), 95th "
+              "percentile and maximum are empirical. " + notes.PERCENTILE_NOTE),
+             ("Bias and spread", "Per axis: bias is the mean difference, spread the sample "
+              "standard deviation (n - 1 in the denominator)."),
+             ("Accuracy measures", notes.ACCURACY_NOTE),
+             ("Own R95", "The solver's 95 % horizontal radius of each station, from its own "
+              "uncertainty model.")]
+    dl = "".join(f"<dt>{escape(k)}</dt><dd>{escape(v)}</dd>" for k, v in items)
+    return html.section("definitions", "Definitions", f'<dl class="defs">{dl}</dl>'
+                        + "<h3>Review reasons</h3>"
+                        + html.table(["reason", "meaning"], sorted(flags.items())))
+
+
+def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | None, *,
+                  progress: Progress | None = None, max_clouds: int = MAX_CLOUDS,
+                  generated_at: datetime | None = None) -> tuple[str, dict[str, int]]:
+    """The report page as text, with counts of figures and clouds drawn."""
+    progress = progress or NoProgress()
+    review = review_list(data, result)
+    n_clouds = min(len(review), max_clouds)
+    progress.start(3 + n_clouds, "figures", "report")
+    pts = result.comparison.points
+    col = {c: pts[c].to_numpy(zero_copy_only=False).astype(float) for c in
+           ("check_e", "check_n", "de", "dn", "dh", "dist", "pre_de", "pre_dn", "pre_dh",
+            "pre_dist")}
+    dl = delivered(data.positions)
+    arr = {c: dl[c].to_numpy(zero_copy_only=False).astype(float) for c in
+           ("line", "point", "easting", "northing", "preplot_e", "preplot_n")}
+    flagged = np.zeros(dl.num_rows, dtype=bool)
+    if len(review):
+        keys = dl.select(["line", "point", "index"]).to_pandas()
+        marked = keys.merge(review[["line", "point", "index"]].drop_duplicates(),
+                            on=["line", "point", "index"], how="left", indicator=True)
+        flagged = (marked["_merge"] == "both").to_numpy()
+    crs = data.survey["crs"]
+    figs: list[str] = []
+    uri, cap = figures.overview(figures.MapData(
+        arr["line"], arr["point"], arr["easting"], arr["northing"], arr["preplot_e"],
+        arr["preplot_n"], flagged, col["check_e"], col["check_n"], crs))
+    figs.append(html.figure(uri, cap, "overview", "map of the spread"))
+    progress.advance(1, "overview")
+    if pts.num_rows:
+        uri, cap, _ = figures.vectors(col["check_e"], col["check_n"], col["de"], col["dn"],
+                                      col["pre_de"], col["pre_dn"], crs)
+        figs.append(html.figure(uri, cap, "vectors", "error vectors at the check points"))
+        progress.advance(1, "vectors")
+        uri, cap = figures.distributions(col["dist"], col["pre_dist"], col["dh"], col["pre_dh"],
+                                         result.tolerance)
+        figs.append(html.figure(uri, cap, "distributions",
+                                "histograms and cumulative distributions of the differences"))
+        progress.advance(1, "distributions")
+    else:
+        figs.append('<p class="note">No check point matches a delivered station: no vector or '
+                    "distribution figures.</p>")
+    beyond_n = int(review["beyond"].sum()) if len(review) else 0
+    clouds_html, drawn = _clouds(review, read_cloud, max_clouds, progress)
+    progress.close()
+
+    s = result.comparison.solved.horizontal
+    p = result.comparison.preplot.horizontal
+    tiles = [(f"{result.n_delivered:,}", "stations delivered"),
+             (f"{result.n_checked:,}", "with an RTK check point"),
+             (f"{html.num(s.mean, '{:.2f}')} m", f"mean to check, solved (preplot {html.num(p.mean, '{:.2f}')} m)"),
+             (f"{html.num(s.p95, '{:.2f}')} m", f"95th percentile, solved (preplot {html.num(p.p95, '{:.2f}')} m)"),
+             (f"{beyond_n:,}", f"beyond {result.tolerance:g} m of their check point"),
+             (f"{result.n_flagged:,}", "flagged by the solver")]
+    verdict = '<div class="verdict">' + "".join(
+        f'<div class="tile"><div class="v">{escape(v)}</div><div class="k">{escape(k)}</div></div>'
+        for v, k in tiles) + "</div>"
+    cautions = html.section("cautions", "Read this first", "<ul>" + "".join(
+        f"<li>{escape(c)}</li>" for c in notes.CAUTIONS) + "</ul>", cls="caution")
+    legend = ("<p>Symbols in every figure: fixes used, small grey dots; rejected fixes, small "
+              "hollow grey rings; solved position, filled vermillion diamond with its 95 % "
+              "ellipse as a thin vermillion line; preplot, thin black plus; RTK check point, "
+              "hollow reddish-purple circle; flagged station, large dashed orange ring.</p>")
+    body = "".join([
+        verdict, cautions, _lineage_section(data), _summary_section(result),
+        html.section("figures", "Maps and distributions", legend + "".join(figs)),
+        html.section("review", f"Stations to review ({len(review):,})",
+                     _review_table(review, set(range(drawn))) + clouds_html),
+        _definitions(),
+    ])
+    when = (generated_at or datetime.now(UTC)).strftime("%Y-%m-%d %H:%M UTC")
+    sv = data.survey
+    title = f"Position report: {sv['name']}"
+    subtitle = (f"run {data.run['id'][:12]} · {sv['crs']} {sv['crs_name']} · "
+                + (f"client {sv['client']} · " if sv.get("client") else "")
+                + (f"{sv['contractor']} · " if sv.get("contractor") else "")
+                + "not a certified survey")
+    nav = [("cautions", "Cautions"), ("lineage", "Lineage"), ("summary", "Summary"),
+           ("figures", "Figures"), ("review", "Review"), ("definitions", "Definitions")]
+    footer = (f"nodekeep {__version__} · generated {when} · read-only view of run "
+              f"{data.run['id']}")
+    page = html.page(title, subtitle, nav, body, footer)
+    n_figures = sum(f.startswith("<figure") for f in figs) + drawn
+    return page, {"n_figures": n_figures, "n_clouds": drawn, "n_review": len(review)}
+
+
+def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | Path,
+                 progress: Progress | None = None, *, tolerance: float = notes.DEFAULT_TOLERANCE,
+                 force: bool = False, max_clouds: int = MAX_CLOUDS) -> ReportWritten:
+    """Write the report of a run (the newest when ``run_ref`` is None) to ``path``.
+
+    Refuses to overwrite an existing file unless ``force``. The file is written whole to a
+    temporary name and renamed, so a failure never leaves half a report.
+    """
+    path = Path(path)
+    if path.exists() and not force:
+        raise Refused(f"{path} already exists", hint="pass --force to overwrite it")
+    if not path.parent.is_dir():
+        raise UsageError(f"the folder {path.parent} does not exist",
+                         hint="create it first or choose another --to")
+    t0 = time.perf_counter()
+    data = load_run_data(arc, survey_id, run_ref)
+    result = qc_of(data, tolerance)
+    page, counts = render_report(data, result, cloud_reader(arc, data.run["id"]),
+                                 progress=progress, max_clouds=max_clouds)
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(page, encoding="utf-8")
+    os.replace(tmp, path)
+    return ReportWritten(path=path, size_bytes=path.stat().st_size, n_figures=counts["n_figures"],
+                         n_clouds=counts["n_clouds"], n_review=counts["n_review"],
+                         run=data.run["id"], seconds=time.perf_counter() - t0)
