@@ -19,10 +19,15 @@ from archive.store.hashing import table_digest
 from archive.store.models import Run
 
 
-def get_run(arc: Archive, survey_id: int, ref: str | None = None) -> Run:
-    """A run of the survey by id or unique prefix; the newest run when ``ref`` is None."""
+def get_run(arc: Archive, survey_id: int | None, ref: str | None = None) -> Run:
+    """A run of the survey by id or unique prefix; the newest run when ``ref`` is None.
+
+    ``survey_id`` None looks in every survey of the archive.
+    """
     with arc.session() as s:
-        q = select(Run).where(Run.survey_id == survey_id)
+        q = select(Run)
+        if survey_id is not None:
+            q = q.where(Run.survey_id == survey_id)
         if ref is None:
             run = s.scalars(q.order_by(Run.created_at.desc(), Run.id).limit(1)).first()
             if run is None:

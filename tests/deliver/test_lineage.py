@@ -1,0 +1,113 @@
+"""Trace, diff and where on hand-built runs (the solver's own runs: test_solver_runs.py)."""
+
+from __future__ import annotations
+
+from datetime import timedelta
+
+import numpy as np
+import pyarrow as pa
+import pytest
+
+from archive.deliver import edits as ed
+from archive.deliver.compare import compare_positions, diff_runs, parse_as_of, where
+from archive.deliver.deliveries import deliver
+from archive.deliver.lineage import trace_file, trace_station
+from archive.errors import UsageError
+from tests.deliver.builders import add_raw_file, delivery_archive, make_run, positions_table
+
+
+@pytest.fixture
+def delivered(survey_arc, tmp_path):
+    sid, final, run, raw = delivery_archive(survey_arc, tmp_path)
+    res = deliver(survey_arc, sid, None, "sps", tmp_path / "r.sps", "processing centre")
+    return survey_arc, sid, final, run, raw, res
+
+
+def test_trace_file_names_every_raw_file(delivered, tmp_path):
+    arc, sid, _final, run, raw, res = delivered
+    t = trace_file(arc, tmp_path / "r.sps")
+    assert t["delivery"]["id"] == res.delivery_id and t["run"]["id"] == run.id
+    names = sorted(r["name"] for r in t["raw_files"])
+    assert names == sorted(raw)
+    for r in t["raw_files"]:
+        assert len(r["hash"]) == 64 and r["received_by"] == "tester"
+        assert r["received_at"].tzinfo is not None
+    assert t["run"]["params"]["estimate"]["method"] == "huber"
+    assert t["run"]["code_version"] == "0.1.0"
+    assert t["survey"]["crs"] == "EPSG:32614"
+
+
+def test_trace_file_refuses_changed_file(delivered, tmp_path):
+    arc, *_ = delivered
+    changed = tmp_path / "r_changed.sps"
+    changed.write_bytes((tmp_path / "r.sps").read_bytes() + b"\n")
+    with pytest.raises(UsageError, match=r"matches no delivery.*changed after delivery"):
+        trace_file(arc, changed)
+
+
+def test_trace_station_chain(delivered):
+    arc, sid, final, run, _raw, res = delivered
+    e = ed.set_height(arc, sid, 1001, 2001, source="control", reason="RTK height")
+    t = trace_station(arc, sid, 1001, 2001)
+    assert t["delivery"]["id"] == res.delivery_id
+    assert t["delivery"]["position"]["easting"] == final.column("easting")[0].as_py()
+    assert t["run"]["id"] == run.id
+    assert [r["name"] for r in t["raw_files"]] == ["N5000_harvest1.nmea"]  # node N5000 there
+    assert t["fixes"]["used"] == final.column("n_used")[0].as_py()
+    assert [x["id"] for x in t["edits"]] == [e.id] and t["edits"][0]["reason"] == "RTK height"
+    with pytest.raises(UsageError, match="in no run, delivery or edit"):
+        trace_station(arc, sid, 1077, 2001)
+
+
+def test_diff_runs_movement_summary_added_removed(survey_arc, tmp_path):
+    sid, final, run_a, _ = delivery_archive(survey_arc, tmp_path, n=10)
+    pos = positions_table(final)
+    east = pos.column("easting").to_numpy().copy()
+    shifts = np.linspace(0.0, 2.7, pos.num_rows)  # known movement per station
+    east += shifts
+    pos = pos.set_column(pos.schema.get_field_index("easting"), "easting",
+                         pa.array(east))
+    pos_b = pos.slice(1)  # first station removed in b
+    f3 = add_raw_file(survey_arc, sid, "N5009", "N5009_h2.nmea", 31.7, -97.8)
+    run_b = make_run(survey_arc, pos_b, [f3], label="reprocessed")
+    d = diff_runs(survey_arc, run_a.id[:8], run_b.id[:8], threshold=1.6)
+    moved = shifts[1:]
+    # summary against numpy on the known shifts
+    assert d["summary"]["n_common"] == 9
+    assert d["summary"]["mean"] == pytest.approx(moved.mean(), abs=1e-9)
+    assert d["summary"]["max"] == pytest.approx(moved.max(), abs=1e-9)
+    assert d["summary"]["p95"] == pytest.approx(np.percentile(moved, 95), abs=1e-9)
+    assert [round(b["moved"], 6) for b in d["beyond"]] == sorted(
+        [round(float(x), 6) for x in moved if x > 1.6], reverse=True)
+    assert d["removed"] == [{"line": 1001.0, "point": 2001.0, "index": 1}]
+    assert d["added"] == []
+    back = compare_positions(pos_b, pos.slice(0), threshold=0.1)
+    assert back["added"] == [{"line": 1001.0, "point": 2001.0, "index": 1}]
+
+
+def test_where_as_of_before_and_after_second_delivery(delivered, tmp_path):
+    arc, sid, final, _run, _raw, first = delivered
+    e = ed.set_position(arc, sid, 1001, 2002, source="given", easting=612370.0,
+                        northing=3512346.0, reason="re-staked by the crew")
+    second = deliver(arc, sid, None, "csv", tmp_path / "r2.csv", "processing centre")
+    with arc.session() as s:
+        from archive.store.models import Delivery
+
+        t1 = s.get(Delivery, first.delivery_id).created_at
+        t2 = s.get(Delivery, second.delivery_id).created_at
+    now = where(arc, sid, 1001, 2002)
+    assert now["delivered"]["id"] == second.delivery_id
+    assert (now["delivered"]["easting"], now["delivered"]["source"]) == (612370.0, f"edit:{e.id}")
+    mid = where(arc, sid, 1001, 2002, as_of=t1 + (t2 - t1) / 2)
+    assert mid["delivered"]["id"] == first.delivery_id
+    assert mid["delivered"]["easting"] == final.column("easting")[1].as_py()
+    assert mid["delivered"]["source"] == "solver"
+    assert where(arc, sid, 1001, 2002, as_of=t1 - timedelta(seconds=1))["delivered"] is None
+    assert len(now["history"]) == 2
+
+
+def test_parse_as_of():
+    assert parse_as_of("2025-06-30").isoformat() == "2025-06-30T23:59:59.999999+00:00"
+    assert parse_as_of("2025-06-30T12:00:00Z").isoformat() == "2025-06-30T12:00:00+00:00"
+    with pytest.raises(UsageError, match="not an ISO 8601"):
+        parse_as_of("30/06/2025")
