@@ -7,8 +7,8 @@ assembled with array operations:
 
 - one epoch per accepted GGA sentence (it gives the time of day and the position);
 - its date comes from an RMC or ZDA of the same epoch (same time of day, no other GGA in
-  between), else from the nearest earlier date sentence (the chunk before included), else
-  from the nearest later one, else from ``date`` (``--date``); the day rolls over when the
+  between), else from the nearest earlier date sentence (earlier chunks included), else
+  from ``date`` (``--date``); the day rolls over when the
   time of day and the date sentence's time of day are more than 12 h apart (midnight UTC).
   A GGA with no date at all is rejected as ``no-date``;
 - an RMC of the same epoch with status V (or FAA mode N) makes the epoch invalid;
@@ -19,8 +19,8 @@ assembled with array operations:
 - HDOP is the GGA's, or the GSA's when the GGA leaves it empty.
 
 A chunk ends where a new epoch starts (a time-of-day change), so an epoch is never split.
-When most sentences of the file carry a checksum, a known sentence without one is counted
-as truncated (a line cut short loses its checksum first).
+When most sentences of the log's first chunk carry a checksum, a known sentence without one
+is counted as truncated (a line cut short loses its checksum first).
 """
 
 from __future__ import annotations
@@ -61,8 +61,7 @@ class _Carry:
     src_tod: int = -1  # ... and its time of day (µs)
     track_tod: int = -1  # last GGA time of day, for --date rollover
     track_day: int = 0  # days added to --date so far
-    n_known: int = 0  # known sentences seen so far
-    n_star: int = 0  # ... of which with a checksum
+    checksummed: bool = False  # the log's sentences carry checksums
 
 
 @dataclass
@@ -94,11 +93,8 @@ def _assemble(buf, starts, ends, cols, carry: _Carry, node: str, raw_hash: str,
               date0: int | None) -> Chunk:
     status, kind, star, tod, lat, lon, f1, f2, f3, i1, i2, date = cols
     n = status.shape[0]
-    known = kind > 0
-    carry.n_known += int(known.sum())
-    carry.n_star += int((known & star).sum())
-    if carry.n_star * 2 > carry.n_known:
-        status[known & ~star & (status == ns.ST_ACCEPTED)] = ns.ST_TRUNCATED
+    if carry.checksummed:
+        status[(kind > 0) & ~star & (status == ns.ST_ACCEPTED)] = ns.ST_TRUNCATED
     acc = status == ns.ST_ACCEPTED
     gga = np.flatnonzero(acc & (kind == ns.K_GGA))
     g = gga.shape[0]
@@ -123,7 +119,7 @@ def _assemble(buf, starts, ends, cols, carry: _Carry, node: str, raw_hash: str,
             day[match[wd]] = date[r[wd]]
             vd = m & (kind[r] == ns.K_RMC) & (i1[r] == 0)
             void[match[vd]] = True
-        # else the nearest earlier date sentence, else the nearest later one
+        # else the nearest earlier date sentence (this chunk or one before)
         need = np.flatnonzero(day < 0)
         if need.size and (ds.size or carry.src_date >= 0):
             prev = np.searchsorted(ds, gga[need]) - 1
@@ -132,11 +128,6 @@ def _assemble(buf, starts, ends, cols, carry: _Carry, node: str, raw_hash: str,
                           carry.src_date)
             st = np.where(has_prev, tod[ds[np.maximum(prev, 0)]] if ds.size else -1,
                           carry.src_tod)
-            nxt = prev + 1
-            use_next = (sd < 0) & (nxt < ds.size)
-            if use_next.any():
-                sd[use_next] = date[ds[nxt[use_next]]]
-                st[use_next] = tod[ds[nxt[use_next]]]
             ok = sd >= 0
             delta = st - gt[need]
             sd = sd + (delta > HALF_DAY) - (delta < -HALF_DAY)
@@ -163,7 +154,8 @@ def _assemble(buf, starts, ends, cols, carry: _Carry, node: str, raw_hash: str,
     ftype = np.full(g, -1, dtype=np.int16)
     gs = np.flatnonzero(acc & (kind == ns.K_GSA))
     if g and gs.size:
-        k = np.maximum(np.searchsorted(gga, gs, side="right") - 1, 0)
+        k = np.searchsorted(gga, gs, side="right") - 1
+        gs, k = gs[k >= 0], k[k >= 0]  # a GSA before any GGA has lost its epoch
         pdop = _first_per_epoch(k, f1[gs], g)
         ghdop = _first_per_epoch(k, f2[gs], g)
         vdop = _first_per_epoch(k, f3[gs], g)
@@ -212,27 +204,40 @@ def _fix_table(lines, day, gt, void, pdop, vdop, ghdop, ftype, lat, lon, alt_all
 
 
 def _epoch_cut(kind: np.ndarray, tod: np.ndarray, n: int) -> int:
-    """Index of the first line of the last epoch that starts inside the chunk (or n)."""
+    """Index of the first line of the last epoch that starts inside the chunk.
+
+    That epoch may go on in the next block, so it is parsed with it. 0 means "the chunk
+    holds one unfinished epoch: read more"; ``n`` that the chunk holds no time at all.
+    """
     tb = np.flatnonzero(((kind == ns.K_GGA) | (kind == ns.K_RMC) | (kind == ns.K_ZDA))
                         & (tod >= 0))
-    if tb.size < 2:
+    if tb.size == 0:
         return n
     t = tod[tb]
     change = np.flatnonzero(t[1:] != t[:-1])
-    return int(tb[change[-1] + 1]) if change.size else n
+    return int(tb[change[-1] + 1]) if change.size else int(tb[0])
+
+
+def has_checksums(head: bytes) -> bool:
+    """True when most sentences of a log's first bytes carry a checksum."""
+    return head.count(b"*") * 2 > head.count(b"$") > 0
 
 
 def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
-                date: dt.date | None = None) -> Iterator[Chunk]:
+                date: dt.date | None = None, checksummed: bool | None = None
+                ) -> Iterator[Chunk]:
     """Parse a log given as consecutive byte blocks; yields one :class:`Chunk` per block.
 
     Memory stays bounded by a few times the block size, whatever the length of the log.
+    ``checksummed`` (default: decided on the first block) says whether the log's
+    sentences carry checksums, in which case a known sentence without one is truncated.
     """
     date0 = None if date is None else (date - dt.date(1970, 1, 1)).days
     carry = _Carry()
     pending = b""
     it = iter(blocks)
     block = next(it, None)
+    carry.checksummed = has_checksums(block or b"") if checksummed is None else checksummed
     while block is not None:
         nxt = next(it, None)
         final = nxt is None
@@ -242,8 +247,9 @@ def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
         starts, ends = starts[:ncomp], ends[:ncomp]
         cols = ns.scan_lines(buf, starts, ends)
         cut = ncomp if final else _epoch_cut(cols[1], cols[3], ncomp)
-        if not final and cut == 0:
-            cut = ncomp
+        if cut == 0 and not final:
+            pending, block = data, nxt  # one unfinished epoch so far: read on
+            continue
         cols = tuple(c[:cut] for c in cols)
         consumed = int(starts[cut]) if cut < ncomp else (
             len(data) if final else _consumed_after(data, ends, ncomp))
@@ -311,4 +317,4 @@ def parse_nmea(data: bytes, *, node: str, raw_hash: str, date: dt.date | None = 
     log without RMC/ZDA. Never raises on bad content: bad lines become rejects.
     """
     return combine(iter_chunks(_bytes_blocks(data, chunk_bytes), node=node, raw_hash=raw_hash,
-                               date=date))
+                               date=date, checksummed=has_checksums(data[:CHUNK_BYTES])))
