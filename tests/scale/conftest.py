@@ -139,6 +139,7 @@ def populate(arc, scenario, n_logs: int | None = 4) -> int:
     load_input(arc, survey.id, "control", scenario.control)
     load_input(arc, survey.id, "dem", scenario.dem, vertical_datum=scenario.vertical_datum)
     logs = scenario.logs if n_logs is None else scenario.logs[:n_logs]
-    report = load_fix_files(arc, survey.id, logs, workers=1)
-    assert report.ok, [f.error for f in report.failed]
+    if logs:
+        report = load_fix_files(arc, survey.id, logs, workers=1)
+        assert report.ok, [f.error for f in report.failed]
     return survey.id
