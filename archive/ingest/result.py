@@ -74,7 +74,7 @@ def line_texts(buf: np.ndarray, starts: np.ndarray, ends: np.ndarray,
                limit: int = REJECT_TEXT_MAX) -> pa.Array:
     """The text of lines [starts, ends) of ``buf``, truncated to ``limit`` bytes, as strings.
 
-    Bytes outside printable ASCII become ``?`` so the result is always valid text; the raw
+    Bytes outside printable ASCII (tab kept) become ``?`` so the result is always valid text; the raw
     bytes themselves stay in the stored raw file.
     """
     starts = np.asarray(starts, dtype=np.int64)
@@ -85,7 +85,7 @@ def line_texts(buf: np.ndarray, starts: np.ndarray, ends: np.ndarray,
     idx = np.arange(total, dtype=np.int64) - np.repeat(offsets[:-1], lengths) \
         + np.repeat(starts, lengths)
     data = buf[idx].copy()
-    data[(data < 32) | (data > 126)] = ord("?")
+    data[((data < 32) & (data != 9)) | (data > 126)] = ord("?")
     return pa.StringArray.from_buffers(len(starts), pa.py_buffer(offsets.astype(np.int32)),
                                        pa.py_buffer(data.tobytes()))
 
