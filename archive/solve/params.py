@@ -39,8 +39,8 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "huber_k": (1.345, "Huber tuning constant (95 % efficiency at the normal, 1-D)"),
         "tukey_c": (4.685, "Tukey biweight tuning constant (95 % efficiency, 1-D)"),
         "reject_quantile": (0.999, "chi-square (2 dof) quantile beyond which a fix is rejected"),
-        "iterations": (8, "IRLS iterations per scale update (same for every cloud)"),
-        "scale_updates": (4, "times the MAD scale is re-estimated"),
+        "iterations": (6, "IRLS iterations per scale update (same for every cloud)"),
+        "scale_updates": (3, "times the MAD scale is re-estimated"),
         "scale_sample": (2048, "most fixes per cloud used for the median and MAD"),
     },
     "uncertainty": {

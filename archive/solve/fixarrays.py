@@ -1,0 +1,129 @@
+"""The fix table as numpy columns, sorted by node and time, with node codes.
+
+Fix tables arrive one per raw file (one node each). They are concatenated, sorted by
+(node, time, raw line) when not already in that order, and exact repeats of an epoch (the
+same node and time in two overlapping files) are dropped, keeping the first. Nodes get
+integer codes in sorted order of their serials. Window look-ups use a composite integer key
+``code·2⁴⁴ + (t − t₀)`` in microseconds, so one ``searchsorted`` finds every window at once.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from archive.errors import UsageError
+from archive.ingest.schema import FIX_SCHEMA
+
+TIME_BITS = 44  # 2^44 µs ≈ 203 days of fixes per survey
+MAX_NODES = 1 << (63 - TIME_BITS)
+
+
+def _float(col: pa.ChunkedArray) -> np.ndarray:
+    return pc.cast(col, pa.float64()).to_numpy(zero_copy_only=False).astype(np.float64)
+
+
+@dataclass
+class FixArrays:
+    """Columns of the sorted fix table (nulls of float columns are NaN)."""
+
+    node_names: list[str]
+    node_code: np.ndarray
+    t_us: np.ndarray
+    lat: np.ndarray
+    lon: np.ndarray
+    h_ell: np.ndarray
+    h_msl: np.ndarray
+    geoid_sep: np.ndarray
+    quality: np.ndarray
+    valid: np.ndarray
+    fix_type: np.ndarray
+    n_sats: np.ndarray
+    pdop: np.ndarray
+    hdop: np.ndarray
+    raw_hash: pa.ChunkedArray  # of the table as given (index with ``src``)
+    raw_line: np.ndarray
+    n_duplicates: int = 0
+    src: np.ndarray | None = None  # row of the given table behind each sorted fix
+
+    def raw_hashes(self, fix: np.ndarray) -> list[str]:
+        """Raw file hash of the given sorted fixes."""
+        return self.raw_hash.take(pa.array(self.src[fix])).to_pylist()
+
+    def __len__(self) -> int:
+        return len(self.t_us)
+
+    @property
+    def t0(self) -> int:
+        """Earliest fix time (µs), the origin of the composite key."""
+        return int(self.t_us.min()) if len(self.t_us) else 0
+
+    def key(self) -> np.ndarray:
+        """Composite sort key node·2⁴⁴ + (t − t₀); non-decreasing."""
+        return (self.node_code << TIME_BITS) + (self.t_us - self.t0)
+
+    def key_of(self, code: np.ndarray, t_us: np.ndarray) -> np.ndarray:
+        """Composite key of (node code, time) pairs, times clipped to the key's range."""
+        rel = np.clip(t_us - self.t0, -1, (1 << TIME_BITS) - 1)
+        return (code.astype(np.int64) << TIME_BITS) + rel
+
+    def columns(self) -> dict[str, np.ndarray]:
+        """The columns screening reads."""
+        return {"quality": self.quality, "valid": self.valid, "fix_type": self.fix_type,
+                "n_sats": self.n_sats, "pdop": self.pdop, "hdop": self.hdop}
+
+
+def empty_fixes() -> pa.Table:
+    """An empty fix table with the canonical schema."""
+    return FIX_SCHEMA.empty_table()
+
+
+def fix_arrays(table: pa.Table) -> FixArrays:
+    """Sort, de-duplicate and convert a fix table (FIX_SCHEMA columns) to numpy columns."""
+    if table.num_rows == 0:
+        table = empty_fixes()
+    t_raw = pc.cast(table["time"], pa.int64()).to_numpy(zero_copy_only=False)
+    names = sorted(pc.unique(table["node"]).to_pylist())
+    codes = pc.index_in(table["node"], value_set=pa.array(names, pa.string()))
+    codes = codes.to_numpy(zero_copy_only=False).astype(np.int64)
+    if len(names) >= MAX_NODES:
+        raise UsageError(f"{len(names)} nodes in one solve; at most {MAX_NODES - 1} are supported",
+                         hint="solve by node selection (--nodes)")
+    raw_line = table["raw_line"].to_numpy()
+    ordered = len(codes) < 2 or bool(np.all(
+        (np.diff(codes) > 0) | ((np.diff(codes) == 0) & (
+            (np.diff(t_raw) > 0) | ((np.diff(t_raw) == 0) & (np.diff(raw_line) >= 0))))))
+    src = None
+    if not ordered:
+        src = np.lexsort((raw_line, t_raw, codes))
+        codes, t_raw, raw_line = codes[src], t_raw[src], raw_line[src]
+    dup = np.zeros(len(codes), dtype=bool)
+    if len(codes) > 1:
+        dup[1:] = (codes[1:] == codes[:-1]) & (t_raw[1:] == t_raw[:-1])
+    n_dup = int(dup.sum())
+    if n_dup:
+        keep = np.flatnonzero(~dup)
+        src = keep if src is None else src[keep]
+        codes, t_raw, raw_line = codes[keep], t_raw[keep], raw_line[keep]
+    span = (int(t_raw.max()) - int(t_raw.min())) if len(t_raw) else 0
+    if span >= (1 << TIME_BITS):
+        raise UsageError("the fixes of one solve span more than 200 days",
+                         hint="solve by node selection (--nodes)")
+
+    def col(name: str) -> np.ndarray:
+        values = _float(table[name])
+        return values if src is None else values[src]
+
+    valid = table["valid"].to_numpy(zero_copy_only=False).astype(bool)
+    return FixArrays(
+        node_names=names, node_code=codes, t_us=t_raw.astype(np.int64),
+        lat=col("lat"), lon=col("lon"), h_ell=col("h_ell"), h_msl=col("h_msl"),
+        geoid_sep=col("geoid_sep"), quality=col("quality"),
+        valid=valid if src is None else valid[src],
+        fix_type=col("fix_type"), n_sats=col("n_sats"), pdop=col("pdop"), hdop=col("hdop"),
+        raw_hash=table["raw_hash"], raw_line=raw_line.astype(np.int64), n_duplicates=n_dup,
+        src=np.arange(len(codes)) if src is None else src,
+    )

@@ -1,0 +1,91 @@
+"""Review flags of each solved position (keys of :data:`archive.solve.schema.FLAGS`).
+
+Every flag is a vector test over all positions; the ``flags`` column joins the keys that
+apply with ";" in the fixed order of ``FLAGS``. The preplot checks use a k-d tree of the
+stations: distance to the position's own station, and the nearest *other* station (a
+position nearer another station than its own hints at a serial/station mix-up in the log).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+from archive.solve.schema import FLAGS
+
+
+def station_keys(*stations: tuple[np.ndarray, np.ndarray, np.ndarray]) -> list[np.ndarray]:
+    """Integer keys of (line, point, index) triples, consistent across the given sets."""
+    rows = np.concatenate([np.column_stack([np.asarray(a, dtype=np.float64) for a in s])
+                           for s in stations]) if stations else np.zeros((0, 3))
+    if len(rows) == 0:
+        return [np.zeros(0, dtype=np.int64) for _ in stations]
+    _, inverse = np.unique(rows, axis=0, return_inverse=True)
+    inverse = inverse.reshape(-1).astype(np.int64)
+    out, at = [], 0
+    for s in stations:
+        out.append(inverse[at:at + len(s[0])])
+        at += len(s[0])
+    return out
+
+
+def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
+                   st_key: np.ndarray, st_e: np.ndarray, st_n: np.ndarray,
+                   st_line: np.ndarray, st_point: np.ndarray) -> dict[str, np.ndarray]:
+    """Own preplot coordinates and distance, and the nearest other station and distance."""
+    n = len(east)
+    out = {k: np.full(n, np.nan) for k in
+           ("preplot_e", "preplot_n", "dist_preplot", "nearest_line", "nearest_point",
+            "dist_nearest")}
+    if len(st_key) == 0:
+        return out
+    order = np.argsort(st_key, kind="stable")
+    pos = np.clip(np.searchsorted(st_key[order], own_key), 0, len(order) - 1)
+    found = st_key[order][pos] == own_key
+    own = order[pos]
+    out["preplot_e"] = np.where(found, st_e[own], np.nan)
+    out["preplot_n"] = np.where(found, st_n[own], np.nan)
+    out["dist_preplot"] = np.hypot(east - out["preplot_e"], north - out["preplot_n"])
+    fin = np.isfinite(east) & np.isfinite(north)
+    if fin.any():
+        k = min(2, len(st_key))
+        dist, idx = cKDTree(np.column_stack([st_e, st_n])).query(
+            np.column_stack([east[fin], north[fin]]), k=k)
+        dist, idx = dist.reshape(len(dist), k), idx.reshape(len(idx), k)
+        first_is_own = st_key[idx[:, 0]] == own_key[fin]
+        col = np.where(first_is_own & (k > 1), 1, 0)
+        rows = np.arange(len(idx))
+        other = idx[rows, col]
+        valid = ~(first_is_own & (k == 1))
+        out["nearest_line"][fin] = np.where(valid, st_line[other], np.nan)
+        out["nearest_point"][fin] = np.where(valid, st_point[other], np.nan)
+        out["dist_nearest"][fin] = np.where(valid, dist[rows, col], np.nan)
+    return out
+
+
+def flag_strings(cols: dict[str, np.ndarray], p: dict[str, Any]) -> np.ndarray:
+    """The ";"-joined flags of every position from its columns and the parameters."""
+    f = p["flags"]
+    sigma0 = p["estimate"]["sigma0"]
+    used = cols["n_used"]
+    occupied = used > 0
+    tests = {
+        "few-fixes": occupied & (used < f["min_fixes"]),
+        "short-span": occupied & (cols["span_s"] < f["min_span_hours"] * 3600),
+        "wide-spread": occupied & (cols["unit_scale"] > f["spread_factor"] * sigma0),
+        "moved": cols["moved"],
+        "far-from-plan": cols["dist_preplot"] > f["far_from_plan"],
+        "nearer-other": cols["dist_nearest"] < cols["dist_preplot"],
+        "height-mismatch": np.abs(cols["dh"]) > f["height_tol"],
+        "off-model": cols["off_model"],
+        "unlogged": cols["kind"] == "unlogged",
+        "unoccupied": ~occupied,
+    }
+    assert list(tests) == list(FLAGS)
+    out = np.full(len(used), "", dtype=object)
+    for key, hit in tests.items():
+        hit = np.asarray(hit, dtype=bool)
+        out[hit] = np.where(out[hit] == "", key, out[hit] + ";" + key)
+    return out

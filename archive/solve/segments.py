@@ -1,0 +1,122 @@
+"""Segment reductions over sorted arrays, and the local east/north plane.
+
+Every per-cloud quantity of the solver is a *segment reduction*: the fixes of all clouds sit
+in one array, sorted so that each cloud (segment) is a contiguous run, and a segment id array
+``seg`` (non-decreasing, 0..S-1) says which cloud each element belongs to. Sums are
+``np.add.reduceat`` over the runs; medians come from one sort of a bounded, deterministic
+systematic subsample of each segment. No Python loop runs per segment.
+
+The local plane: around a reference latitude/longitude, east = (N + h)·cos φ₀·Δλ and
+north = (M + h)·Δφ with M, N the WGS 84 meridian and prime-vertical radii at φ₀. Over a
+station cloud (tens of metres) it agrees with the exact topocentric frame (EPSG method 9837)
+to well under a millimetre, and its inverse is exact, so only the solved centre is projected.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+WGS84_A = 6378137.0
+WGS84_F = 1 / 298.257223563
+WGS84_E2 = WGS84_F * (2 - WGS84_F)
+
+
+def seg_starts(seg: np.ndarray, n_seg: int) -> tuple[np.ndarray, np.ndarray]:
+    """(start index, count) of every segment of a non-decreasing segment id array."""
+    counts = np.bincount(seg, minlength=n_seg).astype(np.int64)
+    starts = np.zeros(n_seg, dtype=np.int64)
+    if n_seg > 1:
+        np.cumsum(counts[:-1], out=starts[1:])
+    return starts, counts
+
+
+def seg_sum(values: np.ndarray, seg: np.ndarray, n_seg: int) -> np.ndarray:
+    """Sum of ``values`` per segment (0 for empty ones): ``np.add.reduceat`` over the runs."""
+    ids = np.arange(n_seg)
+    starts = np.searchsorted(seg, ids, side="left")
+    ends = np.searchsorted(seg, ids, side="right")
+    out = np.zeros(n_seg)
+    full = ends > starts
+    if full.any():
+        out[full] = np.add.reduceat(np.asarray(values, dtype=np.float64), starts[full])
+    return out
+
+
+def expand_ranges(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Concatenate the index ranges [lo_k, hi_k): returns (indices, range number of each)."""
+    counts = np.maximum(hi - lo, 0).astype(np.int64)
+    total = int(counts.sum())
+    owner = np.repeat(np.arange(len(lo), dtype=np.int64), counts)
+    first = np.zeros(len(lo), dtype=np.int64)
+    if len(lo) > 1:
+        np.cumsum(counts[:-1], out=first[1:])
+    idx = np.arange(total, dtype=np.int64) - first[owner] + lo[owner].astype(np.int64)
+    return idx, owner
+
+
+def subsample(seg: np.ndarray, n_seg: int, cap: int) -> tuple[np.ndarray, np.ndarray]:
+    """A deterministic systematic subsample of at most ``cap`` elements per segment.
+
+    Returns (indices into the segment-sorted array, segment id of each). Segments with at
+    most ``cap`` elements are taken whole; longer ones evenly, at the centres of ``cap``
+    equal slices (in time, when the elements are time-ordered within a segment).
+    """
+    starts, counts = seg_starts(seg, n_seg)
+    take = np.minimum(counts, cap)
+    j, owner = expand_ranges(np.zeros(n_seg, dtype=np.int64), take)
+    n = counts[owner]
+    m = np.maximum(take[owner], 1)
+    idx = starts[owner] + ((2 * j + 1) * n) // (2 * m)
+    return idx, owner
+
+
+def seg_median(values: np.ndarray, seg: np.ndarray, n_seg: int, cap: int | None = None
+               ) -> np.ndarray:
+    """Median of ``values`` per segment (NaN for empty ones), from at most ``cap`` elements."""
+    if cap is not None:
+        idx, owner = subsample(seg, n_seg, cap)
+        values, seg = values[idx], owner
+    out = np.full(n_seg, np.nan)
+    if len(values) == 0:
+        return out
+    lo, hi = float(values.min()), float(values.max())
+    span = (hi - lo) or 1.0
+    # Sort by (segment, value) in one pass: segment ids are integers, the scaled value < 1.
+    key = seg.astype(np.float64) + (values - lo) / (span * 1.000001)
+    order = np.argsort(key, kind="stable")
+    v = values[order]
+    starts, counts = seg_starts(seg, n_seg)
+    has = counts > 0
+    a = starts[has] + (counts[has] - 1) // 2
+    b = starts[has] + counts[has] // 2
+    out[has] = 0.5 * (v[a] + v[b])
+    return out
+
+
+def radii(lat0_deg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """WGS 84 meridian (M) and prime-vertical (N) radii of curvature at latitude φ₀, m."""
+    s = np.sin(np.radians(lat0_deg))
+    w2 = 1.0 - WGS84_E2 * s * s
+    n = WGS84_A / np.sqrt(w2)
+    m = WGS84_A * (1.0 - WGS84_E2) / (w2 * np.sqrt(w2))
+    return m, n
+
+
+def to_local(lat: np.ndarray, lon: np.ndarray, lat0: np.ndarray, lon0: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray]:
+    """Degrees -> metres east/north of (lat0, lon0) (arrays broadcast element-wise)."""
+    m, n = radii(lat0)
+    dlon = (lon - lon0 + 180.0) % 360.0 - 180.0
+    east = np.radians(dlon) * n * np.cos(np.radians(lat0))
+    north = np.radians(lat - lat0) * m
+    return east, north
+
+
+def from_local(east: np.ndarray, north: np.ndarray, lat0: np.ndarray, lon0: np.ndarray
+               ) -> tuple[np.ndarray, np.ndarray]:
+    """Exact inverse of :func:`to_local`: metres east/north -> (lat, lon) degrees."""
+    m, n = radii(lat0)
+    lat = lat0 + np.degrees(north / m)
+    lon = lon0 + np.degrees(east / (n * np.cos(np.radians(lat0))))
+    lon = (lon + 180.0) % 360.0 - 180.0
+    return lat, lon

@@ -1,0 +1,214 @@
+"""Simulated node surveys with known truth, for tests, benchmarks and calibration checks.
+
+The error model of a single-frequency node receiver logging every ``interval`` seconds:
+
+- a first-order Gauss–Markov horizontal error per axis, σ = ``gm_sigma`` (2 m) with
+  correlation time ``gm_tau`` (30 min), scaled by HDOP/mean HDOP (σᵢ = σ₀·HDOPᵢ). Published
+  correlation times of GNSS position errors are minutes to tens of minutes (Howind et al.
+  1999: 5–20 min; ~20 min for double differences), with long-term components over tens of
+  minutes to hours for consumer receivers (D. L. Wilson's static tests);
+- white noise of ``white_sigma`` (0.5 m) × HDOP per fix;
+- a constant multipath bias per deployment, N(0, ``bias_sigma`` = 0.3 m) per axis (static
+  multipath repeats with the sidereal day and does not average out; magnitude from memory);
+- outlier bursts (reflections): on average ``bursts_per_day`` per deployment, 2–10 minutes
+  each, 15–60 m off in one direction;
+- void fixes (quality 0, RMC V) and 2-D fixes at random, far off.
+A horizontal 95 % error of a few metres per fix results, well inside the GPS SPS
+performance envelope (≤ 9 m 95 % horizontal, SPS PS 2008/2020). Each node also sits in a
+camp far from the stations before and after its deployment, and is carried in and out.
+Injected faults: moves during deployment, swapped serials in the log, unlogged deployments.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+
+import numpy as np
+import pyarrow as pa
+from scipy.signal import lfilter
+
+from archive.ingest.schema import FIX_SCHEMA
+from archive.solve.segments import from_local
+from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+from archive.survey.schema import DEPLOYMENT_SCHEMA, STATION_SCHEMA
+
+EPOCH = datetime(2024, 5, 1, tzinfo=UTC)
+
+
+@dataclass
+class SimConfig:
+    """What to simulate (defaults: a small patch of the invented Kestrel Flats 3D)."""
+
+    n_lines: int = 4
+    n_points: int = 8
+    point_spacing: float = 25.0
+    line_spacing: float = 200.0
+    origin: tuple[float, float] = (612000.0, 3581000.0)
+    epsg: int = 32614
+    days: float = 3.2
+    interval: float = 30.0
+    camp_hours: float = 6.0
+    gm_sigma: float = 2.0
+    gm_tau: float = 1800.0
+    white_sigma: float = 0.5
+    bias_sigma: float = 0.3
+    placement_sigma: float = 1.0
+    bursts_per_day: float = 1.0
+    void_rate: float = 0.02
+    twod_rate: float = 0.01
+    n_moves: int = 2
+    n_swaps: int = 1
+    n_unlogged: int = 1
+    move_range: tuple[float, float] = (8.0, 15.0)
+    seed: int = 7
+
+
+@dataclass
+class Simulation:
+    """Inputs as the archive would hold them, and the truth behind them."""
+
+    stations: pa.Table
+    deployments: pa.Table
+    fixes: pa.Table
+    truth: dict[str, np.ndarray]  # per node: true final E/N, station, moved, swapped, logged
+    camp: tuple[float, float]
+    meta: dict = field(default_factory=dict)
+
+
+def _gm(rng: np.random.Generator, n: int, sigma: float, tau: float, dt: float) -> np.ndarray:
+    rho = np.exp(-dt / tau)
+    w = rng.standard_normal(n)
+    x = lfilter([sigma * np.sqrt(1 - rho * rho)], [1.0, -rho], w,
+                zi=[rho * sigma * rng.standard_normal()])[0]
+    return x
+
+
+def simulate(cfg: SimConfig | None = None) -> Simulation:
+    """Simulate one node per station (see module doc); deterministic for a seed."""
+    cfg = cfg or SimConfig()
+    rng = np.random.default_rng(cfg.seed)
+    li, pi = np.meshgrid(np.arange(cfg.n_lines), np.arange(cfg.n_points), indexing="ij")
+    li, pi = li.ravel(), pi.ravel()
+    n_st = len(li)
+    st_line = 1001.0 + li
+    st_point = 2001.0 + pi
+    st_e = cfg.origin[0] + pi * cfg.point_spacing
+    st_n = cfg.origin[1] + li * cfg.line_spacing
+    stations = pa.table({
+        "line": st_line, "point": st_point, "index": pa.array(np.ones(n_st), pa.int8()),
+        "code": ["G1"] * n_st, "easting": st_e, "northing": st_n,
+        "elevation": np.full(n_st, 240.0), "kind": ["R"] * n_st,
+        "src_line": np.arange(1, n_st + 1, dtype=np.int64)}, schema=STATION_SCHEMA)
+    camp = (cfg.origin[0] - 1500.0, cfg.origin[1] - 1200.0)
+    nodes = np.array([f"KF{5000 + i:05d}" for i in range(n_st)], dtype=object)
+    true_e = st_e + rng.normal(0, cfg.placement_sigma, n_st)
+    true_n = st_n + rng.normal(0, cfg.placement_sigma, n_st)
+    order = rng.permutation(n_st)
+    moved = np.zeros(n_st, dtype=bool)
+    moved[order[:cfg.n_moves]] = True
+    unlogged = np.zeros(n_st, dtype=bool)
+    unlogged[order[cfg.n_moves:cfg.n_moves + cfg.n_unlogged]] = True
+    # swaps: pairs of neighbours along a line, logged with each other's station
+    logged_station = np.arange(n_st)
+    swapped = np.zeros(n_st, dtype=bool)
+    cand = [i for i in order[cfg.n_moves + cfg.n_unlogged:] if pi[i] + 1 < cfg.n_points]
+    for a in cand:
+        if swapped.sum() >= 2 * cfg.n_swaps:
+            break
+        b = a + 1
+        if swapped[a] or swapped[b] or moved[b] or unlogged[b] or moved[a]:
+            continue
+        logged_station[a], logged_station[b] = b, a
+        swapped[a] = swapped[b] = True
+
+    dt = cfg.interval
+    dep_start = EPOCH.timestamp() + cfg.camp_hours * 3600 + rng.uniform(0, 3600, n_st)
+    dep_len = cfg.days * 86400
+    transit = 1800.0
+    fin_e, fin_n = true_e.copy(), true_n.copy()
+    move_t = np.full(n_st, np.nan)
+    tables = []
+    to_geo = transformer(cfg.epsg, WGS84_GEOGRAPHIC)
+    for i in range(n_st):
+        t0 = dep_start[i] - transit - cfg.camp_hours * 3600
+        t_end = dep_start[i] + dep_len + transit + cfg.camp_hours * 3600
+        t = np.arange(np.ceil(t0 / dt) * dt, t_end, dt)
+        n = len(t)
+        pe = np.full(n, camp[0]) + rng.normal(0, 3, n)  # camp: nodes stacked in racks
+        pn = np.full(n, camp[1]) + rng.normal(0, 3, n)
+        go = (t >= dep_start[i] - transit) & (t < dep_start[i])
+        f = (t[go] - (dep_start[i] - transit)) / transit
+        pe[go], pn[go] = camp[0] + f * (true_e[i] - camp[0]), camp[1] + f * (true_n[i] - camp[1])
+        on = (t >= dep_start[i]) & (t < dep_start[i] + dep_len)
+        pe[on], pn[on] = true_e[i], true_n[i]
+        handled = on & (t < dep_start[i] + 900)  # first 15 min: still being placed
+        pe[handled] += rng.normal(0, 6, handled.sum())
+        pn[handled] += rng.normal(0, 6, handled.sum())
+        if moved[i]:
+            move_t[i] = dep_start[i] + rng.uniform(0.35, 0.65) * dep_len
+            ang = rng.uniform(0, 2 * np.pi)
+            size = rng.uniform(*cfg.move_range)
+            fin_e[i], fin_n[i] = true_e[i] + size * np.sin(ang), true_n[i] + size * np.cos(ang)
+            after = on & (t >= move_t[i])
+            pe[after], pn[after] = fin_e[i], fin_n[i]
+        back = (t >= dep_start[i] + dep_len) & (t < dep_start[i] + dep_len + transit)
+        f = (t[back] - (dep_start[i] + dep_len)) / transit
+        pe[back] = fin_e[i] + f * (camp[0] - fin_e[i])
+        pn[back] = fin_n[i] + f * (camp[1] - fin_n[i])
+        hdop = np.clip(1.1 + 0.35 * np.sin(2 * np.pi * t / 43082 + rng.uniform(0, 6.3))
+                       + 0.3 * _gm(rng, n, 1.0, 600.0, dt), 0.6, 3.9)
+        scale = hdop / 1.1
+        ee = (_gm(rng, n, cfg.gm_sigma, cfg.gm_tau, dt) * scale
+              + rng.normal(0, cfg.white_sigma, n) * hdop + rng.normal(0, cfg.bias_sigma))
+        en = (_gm(rng, n, cfg.gm_sigma, cfg.gm_tau, dt) * scale
+              + rng.normal(0, cfg.white_sigma, n) * hdop + rng.normal(0, cfg.bias_sigma))
+        n_burst = rng.poisson(cfg.bursts_per_day * cfg.days)
+        for _ in range(n_burst):
+            b0 = rng.uniform(dep_start[i], dep_start[i] + dep_len)
+            hit = (t >= b0) & (t < b0 + rng.uniform(120, 600))
+            ang, size = rng.uniform(0, 2 * np.pi), rng.uniform(15, 60)
+            ee[hit] += size * np.sin(ang) + rng.normal(0, 3, hit.sum())
+            en[hit] += size * np.cos(ang) + rng.normal(0, 3, hit.sum())
+            hdop[hit] = np.clip(hdop[hit] + 1.0, 0.6, 3.9)
+        void = rng.random(n) < cfg.void_rate
+        twod = ~void & (rng.random(n) < cfg.twod_rate)
+        junk = void | twod
+        ee[junk] += rng.uniform(-300, 300, junk.sum())
+        en[junk] += rng.uniform(-300, 300, junk.sum())
+        lon_t, lat_t = to_geo.transform(pe, pn)
+        lat, lon = from_local(ee, en, np.asarray(lat_t), np.asarray(lon_t))
+        h_true = 240.0
+        sep = -24.5
+        h_msl = h_true + _gm(rng, n, 4.0, cfg.gm_tau, dt) + rng.normal(0, 1.0, n)
+        n_sats = rng.integers(6, 13, n).astype(np.int16)
+        tables.append(pa.table({
+            "node": [nodes[i]] * n,
+            "time": pa.array((t * 1e6).astype(np.int64), pa.int64()).cast(FIX_SCHEMA.field("time").type),
+            "lat": lat, "lon": lon, "h_ell": h_msl + sep, "h_msl": h_msl,
+            "geoid_sep": np.full(n, sep), "quality": pa.array(np.where(void, 0, 1), pa.int8()),
+            "fix_type": pa.array(np.where(void, 1, np.where(twod, 2, 3)), pa.int8()),
+            "valid": ~void, "n_sats": n_sats,
+            "pdop": pa.array((hdop * 1.7).astype(np.float32)),
+            "hdop": pa.array(hdop.astype(np.float32)),
+            "vdop": pa.array((hdop * 1.4).astype(np.float32)),
+            "raw_hash": [f"{i:064x}"] * n, "raw_line": np.arange(1, n + 1, dtype=np.int64),
+        }, schema=FIX_SCHEMA))
+    fixes = pa.concat_tables(tables)
+    logged = ~unlogged
+    # the log: deployment recorded within 5 min of placement, retrieval within 5 min
+    dep = (dep_start + rng.uniform(-120, 300, n_st)) * 1e6
+    ret = (dep_start + dep_len + rng.uniform(-300, 120, n_st)) * 1e6
+    ls = logged_station[logged]
+    deployments = pa.table({
+        "node": list(nodes[logged]), "line": st_line[ls], "point": st_point[ls],
+        "index": pa.array(np.ones(len(ls)), pa.int8()),
+        "deployed": pa.array(dep[logged].astype(np.int64)).cast(DEPLOYMENT_SCHEMA.field("deployed").type),
+        "retrieved": pa.array(ret[logged].astype(np.int64)).cast(DEPLOYMENT_SCHEMA.field("retrieved").type),
+        "src_line": np.arange(1, logged.sum() + 1, dtype=np.int64)}, schema=DEPLOYMENT_SCHEMA)
+    truth = {"node": nodes, "station": np.arange(n_st), "line": st_line, "point": st_point,
+             "logged_station": logged_station, "e": fin_e, "n": fin_n, "e_first": true_e,
+             "n_first": true_n, "moved": moved, "move_t": move_t, "swapped": swapped,
+             "unlogged": unlogged, "h": np.full(n_st, 240.0)}
+    return Simulation(stations=stations, deployments=deployments, fixes=fixes, truth=truth,
+                      camp=camp, meta={"epsg": cfg.epsg, "config": cfg})
