@@ -22,7 +22,7 @@ from sqlalchemy import select
 
 from archive import __version__
 from archive.deliver.deliveries import delivery_dict
-from archive.deliver.runs import get_run, run_positions
+from archive.deliver.runs import get_run, plain, run_positions
 from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import table_digest
@@ -78,7 +78,7 @@ def diff_runs(arc: Archive, a: str, b: str, threshold: float = 1.0,
         raise UsageError("the threshold must be zero or more metres")
     ra, rb = get_run(arc, survey_id, a), get_run(arc, survey_id, b)
     out = compare_positions(run_positions(arc, ra), run_positions(arc, rb), threshold)
-    return {"run_a": ra.id, "run_b": rb.id} | out
+    return plain({"run_a": ra.id, "run_b": rb.id} | out)
 
 
 def reproduce(arc: Archive, run_ref: str, survey_id: int | None = None) -> dict[str, Any]:
@@ -145,6 +145,6 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int = 
                 "easting": r["easting"], "northing": r["northing"], "height": r["height"],
                 "lat": r.get("lat"), "lon": r.get("lon"), "source": r["source"],
                 "flags": r["flags"]})
-    return {"station": {"line": float(line), "point": float(point), "index": int(index)},
-            "as_of": cutoff, "delivered": history[-1] if history else None,
-            "history": history}
+    return plain({"station": {"line": float(line), "point": float(point), "index": int(index)},
+                  "as_of": cutoff, "delivered": history[-1] if history else None,
+                  "history": history})

@@ -20,7 +20,7 @@ from sqlalchemy import or_, select
 
 from archive.deliver.deliveries import delivery_dict, raw_files_of
 from archive.deliver.edits import list_edits
-from archive.deliver.runs import get_run, manifest_inputs, run_manifest, run_positions
+from archive.deliver.runs import get_run, manifest_inputs, plain, run_manifest, run_positions
 from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import sha256_file
@@ -117,7 +117,7 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     fix_hashes = manifest_inputs(run_manifest(arc, run)).get("fixes", [])
     fixes = _cloud_fixes(arc, survey_id, run, solved[0], fix_hashes) if solved else {
         "basis": "none", "fixes": {}, "raw_files": []}
-    return {
+    return plain({
         "station": {"line": float(line), "point": float(point), "index": int(index)},
         "delivery": carried[-1] if carried else None,
         "deliveries": carried,
@@ -128,7 +128,7 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
                      for r in rows],
         "fixes": fixes["fixes"], "fixes_basis": fixes["basis"], "raw_files": fixes["raw_files"],
         "edits": edits,
-    }
+    })
 
 
 def _position(r: dict[str, Any]) -> dict[str, Any]:
@@ -156,7 +156,7 @@ def trace_file(arc: Archive, path: str | Path) -> dict[str, Any]:
     fix_hashes = manifest_inputs(run_manifest(arc, run)).get("fixes", [])
     ids = json.loads(d.edit_ids or "[]")
     edits = [e for e in list_edits(arc, d.survey_id, all_edits=True) if e["id"] in ids]
-    return {
+    return plain({
         "file": {"path": str(path), "hash": h},
         "delivery": delivery_dict(d),
         "same_bytes_delivered": [x.id for x in found],
@@ -165,4 +165,4 @@ def trace_file(arc: Archive, path: str | Path) -> dict[str, Any]:
         "edits": edits,
         "n_stations": lineage.get("delivery", {}).get("n_stations"),
         "survey": lineage.get("survey"),
-    }
+    })

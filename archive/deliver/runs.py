@@ -62,6 +62,17 @@ def run_manifest(arc: Archive, run: Run) -> dict[str, Any]:
     return json.loads(arc.objects.read_bytes(run.manifest_hash))
 
 
+def plain(value: Any) -> Any:
+    """``value`` with every float NaN replaced by None (JSON has no NaN), recursively."""
+    if isinstance(value, float) and value != value:
+        return None
+    if isinstance(value, dict):
+        return {k: plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [plain(v) for v in value]
+    return value
+
+
 def manifest_inputs(manifest: dict[str, Any]) -> dict[str, Any]:
     """The manifest's input hashes: ``fixes`` (a list) plus the named input tables."""
     inputs = dict(manifest.get("inputs") or {})
