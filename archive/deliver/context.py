@@ -18,8 +18,10 @@ from archive.errors import Refused
 from archive.survey.crs import crs_from_epsg
 
 # Which instant the day-of-year / time fields of SPS and SEG-P1 records hold.
-TIME_BASIS = "end of the fix window used for the station (UTC); blank when unknown"
-POSITION_MAPPED = "receiver (node sensor) position as solved from its own GNSS fixes"
+TIME_BASIS = "UTC, end of the fix window used"
+POSITION_MAPPED = "receiver (node) as solved from its GNSS fixes"
+CAUTION = ("positions for seismic processing; not a certified or legal survey, not for "
+           "boundaries, construction or safety setbacks")
 
 
 @dataclass(frozen=True)

@@ -24,7 +24,7 @@ import pyarrow as pa
 from sqlalchemy import func, select
 
 from archive import __version__
-from archive.deliver.context import DeliveryContext, station_label
+from archive.deliver.context import CAUTION, DeliveryContext, station_label
 from archive.deliver.edits import edit_dict, edit_set
 from archive.deliver.final import final_positions, unacknowledged_flags
 from archive.deliver.formats import writer
@@ -189,6 +189,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                 "final_positions": {"hash": final_hash, "digest": table_digest(final),
                                     "rows": final.num_rows},
                 "code_version": __version__,
+                "caution": CAUTION,
             }
             lineage_bytes = _json_bytes(lineage)
             manifest_hash, manifest_size = arc.objects.put_bytes(lineage_bytes)

@@ -103,7 +103,7 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
                                       "DDMMSSss 0.01 sec"),
         ("H13", "Elevation", f"{ctx.vertical_datum or 'datum not stated'}, "
                              f"metre, {prec('height')}"),
-        ("H14", "Time basis", "UTC; " + TIME_BASIS),
+        ("H14", "Time basis", TIME_BASIS),
         ("H15", "Position mapped", POSITION_MAPPED),
         ("H16", "Producing run (1/2)", ctx.run_id[:32]),
         ("H17", "Producing run (2/2)", ctx.run_id[32:]),

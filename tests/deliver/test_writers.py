@@ -12,6 +12,7 @@ import pyarrow as pa
 import pytest
 from pyproj import Transformer
 
+from archive.deliver.context import POSITION_MAPPED, TIME_BASIS
 from archive.deliver.csvfile import CSV_COLUMNS, write_csv
 from archive.deliver.gis import write_geojson, write_gpkg
 from archive.deliver.segp1 import write_segp1
@@ -76,6 +77,7 @@ def test_sps_header_states_crs_datum_units_and_run():
     assert heads["H22"].startswith("-99")
     h26 = [r[32:].strip() for r in text.splitlines() if r.startswith("H26")]
     assert "a" * 32 in h26 and "b" * 32 in h26
+    assert TIME_BASIS in h26 and POSITION_MAPPED in h26  # stated in full, not cut at col 80
 
 
 @pytest.mark.parametrize("field,value,cols", [
@@ -122,7 +124,7 @@ def test_segp1_read_back_and_lat_lon_against_pyproj():
     assert "E 0.1 m" in h["H11"] and "N 1 m" in h["H11"]
     assert "Transverse Mercator" in h["H07"]
     assert "lon0=-99deg" in h["H08"] + h["H09"] + h["H10"]
-    assert "UTC" in h["H14"] and "receiver" in h["H15"]
+    assert h["H14"] == TIME_BASIS and h["H15"] == POSITION_MAPPED
 
 
 def test_segp1_southern_western_hemisphere():
