@@ -34,7 +34,14 @@ from archive.solve.schema import POSITION_SCHEMA
 from archive.solve.screen import apply_excludes, screen_codes
 from archive.solve.segments import from_local, seg_median, seg_starts, to_local
 from archive.solve.uncertainty import ar1_covariance, batch_covariance, ellipse95, radius95
-from archive.solve.windows import FOREVER, Windows, gather, inside_any, logged_windows
+from archive.solve.windows import (
+    FOREVER,
+    Windows,
+    gather,
+    inside_any,
+    logged_windows,
+    node_codes,
+)
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 
 Orthometric = Callable[[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray], np.ndarray]
@@ -92,8 +99,13 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
                 params: dict[str, Any], crs_epsg: int, *,
                 excludes: list[tuple[str, int, int]] | None = None,
                 sampler: Sampler | None = None, orthometric: Orthometric | None = None,
-                detect_unlogged: bool = True, want_members: bool = False) -> SolveOutput:
-    """Solve every deployment of ``deployments`` from ``fixes`` (see module doc)."""
+                detect_unlogged: bool = True, extra_windows: Windows | None = None,
+                want_members: bool = False) -> SolveOutput:
+    """Solve every deployment of ``deployments`` from ``fixes`` (see module doc).
+
+    ``extra_windows`` adds windows given directly (an unlogged cluster's window, when one
+    station's cloud is recomputed without searching the node tracks again).
+    """
     p = params
     est = p["estimate"]
     cap = est["scale_sample"]
@@ -112,6 +124,10 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
         unl = find_clusters(fx, ok & ~inside, st_en, (st["line"], st["point"], st["index"]),
                             crs_epsg, p["clusters"])
         wins = Windows.concat([logged, unl])
+    if extra_windows is not None and len(extra_windows):
+        extra = extra_windows
+        extra.code = node_codes(extra.node, fx)
+        wins = Windows.concat([wins, extra])
     n_win = len(wins)
     idx, wseg = gather(fx, wins)
     m_ok = ok[idx]

@@ -1,0 +1,243 @@
+"""What a solve reads from the archive, and how it is cut into node partitions.
+
+:func:`survey_inputs` gathers the current input versions (or, for a recompute, exactly the
+objects a manifest names), the fix tables of the raw files of the selected nodes and the
+exclude-span edits in force. :func:`partitions` groups the fix tables by node into
+partitions of bounded size: nodes are independent in the solver (windows, clusters and moves
+are per node), so solving partition by partition gives the same table as solving all at
+once while memory stays bounded.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+from sqlalchemy import select
+
+from archive.errors import IntegrityError, UsageError
+from archive.solve.fixarrays import empty_fixes
+from archive.solve.screen import parse_excludes
+from archive.store.archive import Archive
+from archive.store.edit_log import edits_in_force
+from archive.store.models import InputVersion, RawFile, Survey
+
+PARTITION_FIXES = 4_000_000
+
+
+@dataclass
+class Partition:
+    """Nodes solved together, their fix objects and deployments."""
+
+    nodes: list[str]
+    fix_hashes: list[str]
+    n_fixes: int
+    deployments: pa.Table
+
+
+@dataclass
+class SolveInputs:
+    """Everything a solve reads, with the hashes the manifest records."""
+
+    survey: dict[str, Any]
+    stations: pa.Table
+    stations_hash: str
+    deployments: pa.Table
+    deployments_hash: str
+    dem_hash: str | None
+    dem_datum: str
+    versions: dict[str, int | None]
+    fix_files: list[tuple[str, str, int]]  # (node, fixes hash, n_fixes)
+    edits: list[dict[str, Any]]
+    station_keys: set[tuple[float, float]] | None = None
+    detect_unlogged: bool = True
+    extra: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def fix_hashes(self) -> list[str]:
+        """Distinct fix object hashes read."""
+        return sorted({h for _, h, _ in self.fix_files})
+
+    def keep_selected(self, pos: pa.Table) -> pa.Table:
+        """Rows of the selected stations only."""
+        if self.station_keys is None:
+            return pos
+        lines, points = pos["line"].to_pylist(), pos["point"].to_pylist()
+        mask = [(a, b) in self.station_keys for a, b in zip(lines, points, strict=True)]
+        return pos.filter(pa.array(mask, pa.bool_()))
+
+    def open_dem(self, arc: Archive):  # noqa: ANN201 - DemSampler | None
+        """A sampler over the elevation model named by hash, or None."""
+        if self.dem_hash is None:
+            return None
+        from archive.survey.dem import DemSampler
+
+        local = arc.objects.local_path(self.dem_hash)
+        if local is not None:
+            return DemSampler(local, self.dem_datum, source_hash=self.dem_hash)
+        with arc.objects.open(self.dem_hash) as fh:
+            return DemSampler(fh, self.dem_datum, source_hash=self.dem_hash)
+
+
+def _current(arc: Archive, survey_id: int, kind: str) -> InputVersion | None:
+    with arc.session() as s:
+        return s.scalars(select(InputVersion).where(
+            InputVersion.survey_id == survey_id, InputVersion.kind == kind)
+            .order_by(InputVersion.version.desc()).limit(1)).first()
+
+
+def _by_hash(arc: Archive, survey_id: int, kind: str, h: str | None) -> InputVersion | None:
+    if h is None:
+        return None
+    with arc.session() as s:
+        return s.scalars(select(InputVersion).where(
+            InputVersion.survey_id == survey_id, InputVersion.kind == kind,
+            (InputVersion.table_hash == h) | (InputVersion.source_hash == h))
+            .order_by(InputVersion.version).limit(1)).first()
+
+
+def _survey_dict(s: Survey) -> dict[str, Any]:
+    return {"id": s.id, "name": s.name, "crs_epsg": s.crs_epsg,
+            "height_mode": s.height_mode or "gga", "height_param": s.height_param or "",
+            "vertical_datum": s.vertical_datum or ""}
+
+
+def _select(dep: pa.Table, selection: dict[str, Any]) -> tuple[pa.Table, set | None]:
+    keys = None
+    if selection.get("stations"):
+        keys = {(float(a), float(b)) for a, b in selection["stations"]}
+        mask = [(a, b) in keys for a, b in zip(dep["line"].to_pylist(),
+                                               dep["point"].to_pylist(), strict=True)]
+        dep = dep.filter(pa.array(mask, pa.bool_()))
+    if selection.get("nodes"):
+        dep = dep.filter(pc.is_in(dep["node"], value_set=pa.array(selection["nodes"])))
+    return dep, keys
+
+
+def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
+                  manifest: dict[str, Any] | None = None) -> SolveInputs:
+    """The inputs of a solve: current versions, or those a ``manifest`` names."""
+    with arc.session() as s:
+        survey = s.get(Survey, survey_id)
+        if survey is None:
+            raise UsageError(f"no survey with id {survey_id}")
+        sdict = _survey_dict(survey)
+    if manifest is None:
+        st_v, dep_v = _current(arc, survey_id, "stations"), _current(arc, survey_id, "deployments")
+        dem_v = _current(arc, survey_id, "dem")
+        if st_v is None or not st_v.table_hash:
+            raise UsageError("the survey has no preplot stations yet",
+                             hint="load them with 'nodekeep load stations FILE'")
+        if dep_v is None or not dep_v.table_hash:
+            raise UsageError("the survey has no deployment log yet",
+                             hint="load it with 'nodekeep load deployments FILE'")
+        st_hash, dep_hash = st_v.table_hash, dep_v.table_hash
+        dem_hash = dem_v.source_hash if dem_v is not None else None
+        with arc.session() as s:
+            edits = [{"id": e.id, "kind": e.kind, "payload": json.loads(e.payload or "{}")}
+                     for e in edits_in_force(s, survey_id, kinds=("exclude-span",))]
+    else:
+        sdict = manifest["survey"]
+        ins = manifest["inputs"]
+        st_hash, dep_hash, dem_hash = ins["stations"], ins["deployments"], ins["dem"]
+        st_v, dep_v = (_by_hash(arc, survey_id, "stations", st_hash),
+                       _by_hash(arc, survey_id, "deployments", dep_hash))
+        dem_v = _by_hash(arc, survey_id, "dem", dem_hash)
+        edits = manifest["edits"]
+    stations = arc.objects.read_table(st_hash)
+    dep_all = arc.objects.read_table(dep_hash)
+    deployments, keys = _select(dep_all, selection)
+    if keys is not None and deployments.num_rows == 0:
+        raise UsageError("none of the selected stations is in the deployment log",
+                         hint="give stations as LINE:POINT, e.g. 1001:2001")
+    nodes = set(deployments["node"].to_pylist()) | set(selection.get("nodes") or [])
+    with arc.session() as s:
+        q = select(RawFile.node, RawFile.fixes_hash, RawFile.n_fixes).where(
+            RawFile.survey_id == survey_id, RawFile.fixes_hash.is_not(None))
+        rows = s.execute(q.order_by(RawFile.node, RawFile.id)).all()
+    if manifest is not None:
+        wanted = set(manifest["inputs"]["fixes"])
+        files = [(n, h, c) for n, h, c in rows if h in wanted]
+        missing = wanted - {h for _, h, _ in files}
+        files += [("", h, 0) for h in sorted(missing)]  # read them anyway: same result
+    else:
+        restrict = keys is not None or bool(selection.get("nodes"))
+        files = [(n, h, c) for n, h, c in rows if not restrict or n in nodes]
+    datum = json.loads(dem_v.meta or "{}").get("vertical_datum", "") if dem_v else ""
+    return SolveInputs(
+        survey=sdict, stations=stations, stations_hash=st_hash, deployments=deployments,
+        deployments_hash=dep_hash, dem_hash=dem_hash, dem_datum=datum,
+        versions={"stations": st_v.version if st_v else None,
+                  "deployments": dep_v.version if dep_v else None,
+                  "dem": dem_v.version if dem_v else None},
+        fix_files=files, edits=edits, station_keys=keys)
+
+
+def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> list[Partition]:
+    """Node partitions of at most about ``limit`` fixes (a node is never split)."""
+    by_node: dict[str, list[tuple[str, int]]] = {}
+    for node, h, n in inp.fix_files:
+        by_node.setdefault(node, []).append((h, n))
+    dep_nodes = np.array(inp.deployments["node"].to_pylist(), dtype=object)
+    out: list[Partition] = []
+    cur_nodes: list[str] = []
+    cur_h: list[str] = []
+    cur_n = 0
+
+    def flush() -> None:
+        nonlocal cur_nodes, cur_h, cur_n
+        mask = np.isin(dep_nodes, np.array(cur_nodes, dtype=object)) if cur_nodes else \
+            np.zeros(len(dep_nodes), dtype=bool)
+        out.append(Partition(cur_nodes, sorted(set(cur_h)), cur_n,
+                             inp.deployments.filter(pa.array(mask, pa.bool_()))))
+        cur_nodes, cur_h, cur_n = [], [], 0
+
+    for node in sorted(by_node):
+        files = by_node[node]
+        cur_nodes.append(node)
+        cur_h += [h for h, _ in files]
+        cur_n += sum(n or 0 for _, n in files)
+        if cur_n >= limit:
+            flush()
+    if cur_nodes or not out:
+        flush()
+    solved = set(by_node)
+    lonely = np.array([n not in solved for n in dep_nodes], dtype=bool)
+    if lonely.any():  # deployments whose node has no fixes: unoccupied rows
+        out.append(Partition([], [], 0, inp.deployments.filter(pa.array(lonely, pa.bool_()))))
+    return out
+
+
+def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
+    """The fix tables of these objects, concatenated (schema of the ingest contract)."""
+    if not hashes:
+        return empty_fixes()
+    tables = [arc.objects.read_table(h) for h in hashes]
+    return pa.concat_tables(tables, promote_options="default")
+
+
+def excludes_of(edits: list[dict[str, Any]]) -> list[tuple[str, int, int]]:
+    """(node, start µs, end µs) of the manifest's exclude-span edits."""
+    return parse_excludes([{"id": e["id"], **e["payload"]} for e in edits])
+
+
+def check_objects(arc: Archive, manifest: dict[str, Any]) -> None:
+    """Every input object of a manifest exists and its bytes still match its hash."""
+    ins = manifest["inputs"]
+    named = [("stations table", ins["stations"]), ("deployments table", ins["deployments"])]
+    if ins.get("dem"):
+        named.append(("elevation model", ins["dem"]))
+    named += [("fix table", h) for h in ins["fixes"]]
+    for what, h in named:
+        if not arc.objects.exists(h):
+            raise IntegrityError(f"the {what} {h} of this run is missing from the object store",
+                                 hint="restore it from a backup; 'nodekeep verify' lists "
+                                      "every missing object")
+        if not arc.objects.check(h):
+            raise IntegrityError(f"the {what} {h} no longer matches its hash (altered bytes)",
+                                 hint="restore it from a backup; 'nodekeep verify' lists "
+                                      "every altered object")

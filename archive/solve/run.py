@@ -1,0 +1,276 @@
+"""Solution runs: a manifest of exactly what was solved, named by its hash, and its positions.
+
+The manifest holds the survey CRS and height convention, the hashes of every input object
+(the fix tables of the raw files used, the stations and deployments tables, the elevation
+model), the exclude-span edits in force (ids and payloads), the fully resolved parameters,
+the station/node selection and the code version. The run id is the SHA-256 of its canonical
+JSON (:func:`archive.store.hashing.canonical_hash`): the same manifest is the same run, so
+solving again is a look-up. The positions table is stored as Parquet and its content digest
+in the run row; :func:`recompute` solves again from the manifest alone and proves the
+result bit-identical (``nodekeep reproduce``).
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from types import SimpleNamespace
+from typing import Any
+
+import pyarrow as pa
+import pyarrow.compute as pc
+from sqlalchemy import select
+
+from archive import __version__
+from archive.errors import IntegrityError, UsageError
+from archive.progress import NoProgress, Progress
+from archive.solve.engine import solve_fixes
+from archive.solve.inputs import (
+    SolveInputs,
+    check_objects,
+    excludes_of,
+    load_fix_tables,
+    partitions,
+    survey_inputs,
+)
+from archive.solve.params import resolve_params
+from archive.solve.schema import FLAGS
+from archive.store.archive import Archive
+from archive.store.hashing import canonical_hash, canonical_json, table_digest
+from archive.store.models import Run, utcnow
+
+SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
+             ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
+             ("part", "ascending")]
+
+
+@dataclass
+class RunResult:
+    """What :func:`solve_survey` did: the run id, whether it is new, and counts."""
+
+    run_id: str
+    created: bool
+    n_positions: int
+    n_flagged: int
+    flag_counts: dict[str, int]
+    summary: dict[str, Any] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data for JSON output."""
+        return {"run_id": self.run_id, "created": self.created, "n_positions": self.n_positions,
+                "n_flagged": self.n_flagged, "flag_counts": self.flag_counts,
+                "summary": self.summary}
+
+
+def _selection(stations: Sequence[tuple[float, float]] | None,
+               nodes: Sequence[str] | None) -> dict[str, Any]:
+    return {"stations": sorted([float(line), float(point)] for line, point in stations)
+            if stations else None,
+            "nodes": sorted({str(n) for n in nodes}) if nodes else None}
+
+
+def build_manifest(inp: SolveInputs, params: dict[str, Any], selection: dict[str, Any]
+                   ) -> dict[str, Any]:
+    """The run manifest (see module doc) of these inputs, parameters and selection."""
+    return {
+        "format": 1,
+        "survey": inp.survey,
+        "inputs": {"fixes": sorted(inp.fix_hashes), "stations": inp.stations_hash,
+                   "deployments": inp.deployments_hash, "dem": inp.dem_hash},
+        "input_versions": inp.versions,
+        "edits": inp.edits,
+        "params": params,
+        "selection": selection,
+        "code_version": __version__,
+    }
+
+
+def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
+           progress: Progress) -> tuple[pa.Table, dict[str, Any]]:
+    """Solve the manifest's inputs partition by partition (nodes), sorted as one table."""
+    params = manifest["params"]
+    survey = manifest["survey"]
+    sampler, dem = None, inp.open_dem(arc)
+    if dem is not None:
+        epsg = survey["crs_epsg"]
+
+        def sampler(x, y):  # noqa: ANN001, ANN202 - a closure over the open model
+            return dem.sample(x, y, epsg)
+
+    orthometric = _orthometric(survey)
+    excludes = excludes_of(manifest["edits"])
+    tables, stats = [], {}
+    parts = partitions(arc, inp)
+    progress.start(sum(p.n_fixes for p in parts), "fixes", "solving")
+    try:
+        for part in parts:
+            fixes = load_fix_tables(arc, part.fix_hashes)
+            out = solve_fixes(fixes, part.deployments, inp.stations, params,
+                              survey["crs_epsg"], excludes=excludes, sampler=sampler,
+                              orthometric=orthometric, detect_unlogged=inp.detect_unlogged)
+            pos = out.positions
+            if inp.station_keys is not None:
+                pos = inp.keep_selected(pos)
+            tables.append(pos)
+            for k, v in out.stats.items():
+                stats[k] = stats.get(k, 0) + v
+            progress.advance(part.n_fixes, f"{len(part.nodes)} nodes")
+    finally:
+        progress.close()
+        if dem is not None:
+            dem.close()
+    from archive.solve.schema import POSITION_SCHEMA
+
+    table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
+    table = table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
+    return table, stats
+
+
+def _orthometric(survey: dict[str, Any]):  # noqa: ANN202 - returns a callable or None
+    try:
+        from archive.survey.heights import gnss_orthometric
+    except ImportError:
+        return None
+    conv = SimpleNamespace(height_mode=survey.get("height_mode", "gga"),
+                           height_param=survey.get("height_param", ""))
+
+    def orth(lon, lat, h_ell, h_msl, sep):  # noqa: ANN001, ANN202
+        return gnss_orthometric(lon, lat, h_ell, h_msl, sep, conv)
+
+    return orth
+
+
+def _counts(table: pa.Table) -> tuple[int, dict[str, int]]:
+    flags = table["flags"].to_pylist()
+    counts = {k: 0 for k in FLAGS}
+    n_flagged = 0
+    for f in flags:  # one entry per position row, not per fix
+        if f:
+            n_flagged += 1
+            for key in f.split(";"):
+                counts[key] = counts.get(key, 0) + 1
+    return n_flagged, {k: v for k, v in counts.items() if v}
+
+
+def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = None, *,
+                 label: str = "", stations: Sequence[tuple[float, float]] | None = None,
+                 nodes: Sequence[str] | None = None, progress: Progress | None = None
+                 ) -> RunResult:
+    """Solve the survey's deployments (or a selection) and record the run; see module doc."""
+    progress = progress or NoProgress()
+    resolved = resolve_params(params or {})
+    selection = _selection(stations, nodes)
+    inp = survey_inputs(arc, survey_id, selection)
+    manifest = build_manifest(inp, resolved, selection)
+    run_id = canonical_hash(manifest)
+    with arc.session() as s:
+        existing = s.get(Run, run_id)
+    if existing is not None:
+        n_flagged = existing.n_flagged
+        summary = json.loads(existing.summary or "{}")
+        return RunResult(run_id, False, existing.n_positions, n_flagged,
+                         summary.get("flag_counts", {}), summary)
+    table, stats = _solve(arc, manifest, inp, progress)
+    n_flagged, flag_counts = _counts(table)
+    delivered = table.filter(table["delivered"])
+    summary = {"n_positions": table.num_rows, "n_delivered": delivered.num_rows,
+               "n_flagged": n_flagged, "flag_counts": flag_counts,
+               "estimator": resolved["estimate"]["estimator"],
+               "uncertainty": resolved["uncertainty"]["method"],
+               "dem": inp.dem_hash is not None, **stats}
+    m_bytes = canonical_json(manifest)
+    m_hash, m_size = arc.objects.put_bytes(m_bytes)
+    p_hash, p_size = arc.objects.put_table(table)
+    run = Run(id=run_id, survey_id=survey_id, label=label, manifest_hash=m_hash,
+              positions_hash=p_hash, positions_digest=table_digest(table), extra_hash=None,
+              code_version=__version__, n_positions=table.num_rows, n_flagged=n_flagged,
+              summary=json.dumps(summary, sort_keys=True), created_at=utcnow(),
+              created_by=arc.actor)
+    with arc.transaction() as tx:
+        if tx.get(Run, run_id) is not None:  # solved meanwhile by someone else
+            return RunResult(run_id, False, table.num_rows, n_flagged, flag_counts, summary)
+        arc.register_object(tx, m_hash, m_size, "manifest")
+        arc.register_object(tx, p_hash, p_size, "positions")
+        tx.add(run)
+        arc.log(tx, "solve.run", {"run": run_id, "manifest": m_hash, "positions": p_hash,
+                                  "digest": run.positions_digest, "label": label,
+                                  "n_positions": table.num_rows, "n_flagged": n_flagged},
+                survey_id=survey_id, rows=[run])
+    return RunResult(run_id, True, table.num_rows, n_flagged, flag_counts, summary)
+
+
+def get_run(arc: Archive, survey_id: int | None, ref: str | None = None) -> Run:
+    """A run of the survey by id or unique prefix (>= 4 characters); newest when None."""
+    with arc.session() as s:
+        q = select(Run)
+        if survey_id is not None:
+            q = q.where(Run.survey_id == survey_id)
+        if ref is None:
+            run = s.scalars(q.order_by(Run.created_at.desc(), Run.id).limit(1)).first()
+            if run is None:
+                raise UsageError("the survey has no solution run yet",
+                                 hint="solve it with 'nodekeep solve'")
+            return run
+        ref = ref.strip().lower()
+        if len(ref) < 4:
+            raise UsageError(f"run reference {ref!r} is too short",
+                             hint="give at least 4 characters of a run id ('nodekeep runs')")
+        found = list(s.scalars(q.where(Run.id.startswith(ref, autoescape=True)).limit(2)))
+    if not found:
+        raise UsageError(f"no run {ref!r} in this survey", hint="list runs with 'nodekeep runs'")
+    if len(found) > 1:
+        raise UsageError(f"run reference {ref!r} matches several runs",
+                         hint="give more characters of the run id")
+    return found[0]
+
+
+def run_positions(arc: Archive, run: Run) -> pa.Table:
+    """The run's stored positions; IntegrityError when they no longer match its digest."""
+    table = arc.objects.read_table(run.positions_hash)
+    if table_digest(table) != run.positions_digest:
+        raise IntegrityError(f"the positions of run {run.id[:12]} no longer match its digest",
+                             hint="run 'nodekeep verify' to see what else changed")
+    return table
+
+
+def run_manifest(arc: Archive, run: Run) -> dict[str, Any]:
+    """The run's manifest; IntegrityError when its bytes no longer give the run id."""
+    data = json.loads(arc.objects.read_bytes(run.manifest_hash))
+    if canonical_hash(data) != run.id:
+        raise IntegrityError(f"the manifest of run {run.id[:12]} does not hash to the run id",
+                             hint="run 'nodekeep verify' to see what else changed")
+    return data
+
+
+def recompute(arc: Archive, run_id: str) -> pa.Table:
+    """Solve again from the run's manifest and archived objects (``nodekeep reproduce``).
+
+    Every input object is re-hashed first: a missing object or one whose bytes no longer
+    match its hash raises :class:`IntegrityError` naming it.
+    """
+    run = get_run(arc, None, run_id)
+    if not arc.objects.exists(run.manifest_hash) or not arc.objects.check(run.manifest_hash):
+        raise IntegrityError(f"the manifest object {run.manifest_hash} of run {run.id[:12]} "
+                             "is missing or altered", hint="run 'nodekeep verify'")
+    manifest = run_manifest(arc, run)
+    check_objects(arc, manifest)
+    inp = survey_inputs(arc, run.survey_id, manifest["selection"], manifest=manifest)
+    table, _ = _solve(arc, manifest, inp, NoProgress())
+    return table
+
+
+def list_runs(arc: Archive, survey_id: int) -> list[dict[str, Any]]:
+    """The survey's runs, oldest first, as plain data."""
+    with arc.session() as s:
+        runs = s.scalars(select(Run).where(Run.survey_id == survey_id)
+                         .order_by(Run.created_at, Run.id)).all()
+    out = []
+    for r in runs:
+        summary = json.loads(r.summary or "{}")
+        out.append({"id": r.id, "label": r.label, "created_at": r.created_at,
+                    "created_by": r.created_by, "code_version": r.code_version,
+                    "n_positions": r.n_positions, "n_flagged": r.n_flagged,
+                    "flag_counts": summary.get("flag_counts", {}),
+                    "estimator": summary.get("estimator")})
+    return out
