@@ -274,3 +274,18 @@ def list_runs(arc: Archive, survey_id: int) -> list[dict[str, Any]]:
                     "flag_counts": summary.get("flag_counts", {}),
                     "estimator": summary.get("estimator")})
     return out
+
+
+def station_solution(arc: Archive, survey_id: int, line: float, point: float, index: int = 1,
+                     run_ref: str | None = None) -> dict[str, Any]:
+    """One station's rows of a run (the newest by default) as plain data."""
+    run = get_run(arc, survey_id, run_ref)
+    pos = run_positions(arc, run)
+    mask = pc.and_(pc.and_(pc.equal(pos["line"], float(line)),
+                           pc.equal(pos["point"], float(point))),
+                   pc.equal(pos["index"], int(index)))
+    rows = pos.filter(mask).to_pylist()
+    if not rows:
+        raise UsageError(f"station {line:g}/{point:g} index {index} is not in run {run.id[:12]}",
+                         hint="check the line and point numbers, or choose a run with --run")
+    return {"run": run.id, "rows": rows}

@@ -1,0 +1,160 @@
+"""``nodekeep params``, ``nodekeep solve``, ``nodekeep runs`` and ``nodekeep show``."""
+
+from __future__ import annotations
+
+from typing import Any
+
+import click
+
+from archive.cli.options import (
+    CliState,
+    output_options,
+    pass_state,
+    run_option,
+    survey_option,
+)
+from archive.cli.output import Bar, emit, table
+
+
+def _survey_id(state: CliState, name: str | None) -> int:
+    arc = state.archive()
+    with arc.session() as s:
+        return arc.survey(s, name).id
+
+
+def _stations(text: str | None) -> list[tuple[float, float]] | None:
+    from archive.errors import UsageError
+
+    if not text:
+        return None
+    out = []
+    for item in text.split(","):
+        parts = item.strip().split(":")
+        try:
+            if len(parts) != 2:
+                raise ValueError
+            out.append((float(parts[0]), float(parts[1])))
+        except ValueError:
+            raise UsageError(f"--stations: {item.strip()!r} is not LINE:POINT",
+                             hint="e.g. --stations 1001:2001,1001:2002") from None
+    return out
+
+
+@click.command()
+@output_options
+@pass_state
+def params(state: CliState) -> None:
+    """Print the solver parameters and their defaults as a commented TOML file."""
+    from archive.solve.params import default_params, params_toml
+
+    emit(state, default_params(), params_toml().rstrip("\n"))
+
+
+def _flags_text(counts: dict[str, int]) -> str:
+    from archive.solve.schema import FLAGS
+
+    if not counts:
+        return "  no flags"
+    return "\n".join(f"  {k:<16} {counts[k]:>5}  {FLAGS.get(k, '')}" for k in counts)
+
+
+@click.command()
+@click.option("--params", "params_file", type=click.Path(dir_okay=False), default=None,
+              metavar="FILE.toml", help="Parameters overriding the defaults ('nodekeep params').")
+@click.option("--label", default="", help="A note kept with the run.")
+@click.option("--stations", default=None, metavar="LINE:POINT,...",
+              help="Solve only these stations.")
+@click.option("--nodes", default=None, metavar="SERIAL,...", help="Solve only these nodes.")
+@survey_option
+@output_options
+@pass_state
+def solve(state: CliState, params_file: str | None, label: str, stations: str | None,
+          nodes: str | None, survey_name: str | None) -> None:
+    """Solve one position per deployment and record the run."""
+    from archive.solve.params import load_params
+    from archive.solve.run import solve_survey
+
+    overrides = load_params(params_file) if params_file else None
+    sid = _survey_id(state, survey_name)
+    node_list = [n.strip() for n in nodes.split(",") if n.strip()] if nodes else None
+    res = solve_survey(state.archive(), sid, overrides, label=label,
+                       stations=_stations(stations), nodes=node_list, progress=Bar(state))
+    d = res.as_dict()
+
+    def text() -> str:
+        head = "solved run" if res.created else "same inputs and parameters as run"
+        s = res.summary
+        return (f"{head} {res.run_id}\n"
+                f"  positions {res.n_positions} ({s.get('n_delivered', '?')} to deliver), "
+                f"flagged {res.n_flagged}\n{_flags_text(res.flag_counts)}\n"
+                f"next: nodekeep show LINE POINT, nodekeep qc")
+
+    emit(state, d, text)
+
+
+@click.command()
+@survey_option
+@output_options
+@pass_state
+def runs(state: CliState, survey_name: str | None) -> None:
+    """List the solution runs of the survey, oldest first."""
+    from archive.solve.run import list_runs
+
+    rows = list_runs(state.archive(), _survey_id(state, survey_name))
+    emit(state, rows, lambda: table(
+        [(r["id"][:12], r["created_at"].strftime("%Y-%m-%d %H:%M:%SZ"), r["created_by"],
+          r["estimator"], r["n_positions"], r["n_flagged"], r["label"]) for r in rows],
+        ["run", "created (UTC)", "by", "estimator", "positions", "flagged", "label"])
+        if rows else "no runs yet (solve with 'nodekeep solve')")
+
+
+def _fmt(v: Any, digits: int = 2) -> str:
+    if v is None:
+        return "-"
+    if isinstance(v, float):
+        return f"{v:.{digits}f}"
+    return str(v)
+
+
+def _show_text(run_id: str, rows: list[dict[str, Any]]) -> str:
+    out = [f"run {run_id}"]
+    for r in rows:
+        out += [
+            f"station {r['line']:g}/{r['point']:g} index {r['index']}  node {r['node']}  "
+            f"{r['kind']} part {r['part']}{'  (delivered)' if r['delivered'] else ''}",
+            f"  window     {r['t_start']} .. {r['t_end']}",
+            f"  position   E {_fmt(r['easting'], 3)}  N {_fmt(r['northing'], 3)}  "
+            f"lat {_fmt(r['lat'], 8)}  lon {_fmt(r['lon'], 8)}",
+            f"  height     {_fmt(r['height'], 2)} ({r['height_source']})  GNSS "
+            f"{_fmt(r['h_gnss'])}  model {_fmt(r['h_model'])}  dh {_fmt(r['dh'])}  "
+            f"sigma {_fmt(r['sigma_h'])}",
+            f"  sigma      E {_fmt(r['sigma_e'], 3)}  N {_fmt(r['sigma_n'], 3)}  corr "
+            f"{_fmt(r['corr_en'])}  95% ellipse {_fmt(r['ell_major'])} x {_fmt(r['ell_minor'])}"
+            f" m at {_fmt(r['ell_bearing'], 0)} deg  r95 {_fmt(r['r95'])} m",
+            f"  fixes      {r['n_used']} used, {r['n_rejected']} not used of {r['n_total']}; "
+            f"n_eff {_fmt(r['n_eff'], 0)}; span {_fmt((r['span_s'] or 0) / 3600, 1)} h; "
+            f"spread {_fmt(r['spread'])} m ({r['estimator']})",
+            f"  preplot    {_fmt(r['dist_preplot'])} m away; nearest other station "
+            f"{_fmt(r['nearest_line'], 0)}/{_fmt(r['nearest_point'], 0)} at "
+            f"{_fmt(r['dist_nearest'])} m",
+            f"  flags      {r['flags'] or 'none'}",
+        ]
+    return "\n".join(out)
+
+
+@click.command()
+@click.argument("line", type=float)
+@click.argument("point", type=float)
+@click.option("--index", "index", type=int, default=1, show_default=True, help="Point index.")
+@run_option
+@survey_option
+@output_options
+@pass_state
+def show(state: CliState, line: float, point: float, index: int, run_ref: str | None,
+         survey_name: str | None) -> None:
+    """Show the solution of station LINE POINT in a run (the newest by default)."""
+    from archive.solve.run import station_solution
+
+    res = station_solution(state.archive(), _survey_id(state, survey_name), line, point,
+                           index, run_ref)
+    emit(state, res, lambda: _show_text(res["run"], res["rows"]))
