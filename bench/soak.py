@@ -20,49 +20,27 @@ import os
 import sys
 import tempfile
 import time
-import uuid
 from pathlib import Path
 
 SCENARIOS = ("core", "load", "solve")
-
-
-def _pg_database(base_url: str) -> tuple[str, str]:
-    from sqlalchemy import create_engine, text
-    from sqlalchemy.engine import make_url
-
-    base = make_url(base_url)
-    name = f"nk_soak_{uuid.uuid4().hex[:10]}"
-    admin = create_engine(base.set(database="postgres"), isolation_level="AUTOCOMMIT")
-    with admin.connect() as c:
-        c.execute(text(f'CREATE DATABASE "{name}"'))
-    admin.dispose()
-    return name, base.set(database=name).render_as_string(hide_password=False)
-
-
-def _drop_database(base_url: str, name: str) -> None:
-    from sqlalchemy import create_engine, text
-    from sqlalchemy.engine import make_url
-
-    admin = create_engine(make_url(base_url).set(database="postgres"),
-                          isolation_level="AUTOCOMMIT")
-    with admin.connect() as c:
-        c.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
-                       "WHERE datname = :n"), {"n": name})
-        c.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
-    admin.dispose()
 
 
 def soak(what: str, backend: str, trials: int, seed: int, work: Path) -> dict:
     """One campaign; returns its summary."""
     from tests.reliability import scenarios
     from tests.reliability.conftest import make_survey_archive
-    from tests.reliability.harness import ArchiveTemplate, campaign
+    from tests.reliability.harness import (
+        ArchiveTemplate,
+        campaign,
+        create_database,
+        drop_database,
+    )
     from tests.reliability.logs import write_logs
 
     pg_base = os.environ.get("NODEKEEP_TEST_PG_URL") if backend == "postgres" else None
     if backend == "postgres" and not pg_base:
         raise SystemExit("NODEKEEP_TEST_PG_URL is not set: cannot soak on PostgreSQL")
-    dbname, url = _pg_database(pg_base) if pg_base else (None, None)
+    dbname, url = create_database(pg_base) if pg_base else (None, None)
     try:
         work.mkdir(parents=True)
         if what == "core":
@@ -89,7 +67,7 @@ def soak(what: str, backend: str, trials: int, seed: int, work: Path) -> dict:
         return summary
     finally:
         if dbname:
-            _drop_database(pg_base, dbname)
+            drop_database(pg_base, dbname)
 
 
 def main(argv: list[str] | None = None) -> int:

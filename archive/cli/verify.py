@@ -10,11 +10,19 @@ from archive.cli.output import Bar, emit, human_bytes
 
 @click.command()
 @click.option("--no-rehash", is_flag=True, help="Check presence only, do not re-hash objects.")
+@click.option("--delivery", "delivery", default=None, metavar="MANIFEST",
+              type=click.Path(exists=True, dir_okay=False),
+              help="Check only a delivered file and its .lineage.json manifest (either path) "
+                   "against the archive.")
 @output_options
 @pass_state
-def verify(state: CliState, no_rehash: bool) -> None:
+def verify(state: CliState, no_rehash: bool, delivery: str | None) -> None:
     """Re-hash every object, walk the ledger chain and check every reference."""
     from archive.store.verify import verify_archive
+
+    if delivery is not None:
+        _verify_delivery(state, delivery, rehash=not no_rehash)
+        return
 
     report = verify_archive(state.archive(), rehash=not no_rehash, progress=Bar(state))
 
@@ -33,4 +41,24 @@ def verify(state: CliState, no_rehash: bool) -> None:
 
     emit(state, report.as_dict(), text)
     if not report.ok:
+        click.get_current_context().exit(3)
+
+
+def _verify_delivery(state: CliState, path: str, *, rehash: bool) -> None:
+    from archive.deliver.check import check_delivery
+
+    result = check_delivery(state.archive(), path, rehash=rehash)
+
+    def text() -> str:
+        lines = [f"delivered file {result.file_path}", f"  SHA-256 {result.file_hash or '-'}",
+                 f"manifest {result.manifest_path}", f"  SHA-256 {result.manifest_hash}",
+                 f"delivery {result.delivery_id or '-'} of run {result.run_id or '-'}, "
+                 f"{result.objects_checked} archive objects checked"]
+        lines += [f"PROBLEM {p.kind}: {p.subject}: {p.detail}" for p in result.problems]
+        lines.append("delivery OK" if result.ok
+                     else f"delivery NOT OK: {len(result.problems)} problem(s)")
+        return "\n".join(lines)
+
+    emit(state, result.as_dict(), text)
+    if not result.ok:
         click.get_current_context().exit(3)

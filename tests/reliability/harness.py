@@ -89,6 +89,38 @@ def kill_delays(duration: float, n: int, seed: int, *, start: float = 0.0) -> li
 # -- starting archives -----------------------------------------------------------------
 
 
+def create_database(base_url: str) -> tuple[str, str]:
+    """A new empty PostgreSQL database beside ``base_url``'s: (name, URL)."""
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    base = make_url(base_url)
+    name = f"nk_{uuid.uuid4().hex[:12]}"
+    admin = create_engine(base.set(database="postgres"), isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as c:
+            c.execute(text(f'CREATE DATABASE "{name}"'))
+    finally:
+        admin.dispose()
+    return name, base.set(database=name).render_as_string(hide_password=False)
+
+
+def drop_database(base_url: str, name: str) -> None:
+    """Drop a database made by :func:`create_database` (its sessions ended first)."""
+    from sqlalchemy import create_engine, text
+    from sqlalchemy.engine import make_url
+
+    admin = create_engine(make_url(base_url).set(database="postgres"),
+                          isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as c:
+            c.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
+                           "WHERE datname = :n"), {"n": name})
+            c.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
+    finally:
+        admin.dispose()
+
+
 class ArchiveTemplate:
     """A prepared archive copied afresh for every trial (SQLite folder copy, or PostgreSQL
     ``CREATE DATABASE ... TEMPLATE`` plus a copy of the object folder)."""
@@ -123,21 +155,9 @@ class ArchiveTemplate:
 
     def cleanup(self) -> None:
         """Drop the databases made by :meth:`clone`."""
-        if self.pg_url is None or not self._databases:
-            return
-        from sqlalchemy import create_engine, text
-        from sqlalchemy.engine import make_url
-
-        admin = create_engine(make_url(self.pg_url).set(database="postgres"),
-                              isolation_level="AUTOCOMMIT")
-        try:
-            with admin.connect() as c:
-                for name in self._databases:
-                    c.execute(text("SELECT pg_terminate_backend(pid) FROM pg_stat_activity "
-                                   "WHERE datname = :n"), {"n": name})
-                    c.execute(text(f'DROP DATABASE IF EXISTS "{name}"'))
-        finally:
-            admin.dispose()
+        if self.pg_url is not None:
+            for name in self._databases:
+                drop_database(self.pg_url, name)
         self._databases.clear()
 
 
