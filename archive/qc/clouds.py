@@ -104,8 +104,8 @@ def cloud_figure(st: Station, cloud: pa.Table | None) -> tuple[str, str]:
     ax.axvline(0, color="#E5E5E5", lw=0.5, zorder=0)
     ax.set_title(f"{st.line:g} / {st.point:g}" + (f" (index {st.index})" if st.index != 1 else ""),
                  loc="left")
-    ax.legend(loc="upper center", bbox_to_anchor=(0.5, -0.15), ncol=2, fontsize=7.5,
-              frameon=False, markerscale=1.3, handletextpad=0.3, columnspacing=1.0)
+    style.legend(ax, loc="upper center", bbox_to_anchor=(0.5, -0.15), ncol=2, fontsize=7.5,
+                 frameon=False, handletextpad=0.3, columnspacing=1.0)
     style.scale_bar(ax, 2 * half)
     if n_rej and cloud is not None:
         outside = int(np.sum((np.abs(e[~use]) > half) | (np.abs(n[~use]) > half)))

@@ -55,6 +55,12 @@ def decimate(line: np.ndarray, point: np.ndarray, keep: np.ndarray, max_n: int) 
     return np.flatnonzero(chosen | keep)
 
 
+def density(count: int, comfortable: int, floor: float) -> float:
+    """Marker area factor: 1 up to ``comfortable`` markers, then shrinking with their number
+    (never below ``floor``), so a crowded map stays readable."""
+    return float(np.clip(comfortable / max(count, 1), floor, 1.0))
+
+
 def _map_axes(ax, crs: str) -> None:
     ax.set_aspect("equal", adjustable="datalim")
     ax.set_xlabel(f"Easting (m, {crs})")
@@ -67,20 +73,20 @@ def overview(m: MapData) -> tuple[str, str]:
     """Map of the spread: preplot, solved, check points and flagged stations."""
     n = m.east.size
     idx = decimate(m.line, m.point, m.flagged, OVERVIEW_MAX)
-    small = n > 500
     dx = max(float(np.nanmax(m.pre_e) - np.nanmin(m.pre_e)), 1.0) if n else 1.0
     dy = max(float(np.nanmax(m.pre_n) - np.nanmin(m.pre_n)), 1.0) if n else 1.0
     fig = style.new_figure(10.0, float(np.clip(7.6 * dy / dx + 1.2, 4.0, 7.5)))
     ax = fig.add_subplot()
-    style.preplot(ax, m.pre_e[idx], m.pre_n[idx], size=10 if small else 40)
-    style.solved(ax, m.east[idx], m.north[idx], size=4 if small else 20)
+    style.preplot(ax, m.pre_e[idx], m.pre_n[idx], size=40 * density(idx.size, 300, 0.1))
+    style.solved(ax, m.east[idx], m.north[idx], size=20 * density(idx.size, 300, 0.1))
     if m.chk_e.size:
-        style.check(ax, m.chk_e, m.chk_n, size=18 if small else 45)
+        style.check(ax, m.chk_e, m.chk_n, size=45 * density(m.chk_e.size, 100, 0.15))
     if m.flagged.any():
-        style.flagged(ax, m.east[m.flagged], m.north[m.flagged], size=60 if small else 150)
+        style.flagged(ax, m.east[m.flagged], m.north[m.flagged],
+                      size=150 * density(int(m.flagged.sum()), 40, 0.2))
     _map_axes(ax, m.crs)
     ax.set_title("Overview of the spread")
-    ax.legend(loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False, markerscale=1.5)
+    style.legend(ax, loc="upper left", bbox_to_anchor=(1.01, 1.0), frameon=False)
     style.scale_bar(ax)
     shown = (f"every {math.ceil(n / OVERVIEW_MAX)}th station along each line of {n:,} "
              f"(all {int(m.flagged.sum()):,} flagged stations shown)"
@@ -116,7 +122,7 @@ def vectors(check_e: np.ndarray, check_n: np.ndarray, de: np.ndarray, dn: np.nda
     panels = [(axes[0], de, dn, style.VERMILLION, "solved position", "solved minus check point"),
               (axes[1], pre_de, pre_dn, style.BLACK, "preplot", "preplot minus check point")]
     for ax, u, v, colour, what, title in panels:
-        style.check(ax, check_e, check_n, size=14)
+        style.check(ax, check_e, check_n, size=20 * density(check_e.size, 100, 0.2))
         q = ax.quiver(check_e, check_n, u * scale, v * scale, angles="xy", scale_units="xy",
                       scale=1.0, color=colour, width=0.0028, headwidth=4, headlength=5,
                       label=f"check point to {what} (x{scale:g})", zorder=5)
@@ -124,7 +130,7 @@ def vectors(check_e: np.ndarray, check_n: np.ndarray, de: np.ndarray, dn: np.nda
                      labelpos="W", coordinates="axes", fontproperties={"size": 7.5})
         _map_axes(ax, crs)
         ax.set_title(title, loc="left")
-        ax.legend(loc="lower left", fontsize=7, framealpha=0.85)
+        style.legend(ax, loc="lower left", fontsize=7, framealpha=0.85)
     for ax in axes:
         style.scale_bar(ax, extent)
     caption = (f"Differences at the check points, drawn {scale:g} times their true length "
@@ -173,15 +179,15 @@ def distributions(dist: np.ndarray, pre_dist: np.ndarray, dh: np.ndarray, pre_dh
         cdf_ax.axhline(0.95, color="#999999", lw=0.7, ls=":", label="95 %")
         if what.startswith("horizontal"):
             for ax in (hist_ax, cdf_ax):
-                ax.axvline(tolerance, color=style.ORANGE, lw=1.2, ls="-.",
+                ax.axvline(tolerance, color="#444444", lw=1.1, ls="-.",
                            label=f"tolerance {tolerance:g} m")
         hist_ax.set_title(f"Histogram of the {what}", loc="left")
         cdf_ax.set_title(f"Cumulative distribution of the {'|dH|' if 'vertical' in what else what}",
                          loc="left")
         for ax in (hist_ax, cdf_ax):
             ax.grid(True, lw=0.3, color="#DDDDDD")
-            ax.legend(loc="center right", fontsize=7, framealpha=0.85)
-            style.scale_bar(ax, loc="lower right" if ax is hist_ax else "upper left")
+            ax.legend(loc="upper right", fontsize=7, framealpha=0.85)
+            style.scale_bar(ax, loc="center right" if ax is hist_ax else "upper left")
     caption = ("Solved positions (vermillion, solid, filled) and the preplot (black, dashed) "
                "against the same check points. The scale bar of each chart measures metres "
                "of difference along its horizontal axis.")

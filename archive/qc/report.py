@@ -266,11 +266,15 @@ def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | Non
 
 def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | Path,
                  progress: Progress | None = None, *, tolerance: float = notes.DEFAULT_TOLERANCE,
-                 force: bool = False, max_clouds: int = MAX_CLOUDS) -> ReportWritten:
+                 force: bool = False, max_clouds: int = MAX_CLOUDS,
+                 read_cloud: CloudReader | None = None) -> ReportWritten:
     """Write the report of a run (the newest when ``run_ref`` is None) to ``path``.
 
-    Refuses to overwrite an existing file unless ``force``. The file is written whole to a
-    temporary name and renamed, so a failure never leaves half a report.
+    Fix clouds come from the solver (:func:`archive.solve.cloud.station_cloud`) unless
+    ``read_cloud`` is given: a function (line, point, index) -> cloud table, for callers
+    that hold the clouds already (simulations, benchmarks). Refuses to overwrite an
+    existing file unless ``force``. The file is written whole to a temporary name and
+    renamed, so a failure never leaves half a report.
     """
     path = Path(path)
     if path.exists() and not force:
@@ -281,8 +285,9 @@ def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | 
     t0 = time.perf_counter()
     data = load_run_data(arc, survey_id, run_ref)
     result = qc_of(data, tolerance)
-    page, counts = render_report(data, result, cloud_reader(arc, data.run["id"]),
-                                 progress=progress, max_clouds=max_clouds)
+    reader = read_cloud if read_cloud is not None else cloud_reader(arc, data.run["id"])
+    page, counts = render_report(data, result, reader, progress=progress,
+                                 max_clouds=max_clouds)
     tmp = path.with_name(path.name + ".tmp")
     tmp.write_text(page, encoding="utf-8")
     os.replace(tmp, path)

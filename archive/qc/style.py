@@ -100,6 +100,21 @@ def flagged(ax: Axes, x: np.ndarray, y: np.ndarray, size: float = 150.0) -> None
                linestyles=(0, (2.5, 1.5)), label=LABELS["flagged"], zorder=7)
 
 
+LEGEND_SIZES = {LABELS["used"]: 14.0, LABELS["rejected"]: 18.0, LABELS["solved"]: 30.0,
+                LABELS["preplot"]: 40.0, LABELS["check"]: 40.0, LABELS["flagged"]: 90.0}
+
+
+def legend(ax: Axes, **kw):
+    """The axes' legend with every symbol at a readable size, however small on the map."""
+    leg = ax.legend(**kw)
+    for handle, text in zip(leg.legend_handles, leg.get_texts(), strict=True):
+        size = LEGEND_SIZES.get(text.get_text())
+        if size is not None and hasattr(handle, "set_sizes"):
+            handle.set_sizes([size])
+            handle.set_alpha(max(handle.get_alpha() or 1.0, 0.6))
+    return leg
+
+
 def nice_length(span: float) -> float:
     """A round length (1, 2 or 5 times a power of ten) of about a fifth of ``span``."""
     if not span > 0 or not math.isfinite(span):

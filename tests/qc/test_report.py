@@ -106,19 +106,30 @@ def test_exaggeration_is_round_and_scales_with_the_map():
     assert exaggeration(np.array([]), 1000.0) == 1.0
 
 
+def _cloud_near(line, point, index):
+    # the small fixture's stations lie at 612000 + 25 (point - 2001), 3512000
+    return synthetic_cloud(612_000.0 + 25.0 * (point - 2001), 3_512_000.0, n=200, seed=1)
+
+
 def test_write_report_and_refuse_overwrite(qc_arc, tmp_path):
     out = tmp_path / "report.html"
-    written = write_report(qc_arc, survey_id(qc_arc), None, out, tolerance=1.5)
+    written = write_report(qc_arc, survey_id(qc_arc), None, out, tolerance=1.5,
+                           read_cloud=_cloud_near)
     text = out.read_text(encoding="utf-8")
     assert written.size_bytes == len(text.encode("utf-8"))
     assert written.n_review == 3  # 2005 and 2004 beyond 1.5 m, 2003 flagged "moved"
     assert "1001 / 2005" in text
+    assert written.n_clouds == 3 and text.count('data-figure="cloud"') == 3
+    assert "200 fixes used" not in text  # every 12th synthetic fix is rejected
+    assert "183 fixes used, 17 rejected or screened" in text
     with pytest.raises(Refused, match="already exists"):
         write_report(qc_arc, survey_id(qc_arc), None, out)
 
 
 @pytest.mark.slow
-def test_cli_report(qc_arc, runner, tmp_path):
+def test_cli_report(qc_arc, runner, tmp_path, monkeypatch):
+    # the hand-made run has no real manifest for the solver to re-solve a cloud from
+    monkeypatch.setattr("archive.qc.report.cloud_reader", lambda arc, run_id: _cloud_near)
     out = tmp_path / "r.html"
     res = invoke(runner, qc_arc.root, "report", "--to", str(out))
     assert res.exit_code == 0, res.output
