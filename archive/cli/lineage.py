@@ -65,7 +65,8 @@ def _station_text(t: dict[str, Any]) -> str:
                    f"{_when(s['t_start'])} to {_when(s['t_end'])}, flags {s['flags'] or 'none'}"
                    + (" (delivered part)" if s["delivered"] else ""))
     fx = t["fixes"]
-    out.append(f"fixes ({t['fixes_basis']}): " + ", ".join(f"{k} {v}" for k, v in fx.items()))
+    out.append("fixes in the station's windows: "
+               + (", ".join(f"{k} {v}" for k, v in fx.items()) or "none"))
     out.append(f"raw files ({len(t['raw_files'])}):")
     out += _raw_text(t["raw_files"])
     out.append(f"edits ({len(t['edits'])}):")

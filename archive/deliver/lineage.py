@@ -68,30 +68,22 @@ def run_summary(arc: Archive, run: Run) -> dict[str, Any]:
             "n_fix_tables": len(manifest_inputs(manifest).get("fixes", []))}
 
 
-def _cloud_fixes(arc: Archive, survey_id: int, run: Run, row: dict[str, Any],
-                 fix_hashes: list[str]) -> dict[str, Any]:
-    """Raw files and used/rejected counts of the station's fix cloud."""
-    try:
-        from archive.solve.cloud import station_cloud
-    except ImportError:  # a solver without cloud access: fall back to the node's raw files
-        station_cloud = None
-    if station_cloud is not None:
-        cloud = station_cloud(arc, run.id, row["line"], row["point"], row["index"])
-        status = cloud.column("status")
-        counts = {k: int(pc.sum(pc.equal(status, k)).as_py() or 0)
-                  for k in ("used", "rejected", "screened")}
-        raw_hashes = pc.unique(cloud.column("raw_hash")).to_pylist()
-        with arc.session() as s:
-            rows = s.scalars(select(RawFile).where(RawFile.survey_id == survey_id,
-                                                   RawFile.object_hash.in_(raw_hashes))
-                             .order_by(RawFile.id)).all()
-        raw = [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
-                "received_at": r.received_at, "received_by": r.received_by} for r in rows]
-        return {"basis": "fix cloud", "fixes": counts, "raw_files": raw}
-    raw = [r for r in raw_files_of(arc, survey_id, fix_hashes) if r["node"] == row.get("node")]
-    return {"basis": "node's raw files in the run",
-            "fixes": {"used": row.get("n_used"), "rejected": row.get("n_rejected")},
-            "raw_files": raw}
+def _cloud_fixes(arc: Archive, survey_id: int, run: Run, row: dict[str, Any]) -> dict[str, Any]:
+    """Raw files and used/rejected/screened counts of the station's fix cloud in the run."""
+    from archive.solve.cloud import station_cloud
+
+    cloud = station_cloud(arc, run.id, row["line"], row["point"], row["index"])
+    status = cloud.column("status")
+    counts = {k: int(pc.sum(pc.equal(status, k)).as_py() or 0)
+              for k in ("used", "rejected", "screened")}
+    raw_hashes = pc.unique(cloud.column("raw_hash")).to_pylist()
+    with arc.session() as s:
+        rows = s.scalars(select(RawFile).where(RawFile.survey_id == survey_id,
+                                               RawFile.object_hash.in_(raw_hashes))
+                         .order_by(RawFile.id)).all()
+    raw = [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
+            "received_at": r.received_at, "received_by": r.received_by} for r in rows]
+    return {"fixes": counts, "raw_files": raw}
 
 
 def trace_station(arc: Archive, survey_id: int, line: float, point: float,
@@ -113,10 +105,8 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     if not rows and not carried and not edits:
         raise UsageError(f"station {line:g}/{point:g} index {index} is in no run, delivery or "
                          "edit of this survey", hint="check the line and point numbers")
-    solved = [r for r in rows if r["delivered"]] or rows
-    fix_hashes = manifest_inputs(run_manifest(arc, run)).get("fixes", [])
-    fixes = _cloud_fixes(arc, survey_id, run, solved[0], fix_hashes) if solved else {
-        "basis": "none", "fixes": {}, "raw_files": []}
+    fixes = _cloud_fixes(arc, survey_id, run, rows[0]) if rows else {"fixes": {},
+                                                                      "raw_files": []}
     return plain({
         "station": {"line": float(line), "point": float(point), "index": int(index)},
         "delivery": carried[-1] if carried else None,
@@ -126,7 +116,7 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
                                      "node": r["node"], "flags": r["flags"],
                                      "t_start": r["t_start"], "t_end": r["t_end"]}
                      for r in rows],
-        "fixes": fixes["fixes"], "fixes_basis": fixes["basis"], "raw_files": fixes["raw_files"],
+        "fixes": fixes["fixes"], "raw_files": fixes["raw_files"],
         "edits": edits,
     })
 

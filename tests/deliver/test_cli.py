@@ -69,9 +69,6 @@ def test_deliver_command_refusals_then_success(runner, arc_dir, tmp_path):
     assert t["delivery"]["id"] == 1 and len(t["raw_files"]) == 2
     r = invoke(runner, arc_dir, "trace", "--file", str(out))
     assert "N5000_harvest1.nmea" in r.output and "N5001_harvest1.nmea" in r.output
-    r = invoke(runner, arc_dir, "trace", "1001", "2002")
-    assert r.exit_code == 0 and "last delivered in delivery 1" in r.output
-    assert "preplot stake was off" in r.output
     r = invoke(runner, arc_dir, "trace")
     assert r.exit_code == 2 and "LINE POINT or --file" in r.stderr
     r = invoke(runner, arc_dir, "where", "1001", "2002")

@@ -1,4 +1,5 @@
-"""Trace, diff and where on hand-built runs (the solver's own runs: test_solver_runs.py)."""
+"""Trace of a file, diff and where on hand-built runs (station traces and reproduce on a real
+solve: test_solver_runs.py)."""
 
 from __future__ import annotations
 
@@ -11,7 +12,7 @@ import pytest
 from archive.deliver import edits as ed
 from archive.deliver.compare import compare_positions, diff_runs, parse_as_of, where
 from archive.deliver.deliveries import deliver
-from archive.deliver.lineage import trace_file, trace_station
+from archive.deliver.lineage import trace_file
 from archive.errors import UsageError
 from tests.deliver.builders import add_raw_file, delivery_archive, make_run, positions_table
 
@@ -43,20 +44,6 @@ def test_trace_file_refuses_changed_file(delivered, tmp_path):
     changed.write_bytes((tmp_path / "r.sps").read_bytes() + b"\n")
     with pytest.raises(UsageError, match=r"matches no delivery.*changed after delivery"):
         trace_file(arc, changed)
-
-
-def test_trace_station_chain(delivered):
-    arc, sid, final, run, _raw, res = delivered
-    e = ed.set_height(arc, sid, 1001, 2001, source="control", reason="RTK height")
-    t = trace_station(arc, sid, 1001, 2001)
-    assert t["delivery"]["id"] == res.delivery_id
-    assert t["delivery"]["position"]["easting"] == final.column("easting")[0].as_py()
-    assert t["run"]["id"] == run.id
-    assert [r["name"] for r in t["raw_files"]] == ["N5000_harvest1.nmea"]  # node N5000 there
-    assert t["fixes"]["used"] == final.column("n_used")[0].as_py()
-    assert [x["id"] for x in t["edits"]] == [e.id] and t["edits"][0]["reason"] == "RTK height"
-    with pytest.raises(UsageError, match="in no run, delivery or edit"):
-        trace_station(arc, sid, 1077, 2001)
 
 
 def test_diff_runs_movement_summary_added_removed(survey_arc, tmp_path):

@@ -1,0 +1,156 @@
+"""Delivery and lineage on a real solve of the small invented scenario (Kestrel Flats 3D).
+
+One archive is built per module (generate, load, solve: about 20 s on 2 cores), so these
+tests are marked slow. Tampering happens on a copy of that archive.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from pathlib import Path
+
+import pyarrow.compute as pc
+import pytest
+from sqlalchemy import select
+
+from archive.deliver.compare import reproduce
+from archive.deliver.deliveries import deliver
+from archive.deliver.lineage import trace_file, trace_station
+from archive.errors import IntegrityError
+from archive.store.archive import Archive
+from archive.store.models import RawFile
+from tests.conftest import invoke
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def solved(tmp_path_factory):
+    from archive.seeds.scenario import generate
+
+    from archive.ingest.load import load_fix_files
+    from archive.solve.run import solve_survey
+    from archive.survey.inputs import load_input
+    from archive.survey.surveys import create_survey
+
+    base = tmp_path_factory.mktemp("solved")
+    sc = generate(base / "scenario", seed=7, size="small")
+    arc = Archive.init(base / "archive", actor="tester")
+    sid = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
+                        vertical_datum=sc.vertical_datum, client=sc.client,
+                        contractor=sc.contractor).id
+    load_input(arc, sid, "stations", sc.preplot)
+    load_input(arc, sid, "deployments", sc.deployments)
+    load_input(arc, sid, "control", sc.control)
+    load_fix_files(arc, sid, [sc.out_dir / "logs"])
+    run_id = solve_survey(arc, sid).run_id
+    yield arc, sid, run_id, base
+    arc.close()
+
+
+def _raw_names_by_node(arc: Archive, sid: int) -> dict[str, set[str]]:
+    with arc.session() as s:
+        rows = s.execute(select(RawFile.node, RawFile.original_name)
+                         .where(RawFile.survey_id == sid)).all()
+    out: dict[str, set[str]] = {}
+    for node, name in rows:
+        out.setdefault(node, set()).add(name)
+    return out
+
+
+def test_reproduce_untouched_run_is_identical(solved):
+    arc, sid, run_id, _ = solved
+    r = reproduce(arc, run_id[:10], sid)
+    assert r["identical"] is True and r["recomputed_digest"] == r["recorded_digest"]
+    assert r["code_version_differs"] is False
+
+
+def test_trace_of_delivered_file_names_every_contributing_raw_file(solved):
+    from archive.solve.run import get_run, run_positions
+
+    arc, sid, run_id, base = solved
+    out = base / "kestrel_receivers.csv"
+    deliver(arc, sid, run_id, "csv", out, "Harrow Basin Energy processing", allow_flags=True,
+            force=True)
+    t = trace_file(arc, out)
+    named = {r["name"] for r in t["raw_files"]}
+    pos = run_positions(arc, get_run(arc, sid, run_id))
+    used = pos.filter(pc.and_(pos["delivered"], pc.greater(pos["n_used"], 0)))
+    by_node = _raw_names_by_node(arc, sid)
+    expected = set().union(*(by_node.get(n, set()) for n in used["node"].to_pylist()))
+    assert expected and expected <= named
+    lineage = json.loads(Path(str(out) + ".lineage.json").read_text())
+    assert {r["name"] for r in lineage["raw_files"]} == named
+
+
+def test_trace_station_counts_fixes_from_its_cloud(solved):
+    from archive.solve.run import get_run, run_positions
+
+    arc, sid, run_id, _ = solved
+    pos = run_positions(arc, get_run(arc, sid, run_id))
+    row = pos.filter(pc.and_(pos["delivered"], pc.greater(pos["n_used"], 0))).to_pylist()[0]
+    t = trace_station(arc, sid, row["line"], row["point"], row["index"])
+    assert t["fixes"]["used"] == row["n_used"]  # the cloud agrees with the run's count
+    # the run counts every fix of the window not used (screened or rejected) as n_rejected
+    assert t["fixes"]["rejected"] + t["fixes"]["screened"] == row["n_rejected"]
+    assert t["fixes"]["used"] + row["n_rejected"] == row["n_total"]
+    names = {r["name"] for r in t["raw_files"]}
+    assert names and names <= _raw_names_by_node(arc, sid)[row["node"]]
+
+
+def test_trace_station_after_edit_and_delivery(solved, runner):
+    from archive.deliver import edits as ed
+    from archive.solve.run import get_run, run_positions
+
+    arc, sid, run_id, base = solved
+    pos = run_positions(arc, get_run(arc, sid, run_id))
+    row = pos.filter(pc.and_(pos["delivered"], pc.greater(pos["n_used"], 0))).to_pylist()[-1]
+    line, point = row["line"], row["point"]
+    e = ed.set_height(arc, sid, line, point, source="given", height=612.5,
+                      reason="levelled from the benchmark by the crew")
+    res = deliver(arc, sid, run_id, "sps", base / "r_trace.sps", "processing",
+                  allow_flags=True, force=True)
+    t = trace_station(arc, sid, line, point)
+    assert t["delivery"]["id"] == res.delivery_id
+    assert t["delivery"]["position"]["height"] == 612.5
+    assert t["delivery"]["position"]["source"] == f"edit:{e.id}"
+    assert t["run"]["id"] == run_id and t["run"]["params"]
+    assert {i["kind"] for i in t["run"]["inputs"]} >= {"stations", "deployments"}
+    assert [x["reason"] for x in t["edits"]] == ["levelled from the benchmark by the crew"]
+    r = invoke(runner, base / "archive", "trace", f"{line:g}", f"{point:g}")
+    assert r.exit_code == 0, r.stderr
+    assert f"last delivered in delivery {res.delivery_id}" in r.output
+    assert "levelled from the benchmark" in r.output and "received" in r.output
+    r = invoke(runner, base / "archive", "trace", "9999", "1")
+    assert r.exit_code == 2 and "in no run, delivery or edit" in r.stderr
+
+
+def test_reproduce_after_tampering_fails_loudly(solved, tmp_path, runner):
+    arc, sid, run_id, base = solved
+    copy = tmp_path / "archive"
+    shutil.copytree(base / "archive", copy)
+    manifest = json.loads((copy / "objects").joinpath(
+        *_fan(_manifest_hash(arc, run_id))).read_bytes())
+    victim = copy / "objects" / Path(*_fan(manifest["inputs"]["fixes"][0]))
+    os.chmod(victim, 0o644)
+    data = bytearray(victim.read_bytes())
+    data[len(data) // 2] ^= 0xFF
+    victim.write_bytes(bytes(data))
+    with Archive.open(copy) as tampered, pytest.raises(IntegrityError, match="altered"):
+        reproduce(tampered, run_id, sid)
+    r = invoke(runner, copy, "reproduce", run_id[:12])
+    assert r.exit_code == 3 and "no longer matches its hash" in r.stderr
+    r = invoke(runner, base / "archive", "reproduce", run_id[:12])
+    assert r.exit_code == 0 and "identical" in r.output
+
+
+def _manifest_hash(arc: Archive, run_id: str) -> str:
+    from archive.solve.run import get_run
+
+    return get_run(arc, None, run_id).manifest_hash
+
+
+def _fan(h: str) -> tuple[str, str, str]:
+    return h[:2], h[2:4], h
