@@ -14,6 +14,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+from sqlalchemy import select
 
 from archive.store.archive import Archive
 from archive.survey.surveys import create_survey
@@ -51,8 +52,10 @@ def has(module: str) -> bool:
     return importlib.util.find_spec(module) is not None
 
 
-def fill_archive(root: Path, db_url: str | None, sc, *, n_logs: int = 3) -> Path:
-    """An archive with the scenario's survey, inputs and ``n_logs`` logs (all when 0)."""
+def fill_archive(root: Path, db_url: str | None, sc, *, n_logs: int = 3,
+                 deliver_to: Path | None = None) -> Path:
+    """An archive with the scenario's survey, inputs and ``n_logs`` logs (all when 0); with
+    ``deliver_to`` (a folder) also a run, an edit and a CSV delivery written there."""
     from archive.ingest.load import load_fix_files
     from archive.survey.inputs import load_input
 
@@ -64,7 +67,25 @@ def fill_archive(root: Path, db_url: str | None, sc, *, n_logs: int = 3) -> Path
         load_input(arc, survey.id, "control", sc.control)
         logs = sc.logs if not n_logs else sorted(sc.logs)[:n_logs]
         load_fix_files(arc, survey.id, logs, workers=1)
+        if deliver_to is not None:
+            make_delivery(arc, survey.id, deliver_to / "kestrel-positions.csv")
     return root
+
+
+def make_delivery(arc: Archive, survey_id: int, to: Path):
+    """Solve (a look-up when already solved), reject one station with a reason, deliver CSV."""
+    from archive.deliver.deliveries import deliver
+    from archive.deliver.edits import reject_station
+    from archive.solve.run import solve_survey
+    from archive.store.models import RawFile
+
+    with arc.session() as s:
+        nodes = sorted(set(s.scalars(select(RawFile.node).where(RawFile.survey_id == survey_id))))
+    solve_survey(arc, survey_id, nodes=nodes)
+    reject_station(arc, survey_id, 1001, 5014, reason="node battery died on the first day")
+    to.parent.mkdir(parents=True, exist_ok=True)
+    return deliver(arc, survey_id, None, "csv", to, "Harrow Basin Energy processing",
+                   allow_flags=True, force=True)
 
 
 @pytest.fixture(scope="module", params=["sqlite", pytest.param("postgres",
@@ -84,7 +105,8 @@ def module_db(request: pytest.FixtureRequest) -> Iterator[str | None]:
 def full_template(tmp_path_factory: pytest.TempPathFactory, module_db: str | None, scenario
                   ) -> Iterator[ArchiveTemplate]:
     """An archive with rows in the ledgered tables, copied afresh by each test."""
-    root = fill_archive(tmp_path_factory.mktemp("full") / "archive", module_db, scenario)
+    folder = tmp_path_factory.mktemp("full")
+    root = fill_archive(folder / "archive", module_db, scenario, deliver_to=folder / "out")
     tpl = ArchiveTemplate(root, module_db)
     yield tpl
     tpl.cleanup()

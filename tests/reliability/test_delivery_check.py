@@ -1,0 +1,135 @@
+"""``nodekeep verify --delivery``: a delivered file and its lineage manifest, checked against
+the archive, with whatever differs named (archive/deliver/check.py vocabulary)."""
+
+from __future__ import annotations
+
+import json
+import os
+import stat
+from pathlib import Path
+
+import pytest
+from sqlalchemy import update
+
+from archive.deliver.check import check_delivery
+from archive.store.archive import Archive
+from archive.store.models import Delivery, Run
+from tests.conftest import invoke
+from tests.reliability.conftest import make_delivery, make_survey_archive
+from tests.reliability.harness import ArchiveTemplate
+
+
+@pytest.fixture
+def delivered(full_template: ArchiveTemplate, tmp_path: Path):
+    """A copy of the full archive and a new delivery made from it into tmp_path/out."""
+    with Archive.open(full_template.clone(tmp_path / "copy"), actor="tester") as arc:
+        with arc.session() as s:
+            sid = arc.survey(s).id
+        res = make_delivery(arc, sid, tmp_path / "out" / "Kestrel Flats 3D final.csv")
+        yield arc, res
+
+
+def _kinds(check) -> list[str]:
+    return [p.kind for p in check.problems]
+
+
+def test_intact_delivery_passes_through_the_cli(delivered, runner):
+    arc, res = delivered
+    r = invoke(runner, arc.root, "verify", "--delivery", res.lineage_path)
+    assert r.exit_code == 0, r.output
+    assert "delivery OK" in r.output and res.file_hash in r.output
+    # the delivered file's own path finds its manifest beside it
+    r = invoke(runner, arc.root, "verify", "--delivery", res.path, "--json")
+    data = json.loads(r.output)
+    assert data["ok"] and data["delivery_id"] == res.delivery_id
+    assert data["run_id"] == res.run_id and data["objects_checked"] >= 5
+
+
+def test_changed_file_is_named(delivered, runner):
+    arc, res = delivered
+    path = Path(res.path)
+    text = path.read_text(encoding="utf-8")
+    i = next(k for k, ch in enumerate(text) if ch.isdigit() and k > len(text) // 2)
+    path.write_text(text[:i] + str((int(text[i]) + 1) % 10) + text[i + 1:], encoding="utf-8")
+    r = invoke(runner, arc.root, "verify", "--delivery", res.lineage_path)
+    assert r.exit_code == 3
+    assert f"PROBLEM file-changed: {path}" in r.output
+    assert "delivery NOT OK: 1 problem(s)" in r.output
+
+
+def test_changed_manifest_is_named(delivered):
+    arc, res = delivered
+    doc = json.loads(Path(res.lineage_path).read_text(encoding="utf-8"))
+    doc["delivery"]["recipient"] = "someone else"
+    Path(res.lineage_path).write_text(json.dumps(doc, indent=2), encoding="utf-8")
+    check = check_delivery(arc, res.lineage_path)
+    assert _kinds(check) == ["manifest-changed"]
+    assert f"delivery {res.delivery_id}" in check.problems[0].detail
+
+
+def test_missing_file_is_named(delivered):
+    arc, res = delivered
+    os.unlink(res.path)
+    check = check_delivery(arc, res.lineage_path)
+    assert _kinds(check) == ["file-missing"]
+
+
+def test_delivery_row_changed_in_the_catalog_is_named(delivered):
+    arc, res = delivered
+    with arc.engine.begin() as c:
+        c.execute(update(Delivery).where(Delivery.id == res.delivery_id)
+                  .values(recipient="another processing centre"))
+    check = check_delivery(arc, res.lineage_path)
+    assert [(p.kind, p.subject) for p in check.problems] == [
+        ("altered-row", f"deliveries row {res.delivery_id}")]
+
+
+def test_run_changed_in_the_catalog_is_named(delivered):
+    arc, res = delivered
+    with arc.engine.begin() as c:
+        c.execute(update(Run).where(Run.id == res.run_id).values(positions_digest="0" * 64))
+    check = check_delivery(arc, res.lineage_path)
+    assert _kinds(check) == ["run-mismatch"]
+    assert "positions_digest" in check.problems[0].detail
+
+
+def test_changed_run_positions_object_is_named(delivered):
+    arc, res = delivered
+    with arc.session() as s:
+        h = s.get(Run, res.run_id).positions_hash
+    path = arc.objects.local_path(h)
+    os.chmod(path, stat.S_IRUSR | stat.S_IWUSR)
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0x40
+    path.write_bytes(bytes(data))
+    check = check_delivery(arc, res.lineage_path)
+    assert [(p.kind, p.subject) for p in check.problems] == [("hash-mismatch", f"object {h}")]
+    assert "positions" in check.problems[0].detail
+
+
+def test_deleted_raw_log_behind_a_delivery_is_named(delivered):
+    arc, res = delivered
+    doc = json.loads(Path(res.lineage_path).read_text(encoding="utf-8"))
+    raw = doc["raw_files"][0]
+    arc.objects.local_path(raw["hash"]).unlink()
+    check = check_delivery(arc, res.lineage_path)
+    assert [(p.kind, p.subject) for p in check.problems] == [("missing", f"object {raw['hash']}")]
+    assert raw["name"] in check.problems[0].detail
+
+
+def test_manifest_of_another_archive_is_no_delivery(delivered, tmp_path, runner):
+    _, res = delivered
+    other = make_survey_archive(tmp_path / "other", None)
+    r = invoke(runner, other, "verify", "--delivery", res.lineage_path)
+    assert r.exit_code == 3
+    assert "PROBLEM no-delivery" in r.output
+
+
+def test_not_a_manifest_is_named(delivered, tmp_path):
+    arc, _ = delivered
+    bogus = tmp_path / "notes.csv.lineage.json"
+    bogus.write_bytes(b"\x00\x01 not json")
+    (tmp_path / "notes.csv").write_text("line,point\n", encoding="utf-8")
+    check = check_delivery(arc, bogus)
+    assert _kinds(check) == ["manifest-unreadable"]
+
