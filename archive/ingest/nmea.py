@@ -12,14 +12,15 @@ assembled with array operations:
   time of day and the date sentence's time of day are more than 12 h apart (midnight UTC).
   A GGA with no date at all is rejected as ``no-date``;
 - an RMC of the same epoch with status V (or FAA mode N) makes the epoch invalid;
-- the GSA sentences that follow a GGA (up to the next GGA) belong to its epoch. With several
+- the GSA sentences that follow a GGA (up to the next GGA, and before any sentence of
+  another time of day) belong to its epoch. With several
   GSA per epoch (one per constellation of a multi-GNSS receiver) the PDOP, HDOP and VDOP are
   those of the first GSA carrying them: they describe the same combined solution, so every
   GSA of an epoch repeats them. The fix type is the highest of the epoch's GSA;
 - HDOP is the GGA's, or the GSA's when the GGA leaves it empty.
 
 A chunk ends where a new epoch starts (a time-of-day change), so an epoch is never split.
-When most sentences of the log's first chunk carry a checksum, a known sentence without one
+When most sentences of the log's first megabyte carry a checksum, a known sentence without one
 is counted as truncated (a line cut short loses its checksum first).
 """
 
@@ -155,7 +156,14 @@ def _assemble(buf, starts, ends, cols, carry: _Carry, node: str, raw_hash: str,
     gs = np.flatnonzero(acc & (kind == ns.K_GSA))
     if g and gs.size:
         k = np.searchsorted(gga, gs, side="right") - 1
-        gs, k = gs[k >= 0], k[k >= 0]  # a GSA before any GGA has lost its epoch
+        # the GSA belongs to the preceding GGA unless a sentence of another time of day
+        # comes in between (then its own GGA was lost)
+        tb = np.flatnonzero(acc & (tod >= 0) & ((kind == ns.K_GGA) | (kind == ns.K_RMC)
+                                               | (kind == ns.K_ZDA)))
+        j = np.searchsorted(tb, gs) - 1
+        own = (k >= 0) & (j >= 0)
+        own[own] = tod[tb[j[own]]] == gt[k[own]]
+        gs, k = gs[own], k[own]
         pdop = _first_per_epoch(k, f1[gs], g)
         ghdop = _first_per_epoch(k, f2[gs], g)
         vdop = _first_per_epoch(k, f3[gs], g)
@@ -229,7 +237,7 @@ def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
     """Parse a log given as consecutive byte blocks; yields one :class:`Chunk` per block.
 
     Memory stays bounded by a few times the block size, whatever the length of the log.
-    ``checksummed`` (default: decided on the first block) says whether the log's
+    ``checksummed`` (default: decided on the first megabyte) says whether the log's
     sentences carry checksums, in which case a known sentence without one is truncated.
     """
     date0 = None if date is None else (date - dt.date(1970, 1, 1)).days
@@ -237,7 +245,8 @@ def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
     pending = b""
     it = iter(blocks)
     block = next(it, None)
-    carry.checksummed = has_checksums(block or b"") if checksummed is None else checksummed
+    carry.checksummed = has_checksums((block or b"")[:1 << 20]) if checksummed is None \
+        else checksummed
     while block is not None:
         nxt = next(it, None)
         final = nxt is None
@@ -317,4 +326,4 @@ def parse_nmea(data: bytes, *, node: str, raw_hash: str, date: dt.date | None = 
     log without RMC/ZDA. Never raises on bad content: bad lines become rejects.
     """
     return combine(iter_chunks(_bytes_blocks(data, chunk_bytes), node=node, raw_hash=raw_hash,
-                               date=date, checksummed=has_checksums(data[:CHUNK_BYTES])))
+                               date=date, checksummed=has_checksums(data[:1 << 20])))

@@ -231,18 +231,27 @@ def scan_lines(buf, starts, ends):  # pragma: no cover - compiled
             e -= 1
         if e == s:
             continue
+        # one forward pass: the last '$', non-text bytes after it, the first '*' after it
+        # and the XOR of the bytes in between
         d = -1
-        for j in range(e - 1, s - 1, -1):
-            if buf[j] == 36:
-                d = j
-                break
-        lo = s if d < 0 else d
+        p = -1
+        x = 0
         binary = False
-        for j in range(lo, e):
+        for j in range(s, e):
             c = buf[j]
+            if c == 36:
+                d = j
+                p = -1
+                x = 0
+                binary = False
+                continue
             if (c < 32 and c != 9) or c > 126:
                 binary = True
-                break
+            if d >= 0 and p < 0:
+                if c == 42:
+                    p = j
+                else:
+                    x ^= c
         if binary:
             status[i] = ST_BINARY
             continue
@@ -261,12 +270,6 @@ def scan_lines(buf, starts, ends):  # pragma: no cover - compiled
         if not proprietary and (not plausible or buf[d + 6] != 44):
             status[i] = ST_MALFORMED
             continue
-        # checksum
-        p = -1
-        for j in range(d + 1, e):
-            if buf[j] == 42:
-                p = j
-                break
         body_end = e
         if p >= 0:
             star[i] = True
@@ -279,9 +282,6 @@ def scan_lines(buf, starts, ends):  # pragma: no cover - compiled
             if hi < 0 or lo2 < 0 or e - p - 1 > 2:
                 status[i] = ST_MALFORMED
                 continue
-            x = 0
-            for j in range(d + 1, p):
-                x ^= buf[j]
             if x != hi * 16 + lo2:
                 status[i] = ST_CHECKSUM
                 continue
