@@ -154,3 +154,30 @@ def _manifest_hash(arc: Archive, run_id: str) -> str:
 
 def _fan(h: str) -> tuple[str, str, str]:
     return h[:2], h[2:4], h
+
+
+def test_exclude_span_takes_effect_at_next_solve(solved):
+    # Last in this module: it adds a newer run to the shared archive.
+    from archive.deliver import edits as ed
+    from archive.solve.run import get_run, run_manifest, run_positions, solve_survey
+
+    arc, sid, run_id, _ = solved
+
+    def station(table, line, point):
+        m = pc.and_(pc.and_(pc.equal(table["line"], line), pc.equal(table["point"], point)),
+                    table["delivered"])
+        return table.filter(m).to_pylist()[0]
+
+    pos = run_positions(arc, get_run(arc, sid, run_id))
+    row = pos.filter(pc.and_(pos["delivered"], pc.greater(pos["n_used"], 20))).to_pylist()[0]
+    half = row["t_start"] + (row["t_end"] - row["t_start"]) / 2
+    e = ed.exclude_span(arc, sid, row["line"], row["point"], node=row["node"],
+                        start=row["t_start"], end=half, reason="node carried about by cattle")
+    new = solve_survey(arc, sid, label="after exclusion")
+    assert new.created and new.run_id != run_id
+    run = get_run(arc, sid, new.run_id)
+    assert e.id in [x["id"] for x in run_manifest(arc, run)["edits"]]
+    after = station(run_positions(arc, run), row["line"], row["point"])
+    assert 0 < after["n_used"] < row["n_used"]
+    # the earlier run is untouched and still reproduces
+    assert reproduce(arc, run_id, sid)["identical"] is True
