@@ -96,3 +96,14 @@ def test_refuses_a_folder_that_already_holds_a_demo(demo: dict[str, Any]) -> Non
     res = CliRunner().invoke(cli, ["demo", demo["out_dir"], "--size", "small"])
     assert res.exit_code == 2
     assert "already holds a demo" in res.stderr
+
+
+def test_text_summary_names_paths_numbers_and_cautions(demo: dict[str, Any]) -> None:
+    from archive.cli.demo import summary_text
+
+    text = summary_text(demo)
+    assert "Kestrel Flats 3D" in text and demo["report"] in text
+    assert "Planted problems flagged: 5 of 5" in text and "MISSED" not in text
+    assert f"{demo['truth']['median']:.2f} m" in text
+    assert "review flags allowed" in text
+    assert "Not a certified or legal survey" in text
