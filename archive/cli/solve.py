@@ -65,11 +65,17 @@ def _flags_text(counts: dict[str, int]) -> str:
 @click.option("--stations", default=None, metavar="LINE:POINT,...",
               help="Solve only these stations.")
 @click.option("--nodes", default=None, metavar="SERIAL,...", help="Solve only these nodes.")
+@click.option("--scheduler", default=None, metavar="tcp://HOST:PORT", envvar="NODEKEEP_SCHEDULER",
+              help="Solve node partitions on this Dask scheduler (default: $NODEKEEP_SCHEDULER). "
+                   "Workers must reach the object store (S3, or a shared folder).")
+@click.option("--workers", type=click.IntRange(1, 1024), default=None,
+              help="Solve node partitions on a local Dask cluster of N processes.")
 @survey_option
 @output_options
 @pass_state
 def solve(state: CliState, params_file: str | None, label: str, stations: str | None,
-          nodes: str | None, survey_name: str | None) -> None:
+          nodes: str | None, scheduler: str | None, workers: int | None,
+          survey_name: str | None) -> None:
     """Solve one position per deployment and record the run."""
     from archive.solve.params import load_params
     from archive.solve.run import solve_survey
@@ -78,7 +84,8 @@ def solve(state: CliState, params_file: str | None, label: str, stations: str | 
     sid = _survey_id(state, survey_name)
     node_list = [n.strip() for n in nodes.split(",") if n.strip()] if nodes else None
     res = solve_survey(state.archive(), sid, overrides, label=label,
-                       stations=_stations(stations), nodes=node_list, progress=Bar(state))
+                       stations=_stations(stations), nodes=node_list, progress=Bar(state),
+                       scheduler=scheduler, workers=workers)
     d = res.as_dict()
 
     def text() -> str:

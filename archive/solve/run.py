@@ -27,6 +27,7 @@ from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
 from archive.solve.engine import solve_fixes
 from archive.solve.inputs import (
+    Partition,
     SolveInputs,
     check_objects,
     excludes_of,
@@ -87,8 +88,15 @@ def build_manifest(inp: SolveInputs, params: dict[str, Any], selection: dict[str
 
 
 def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
-           progress: Progress) -> tuple[pa.Table, dict[str, Any]]:
-    """Solve the manifest's inputs partition by partition (nodes), sorted as one table."""
+           progress: Progress, *, scheduler: str | None = None,
+           workers: int | None = None) -> tuple[pa.Table, dict[str, Any]]:
+    """Solve the manifest's inputs partition by partition (nodes), sorted as one table.
+
+    With a Dask ``scheduler`` address or a number of local ``workers``, the partitions are
+    solved on Dask by :func:`solve_partition` (see :mod:`archive.scale.distributed`).
+    """
+    if scheduler or workers:
+        return _solve_distributed(arc, manifest, inp, progress, scheduler, workers)
     params = manifest["params"]
     survey = manifest["survey"]
     sampler, dem = None, inp.open_dem(arc)
@@ -120,11 +128,66 @@ def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
         progress.close()
         if dem is not None:
             dem.close()
+    return _combine(tables), stats
+
+
+def _combine(tables: list[pa.Table]) -> pa.Table:
+    """The partitions' positions as one table in the run's sort order."""
     from archive.solve.schema import POSITION_SCHEMA
 
     table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
-    table = table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
-    return table, stats
+    return table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
+
+
+def solve_partition(part: Partition, shared: tuple[str, SolveInputs, dict[str, Any]]
+                    ) -> tuple[pa.Table, dict[str, Any]]:
+    """Solve one node partition anywhere (a Dask worker): ``shared`` is (object store URL,
+    inputs, manifest). Reads the store read-only and opens the elevation model by hash."""
+    from archive.store.objects import ObjectStore
+
+    objects_url, inp, manifest = shared
+    holder = SimpleNamespace(objects=ObjectStore(objects_url, read_only=True))
+    survey = manifest["survey"]
+    sampler, dem = None, inp.open_dem(holder)
+    if dem is not None:
+        epsg = survey["crs_epsg"]
+
+        def sampler(x, y):  # noqa: ANN001, ANN202 - a closure over the open model
+            return dem.sample(x, y, epsg)
+
+    try:
+        fixes = load_fix_tables(holder, part.fix_hashes)
+        out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
+                          survey["crs_epsg"], excludes=excludes_of(manifest["edits"]),
+                          sampler=sampler, orthometric=_orthometric(survey),
+                          detect_unlogged=inp.detect_unlogged)
+    finally:
+        if dem is not None:
+            dem.close()
+    pos = out.positions
+    if inp.station_keys is not None:
+        pos = inp.keep_selected(pos)
+    return pos, out.stats
+
+
+def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
+                       progress: Progress, scheduler: str | None, workers: int | None
+                       ) -> tuple[pa.Table, dict[str, Any]]:
+    from archive.scale.distributed import map_partitions
+
+    parts = partitions(arc, inp)
+    progress.start(sum(p.n_fixes for p in parts), "fixes", "solving")
+    try:
+        results = map_partitions(solve_partition, parts, shared=(arc.objects_url, inp, manifest),
+                                 scheduler=scheduler, workers=workers,
+                                 weights=[p.n_fixes for p in parts], progress=progress)
+    finally:
+        progress.close()
+    stats: dict[str, Any] = {}
+    for _, st in results:
+        for k, v in st.items():
+            stats[k] = stats.get(k, 0) + v
+    return _combine([pos for pos, _ in results]), stats
 
 
 def _orthometric(survey: dict[str, Any]):  # noqa: ANN202 - returns a callable or None
@@ -155,9 +218,14 @@ def _counts(table: pa.Table) -> tuple[int, dict[str, int]]:
 
 def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = None, *,
                  label: str = "", stations: Sequence[tuple[float, float]] | None = None,
-                 nodes: Sequence[str] | None = None, progress: Progress | None = None
-                 ) -> RunResult:
-    """Solve the survey's deployments (or a selection) and record the run; see module doc."""
+                 nodes: Sequence[str] | None = None, progress: Progress | None = None,
+                 scheduler: str | None = None, workers: int | None = None) -> RunResult:
+    """Solve the survey's deployments (or a selection) and record the run; see module doc.
+
+    ``scheduler`` (a Dask address, ``tcp://HOST:PORT``) or ``workers`` (a local Dask
+    cluster of that many processes) fan the node partitions out; the positions, and so the
+    run, are the same bit for bit.
+    """
     progress = progress or NoProgress()
     resolved = resolve_params(params or {})
     selection = _selection(stations, nodes)
@@ -171,7 +239,7 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
         summary = json.loads(existing.summary or "{}")
         return RunResult(run_id, False, existing.n_positions, n_flagged,
                          summary.get("flag_counts", {}), summary)
-    table, stats = _solve(arc, manifest, inp, progress)
+    table, stats = _solve(arc, manifest, inp, progress, scheduler=scheduler, workers=workers)
     n_flagged, flag_counts = _counts(table)
     delivered = table.filter(table["delivered"])
     summary = {"n_positions": table.num_rows, "n_delivered": delivered.num_rows,
