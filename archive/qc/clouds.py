@@ -65,6 +65,10 @@ def cloud_figure(st: Station, cloud: pa.Table | None) -> tuple[str, str]:
         n = cloud["north"].to_numpy(zero_copy_only=False).astype(float) - st.northing
         use = pc.fill_null(pc.equal(cloud["status"], "used"), False).to_numpy(
             zero_copy_only=False)
+        parts = pc.unique(cloud["part"]).drop_null().to_pylist() if "part" in cloud.column_names else []
+        if len(parts) > 1:
+            notes.append(f"fixes of {len(parts)} parts (the node moved); the diamond is the "
+                         "delivered part")
         n_used, n_rej = int(use.sum()), int((~use).sum())
         if n_used:
             style.used(ax, e[use], n[use])

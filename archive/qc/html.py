@@ -14,7 +14,9 @@ from importlib import resources
 from typing import Any
 
 MAX_LIST = 20
-"""Items of a long list in the lineage shown before the rest are counted."""
+"""Entries of a long list of records in the lineage shown before the rest are counted."""
+MAX_VALUES = 3
+"""Values of a long flat list (e.g. fix table hashes) shown; the manifest holds them all."""
 
 
 def css() -> str:
@@ -83,19 +85,26 @@ def flatten(value: Any, prefix: str = "") -> list[tuple[str, str]]:
         if len(value) > MAX_LIST:
             out.append((f"{prefix}[…]", f"{len(value) - MAX_LIST} more entries"))
     elif isinstance(value, list):
-        shown = ", ".join(_short(x) for x in value[:MAX_LIST])
-        more = f" … ({len(value) - MAX_LIST} more)" if len(value) > MAX_LIST else ""
-        out.append((prefix, shown + more))
+        shown = ", ".join(_short(x) for x in value[:MAX_VALUES])
+        if len(value) > MAX_VALUES:
+            shown = (f"{len(value):,} entries (all in the manifest object): {shown}, "
+                     f"… and {len(value) - MAX_VALUES:,} more")
+        out.append((prefix, shown))
     else:
         out.append((prefix, _short(value)))
     return out
+
+
+def _has_hash(text: str) -> bool:
+    return any(len(w.strip(",:")) == 64 and all(c in "0123456789abcdef" for c in w.strip(",:"))
+               for w in text.split())
 
 
 def kv_table(pairs: Iterable[tuple[str, str]], hash_like: bool = False) -> str:
     """A two-column key/value table; long hex values set in a monospace cell."""
     rows = []
     for k, v in pairs:
-        mono = hash_like or (len(v) >= 40 and all(c in "0123456789abcdef" for c in v))
+        mono = hash_like or _has_hash(v)
         cell = f'<td class="hash">{escape(v)}</td>' if mono else f"<td>{escape(v)}</td>"
         rows.append(f"<tr><th>{escape(k)}</th>{cell}</tr>")
     return f'<table class="wide">{"".join(rows)}</table>'

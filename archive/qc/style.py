@@ -106,7 +106,11 @@ LEGEND_SIZES = {LABELS["used"]: 14.0, LABELS["rejected"]: 18.0, LABELS["solved"]
 
 def legend(ax: Axes, **kw):
     """The axes' legend with every symbol at a readable size, however small on the map."""
-    leg = ax.legend(**kw)
+    handles, labels = ax.get_legend_handles_labels()
+    order = list(LABELS.values())
+    ranked = sorted(zip(handles, labels, strict=True),
+                    key=lambda hl: order.index(hl[1]) if hl[1] in order else len(order))
+    leg = ax.legend([h for h, _ in ranked], [lab for _, lab in ranked], **kw)
     for handle, text in zip(leg.legend_handles, leg.get_texts(), strict=True):
         size = LEGEND_SIZES.get(text.get_text())
         if size is not None and hasattr(handle, "set_sizes"):
