@@ -141,6 +141,10 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     run = get_run(arc, survey_id, run_ref)
     edits, edit_hash = edit_set(arc, survey_id)
     final = final_positions(arc, survey_id, run, edits=edits)
+    if final.num_rows == 0:
+        raise Refused(f"run {run.id[:12]} with the edits in force leaves no station to deliver",
+                      hint="check the run ('nodekeep show') and the reject edits "
+                           "('nodekeep edits')")
     flags = unacknowledged_flags(final)
     if flags and not allow_flags:
         raise _flag_refusal(final, flags, run)

@@ -79,19 +79,19 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
         ("H19", "Projection zone", crs.name),
         ("H20", "Description of grid units", crs.unit),
         ("H201", "Factor to metre", "1.0" if crs.unit == "metre" else "see H13"),
-        ("H21", "Lat. of standard parallel(s)", ", ".join(parallels) or lat0),
-        ("H22", "Longitude of central meridian", lon0),
+        ("H21", "Standard parallel(s)", ", ".join(parallels) or f"none (origin lat {lat0})"),
+        ("H22", "Central meridian", lon0),
         ("H231", "Grid origin", f"lat {lat0}, lon {lon0}"),
         ("H232", "Grid coord. at origin", f"E {fe}, N {fn}"),
         ("H241", "Scale factor", scale),
-        ("H242", "Lat/long scale factor defined", f"lat {lat0}, lon {lon0}"),
+        ("H242", "Lat/long of scale factor", f"lat {lat0}, lon {lon0}"),
     ]
     recs += [("H26", "Projection parameter", f"{name} = {value:.12g} {unit}")
              for name, value, unit in crs.params]
     recs += [
         ("H26", "Position mapped", POSITION_MAPPED),
         ("H26", "Day/time columns 72-80", TIME_BASIS),
-        ("H26", "Units", f"easting/northing {crs.unit} (0.1), elevation metre (0.1)"),
+        ("H26", "Units and precision", f"E/N {crs.unit} to 0.1, elevation metre to 0.1"),
         ("H26", "Producing run (1/2)", ctx.run_id[:32]),
         ("H26", "Producing run (2/2)", ctx.run_id[32:]),
         ("H26", "Edit set (1/2)", ctx.edit_set_hash[:32]),
