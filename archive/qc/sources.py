@@ -80,20 +80,10 @@ def run_info(run: Any) -> dict[str, Any]:
             "created_at": run.created_at, "created_by": run.created_by}
 
 
-def _run_readers():
-    """The solver's run readers; the delivery layer reads the same catalog contract (a Run
-    row naming its positions and manifest objects) and serves where the solver's module is
-    not installed."""
-    try:
-        from archive.solve.run import get_run, run_manifest, run_positions
-    except ImportError:
-        from archive.deliver.runs import get_run, run_manifest, run_positions
-    return get_run, run_positions, run_manifest
-
-
 def load_run_data(arc: Archive, survey_id: int, run_ref: str | None = None) -> RunData:
     """Read a run (the newest when ``run_ref`` is None) and the current survey inputs."""
-    get_run, run_positions, run_manifest = _run_readers()
+    from archive.solve.run import get_run, run_manifest, run_positions
+
     survey = survey_info(arc, survey_id)
     run = get_run(arc, survey_id, run_ref)
     positions = run_positions(arc, run)
@@ -106,12 +96,9 @@ def load_run_data(arc: Archive, survey_id: int, run_ref: str | None = None) -> R
 
 
 def cloud_reader(arc: Archive, run_id: str):
-    """A function (line, point, index) -> the station's fix cloud table; None when this
-    installation has no cloud reader (the report then draws clouds without fixes)."""
-    try:
-        from archive.solve.cloud import station_cloud
-    except ImportError:
-        return None
+    """A function (line, point, index) -> the station's fix cloud table, re-solved by the
+    solver from the run's manifest."""
+    from archive.solve.cloud import station_cloud
 
     def read(line: float, point: float, index: int) -> pa.Table | None:
         return station_cloud(arc, run_id, line, point, index)

@@ -23,7 +23,7 @@ from archive.qc import qc_of
 from archive.qc.report import render_report
 from tests.qc.tables import run_data, synthetic_cloud, synthetic_spread
 
-pytestmark = pytest.mark.browser
+pytestmark = [pytest.mark.browser, pytest.mark.slow]
 
 ARTIFACTS = Path(__file__).resolve().parents[2] / "test-artifacts"
 CHROMIUM = os.environ.get("NODEKEEP_CHROMIUM", "/usr/bin/chromium")
