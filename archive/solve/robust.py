@@ -31,6 +31,7 @@ from scipy.stats import chi2
 from archive.solve.segments import seg_median, seg_sum
 
 MIN_SCALE = 1e-3  # m: a cloud of identical fixes still gets a usable scale
+BLOCK = 1 << 16  # elements per block of segments (temporaries stay in cache)
 
 
 @dataclass
@@ -77,14 +78,41 @@ def _weighted_centre(xs: Sequence[np.ndarray], w: np.ndarray, seg: np.ndarray, n
 
 
 def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n_seg: int, *,
-                  estimator: str = "huber", huber_k: float = 1.345, tukey_c: float = 4.685,
-                  reject_quantile: float = 0.999, iterations: int = 6, scale_updates: int = 3,
-                  scale_sample: int | None = 2048) -> RobustResult:
+                  block: int = BLOCK, **options) -> RobustResult:
     """Robust centre of every segment of the d-dimensional points ``xs`` (see module doc).
 
     ``xs`` are coordinate arrays (metres), ``hdop`` the per-element HDOP (use 1 for
-    unweighted data), ``seg`` the non-decreasing segment id of each element.
+    unweighted data), ``seg`` the non-decreasing segment id of each element. Options:
+    ``estimator, huber_k, tukey_c, reject_quantile, iterations, scale_updates,
+    scale_sample``. The work runs in blocks of whole segments of about ``block`` elements,
+    so every temporary array stays in the processor cache; segments are independent, so
+    the blocks change nothing in the result.
     """
+    if len(seg) <= block:
+        return _robust_block(xs, hdop, seg, n_seg, **options)
+    counts = np.bincount(seg, minlength=n_seg)
+    ends = np.cumsum(counts)
+    cuts = np.unique(np.searchsorted(ends, np.arange(block, ends[-1], block), side="left"))
+    bounds = np.concatenate([[0], cuts + 1, [n_seg]]).astype(np.int64)
+    bounds = np.unique(np.clip(bounds, 0, n_seg))
+    parts = []
+    for s0, s1 in zip(bounds[:-1], bounds[1:], strict=True):
+        a = 0 if s0 == 0 else int(ends[s0 - 1])
+        b = int(ends[s1 - 1])
+        parts.append(_robust_block([x[a:b] for x in xs], hdop[a:b], seg[a:b] - s0,
+                                   int(s1 - s0), **options))
+    return RobustResult(
+        centre=[np.concatenate([p.centre[d] for p in parts]) for d in range(len(xs))],
+        scale=np.concatenate([p.scale for p in parts]),
+        weight=np.concatenate([p.weight for p in parts]),
+        rejected=np.concatenate([p.rejected for p in parts]),
+        r=np.concatenate([p.r for p in parts]))
+
+
+def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n_seg: int, *,
+                  estimator: str = "huber", huber_k: float = 1.345, tukey_c: float = 4.685,
+                  reject_quantile: float = 0.999, iterations: int = 6, scale_updates: int = 3,
+                  scale_sample: int | None = 2048) -> RobustResult:
     dim = len(xs)
     hd = np.where(np.isfinite(hdop) & (hdop > 0), hdop, 1.0).astype(np.float64)
     prior = 1.0 / (hd * hd)

@@ -81,10 +81,13 @@ def seg_median(values: np.ndarray, seg: np.ndarray, n_seg: int, cap: int | None 
         return out
     lo, hi = float(values.min()), float(values.max())
     span = (hi - lo) or 1.0
-    # Sort by (segment, value) in one pass: segment ids are integers, the scaled value < 1.
-    key = seg.astype(np.float64) + (values - lo) / (span * 1.000001)
-    order = np.argsort(key, kind="stable")
-    v = values[order]
+    scale = span * 1.000001
+    # Sort (segment, value) pairs in one pass: the key is the segment id plus the value
+    # scaled into [0, 1); the value is read back from the sorted key (to ~1e-15 of span).
+    key = seg.astype(np.float64)
+    key += (values - lo) / scale
+    key.sort()
+    v = (key - np.floor(key)) * scale + lo
     starts, counts = seg_starts(seg, n_seg)
     has = counts > 0
     a = starts[has] + (counts[has] - 1) // 2
