@@ -41,13 +41,17 @@ def event_hash(
     )
 
 
-def row_values(row: Base) -> dict[str, Any]:
-    """Column values of a catalog row, as plain JSON-able values."""
-    mapper = inspect(type(row))
+def row_columns(row: Base) -> list[str]:
+    """Names of a row's columns, sorted."""
+    return sorted(col.key for col in inspect(type(row)).columns)
+
+
+def row_values(row: Base, columns: list[str] | None = None) -> dict[str, Any]:
+    """Column values of a catalog row (all, or the named ones), as JSON-able values."""
     out: dict[str, Any] = {}
-    for col in mapper.columns:
-        value = getattr(row, col.key)
-        out[col.key] = value.isoformat() if isinstance(value, datetime) else value
+    for key in columns if columns is not None else row_columns(row):
+        value = getattr(row, key, None)
+        out[key] = value.isoformat() if isinstance(value, datetime) else value
     return out
 
 
@@ -57,9 +61,13 @@ def row_key(row: Base) -> str:
     return "|".join(str(v) for v in ident)
 
 
-def row_digest(row: Base) -> str:
-    """SHA-256 of a row's canonical column values."""
-    return canonical_hash(row_values(row))
+def row_digest(row: Base, columns: list[str] | None = None) -> str:
+    """SHA-256 of a row's canonical column values (all columns, or the named ones).
+
+    The ledger records which columns it digested, so a column added by a later migration
+    does not make older rows look altered.
+    """
+    return canonical_hash(row_values(row, columns))
 
 
 def append(
@@ -81,7 +89,8 @@ def append(
         payload = dict(payload)
         payload["rows"] = sorted(
             (
-                {"table": r.__tablename__, "key": row_key(r), "digest": row_digest(r)}
+                {"table": r.__tablename__, "key": row_key(r), "columns": row_columns(r),
+                 "digest": row_digest(r)}
                 for r in rows
             ),
             key=lambda d: (d["table"], d["key"]),

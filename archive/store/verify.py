@@ -129,7 +129,7 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
                             f"column {c} names object {value}, unknown to the catalog"))
         # 3. the ledger chain
         prev_hash, prev_seq = GENESIS, 0
-        recorded: dict[tuple[str, str], str] = {}
+        recorded: dict[tuple[str, str], tuple[str, list[str] | None]] = {}
         last = None
         for ev in s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq)):
             report.events_checked += 1
@@ -151,7 +151,7 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
                 payload = {}
                 report.problems.append(Problem("broken-chain", subject, "payload is not JSON"))
             for r in payload.get("rows", []) if isinstance(payload, dict) else []:
-                recorded[(r["table"], r["key"])] = r["digest"]
+                recorded[(r["table"], r["key"])] = (r["digest"], r.get("columns"))
             prev_hash, prev_seq, last = ev.hash, ev.seq, ev
         head = s.get(LedgerHead, 1)
         report.head = head.hash if head else None
@@ -167,7 +167,7 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
                 if key not in recorded:
                     report.problems.append(Problem("unledgered-row", subject,
                                                    "no ledger event recorded this row"))
-                elif recorded[key] != row_digest(row):
+                elif recorded[key][0] != row_digest(row, recorded[key][1]):
                     report.problems.append(Problem("altered-row", subject,
                                                    "row content differs from its ledger record"))
     return report
