@@ -27,7 +27,7 @@ from archive.errors import UsageError
 from archive.ingest.parse_file import parse_file
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
-from archive.store.models import RawFile, utcnow
+from archive.store.models import LedgerHead, RawFile, utcnow
 
 FORMATS = ("nmea", "delimited")
 PARSERS = {"nmea": "nmea-1", "delimited": "delimited-1"}
@@ -214,6 +214,15 @@ def _record(arc: Archive, survey_id: int, o: FileOutcome, res: dict[str, Any], f
     details = {"rejects": res["rejects"], "date": date.isoformat() if date else None,
                "node_pattern": node_pattern}
     with arc.transaction() as tx:
+        # Another process may have loaded the same bytes since the look-up before parsing:
+        # take the writers' lock (the ledger head row) and look again inside the transaction.
+        tx.execute(select(LedgerHead).where(LedgerHead.id == 1).with_for_update())
+        prior = tx.execute(select(RawFile.id).where(RawFile.survey_id == survey_id,
+                                                    RawFile.object_hash == o.raw_hash)
+                           ).scalar_one_or_none()
+        if prior is not None:
+            o.status, o.raw_file_id = "already", prior
+            return
         arc.register_object(tx, o.raw_hash, o.size, "raw")
         arc.register_object(tx, res["fixes_hash"], res["fixes_size"], "fixes")
         if res["rejects_hash"]:

@@ -82,3 +82,36 @@ def load_fixes(logs: Path) -> Scenario:
     args = ["load", "fixes", "--workers", "1", str(logs)]
     return Scenario("load fixes", lambda root: cli_argv(root, *args), raw_rows,
                     in_process(args))
+
+
+def run_rows(root: Path) -> tuple:
+    """What a solve produced: (run id, manifest, positions, digest, count) per run; each run
+    ledgered exactly once."""
+    from archive.store.models import Run
+
+    with Archive.open(root) as arc:
+        with arc.session() as s:
+            runs = s.scalars(select(Run)).all()
+        events = ledger_events(arc, action="solve.run")
+    got = tuple(sorted((r.id, r.manifest_hash, r.positions_hash, r.positions_digest,
+                        r.n_positions, r.n_flagged) for r in runs))
+    if sorted(e["payload"]["run"] for e in events) != [r[0] for r in got]:
+        raise AssertionError("a run was ledgered twice or not at all")
+    return got
+
+
+def solve() -> Scenario:
+    """``nodekeep solve`` of every deployment of the survey."""
+    return Scenario("solve", lambda root: cli_argv(root, "solve"), run_rows, in_process(["solve"]))
+
+
+def solve_setup(work: Path, db_url: str | None, *, seed: int = 7) -> tuple[Scenario, Any]:
+    """The small demo scenario loaded into a template archive, and the solve scenario."""
+    from archive.seeds.scenario import generate
+
+    from tests.reliability.conftest import fill_archive
+    from tests.reliability.harness import ArchiveTemplate
+
+    sc = generate(work / "scenario", seed=seed, size="small")
+    root = fill_archive(work / "template", db_url, sc, n_logs=0)
+    return solve(), ArchiveTemplate(root, db_url)
