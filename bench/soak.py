@@ -93,6 +93,9 @@ def main(argv: list[str] | None = None) -> int:
                           f"dangling objects {s['dangling_objects']:>3}  run {s['baseline_seconds']}"
                           f" s (start-up {s['startup_seconds']} s)  {s['seconds']} s in all  "
                           f"phases {s['phases']}", flush=True)
+                    for f in s["failures"]:
+                        print(f"  FAILED trial {f['trial']} (kill at {f['delay']} s, "
+                              f"{f['phase']}): {f['problems']}", flush=True)
     if args.json:
         print(json.dumps(summaries, indent=2))
     return 1 if any(s["problems"] or s["lost"] for s in summaries) else 0
