@@ -1,7 +1,8 @@
 """Did the node change place during its deployment? A persistent step in the running centre.
 
 Each cloud is cut into time blocks (``move_block_min``); the median east/north of each block
-is the running centre. For every possible split between blocks that leaves at least
+is the running centre (blocks holding under a quarter of the usual count, such as a
+partial last block, are left out). For every possible split between blocks that leaves at least
 ``move_min_hours`` on both sides, the step is the distance between the mean block centres
 before and after; the split with the largest size-weighted step (|Δ|²·n₁n₂/(n₁+n₂), the
 two-sample mean-shift statistic) is the candidate. It is a move when the step is at least
@@ -52,6 +53,12 @@ def detect_moves(e: np.ndarray, n: np.ndarray, t_us: np.ndarray, seg: np.ndarray
     total = int(nb.sum())
     me = seg_median(e, gb, total, 256)
     mn = seg_median(n, gb, total, 256)
+    # a nearly empty block (the partial one at the end, a gap) has no robust median
+    per_block = np.bincount(gb, minlength=total)
+    typical = np.repeat(counts / np.maximum(nb, 1), nb)
+    thin = (per_block < 5) | (per_block < 0.25 * typical)
+    me[thin] = np.nan
+    mn[thin] = np.nan
     width = int(nb.max())
     pe = np.full((n_seg, width), np.nan)
     pn = np.full((n_seg, width), np.nan)
@@ -68,8 +75,10 @@ def detect_moves(e: np.ndarray, n: np.ndarray, t_us: np.ndarray, seg: np.ndarray
     # split k (1..width-1): left = blocks [0, k), right = [k, nb)
     nl, nr = cnt[:, :-1], tot_c - cnt[:, :-1]
     ks = np.arange(1, width)[None, :]
-    min_blocks = params["move_min_hours"] * 3600e6 / block
-    valid = (ks >= min_blocks) & ((nb[:, None] - ks) >= min_blocks) & (nl >= 2) & (nr >= 2)
+    min_us = params["move_min_hours"] * 3600e6
+    before = ks * block  # time from the first fix to the split
+    after = (t1 - t0)[:, None] - before  # time from the split to the last fix
+    valid = (before >= min_us) & (after >= min_us) & (nl >= 2) & (nr >= 2)
     if not valid.any():
         return MoveResult(split, step, zval)
     with np.errstate(invalid="ignore", divide="ignore"):

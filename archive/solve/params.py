@@ -59,7 +59,7 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "min_span_hours": (6.0, "shortest span of used fixes before 'short-span', hours"),
         "spread_factor": (3.0, "'wide-spread' when the robust scale per HDOP exceeds this x sigma0"),
         "move_step": (5.0, "smallest persistent step of the cloud centre reported as a move, m"),
-        "move_min_hours": (4.0, "shortest part on each side of a move, hours"),
+        "move_min_hours": (6.0, "shortest part on each side of a move, hours"),
         "move_block_min": (60.0, "block length of the running centre used to find moves, minutes"),
         "move_z": (4.0, "step must also exceed this many standard errors"),
         "far_from_plan": (20.0, "distance to the preplot station before 'far-from-plan', m"),

@@ -1,0 +1,44 @@
+"""Move detection on Gauss–Markov clouds (thresholds: common practice, no source)."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.signal import lfilter
+
+from archive.solve.moves import detect_moves
+from archive.solve.params import default_params
+
+P = default_params()["flags"]
+
+
+def _clouds(k: int, n: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    rho = np.exp(-30 / 1800)  # 30 s fixes, τ = 30 min (check-values.md §6.3)
+
+    def gm() -> np.ndarray:
+        return lfilter([2 * np.sqrt(1 - rho**2)], [1, -rho], rng.standard_normal((k, n)),
+                       axis=1, zi=(2 * rho * rng.standard_normal(k))[:, None])[0]
+
+    t = np.broadcast_to(np.arange(n) * 30_000_000, (k, n)).ravel().copy()
+    return gm().ravel(), gm().ravel(), t, np.repeat(np.arange(k), n)
+
+
+def test_no_false_moves_even_with_an_outlier_in_a_thin_last_block() -> None:
+    e, n, t, seg = _clouds(300, 8521, seed=8)  # 71 h + 1 fix: the last block holds one fix
+    last = np.flatnonzero(np.diff(seg, append=seg[-1] + 1))
+    e[last] += 50.0  # and that fix is a 50 m outlier
+    mv = detect_moves(e, n, t, seg, 300, P)
+    assert not (mv.split_us >= 0).any()
+    assert np.nanmax(mv.step) < P["move_step"]
+
+
+def test_a_persistent_step_is_found_near_its_time() -> None:
+    e, n, t, seg = _clouds(40, 8640, seed=9)
+    at = np.random.default_rng(1).integers(2000, 6600, 40)
+    size = np.linspace(6.0, 15.0, 40)
+    idx = np.arange(len(seg)) - seg * 8640
+    after = idx >= at[seg]
+    e[after] += size[seg][after]
+    mv = detect_moves(e, n, t, seg, 40, P)
+    assert (mv.split_us >= 0).all()
+    assert np.all(np.abs(mv.split_us - at * 30_000_000) <= 3600e6)  # within one block
