@@ -97,3 +97,12 @@ class Refused(NodekeepError):
     """A request the archive refuses on purpose (would overwrite, unacknowledged flags, ...)."""
 
     exit_code = 4
+
+
+class StorageError(NodekeepError):
+    """The archive's storage refused a write (disk full, read-only media, no permission).
+
+    Raised before anything is recorded: the archive stays whole (at most an unreferenced
+    object is left, which ``verify`` reports as dangling)."""
+
+    exit_code = 5

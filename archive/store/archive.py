@@ -86,7 +86,7 @@ class Archive:
         self.read_only = read_only
         self.db_url = self._resolve_db(config["db"])
         self.objects_url = self._resolve_objects(config["objects"])
-        self.engine: Engine = make_engine(self.db_url)
+        self.engine: Engine = make_engine(self.db_url, read_only=read_only)
         self.objects = ObjectStore(self.objects_url, read_only=read_only)
 
     # -- creation and opening -----------------------------------------------------------
@@ -180,14 +180,43 @@ class Archive:
             self.engine.connect().execution_options(nodekeep_write=True) as conn,
             Session(bind=conn, expire_on_commit=False) as session,
         ):
-            conn.begin()
+            try:
+                conn.begin()
+            except Exception as exc:
+                refusal = self._storage_refusal(exc)
+                if refusal is None:
+                    raise
+                raise refusal from exc
             try:
                 yield session
                 session.flush()
                 conn.commit()
-            except BaseException:
+            except BaseException as exc:
                 conn.rollback()
+                refusal = self._storage_refusal(exc)
+                if refusal is not None:
+                    raise refusal from exc
                 raise
+
+    def _storage_refusal(self, exc: BaseException) -> Exception | None:
+        """A clear error when the catalog's storage refused a write (disk full, read-only)."""
+        from sqlalchemy.exc import DBAPIError
+
+        from archive.errors import StorageError
+
+        if not isinstance(exc, DBAPIError):
+            return None
+        orig = exc.orig
+        text = str(orig).strip().splitlines()[0] if str(orig).strip() else type(orig).__name__
+        sqlstate = getattr(orig, "sqlstate", None)
+        low = text.lower()
+        if ("disk is full" in low or "readonly database" in low or "read-only" in low
+                or sqlstate in ("53100", "25006")):  # PostgreSQL: disk full, read-only
+            return StorageError(
+                f"the catalog {mask_url(self.db_url)} refused the write: {text}",
+                hint="this change was not recorded; free space or make the catalog "
+                     "writable and run the command again")
+        return None
 
     @contextmanager
     def session(self) -> Iterator[Session]:

@@ -4,11 +4,15 @@ concurrent writers queue instead of failing half-way."""
 
 from __future__ import annotations
 
+import os
 import re
+import sqlite3
 from pathlib import Path
+from urllib.parse import quote
 
 from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.engine import make_url
+from sqlalchemy.pool import NullPool
 
 BUSY_TIMEOUT_MS = 60_000
 
@@ -26,10 +30,48 @@ def sqlite_url(path: Path) -> str:
     return f"sqlite:///{Path(path).resolve()}"
 
 
-def make_engine(url: str) -> Engine:
-    """Create an engine with the catalog's connection settings for its backend."""
+def _read_only_sqlite(path: str) -> bool:
+    """True when a SQLite catalog file cannot be written here (read-only media or file)."""
+    if not path or path == ":memory:" or not os.path.exists(path):
+        return False
+    folder = os.path.dirname(os.path.abspath(path))
+    return not (os.access(path, os.W_OK) and os.access(folder, os.W_OK))
+
+
+def _read_only_engine(path: str, *, media: bool) -> Engine:
+    """A SQLite engine that never writes (``mode=ro``). On read-only ``media`` without a
+    write-ahead log left beside the file it is also ``immutable`` (SQLite cannot build its
+    shared-memory index there, and nothing can change the file). Every write is refused by
+    SQLite as 'attempt to write a readonly database'."""
+    immutable = media and not os.path.exists(path + "-wal")
+    flags = "mode=ro&immutable=1" if immutable else "mode=ro"
+    uri = f"file:{quote(os.path.abspath(path))}?{flags}"
+
+    def connect() -> sqlite3.Connection:
+        return sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_MS / 1000,
+                               isolation_level=None, check_same_thread=False)
+
+    engine = create_engine("sqlite://", creator=connect, poolclass=NullPool)
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(conn) -> None:
+        immediate = conn.get_execution_options().get("nodekeep_write", False)
+        conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
+
+    return engine
+
+
+def make_engine(url: str, *, read_only: bool = False) -> Engine:
+    """Create an engine with the catalog's connection settings for its backend.
+
+    A SQLite catalog opened ``read_only``, or whose file or folder is not writable (a
+    read-only disk, an archive copied to read-only media), is opened without any write
+    (see :func:`_read_only_engine`): reading and ``verify`` work, writes are refused."""
     u = make_url(url)
     if u.get_backend_name() == "sqlite":
+        media = _read_only_sqlite(u.database or "")
+        if read_only or media:
+            return _read_only_engine(u.database or "", media=media)
         engine = create_engine(
             url,
             connect_args={"timeout": BUSY_TIMEOUT_MS / 1000, "isolation_level": None},

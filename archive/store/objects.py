@@ -10,6 +10,7 @@ upload only becomes visible once complete, so the same guarantees hold.
 from __future__ import annotations
 
 import contextlib
+import errno
 import hashlib
 import io
 import os
@@ -25,8 +26,11 @@ import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
-from archive.errors import IntegrityError, Refused
+from archive.errors import IntegrityError, Refused, StorageError
 from archive.store.hashing import CHUNK, is_hash
+
+# errno values of a storage that refuses writes: disk full, quota, read-only, permission.
+STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
 
 PARQUET_OPTIONS = {"compression": "zstd", "compression_level": 3, "write_statistics": True}
 
@@ -180,11 +184,22 @@ class ObjectStore:
         return self.put_bytes(sink.getvalue().to_pybytes())
 
     def put_stream(self, stream: BinaryIO) -> tuple[str, int]:
-        """Store everything left in a binary stream; returns (hash, size). Idempotent."""
+        """Store everything left in a binary stream; returns (hash, size). Idempotent.
+
+        A storage that refuses the write (disk full, read-only, no permission) raises
+        :class:`StorageError`; no partial object is left behind."""
         self._refuse_if_read_only()
-        if self.root is not None:
-            return self._put_local(stream)
-        return self._put_remote(stream)
+        try:
+            if self.root is not None:
+                return self._put_local(stream)
+            return self._put_remote(stream)
+        except OSError as exc:
+            if exc.errno in STORAGE_ERRNOS:
+                raise StorageError(
+                    f"cannot write to the object store {self.url}: {exc.strerror}",
+                    hint="this write was not recorded; free space or make the folder "
+                         "writable and run the command again") from exc
+            raise
 
     def _put_local(self, stream: BinaryIO) -> tuple[str, int]:
         tmpdir = self.root / "tmp"
