@@ -20,11 +20,11 @@ from tests.reliability.scenarios import core_writer
 def test_core_writer_killed_at_random(template: ArchiveTemplate, tmp_path: Path, backend: str):
     sc = core_writer()
     result = campaign(sc.name, template, tmp_path / "trials", sc.argv_for, sc.result_of,
-                      n=6, seed=7, backend=backend)
+                      n=4, seed=7, backend=backend)
     summary = result.summary()
-    assert summary["trials"] == 6
+    assert summary["trials"] == 4
     bad = [t for t in result.trials if not t.ok]
     assert not bad, bad
     # the kills are spread: most of them land while the writer works
-    assert summary["killed"] >= 4, summary
+    assert summary["killed"] >= 2, summary
     assert len(summary["phases"]) >= 2, summary

@@ -16,7 +16,7 @@ from tests.reliability.harness import ArchiveTemplate, campaign
 from tests.reliability.logs import write_logs
 from tests.reliability.scenarios import load_fixes
 
-TRIALS = {"sqlite": 12, "postgres": 8}  # 20 in CI over both backends; bench/soak.py runs more
+TRIALS = {"sqlite": 10, "postgres": 10}  # 20 in CI over both backends; bench/soak.py runs more
 
 
 @pytest.mark.slow

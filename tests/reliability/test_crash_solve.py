@@ -16,7 +16,7 @@ from tests.reliability.conftest import fill_archive
 from tests.reliability.harness import ArchiveTemplate, campaign
 from tests.reliability.scenarios import solve
 
-TRIALS = {"sqlite": 12, "postgres": 8}  # 20 in CI over both backends; bench/soak.py runs more
+TRIALS = {"sqlite": 10, "postgres": 10}  # 20 in CI over both backends; bench/soak.py runs more
 
 
 @pytest.mark.slow
