@@ -38,8 +38,7 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
     from archive.deliver.deliveries import deliver as run
 
     arc = state.archive()
-    with arc.session() as s:
-        sid = arc.survey(s, survey_name).id
+    sid = state.survey_id(survey_name)
     res = run(arc, sid, run_ref, fmt, to, recipient or "", note=note, allow_flags=allow_flags,
               force=force)
     d = res.as_dict()

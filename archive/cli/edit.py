@@ -13,11 +13,6 @@ from archive.cli.output import emit, table
 SOURCES = ["control", "preplot", "given"]
 
 
-def _survey_id(state: CliState, name: str | None) -> int:
-    arc = state.archive()
-    with arc.session() as s:
-        return arc.survey(s, name).id
-
 
 def _station(f: Callable[..., Any]) -> Callable[..., Any]:
     f = click.option("--index", "index", type=int, default=1, show_default=True,
@@ -62,7 +57,7 @@ def set_position(state: CliState, line: float, point: float, index: int, source:
     """Set the delivered position of station LINE POINT."""
     from archive.deliver.edits import set_position as run
 
-    _done(state, run(state.archive(), _survey_id(state, survey_name), line, point, index,
+    _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
                      reason=reason, source=source, easting=easting, northing=northing))
 
 
@@ -80,7 +75,7 @@ def set_height(state: CliState, line: float, point: float, index: int, source: s
     """Set the delivered height of station LINE POINT."""
     from archive.deliver.edits import set_height as run
 
-    _done(state, run(state.archive(), _survey_id(state, survey_name), line, point, index,
+    _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
                      reason=reason, source=source, height=height))
 
 
@@ -98,7 +93,7 @@ def exclude(state: CliState, line: float, point: float, index: int, node: str, s
     """Leave a span of a node's fixes out of the next solve of station LINE POINT."""
     from archive.deliver.edits import exclude_span
 
-    _done(state, exclude_span(state.archive(), _survey_id(state, survey_name), line, point,
+    _done(state, exclude_span(state.archive(), state.survey_id(survey_name), line, point,
                               index, node=node, start=start, end=end, reason=reason))
 
 
@@ -113,7 +108,7 @@ def reject(state: CliState, line: float, point: float, index: int, reason: str |
     """Do not deliver station LINE POINT."""
     from archive.deliver.edits import reject_station
 
-    _done(state, reject_station(state.archive(), _survey_id(state, survey_name), line, point,
+    _done(state, reject_station(state.archive(), state.survey_id(survey_name), line, point,
                                 index, reason=reason))
 
 
@@ -129,7 +124,7 @@ def ack(state: CliState, line: float, point: float, index: int, flag: str, reaso
     """Acknowledge a review flag of station LINE POINT (it no longer blocks delivery)."""
     from archive.deliver.edits import ack_flag
 
-    _done(state, ack_flag(state.archive(), _survey_id(state, survey_name), line, point, index,
+    _done(state, ack_flag(state.archive(), state.survey_id(survey_name), line, point, index,
                           flag=flag, reason=reason))
 
 
@@ -143,7 +138,7 @@ def undo(state: CliState, edit_id: int, reason: str | None, survey_name: str | N
     """Take edit EDIT_ID out of force (recorded as a new edit)."""
     from archive.deliver.edits import undo as run
 
-    _done(state, run(state.archive(), _survey_id(state, survey_name), edit_id, reason=reason))
+    _done(state, run(state.archive(), state.survey_id(survey_name), edit_id, reason=reason))
 
 
 @click.command()
@@ -158,7 +153,7 @@ def edits(state: CliState, all_edits: bool, line: float | None, point: float | N
     """List the edits in force (or all of them)."""
     from archive.deliver.edits import list_edits
 
-    rows = list_edits(state.archive(), _survey_id(state, survey_name), all_edits=all_edits,
+    rows = list_edits(state.archive(), state.survey_id(survey_name), all_edits=all_edits,
                       line=line, point=point)
 
     def text() -> str:

@@ -45,8 +45,7 @@ def fixes(state: CliState, serial: str, start: str | None, end: str | None, to: 
     from archive.ingest.read import node_fixes, write_fixes
 
     arc = state.archive()
-    with arc.session() as s:
-        survey_id = arc.survey(s, survey_name).id
+    survey_id = state.survey_id(survey_name)
     t = node_fixes(arc, survey_id, serial, _time(start, "--start"), _time(end, "--end"))
     path = write_fixes(t, to, force=force)
     emit(state, {"node": serial, "n_fixes": t.num_rows, "path": str(path)},
@@ -63,8 +62,7 @@ def logs(state: CliState, node: str | None, survey_name: str | None) -> None:
     from archive.ingest.read import list_raw_files
 
     arc = state.archive()
-    with arc.session() as s:
-        survey_id = arc.survey(s, survey_name).id
+    survey_id = state.survey_id(survey_name)
     rows = list_raw_files(arc, survey_id, node)
 
     def text() -> str:

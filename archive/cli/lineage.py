@@ -10,12 +10,6 @@ from archive.cli.options import CliState, output_options, pass_state, survey_opt
 from archive.cli.output import emit, table
 
 
-def _survey_id(state: CliState, name: str | None) -> int:
-    arc = state.archive()
-    with arc.session() as s:
-        return arc.survey(s, name).id
-
-
 def _f(v: Any, fmt: str = "{:.3f}") -> str:
     return "-" if v is None else fmt.format(v)
 
@@ -114,7 +108,7 @@ def trace(state: CliState, line: float | None, point: float | None, index: int,
         raise UsageError("trace needs LINE POINT or --file FILE")
     from archive.deliver.lineage import trace_station
 
-    t = trace_station(arc, _survey_id(state, survey_name), line, point, index)
+    t = trace_station(arc, state.survey_id(survey_name), line, point, index)
     emit(state, t, lambda: _station_text(t))
 
 
@@ -127,7 +121,7 @@ def reproduce(state: CliState, run_ref: str, survey_name: str | None) -> None:
     """Recompute RUN from its archived inputs and say whether it is identical."""
     from archive.deliver.compare import reproduce as run
 
-    r = run(state.archive(), run_ref, _survey_id(state, survey_name))
+    r = run(state.archive(), run_ref, state.survey_id(survey_name))
     lines = [f"run {r['run'][:12]}: " + ("identical (same positions digest "
                                           f"{r['recorded_digest'][:16]}…)" if r["identical"]
                                           else "NOT identical")]
@@ -155,7 +149,7 @@ def diff(state: CliState, run_a: str, run_b: str, threshold: float,
     """Per-station movement from RUN_A to RUN_B."""
     from archive.deliver.compare import diff_runs
 
-    d = diff_runs(state.archive(), run_a, run_b, threshold, _survey_id(state, survey_name))
+    d = diff_runs(state.archive(), run_a, run_b, threshold, state.survey_id(survey_name))
 
     def text() -> str:
         s = d["summary"]
@@ -193,7 +187,7 @@ def where(state: CliState, line: float, point: float, index: int, as_of: str | N
     """The coordinate delivered for station LINE POINT as of a date, and in which delivery."""
     from archive.deliver.compare import where as run
 
-    w = run(state.archive(), _survey_id(state, survey_name), line, point, index, as_of)
+    w = run(state.archive(), state.survey_id(survey_name), line, point, index, as_of)
 
     def text() -> str:
         when = f" as of {_when(w['as_of'])}" if w["as_of"] else ""

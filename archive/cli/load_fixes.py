@@ -60,8 +60,7 @@ def load_fixes(state: CliState, paths: tuple[str, ...], fmt: str | None,
         except ValueError:
             raise UsageError(f"--date {date_!r} is not a date", hint="use YYYY-MM-DD") from None
     arc = state.archive()
-    with arc.session() as s:
-        survey_id = arc.survey(s, survey_name).id
+    survey_id = state.survey_id(survey_name)
     bar = Bar(state)
     report = load_fix_files(arc, survey_id, list(paths), fmt=fmt, profile_path=profile_path,
                             node=node, node_pattern=node_pattern, date=day, workers=workers,

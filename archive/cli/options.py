@@ -73,5 +73,11 @@ class CliState:
             click.get_current_context().call_on_close(self._archive.close)
         return self._archive
 
+    def survey_id(self, name: str | None) -> int:
+        """Id of the survey named by ``--survey`` (or the only one) in the open archive."""
+        arc = self.archive()
+        with arc.session() as s:
+            return arc.survey(s, name).id
+
 
 pass_state = click.make_pass_decorator(CliState)

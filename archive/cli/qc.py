@@ -23,11 +23,6 @@ tolerance_option = click.option(
     help="List stations farther than M metres from their check point.")
 
 
-def _survey_id(state: CliState, name: str | None) -> int:
-    arc = state.archive()
-    with arc.session() as s:
-        return arc.survey(s, name).id
-
 
 def _m(v: Any, fmt: str = "{:.3f}") -> str:
     return "-" if v is None else fmt.format(v)
@@ -76,7 +71,7 @@ def qc(state: CliState, survey_name: str | None, run_ref: str | None, tolerance:
     """Compare a run's positions, and the preplot, with the RTK check points."""
     from archive.qc import qc_run
 
-    result = qc_run(state.archive(), _survey_id(state, survey_name), run_ref, tolerance)
+    result = qc_run(state.archive(), state.survey_id(survey_name), run_ref, tolerance)
     data = result.as_dict()
     emit(state, data, lambda: qc_text(data))
 
@@ -95,7 +90,7 @@ def report(state: CliState, survey_name: str | None, run_ref: str | None, tolera
     """Write a self-contained HTML report of a run: lineage, figures, flagged stations."""
     from archive.qc.report import write_report
 
-    written = write_report(state.archive(), _survey_id(state, survey_name), run_ref, to,
+    written = write_report(state.archive(), state.survey_id(survey_name), run_ref, to,
                            tolerance=tolerance, force=force, progress=Bar(state))
     data = written.as_dict()
     emit(state, data, f"wrote {data['path']} ({data['size_bytes'] / 1e6:.1f} MB, "
