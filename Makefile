@@ -21,6 +21,7 @@ $(VENV)/.installed-test: pyproject.toml | $(BIN)/python
 venv: $(VENV)/.installed
 
 demo: $(VENV)/.installed
+	rm -rf $(DEMO_DIR)
 	$(BIN)/nodekeep demo $(DEMO_DIR)
 
 lint: $(VENV)/.installed-test
