@@ -15,9 +15,15 @@ Holland & Welsch 1977): wᵢ = ψ(rᵢ)/rᵢ / HDOPᵢ². Estimators:
 The schedule is the same for every cloud: start at the coordinate-wise median, then
 ``scale_updates`` rounds of (re-estimate s; ``iterations`` IRLS steps). A fix whose squared
 standardised distance exceeds the χ²_d quantile ``reject_quantile`` is then rejected (kept,
-not used) and ``iterations`` more steps run without the rejected fixes. With
+not used) and, in a cloud that lost fixes, ``iterations`` more steps run without them
+(decided per cloud, so a cloud's result never depends on the other clouds). With
 ``reject_quantile = 1`` nothing is rejected and the result is the plain M-estimate, the
 fixed point statsmodels' RLM reaches for the same norm and MAD scale.
+
+The schedule runs per cloud in the compiled kernel
+:func:`archive.solve.kernels.robust_segments` (one fused pass over a cloud's fixes per IRLS
+step, clouds spread over threads); :func:`robust_centre_reference` is the same schedule
+written with numpy segment reductions, kept as the reference for tests.
 """
 
 from __future__ import annotations
@@ -28,7 +34,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.stats import chi2
 
-from archive.solve.segments import seg_median, seg_sum
+from archive.errors import UsageError
+from archive.solve.kernels import ESTIMATOR_CODE, robust_segments, run_split
+from archive.solve.segments import seg_median_reference, seg_starts, seg_sum
 
 MIN_SCALE = 1e-3  # m: a cloud of identical fixes still gets a usable scale
 BLOCK = 1 << 16  # elements per block of segments (temporaries stay in cache)
@@ -77,14 +85,54 @@ def _weighted_centre(xs: Sequence[np.ndarray], w: np.ndarray, seg: np.ndarray, n
     return out
 
 
+def _clean_hdop(hdop: np.ndarray) -> np.ndarray:
+    return np.where(np.isfinite(hdop) & (hdop > 0), hdop, 1.0).astype(np.float64)
+
+
 def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n_seg: int, *,
-                  block: int = BLOCK, **options) -> RobustResult:
+                  estimator: str = "huber", huber_k: float = 1.345, tukey_c: float = 4.685,
+                  reject_quantile: float = 0.999, iterations: int = 6, scale_updates: int = 3,
+                  scale_sample: int | None = 2048) -> RobustResult:
     """Robust centre of every segment of the d-dimensional points ``xs`` (see module doc).
 
     ``xs`` are coordinate arrays (metres), ``hdop`` the per-element HDOP (use 1 for
-    unweighted data), ``seg`` the non-decreasing segment id of each element. Options:
-    ``estimator, huber_k, tukey_c, reject_quantile, iterations, scale_updates,
-    scale_sample``. The work runs in blocks of whole segments of about ``block`` elements,
+    unweighted data), ``seg`` the non-decreasing segment id of each element. Options as
+    in :mod:`archive.solve.params` ``[estimate]``; ``scale_sample`` caps the fixes per
+    cloud used for the medians (None: all).
+    """
+    if estimator not in ESTIMATOR_CODE:
+        raise UsageError(f"estimator {estimator!r} is unknown",
+                         hint=f"use one of {', '.join(ESTIMATOR_CODE)}")
+    dim = len(xs)
+    if dim not in (1, 2):
+        return robust_centre_reference(xs, hdop, seg, n_seg, estimator=estimator,
+                                       huber_k=huber_k, tukey_c=tukey_c,
+                                       reject_quantile=reject_quantile, iterations=iterations,
+                                       scale_updates=scale_updates, scale_sample=scale_sample)
+    n = len(seg)
+    e = np.ascontiguousarray(xs[0], dtype=np.float64)
+    north = np.ascontiguousarray(xs[1], dtype=np.float64) if dim == 2 else np.zeros(n)
+    invh = 1.0 / _clean_hdop(np.asarray(hdop))
+    starts, counts = seg_starts(np.asarray(seg), n_seg)
+    limit = float(np.sqrt(chi2.ppf(reject_quantile, dim))) if reject_quantile < 1.0 else np.inf
+    mean = estimator == "mean"
+    centre = np.zeros((2, n_seg))
+    scale = np.full(n_seg, MIN_SCALE)
+    weight = np.zeros(n)
+    rejected = np.zeros(n, dtype=np.bool_)
+    r = np.zeros(n)
+    run_split(robust_segments, counts, e, north, invh, starts, counts, ESTIMATOR_CODE[estimator],
+              float(huber_k), float(tukey_c), limit, 1 if mean else int(scale_updates),
+              1 if mean else int(iterations), int(scale_sample or 0),
+              float(np.sqrt(chi2.ppf(0.5, dim))), MIN_SCALE, centre, scale, weight, rejected, r)
+    return RobustResult(centre=list(centre[:dim]), scale=scale, weight=weight, rejected=rejected, r=r)
+
+
+def robust_centre_reference(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray,
+                            n_seg: int, *, block: int = BLOCK, **options) -> RobustResult:
+    """numpy version of :func:`robust_centre` (segment reductions), the reference for tests.
+
+    The work runs in blocks of whole segments of about ``block`` elements,
     so every temporary array stays in the processor cache; segments are independent, so
     the blocks change nothing in the result.
     """
@@ -114,16 +162,16 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
                   reject_quantile: float = 0.999, iterations: int = 6, scale_updates: int = 3,
                   scale_sample: int | None = 2048) -> RobustResult:
     dim = len(xs)
-    hd = np.where(np.isfinite(hdop) & (hdop > 0), hdop, 1.0).astype(np.float64)
+    hd = _clean_hdop(hdop)
     prior = 1.0 / (hd * hd)
     median_unit = np.sqrt(chi2.ppf(0.5, dim))
-    centre = [seg_median(x, seg, n_seg, scale_sample) for x in xs]
+    centre = [seg_median_reference(x, seg, n_seg, scale_sample) for x in xs]
     centre = [np.where(np.isfinite(c), c, 0.0) for c in centre]
     active = np.ones(len(seg), dtype=bool)
 
     def scale_of(z: np.ndarray) -> np.ndarray:
         idx = np.flatnonzero(active)
-        s = seg_median(z[idx], seg[idx], n_seg, scale_sample) / median_unit
+        s = seg_median_reference(z[idx], seg[idx], n_seg, scale_sample) / median_unit
         return np.maximum(np.nan_to_num(s, nan=MIN_SCALE), MIN_SCALE)
 
     limit = np.sqrt(chi2.ppf(reject_quantile, dim)) if reject_quantile < 1.0 else np.inf
@@ -141,12 +189,14 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
             centre = _weighted_centre(xs, w, seg, n_seg, centre)
     r = _distance(xs, centre, seg) / hd / scale[seg]
     rejected = r > limit
-    if rejected.any():
+    lost = np.bincount(seg[rejected], minlength=n_seg) > 0  # clouds that lost fixes
+    if lost.any():
         active = ~rejected
         for _ in range(steps):
             r = _distance(xs, centre, seg) / hd / scale[seg]
             w = prior * _psi_weight(r, estimator, huber_k, tukey_c) * active
-            centre = _weighted_centre(xs, w, seg, n_seg, centre)
+            new = _weighted_centre(xs, w, seg, n_seg, centre)
+            centre = [np.where(lost, c1, c0) for c1, c0 in zip(new, centre, strict=True)]
     r = _distance(xs, centre, seg) / hd / scale[seg]
     w = prior * _psi_weight(r, estimator, huber_k, tukey_c) * ~rejected
     return RobustResult(centre=centre, scale=scale, weight=w, rejected=rejected, r=r)

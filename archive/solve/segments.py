@@ -3,8 +3,10 @@
 Every per-cloud quantity of the solver is a *segment reduction*: the fixes of all clouds sit
 in one array, sorted so that each cloud (segment) is a contiguous run, and a segment id array
 ``seg`` (non-decreasing, 0..S-1) says which cloud each element belongs to. Sums are
-``np.add.reduceat`` over the runs; medians come from one sort of a bounded, deterministic
-systematic subsample of each segment. No Python loop runs per segment.
+``np.add.reduceat`` over the runs; medians come from a bounded, deterministic systematic
+subsample of each segment, selected per segment by a compiled kernel
+(:func:`archive.solve.kernels.seg_medians`; :func:`seg_median_reference` is the numpy
+version by one global sort, kept for tests). No Python loop runs per segment.
 
 The local plane: around a reference latitude/longitude, east = (N + h)·cos φ₀·Δλ and
 north = (M + h)·Δφ with M, N the WGS 84 meridian and prime-vertical radii at φ₀. Over a
@@ -16,6 +18,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from archive.solve.kernels import run_split, seg_medians
+
 WGS84_A = 6378137.0
 WGS84_F = 1 / 298.257223563
 WGS84_E2 = WGS84_F * (2 - WGS84_F)
@@ -23,10 +27,9 @@ WGS84_E2 = WGS84_F * (2 - WGS84_F)
 
 def seg_starts(seg: np.ndarray, n_seg: int) -> tuple[np.ndarray, np.ndarray]:
     """(start index, count) of every segment of a non-decreasing segment id array."""
-    counts = np.bincount(seg, minlength=n_seg).astype(np.int64)
-    starts = np.zeros(n_seg, dtype=np.int64)
-    if n_seg > 1:
-        np.cumsum(counts[:-1], out=starts[1:])
+    ids = np.arange(n_seg)
+    starts = np.searchsorted(seg, ids, side="left").astype(np.int64)
+    counts = np.searchsorted(seg, ids, side="right").astype(np.int64) - starts
     return starts, counts
 
 
@@ -72,7 +75,20 @@ def subsample(seg: np.ndarray, n_seg: int, cap: int) -> tuple[np.ndarray, np.nda
 
 def seg_median(values: np.ndarray, seg: np.ndarray, n_seg: int, cap: int | None = None
                ) -> np.ndarray:
-    """Median of ``values`` per segment (NaN for empty ones), from at most ``cap`` elements."""
+    """Median of ``values`` per segment (NaN for empty ones), from at most ``cap`` elements.
+
+    ``seg`` must be non-decreasing; the subsample is the one of :func:`subsample`.
+    """
+    starts, counts = seg_starts(seg, n_seg)
+    out = np.full(n_seg, np.nan)
+    vals = np.ascontiguousarray(values, dtype=np.float64)
+    run_split(seg_medians, counts, vals, starts, counts, int(cap or 0), out)
+    return out
+
+
+def seg_median_reference(values: np.ndarray, seg: np.ndarray, n_seg: int,
+                         cap: int | None = None) -> np.ndarray:
+    """numpy version of :func:`seg_median` (one global sort), the reference for tests."""
     if cap is not None:
         idx, owner = subsample(seg, n_seg, cap)
         values, seg = values[idx], owner

@@ -16,6 +16,9 @@ fixes. Two estimates of the covariance of the centre, both from the data themsel
 A per-axis ``floor`` (multipath bias and offsets that never average out) is added to both.
 The 95 % ellipse uses χ²₂(0.95) = 5.991; the 95 % horizontal radius is the exact radius of
 the elliptical normal holding 95 %, not the ellipse's major axis.
+
+Batch means run per cloud in the compiled kernel :func:`archive.solve.kernels.batch_segments`;
+:func:`batch_covariance_reference` is the numpy version (segment reductions), kept for tests.
 """
 
 from __future__ import annotations
@@ -27,6 +30,7 @@ import numpy as np
 from scipy.special import ndtr
 from scipy.stats import chi2
 
+from archive.solve.kernels import batch_segments, run_split
 from archive.solve.segments import seg_starts, seg_sum
 
 CHI2_2_95 = float(chi2.ppf(0.95, 2))  # 5.991465
@@ -79,6 +83,22 @@ def batch_covariance(de: np.ndarray, dn: np.ndarray, w: np.ndarray, t_s: np.ndar
     seconds (time-ordered within each segment). A window shorter than ``min_batches``
     batches is cut into ``min_batches`` shorter batches.
     """
+    starts, counts = seg_starts(np.asarray(seg), n_seg)
+    out = np.zeros((n_seg, 4))
+
+    def f64(a: np.ndarray) -> np.ndarray:
+        return np.ascontiguousarray(a, dtype=np.float64)
+
+    run_split(batch_segments, counts, f64(de), f64(dn), f64(w), f64(t_s), starts, counts,
+              float(batch_s), float(min_batches), out)
+    return CentreCovariance(out[:, 0].copy(), out[:, 1].copy(), out[:, 2].copy(),
+                            out[:, 3].copy())
+
+
+def batch_covariance_reference(de: np.ndarray, dn: np.ndarray, w: np.ndarray, t_s: np.ndarray,
+                               seg: np.ndarray, n_seg: int, *, batch_s: float,
+                               min_batches: int) -> CentreCovariance:
+    """numpy version of :func:`batch_covariance` (segment reductions), the reference for tests."""
     starts, counts = seg_starts(seg, n_seg)
     has = counts > 0
     t0 = np.zeros(n_seg)

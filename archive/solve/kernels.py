@@ -1,0 +1,326 @@
+"""Compiled segment kernels under the solver's hot stages (numba, cached on disk).
+
+The numpy versions of these stages (``_reference`` functions in :mod:`segments`,
+:mod:`robust` and :mod:`uncertainty`) make many passes and temporaries over every fix; here
+each segment (cloud) is handled by one compiled loop that touches its fixes a few times
+while they sit in cache:
+
+- :func:`seg_medians`: median of a deterministic systematic subsample of each segment, by
+  selection (``np.median`` compiles to a quickselect), not by sorting everything;
+- :func:`robust_segments`: the whole robust schedule of :mod:`robust` per segment (start at
+  the coordinate-wise median, MAD scale, IRLS steps with distance, ψ-weight and weighted
+  sums fused in one pass per step, chi-square rejection, final weights);
+- :func:`batch_segments`: batch sums and the batch-means covariance of :mod:`uncertainty`.
+
+Parallel across segments: :func:`run_split` cuts the segments into contiguous ranges of
+about equal element count and runs the kernel (which releases the GIL) on one thread per
+range. Every segment is computed by exactly one thread with sequential sums, and the
+ranges only decide which thread does it, so results do not depend on the thread count.
+No floating-point ``fastmath``: the compiled arithmetic is the IEEE arithmetic of the
+reference, in a fixed order.
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+
+import numpy as np
+from numba import njit
+
+EST_HUBER, EST_TUKEY, EST_GEOMEDIAN, EST_MEAN = 0, 1, 2, 3
+ESTIMATOR_CODE = {"huber": EST_HUBER, "tukey": EST_TUKEY, "geomedian": EST_GEOMEDIAN,
+                  "mean": EST_MEAN}
+LANES = 8  # interleaved partial sums per weighted sum (fixed: part of the result's definition)
+MIN_SPLIT = 1 << 15  # elements per thread below which one thread does everything
+
+_threads = max(1, min(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
+                      else (os.cpu_count() or 1), 8))
+
+
+def set_threads(n: int) -> None:
+    """Threads used per kernel call (1 in worker processes that already fill the cores)."""
+    global _threads
+    _threads = max(1, int(n))
+
+
+def get_threads() -> int:
+    """Threads used per kernel call."""
+    return _threads
+
+
+def run_split(kernel: Callable[..., None], counts: np.ndarray, *args: object) -> None:
+    """Run ``kernel(s_lo, s_hi, *args)`` over all segments, split across threads.
+
+    ``counts`` are the elements per segment; ranges of whole segments with about equal
+    element totals go to the threads. Only the main thread fans out (a call from a worker
+    thread, such as a threaded Dask worker, runs on that thread alone).
+    """
+    n_seg = len(counts)
+    total = int(counts.sum()) if n_seg else 0
+    parts = min(_threads, max(1, total // MIN_SPLIT), max(n_seg, 1))
+    if parts <= 1 or threading.current_thread() is not threading.main_thread():
+        kernel(0, n_seg, *args)
+        return
+    ends = np.cumsum(counts)
+    cuts = np.searchsorted(ends, np.arange(1, parts) * (total / parts), side="left") + 1
+    bounds = np.unique(np.concatenate([[0], np.minimum(cuts, n_seg), [n_seg]]))
+    with ThreadPoolExecutor(max_workers=len(bounds) - 1) as pool:
+        futures = [pool.submit(kernel, int(a), int(b), *args)
+                   for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+        for f in futures:
+            f.result()
+
+
+@njit(cache=True, nogil=True)
+def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
+    """Median of the systematic subsample (at most ``cap``) of values[start:start+count]."""
+    if count == 0:
+        return np.nan
+    m = count if (cap <= 0 or count <= cap) else cap
+    if m == count:
+        for j in range(m):
+            buf[j] = values[start + j]
+    else:
+        for j in range(m):
+            buf[j] = values[start + ((2 * j + 1) * count) // (2 * m)]
+    return np.median(buf[:m])
+
+
+@njit(cache=True, nogil=True)
+def seg_medians(s_lo, s_hi, values, starts, counts, cap, out):  # pragma: no cover
+    """out[s] = median of the subsample of segment s, for s in [s_lo, s_hi)."""
+    size = 1
+    for s in range(s_lo, s_hi):
+        size = max(size, counts[s] if cap <= 0 else min(counts[s], cap))
+    buf = np.empty(size)
+    for s in range(s_lo, s_hi):
+        out[s] = _sub_median(values, starts[s], counts[s], cap, buf)
+
+
+@njit(cache=True, nogil=True)
+def _w_huber(e, n, invh, keep, ce, cn, isc, k, wbuf):  # pragma: no cover - compiled
+    for j in range(e.shape[0]):
+        ih = invh[j]
+        de = e[j] - ce
+        dn = n[j] - cn
+        r = np.sqrt(de * de + dn * dn) * ih * isc
+        wbuf[j] = keep[j] * (ih * ih * k / max(r, k))
+
+
+@njit(cache=True, nogil=True)
+def _w_tukey(e, n, invh, keep, ce, cn, isc, c, wbuf):  # pragma: no cover - compiled
+    for j in range(e.shape[0]):
+        ih = invh[j]
+        de = e[j] - ce
+        dn = n[j] - cn
+        u = np.sqrt(de * de + dn * dn) * ih * isc / c
+        v = 1.0 - u * u
+        wbuf[j] = keep[j] * (ih * ih * v * v if u < 1.0 else 0.0)
+
+
+@njit(cache=True, nogil=True)
+def _w_geomedian(e, n, invh, keep, ce, cn, isc, wbuf):  # pragma: no cover - compiled
+    for j in range(e.shape[0]):
+        ih = invh[j]
+        de = e[j] - ce
+        dn = n[j] - cn
+        r = np.sqrt(de * de + dn * dn) * ih * isc
+        wbuf[j] = keep[j] * (ih * ih / max(r, 1e-9))
+
+
+@njit(cache=True, nogil=True)
+def _w_mean(invh, keep, wbuf):  # pragma: no cover - compiled
+    for j in range(invh.shape[0]):
+        ih = invh[j]
+        wbuf[j] = keep[j] * (ih * ih)
+
+
+@njit(cache=True, nogil=True)
+def _weights(e, n, invh, keep, ce, cn, isc, est, k, c, wbuf):  # pragma: no cover - compiled
+    """IRLS weights of one segment's elements around (ce, cn) into ``wbuf``.
+
+    w = ψ(r)/r / HDOP² with r = |x − c|/(HDOP·s), times ``keep`` (0 for a rejected fix).
+    The arrays are the segment's own slices; one loop per estimator without a reduction,
+    so each compiles to vector instructions.
+    """
+    if est == EST_HUBER:
+        _w_huber(e, n, invh, keep, ce, cn, isc, k, wbuf)
+    elif est == EST_TUKEY:
+        _w_tukey(e, n, invh, keep, ce, cn, isc, c, wbuf)
+    elif est == EST_GEOMEDIAN:
+        _w_geomedian(e, n, invh, keep, ce, cn, isc, wbuf)
+    else:
+        _w_mean(invh, keep, wbuf)
+
+
+@njit(cache=True, nogil=True)
+def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
+    """Weighted centre of one segment (its slices) from ``wbuf``: sums in ``LANES`` fixed
+    interleaved lanes (a fixed order, so the same result on any thread), then the lanes in
+    order."""
+    lanes[:] = 0.0
+    cnt = e.shape[0]
+    full = cnt - cnt % LANES
+    for j0 in range(0, full, LANES):
+        for q in range(LANES):
+            w = wbuf[j0 + q]
+            lanes[0, q] += w
+            lanes[1, q] += w * e[j0 + q]
+            lanes[2, q] += w * n[j0 + q]
+    sw = 0.0
+    se = 0.0
+    sn = 0.0
+    for q in range(LANES):
+        sw += lanes[0, q]
+        se += lanes[1, q]
+        sn += lanes[2, q]
+    for j in range(full, cnt):
+        w = wbuf[j]
+        sw += w
+        se += w * e[j]
+        sn += w * n[j]
+    if sw > 0:
+        cen[0] = se / sw
+        cen[1] = sn / sw
+
+
+@njit(cache=True, nogil=True)
+def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, rounds, steps,
+                    cap, median_unit, min_scale, centre, scale, weight, rejected, r
+                    ):  # pragma: no cover - compiled
+    """The robust schedule of :mod:`archive.solve.robust` for segments [s_lo, s_hi).
+
+    ``e, n`` the coordinates (``n`` all zero for 1-D data), ``invh`` 1/HDOP; outputs
+    ``centre`` (2, n_seg), ``scale``, and per element ``weight``, ``rejected``, ``r``.
+    """
+    size = 1
+    for s in range(s_lo, s_hi):
+        size = max(size, counts[s])
+    buf = np.empty(size)
+    wbuf = np.empty(size)
+    keep = np.ones(size)
+    lanes = np.zeros((3, LANES))
+    cen = np.empty(2)
+    for s in range(s_lo, s_hi):
+        a = starts[s]
+        cnt = counts[s]
+        b = a + cnt
+        es, ns, hs, kp, wb = e[a:b], n[a:b], invh[a:b], keep[:cnt], wbuf[:cnt]
+        kp[:] = 1.0
+        for d, x in enumerate((e, n)):
+            m = _sub_median(x, a, cnt, cap, buf)
+            cen[d] = m if np.isfinite(m) else 0.0
+        sc = min_scale
+        for _ in range(rounds):
+            # MAD-type scale of the HDOP-normalised distances, from the subsample
+            if cnt > 0:
+                mm = cnt if (cap <= 0 or cnt <= cap) else cap
+                for j in range(mm):
+                    i = a + j if mm == cnt else a + ((2 * j + 1) * cnt) // (2 * mm)
+                    de = e[i] - cen[0]
+                    dn = n[i] - cen[1]
+                    buf[j] = np.sqrt(de * de + dn * dn) * invh[i]
+                sc = np.median(buf[:mm]) / median_unit
+                if not np.isfinite(sc):
+                    sc = min_scale
+            sc = max(sc, min_scale)
+            for _ in range(steps):
+                _weights(es, ns, hs, kp, cen[0], cen[1], 1.0 / sc, est, k, c, wb)
+                _update(es, ns, wb, cen, lanes)
+        isc = 1.0 / sc
+        n_rej = 0
+        rj = rejected[a:b]
+        for j in range(cnt):
+            de = es[j] - cen[0]
+            dn = ns[j] - cen[1]
+            out = np.sqrt(de * de + dn * dn) * hs[j] * isc > limit
+            rj[j] = out
+            kp[j] = 0.0 if out else 1.0
+            n_rej += out
+        if n_rej > 0:  # only a cloud that lost fixes runs the steps without them
+            for _ in range(steps):
+                _weights(es, ns, hs, kp, cen[0], cen[1], isc, est, k, c, wb)
+                _update(es, ns, wb, cen, lanes)
+        _weights(es, ns, hs, kp, cen[0], cen[1], isc, est, k, c, wb)
+        rs = r[a:b]
+        weight[a:b] = wb
+        for j in range(cnt):
+            de = es[j] - cen[0]
+            dn = ns[j] - cen[1]
+            rs[j] = np.sqrt(de * de + dn * dn) * hs[j] * isc
+        centre[0, s] = cen[0]
+        centre[1, s] = cen[1]
+        scale[s] = sc
+
+
+@njit(cache=True, nogil=True)
+def batch_segments(s_lo, s_hi, de, dn, w, t, starts, counts, batch_s, min_batches,
+                   out):  # pragma: no cover - compiled
+    """Batch-means covariance of :func:`archive.solve.uncertainty.batch_covariance`.
+
+    ``out`` is (n_seg, 4): vee, vnn, ven, n_eff per segment.
+    """
+    for s in range(s_lo, s_hi):
+        a = starts[s]
+        n = counts[s]
+        b = a + n
+        t0 = t[a] if n > 0 else 0.0
+        span = (t[b - 1] - t0) if n > 0 else 0.0
+        length = min(batch_s, max(span, 1e-9) / min_batches)
+        n_b = max(int(np.ceil(span / length - 1e-9)), 1)
+        acc = np.zeros((n_b, 3))
+        sw = 0.0
+        see = 0.0
+        snn = 0.0
+        sen = 0.0
+        for i in range(a, b):
+            j = min(int((t[i] - t0) / length), n_b - 1)
+            wi = w[i]
+            acc[j, 0] += wi
+            acc[j, 1] += wi * de[i]
+            acc[j, 2] += wi * dn[i]
+            sw += wi
+            see += wi * de[i] * de[i]
+            snn += wi * dn[i] * dn[i]
+            sen += wi * de[i] * dn[i]
+        safe_w = sw if sw > 0 else 1.0
+        see /= safe_w
+        snn /= safe_w
+        sen /= safe_w
+        swb = 0.0
+        se = 0.0
+        sn = 0.0
+        m = 0
+        for j in range(n_b):
+            swb += acc[j, 0]
+            se += acc[j, 1]
+            sn += acc[j, 2]
+            if acc[j, 0] > 0:
+                m += 1
+        if m > 1:
+            safe = swb if swb > 0 else 1.0
+            mean_e = se / safe
+            mean_n = sn / safe
+            qee = 0.0
+            qnn = 0.0
+            qen = 0.0
+            for j in range(n_b):
+                ue = acc[j, 1] - acc[j, 0] * mean_e
+                un = acc[j, 2] - acc[j, 0] * mean_n
+                qee += ue * ue
+                qnn += un * un
+                qen += ue * un
+            corr = m / max(m - 1, 1)
+            vee = corr * qee / safe**2
+            vnn = corr * qnn / safe**2
+            ven = corr * qen / safe**2
+        else:  # a single batch says nothing about the error of its mean: one sample
+            vee, vnn, ven = see, snn, sen
+        tr = vee + vnn
+        out[s, 0] = vee
+        out[s, 1] = vnn
+        out[s, 2] = ven
+        out[s, 3] = (see + snn) / tr if tr > 0 else np.nan
