@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any, BinaryIO
 
 import pyarrow as pa
+import pyarrow.compute as pc
 
 CHUNK = 1 << 20
 HASH_RE = re.compile(r"^[0-9a-f]{64}$")
@@ -89,19 +90,56 @@ def canonical_hash(value: Any) -> str:
     return sha256_bytes(canonical_json(value))
 
 
+def _zero_like(dtype: pa.DataType) -> pa.Scalar:
+    """A fixed stand-in value of ``dtype`` for the slots behind nulls."""
+    if pa.types.is_string(dtype) or pa.types.is_large_string(dtype):
+        return pa.scalar("", dtype)
+    if pa.types.is_binary(dtype) or pa.types.is_large_binary(dtype):
+        return pa.scalar(b"", dtype)
+    if pa.types.is_boolean(dtype):
+        return pa.scalar(False, dtype)
+    return pa.scalar(0).cast(dtype)
+
+
+def _canonical_column(col: pa.ChunkedArray) -> list[pa.Array]:
+    """A column as arrays whose bytes depend only on its values: the bytes under a null slot
+    (NaN, 0 or garbage, depending on who built the array) are replaced by a fixed value and
+    the validity travels as a separate boolean array."""
+    arr = col.combine_chunks() if col.num_chunks != 1 else col.chunk(0)
+    if isinstance(arr, pa.DictionaryArray):
+        arr = arr.dictionary_decode()
+    if arr.null_count == 0:
+        return [arr]
+    try:
+        filled = pc.fill_null(arr, _zero_like(arr.type))
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return [arr]
+    return [filled, pc.is_valid(arr)]
+
+
 def table_digest(table: pa.Table) -> str:
     """SHA-256 over a table's content: schema and values, independent of chunking.
 
-    The table is written as one Arrow IPC stream after ``combine_chunks``; two tables with
-    the same schema (metadata included) and the same values give the same digest. This is
-    what "bit-identical table" means in run records.
+    Each column is written into one Arrow IPC stream with the bytes behind its null slots
+    normalised (so a table and the same table read back from Parquet give the same digest),
+    together with the table's schema (field names, types and metadata). This is what
+    "bit-identical table" means in run records.
     """
+    schema_bytes = table.schema.serialize().to_pybytes()
+    arrays: list[pa.Array] = []
+    names: list[str] = []
+    for name, col in zip(table.column_names, table.columns, strict=True):
+        parts = _canonical_column(col)
+        arrays += parts
+        names += [name] if len(parts) == 1 else [name, f"{name}\x00valid"]
+    flat = pa.Table.from_arrays(arrays, names=names) if arrays else pa.table({})
     sink = pa.BufferOutputStream()
-    combined = table.combine_chunks()
-    with pa.ipc.new_stream(sink, combined.schema) as writer:
-        for batch in combined.to_batches():
+    with pa.ipc.new_stream(sink, flat.schema) as writer:
+        for batch in flat.to_batches(max_chunksize=max(flat.num_rows, 1)):
             writer.write_batch(batch)
-    return sha256_bytes(sink.getvalue().to_pybytes())
+    h = hashlib.sha256(schema_bytes)
+    h.update(sink.getvalue().to_pybytes())
+    return h.hexdigest()
 
 
 def chain_hash(parts: Iterable[str]) -> str:
