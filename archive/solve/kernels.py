@@ -6,7 +6,7 @@ each segment (cloud) is handled by one compiled loop that touches its fixes a fe
 while they sit in cache:
 
 - :func:`seg_medians`: median of a deterministic systematic subsample of each segment, by
-  selection (``np.median`` compiles to a quickselect), not by sorting everything;
+  selection (Hoare's quickselect in a per-thread buffer), not by sorting everything;
 - :func:`robust_segments`: the whole robust schedule of :mod:`robust` per segment (start at
   the coordinate-wise median, MAD scale, IRLS steps with distance, ψ-weight and weighted
   sums fused in one pass per step, chi-square rejection, final weights);
@@ -75,10 +75,61 @@ def run_split(kernel: Callable[..., None], counts: np.ndarray, *args: object) ->
 
 
 @njit(cache=True, nogil=True)
+def _select(buf, m, k):  # pragma: no cover - compiled
+    """Put the k-th smallest of buf[:m] at buf[k] (Hoare's quickselect, median of three)."""
+    lo = 0
+    hi = m - 1
+    while hi > lo:
+        mid = (lo + hi) >> 1
+        if buf[mid] < buf[lo]:
+            buf[mid], buf[lo] = buf[lo], buf[mid]
+        if buf[hi] < buf[lo]:
+            buf[hi], buf[lo] = buf[lo], buf[hi]
+        if buf[hi] < buf[mid]:
+            buf[hi], buf[mid] = buf[mid], buf[hi]
+        pivot = buf[mid]
+        i = lo
+        j = hi
+        while i <= j:
+            while buf[i] < pivot:
+                i += 1
+            while pivot < buf[j]:
+                j -= 1
+            if i <= j:
+                buf[i], buf[j] = buf[j], buf[i]
+                i += 1
+                j -= 1
+        if k <= j:
+            hi = j
+        elif k >= i:
+            lo = i
+        else:
+            return
+
+
+@njit(cache=True, nogil=True)
+def _median(buf, m):  # pragma: no cover - compiled
+    """Median of buf[:m] (NaN when empty or holding a NaN); reorders buf."""
+    if m == 0:
+        return np.nan
+    for j in range(m):
+        if np.isnan(buf[j]):
+            return np.nan
+    k = (m - 1) // 2
+    _select(buf, m, k)
+    lo = buf[k]
+    if m % 2 == 1:
+        return lo
+    hi = buf[k + 1]
+    for j in range(k + 2, m):
+        if buf[j] < hi:
+            hi = buf[j]
+    return 0.5 * (lo + hi)
+
+
+@njit(cache=True, nogil=True)
 def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
     """Median of the systematic subsample (at most ``cap``) of values[start:start+count]."""
-    if count == 0:
-        return np.nan
     m = count if (cap <= 0 or count <= cap) else cap
     if m == count:
         for j in range(m):
@@ -86,7 +137,7 @@ def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
     else:
         for j in range(m):
             buf[j] = values[start + ((2 * j + 1) * count) // (2 * m)]
-    return np.median(buf[:m])
+    return _median(buf, m)
 
 
 @njit(cache=True, nogil=True)
@@ -223,7 +274,7 @@ def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, ro
                     de = e[i] - cen[0]
                     dn = n[i] - cen[1]
                     buf[j] = np.sqrt(de * de + dn * dn) * invh[i]
-                sc = np.median(buf[:mm]) / median_unit
+                sc = _median(buf, mm) / median_unit
                 if not np.isfinite(sc):
                     sc = min_scale
             sc = max(sc, min_scale)
