@@ -50,7 +50,10 @@ def parse_file(task: dict[str, Any]) -> dict[str, Any]:
     try:
         return _parse(task)
     except NodekeepError as exc:
-        return {"ok": False, "error": str(exc)}
+        message = str(exc)
+        if not message.startswith(task["path"]):  # e.g. a profile that does not fit this log
+            message = f"{task['path']}: {message}"
+        return {"ok": False, "error": message}
     except Exception as exc:  # noqa: BLE001 - one broken file must not stop the others
         return {"ok": False, "error": f"{task['path']}: could not be parsed "
                 f"({type(exc).__name__}: {exc})"}

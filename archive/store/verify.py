@@ -125,7 +125,7 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
                     value = getattr(row, c)
                     if value is not None and value not in known:
                         report.problems.append(Problem(
-                            "bad-reference", f"{model.__tablename__} {row_key(row)}",
+                            "bad-reference", f"{model.__tablename__} row {row_key(row)}",
                             f"column {c} names object {value}, unknown to the catalog"))
         # 3. the ledger chain
         prev_hash, prev_seq = GENESIS, 0

@@ -116,7 +116,7 @@ def test_catalog_object_row_removed_is_a_bad_reference(arc: Archive):
             c.execute(text("SET session_replication_role = replica"))
             c.execute(delete)
     report = verify_archive(arc)
-    assert _kinds(report) == [("bad-reference", f"raw_files {_raw_id(arc, h)}")]
+    assert _kinds(report) == [("bad-reference", f"raw_files row {_raw_id(arc, h)}")]
     assert h in report.dangling  # its file is still there, now unreferenced
 
 
