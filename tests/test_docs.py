@@ -36,3 +36,17 @@ def test_docs_links_resolve():
     for page in [README, *DOCS.glob("*.md")]:
         for target in re.findall(r"\]\(([^)#:]+\.md)\)", page.read_text(encoding="utf-8")):
             assert (page.parent / target).is_file(), f"{page.name} links to missing {target}"
+
+
+def test_help_does_not_import_heavy_libraries():
+    """`nodekeep --help` lists every command without importing the numeric stack, so it
+    answers at once (commands import what they need when they run)."""
+    import subprocess
+    import sys
+
+    code = ("import sys, click; from archive.cli.main import cli; ctx = click.Context(cli); "
+            "[cli.get_command(ctx, n) for n in cli.list_commands(ctx)]; "
+            "print(sorted(m for m in ('numpy', 'pandas', 'pyarrow', 'sqlalchemy', 'matplotlib') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
