@@ -50,3 +50,17 @@ def test_help_does_not_import_heavy_libraries():
             "if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
+
+
+def test_every_command_has_json_and_quiet():
+    import click
+
+    from archive.cli.docgen import _walk
+    from archive.cli.main import cli
+
+    root = click.Context(cli, info_name="nodekeep")
+    for path, cmd, _ctx in _walk(cli, [], root):
+        if isinstance(cmd, click.Group):
+            continue
+        opts = {o for p in cmd.params for o in p.opts}
+        assert {"--json", "--quiet"} <= opts, " ".join(path)
