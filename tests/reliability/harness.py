@@ -301,8 +301,18 @@ def campaign(
     delays = kill_delays(1.05 * duration, n, seed, start=0.6 * min(startup, duration))
     for i, delay in enumerate(delays):
         t1 = time.monotonic()
-        root = template.clone(workdir / f"trial-{i:03d}")
-        killed, _ = run_killed(argv_for(root), delay, env=env)
+        # The machine's load changes how long the command takes: when it finished before
+        # the kill, start again from a fresh copy with an earlier kill (up to 3 tries).
+        for _attempt in range(3):
+            root = template.clone(workdir / f"trial-{i:03d}")
+            killed, _ = run_killed(argv_for(root), delay, env=env)
+            if killed:
+                break
+            shutil.rmtree(root, ignore_errors=True)
+            delay *= 0.6
+        if not killed:
+            root = template.clone(workdir / f"trial-{i:03d}")
+            killed, _ = run_killed(argv_for(root), delay, env=env)
         after = snapshot(root)
         ok, problems, dangling = check_archive(root)
         code, message = rerun(root)
