@@ -24,7 +24,8 @@ def _walk(cmd: click.Command, path: list[str], ctx: click.Context):
 
 def command_paths() -> list[str]:
     """Every command path, e.g. 'nodekeep load fixes'."""
-    root = click.Context(cli, info_name="nodekeep", terminal_width=88, max_content_width=88)
+    root = click.Context(cli, info_name="nodekeep", terminal_width=88, max_content_width=88,
+                         **cli.context_settings)
     return [" ".join(["nodekeep", *p]) for p, _c, _x in _walk(cli, [], root)]
 
 
@@ -32,7 +33,8 @@ def render() -> str:
     """The whole reference as Markdown."""
     out = ["# Command reference", "",
            "Generated from the commands' help (`python -m archive.cli.docgen > docs/cli.md`).", ""]
-    root = click.Context(cli, info_name="nodekeep", terminal_width=88, max_content_width=88)
+    root = click.Context(cli, info_name="nodekeep", terminal_width=88, max_content_width=88,
+                         **cli.context_settings)
     for path, cmd, ctx in _walk(cli, [], root):
         title = " ".join(["nodekeep", *path])
         out += [f"## {title}", "", "```text", cmd.get_help(ctx).rstrip(), "```", ""]
