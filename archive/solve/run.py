@@ -97,38 +97,53 @@ def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     """
     if scheduler or workers:
         return _solve_distributed(arc, manifest, inp, progress, scheduler, workers)
-    params = manifest["params"]
-    survey = manifest["survey"]
-    sampler, dem = None, inp.open_dem(arc)
-    if dem is not None:
-        epsg = survey["crs_epsg"]
-
-        def sampler(x, y):  # noqa: ANN001, ANN202 - a closure over the open model
-            return dem.sample(x, y, epsg)
-
-    orthometric = _orthometric(survey)
-    excludes = excludes_of(manifest["edits"])
+    dem = inp.open_dem(arc)
+    sampler = _height_sampler(dem, manifest["survey"]["crs_epsg"])
     tables, stats = [], {}
     parts = partitions(arc, inp)
     progress.start(sum(p.n_fixes for p in parts), "fixes", "solving")
     try:
         for part in parts:
-            fixes = load_fix_tables(arc, part.fix_hashes)
-            out = solve_fixes(fixes, part.deployments, inp.stations, params,
-                              survey["crs_epsg"], excludes=excludes, sampler=sampler,
-                              orthometric=orthometric, detect_unlogged=inp.detect_unlogged)
-            pos = out.positions
-            if inp.station_keys is not None:
-                pos = inp.keep_selected(pos)
+            pos, st = _solve_part(arc, part, inp, manifest, sampler)
             tables.append(pos)
-            for k, v in out.stats.items():
-                stats[k] = stats.get(k, 0) + v
+            _add_stats(stats, st)
             progress.advance(part.n_fixes, f"{len(part.nodes)} nodes")
     finally:
         progress.close()
         if dem is not None:
             dem.close()
     return _combine(tables), stats
+
+
+def _height_sampler(dem: Any, epsg: int):  # noqa: ANN202 - returns a callable or None
+    """The elevation model sampled at survey-CRS coordinates (None without a model)."""
+    if dem is None:
+        return None
+
+    def sampler(x, y):  # noqa: ANN001, ANN202 - a closure over the open model
+        return dem.sample(x, y, epsg)
+
+    return sampler
+
+
+def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[str, Any],
+                sampler: Any) -> tuple[pa.Table, dict[str, Any]]:
+    """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from."""
+    survey = manifest["survey"]
+    fixes = load_fix_tables(holder, part.fix_hashes)
+    out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
+                      survey["crs_epsg"], excludes=excludes_of(manifest["edits"]),
+                      sampler=sampler, orthometric=_orthometric(survey),
+                      detect_unlogged=inp.detect_unlogged)
+    pos = out.positions
+    if inp.station_keys is not None:
+        pos = inp.keep_selected(pos)
+    return pos, out.stats
+
+
+def _add_stats(total: dict[str, Any], more: dict[str, Any]) -> None:
+    for k, v in more.items():
+        total[k] = total.get(k, 0) + v
 
 
 def _combine(tables: list[pa.Table]) -> pa.Table:
@@ -147,27 +162,13 @@ def solve_partition(part: Partition, shared: tuple[str, SolveInputs, dict[str, A
 
     objects_url, inp, manifest = shared
     holder = SimpleNamespace(objects=ObjectStore(objects_url, read_only=True))
-    survey = manifest["survey"]
-    sampler, dem = None, inp.open_dem(holder)
-    if dem is not None:
-        epsg = survey["crs_epsg"]
-
-        def sampler(x, y):  # noqa: ANN001, ANN202 - a closure over the open model
-            return dem.sample(x, y, epsg)
-
+    dem = inp.open_dem(holder)
     try:
-        fixes = load_fix_tables(holder, part.fix_hashes)
-        out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
-                          survey["crs_epsg"], excludes=excludes_of(manifest["edits"]),
-                          sampler=sampler, orthometric=_orthometric(survey),
-                          detect_unlogged=inp.detect_unlogged)
+        return _solve_part(holder, part, inp, manifest,
+                           _height_sampler(dem, manifest["survey"]["crs_epsg"]))
     finally:
         if dem is not None:
             dem.close()
-    pos = out.positions
-    if inp.station_keys is not None:
-        pos = inp.keep_selected(pos)
-    return pos, out.stats
 
 
 def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
@@ -185,8 +186,7 @@ def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
         progress.close()
     stats: dict[str, Any] = {}
     for _, st in results:
-        for k, v in st.items():
-            stats[k] = stats.get(k, 0) + v
+        _add_stats(stats, st)
     return _combine([pos for pos, _ in results]), stats
 
 
