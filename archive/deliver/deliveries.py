@@ -152,14 +152,15 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     with arc.session() as s:
         survey = s.get(Survey, survey_id)
     produced = utcnow()
+    manifest = run_manifest(arc, run)
+    heights_datum = _heights_datum(arc, survey, manifest)
     ctx = DeliveryContext(
         survey=survey.name, crs_epsg=survey.crs_epsg, client=survey.client,
-        contractor=survey.contractor, area=survey.area, vertical_datum=survey.vertical_datum,
+        contractor=survey.contractor, area=survey.area, vertical_datum=heights_datum,
         run_id=run.id, edit_set_hash=edit_hash, edit_ids=tuple(e.id for e in edits),
         code_version=__version__, produced_at=produced)
     data = write(final, ctx)
 
-    manifest = run_manifest(arc, run)
     inputs = manifest_inputs(manifest)
     file_hash, file_size = arc.objects.put_bytes(data)
     final_hash, final_size = arc.objects.put_table(final)
@@ -179,7 +180,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                              "unacknowledged_flags": flags, "n_stations": final.num_rows},
                 "survey": {"name": survey.name, "crs": f"EPSG:{survey.crs_epsg}",
                            "crs_name": survey.crs_name, "unit": survey.linear_unit,
-                           "vertical_datum": survey.vertical_datum, "client": survey.client,
+                           "vertical_datum": survey.vertical_datum,
+                           "heights_datum": heights_datum, "client": survey.client,
                            "contractor": survey.contractor},
                 "run": {"id": run.id, "manifest_hash": run.manifest_hash,
                         "positions_hash": run.positions_hash,
@@ -247,3 +249,20 @@ def list_deliveries(arc: Archive, survey_id: int) -> list[dict[str, Any]]:
         rows = s.scalars(select(Delivery).where(Delivery.survey_id == survey_id)
                          .order_by(Delivery.id)).all()
     return [delivery_dict(d) for d in rows]
+
+
+def _heights_datum(arc: Archive, survey: Survey, manifest: dict[str, Any]) -> str:
+    """The vertical datum delivered heights are in: the elevation model's that the run used
+    (heights come from the model), else the survey's; both named when they differ."""
+    from archive.survey.inputs import current_input
+
+    model = ""
+    version = (manifest.get("input_versions") or {}).get("dem")
+    if version:
+        found = current_input(arc, survey.id, "dem", version=version)
+        if found is not None:
+            model = str(json.loads(found[0].meta or "{}").get("vertical_datum") or "")
+    stated = survey.vertical_datum or ""
+    if model and stated and model != stated:
+        return f"{model} (elevation model; survey states {stated})"
+    return model or stated
