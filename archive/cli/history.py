@@ -11,7 +11,8 @@ from archive.cli.output import emit, table
 
 
 @click.command()
-@click.option("--limit", "-n", default=20, show_default=True, help="How many events (0: all).")
+@click.option("--limit", "-n", default=20, show_default=True, type=click.IntRange(min=0),
+              help="How many events (0: all).")
 @click.option("--head", "head_only", is_flag=True,
               help="Print only the ledger head hash (record it outside the archive).")
 @output_options

@@ -124,7 +124,9 @@ class Archive:
             arc.close()
             raise UsageError(
                 f"the database {mask_url(arc.db_url)} already holds a nodekeep catalog",
-                hint="use an empty database, or open the existing archive",
+                hint="use an empty database; if an earlier 'nodekeep init' was interrupted "
+                     "before it wrote nodekeep.toml, remove the half-made catalog and run "
+                     "init again",
             )
         migrate.upgrade(arc.engine)
         with arc.transaction() as tx:

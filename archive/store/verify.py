@@ -9,6 +9,7 @@ Checks, with a fixed vocabulary of problem kinds:
   or a ledger head that does not name the last event.
 - ``altered-row``: a catalog row whose content differs from what its ledger event recorded.
 - ``unledgered-row``: a catalog row that no ledger event recorded.
+- ``deleted-row``: a row a ledger event recorded that is no longer in the catalog.
 - ``dangling`` (not corruption): a stored file nothing in the catalog references, typically
   left by an interrupted write. Reported apart; ``verify`` still passes.
 """
@@ -158,11 +159,13 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
         if last is not None and (head is None or head.hash != last.hash or head.seq != last.seq):
             report.problems.append(Problem("broken-chain", "ledger head",
                                            f"head does not name the last event ({last.seq})"))
-        # 4. ledgered rows unchanged
+        # 4. ledgered rows unchanged, and none gone
+        present: set[tuple[str, str]] = set()
         for model in LEDGERED_TABLES:
             for row in s.scalars(select(model)):
                 report.rows_checked += 1
                 key = (model.__tablename__, row_key(row))
+                present.add(key)
                 subject = f"{key[0]} row {key[1]}"
                 if key not in recorded:
                     report.problems.append(Problem("unledgered-row", subject,
@@ -170,4 +173,7 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
                 elif recorded[key][0] != row_digest(row, recorded[key][1]):
                     report.problems.append(Problem("altered-row", subject,
                                                    "row content differs from its ledger record"))
+        for table, key in sorted(set(recorded) - present):
+            report.problems.append(Problem("deleted-row", f"{table} row {key}",
+                                           "a ledger event recorded this row; it is gone"))
     return report

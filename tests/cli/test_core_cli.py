@@ -97,3 +97,8 @@ def test_postgres_url_password_is_never_printed(tmp_path, runner, pg_url):
         arc = Archive.open(tmp_path / "arc")
         assert "s3cret-pw" not in json.dumps(arc.describe())
         arc.close()
+
+
+def test_history_limit_must_not_be_negative(runner, arc):
+    r = invoke(runner, arc.root, "history", "--limit", "-3")
+    assert r.exit_code == 2 and "-3 is not in the range x>=0" in r.output

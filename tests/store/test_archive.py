@@ -148,3 +148,15 @@ def test_schema_behind_says_upgrade(arc):
         c.execute(text("DELETE FROM alembic_version"))
     with pytest.raises(SchemaBehind, match="nodekeep upgrade"):
         Archive.open(arc.root)
+
+
+def test_verify_names_a_deleted_row(any_survey_arc: Archive):
+    arc = any_survey_arc
+    with arc.session() as s:
+        sid = s.scalars(select(Survey.id)).one()
+    row = _store_raw(arc, sid, b"a log that someone later removes from the catalog\n")
+    with arc.engine.connect() as c, c.begin():
+        c.execute(text("DELETE FROM raw_files WHERE id = :i"), {"i": row.id})
+    report = verify_archive(arc)
+    assert [(p.kind, p.subject) for p in report.problems] == [
+        ("deleted-row", f"raw_files row {row.id}")]
