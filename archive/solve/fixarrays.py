@@ -73,7 +73,8 @@ class FixArrays:
     def columns(self) -> dict[str, np.ndarray]:
         """The columns screening reads."""
         return {"quality": self.quality, "valid": self.valid, "fix_type": self.fix_type,
-                "n_sats": self.n_sats, "pdop": self.pdop, "hdop": self.hdop}
+                "n_sats": self.n_sats, "pdop": self.pdop, "hdop": self.hdop,
+                "lat": self.lat, "lon": self.lon}
 
 
 def empty_fixes() -> pa.Table:

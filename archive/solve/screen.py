@@ -11,12 +11,14 @@ the first reason that applies, in the order of :data:`SCREEN_REASONS`.
 from __future__ import annotations
 
 from collections.abc import Sequence
-from datetime import datetime
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
 
 from archive.errors import UsageError
+
+_EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 
 # Reason codes: index into this tuple (0 = kept).
 SCREEN_REASONS = ("", "invalid", "not-3d", "few-satellites", "pdop", "hdop", "excluded")
@@ -35,12 +37,18 @@ def screen_codes(cols: dict[str, np.ndarray], screen: dict[str, Any]) -> np.ndar
     """Reason code per fix (int8, 0 = kept) from the fix columns and the [screen] params.
 
     ``cols`` holds numpy arrays ``quality, valid, fix_type, n_sats, pdop, hdop`` with NaN
-    (float) for nulls of the nullable columns.
+    (float) for nulls of the nullable columns, and ``lat, lon``. A fix without a finite
+    position is invalid whatever its quality says. Quality -1 means the log does not say
+    (a delimited log without a quality column): like a missing DOP or satellite count, it
+    is not held against the fix.
     """
     n = len(cols["quality"])
     code = np.zeros(n, dtype=np.int8)
+    quality = cols["quality"]
+    no_position = ~(np.isfinite(cols["lat"]) & np.isfinite(cols["lon"]))
+    low_quality = (quality >= 0) & (quality < max(screen["min_quality"], 1))
     tests = [
-        (1, ~cols["valid"] | (cols["quality"] < max(screen["min_quality"], 1))),
+        (1, ~cols["valid"] | no_position | low_quality),
         (2, (cols["fix_type"] != 3) & np.isfinite(cols["fix_type"])
          if screen["require_3d"] else np.zeros(n, dtype=bool)),
         (3, cols["n_sats"] < screen["min_sats"]),
@@ -67,8 +75,13 @@ def parse_excludes(edits: Sequence[dict[str, Any]]) -> list[tuple[str, int, int]
         if start.tzinfo is None or end.tzinfo is None:
             raise UsageError(f"exclude-span edit {e.get('id', '?')} has a time without zone",
                              hint="times of edits are UTC, e.g. 2024-05-01T10:00:00Z")
-        out.append((node, int(start.timestamp() * 1_000_000), int(end.timestamp() * 1_000_000)))
+        out.append((node, _utc_us(start), _utc_us(end)))
     return out
+
+
+def _utc_us(t: datetime) -> int:
+    """Microseconds since 1970-01-01 UTC, in integers (no float rounding)."""
+    return (t - _EPOCH) // timedelta(microseconds=1)
 
 
 def apply_excludes(code: np.ndarray, node_code: np.ndarray, t_us: np.ndarray,
