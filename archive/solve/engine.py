@@ -162,7 +162,12 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
                        scale_updates=est["scale_updates"], scale_sample=cap)
     ce, cn = rr.centre
     de, dn = eo - ce[rseg], no - cn[rseg]
-    t_s = (t_all[m_ok] - fx.t0) / 1e6
+    # Times in seconds from each row's own first kept fix (integer microseconds first), so
+    # batch boundaries and spans do not depend on which other nodes share the partition.
+    t_ok = t_all[m_ok]
+    row_t0 = np.full(n_rows, np.iinfo(np.int64).max, dtype=np.int64)
+    np.minimum.at(row_t0, rseg, t_ok)
+    t_s = (t_ok - row_t0[rseg]) / 1e6
     unc = p["uncertainty"]
     if unc["method"] == "ar1":
         cov = ar1_covariance(de, dn, rr.weight, rseg, n_rows)

@@ -185,7 +185,13 @@ def radius_probability(r: np.ndarray, lam1: np.ndarray, lam2: np.ndarray, n_node
     u = a * np.sin(alpha)[None, :]
     inner = 2 * ndtr(r[:, None] * np.cos(alpha)[None, :] / np.sqrt(lam2)[:, None]) - 1
     dens = np.exp(-0.5 * u * u) / np.sqrt(2 * np.pi)
-    return 2 * (dens * inner * a * np.cos(alpha)[None, :]) @ wq
+    terms = dens * inner * a * np.cos(alpha)[None, :]
+    # A fixed-order sum over the nodes: a BLAS product would round differently with the
+    # number of rows, and a station's radius must not depend on what it is solved with.
+    total = np.zeros(len(r))
+    for j in range(len(wq)):
+        total += terms[:, j] * wq[j]
+    return 2 * total
 
 
 def radius95(vee: np.ndarray, vnn: np.ndarray, ven: np.ndarray) -> np.ndarray:
