@@ -252,9 +252,8 @@ def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
         final = nxt is None
         data = pending + block if pending else block
         buf = np.frombuffer(data, dtype=np.uint8)
-        starts, ends, ncomp = ns.split_lines(buf, final)
-        starts, ends = starts[:ncomp], ends[:ncomp]
-        cols = ns.scan_lines(buf, starts, ends)
+        starts, ends, *cols = ns.scan_buffer(buf, final)
+        ncomp = starts.shape[0]
         cut = ncomp if final else _epoch_cut(cols[1], cols[3], ncomp)
         if cut == 0 and not final:
             pending, block = data, nxt  # one unfinished epoch so far: read on

@@ -2,11 +2,13 @@
 
 Two kernels, compiled once with numba and cached on disk:
 
-- :func:`split_lines` finds the records of a buffer between line ends (CR, LF or CR LF).
-- :func:`scan_lines` reads each record once, left to right: finds the sentence start
-  (the last ``$``, so a logger's prefix is skipped), checks for non-text bytes, checks the
-  ``*hh`` checksum, splits the fields and converts the ones GGA, RMC, GSA and ZDA carry
-  into numeric columns, one row per line, with a status per line.
+- :func:`split_lines` finds the records of a buffer between line ends (CR, LF or CR LF);
+  the delimited reader uses it.
+- :func:`scan_buffer` walks the bytes of an NMEA buffer once: while it looks for each line
+  end it finds the sentence start (the last ``$``, so a logger's prefix is skipped), notes
+  non-text bytes and XORs the sentence body for the ``*hh`` checksum; then it checks the
+  checksum, splits the fields and converts the ones GGA, RMC, GSA and ZDA carry into
+  numeric columns, one row per line, with a status per line.
 
 Everything about epochs (dates, DOPs, validity) is then done on whole arrays in
 :mod:`archive.ingest.nmea`. Status codes are the ``ST_*`` constants; kinds the ``K_*``.
@@ -201,57 +203,109 @@ def _hexval(c):  # pragma: no cover - compiled
 
 
 @njit(cache=True, nogil=True)
-def scan_lines(buf, starts, ends):  # pragma: no cover - compiled
-    """Read every line once. Returns per-line arrays (see module docstring).
+def _max_records(buf):  # pragma: no cover - compiled
+    """An upper bound of the records of ``buf``: its line ends (CR LF counted once) + 1."""
+    n = buf.shape[0]
+    count = 1
+    for i in range(n - 1):
+        c = buf[i]
+        count += (c == 10) | ((c == 13) & (buf[i + 1] != 10))
+    if n > 0:
+        c = buf[n - 1]
+        count += (c == 10) | (c == 13)
+    return count
 
-    ``(status, kind, star, tod, lat, lon, f1, f2, f3, i1, i2, date)`` where for GGA
-    f1..f3 = altitude, separation, HDOP, i1 = quality, i2 = satellites; for GSA
-    f1..f3 = PDOP, HDOP, VDOP, i1 = fix type; for RMC i1 = 1 status A / 0 void and
-    date = days since 1970; for ZDA date too. Missing numbers are NaN / -1.
+
+@njit(cache=True, nogil=True)
+def scan_buffer(buf, final):  # pragma: no cover - compiled
+    """Split ``buf`` into records and read each one, walking the bytes once.
+
+    Returns ``(starts, ends, status, kind, star, tod, lat, lon, f1, f2, f3, i1, i2, date)``,
+    one row per complete record. Records are split as :func:`split_lines` does; when
+    ``final`` is false, a record without a line end at the end of the buffer (or one ending
+    in a CR that is the buffer's last byte, which could be half a CR LF) is left out so the
+    caller can carry it into the next buffer.
+
+    While looking for the line end, the walk notes the sentence start (the last ``$``, so a
+    logger's prefix is skipped), non-text bytes after it, the first ``*`` after it and the
+    XOR of the bytes in between. Then the ``*hh`` checksum is checked and the fields of GGA,
+    RMC, GSA and ZDA are converted: for GGA f1..f3 = altitude, separation, HDOP, i1 =
+    quality, i2 = satellites; for GSA f1..f3 = PDOP, HDOP, VDOP, i1 = fix type; for RMC
+    i1 = 1 status A / 0 void and date = days since 1970; for ZDA date too. Missing numbers
+    are NaN / -1.
     """
-    n = starts.shape[0]
-    status = np.full(n, ST_IGNORED, np.int8)
-    kind = np.zeros(n, np.int8)
-    star = np.zeros(n, np.bool_)
-    tod = np.full(n, -1, np.int64)
-    lat = np.full(n, np.nan)
-    lon = np.full(n, np.nan)
-    f1 = np.full(n, np.nan)
-    f2 = np.full(n, np.nan)
-    f3 = np.full(n, np.nan)
-    i1 = np.full(n, -1, np.int16)
-    i2 = np.full(n, -1, np.int16)
-    date = np.full(n, -1, np.int32)
+    n = buf.shape[0]
+    cap = _max_records(buf)
+    starts = np.empty(cap, np.int64)
+    ends = np.empty(cap, np.int64)
+    status = np.full(cap, ST_IGNORED, np.int8)
+    kind = np.zeros(cap, np.int8)
+    star = np.zeros(cap, np.bool_)
+    tod = np.full(cap, -1, np.int64)
+    lat = np.full(cap, np.nan)
+    lon = np.full(cap, np.nan)
+    f1 = np.full(cap, np.nan)
+    f2 = np.full(cap, np.nan)
+    f3 = np.full(cap, np.nan)
+    i1 = np.full(cap, -1, np.int16)
+    i2 = np.full(cap, -1, np.int16)
+    date = np.full(cap, -1, np.int32)
     fs = np.empty(MAX_FIELDS + 1, np.int64)
     fe = np.empty(MAX_FIELDS + 1, np.int64)
-    for i in range(n):
-        s = starts[i]
-        e = ends[i]
-        while e > s and (buf[e - 1] == 32 or buf[e - 1] == 9):
-            e -= 1
-        if e == s:
-            continue
-        # one forward pass: the last '$', non-text bytes after it, the first '*' after it
-        # and the XOR of the bytes in between
+    nrec = 0
+    pos = 0
+    while pos < n:
+        s = pos
         d = -1
         p = -1
         x = 0
         binary = False
-        for j in range(s, e):
-            c = buf[j]
-            if c == 36:
-                d = j
+        body = False  # between the '$' and the '*'
+        c = 0
+        while pos < n:
+            c = buf[pos]
+            if c == 36:  # a sentence starts (again): what came before is a prefix
+                d = pos
                 p = -1
                 x = 0
                 binary = False
-                continue
-            if (c < 32 and c != 9) or c > 126:
-                binary = True
-            if d >= 0 and p < 0:
-                if c == 42:
-                    p = j
-                else:
+                body = True
+            elif c < 32 or c > 126:
+                if c == 10 or c == 13:
+                    break
+                if c != 9:
+                    binary = True
+                elif body:
                     x ^= c
+            pos += 1
+            if body:  # XOR the printable run of the body, up to '*'
+                while pos < n:
+                    c = buf[pos]
+                    if c == 42 or c == 36 or c < 32 or c > 126:
+                        break
+                    x ^= c
+                    pos += 1
+                if pos < n and c == 42:
+                    p = pos
+                    body = False
+                    pos += 1
+        e = pos
+        if pos < n:  # a line end: CR LF, CR or LF
+            if c == 13 and pos + 1 < n and buf[pos + 1] == 10:
+                pos += 1
+            elif c == 13 and pos + 1 == n and not final:
+                break  # could be half a CR LF: carried
+            pos += 1
+        elif not final:
+            break  # no line end yet: carried
+        i = nrec
+        nrec += 1
+        starts[i] = s
+        ends[i] = e
+        while e > s and (buf[e - 1] == 32 or buf[e - 1] == 9):
+            e -= 1
+        if e == s:
+            continue
         if binary:
             status[i] = ST_BINARY
             continue
@@ -425,4 +479,6 @@ def scan_lines(buf, starts, ends):  # pragma: no cover - compiled
             i1[i] = 1 if (stv == 65 and mode != 78) else 0
             date[i] = dv
         status[i] = st
-    return status, kind, star, tod, lat, lon, f1, f2, f3, i1, i2, date
+    m = nrec
+    return (starts[:m], ends[:m], status[:m], kind[:m], star[:m], tod[:m], lat[:m], lon[:m],
+            f1[:m], f2[:m], f3[:m], i1[:m], i2[:m], date[:m])
