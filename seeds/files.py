@@ -1,10 +1,11 @@
 """Writers of the scenario's input files: SPS rev 2.1 preplot and the CSV tables.
 
-The SPS point records follow the rev 2.1 column layout (check-values §7.1): record id in
-column 1, line F10.2 in 2-11, point F10.2 in 12-21, index in 24, code in 25-26, ...,
-easting F9.1 in 47-55, northing F10.1 in 56-65, elevation F6.1 in 66-71, day of year and
-time in 72-80 (left blank in a preplot: nothing has been surveyed yet). Header records carry
-the item id in columns 1-4, a description in 5-32 and the value from column 33.
+The SPS point records follow the rev 2.1 column layout (SEG SPS format rev 2.1, Jan 2006,
+point record layout): record id in column 1, line F10.2 in 2-11, point F10.2 in 12-21,
+index in 24, code in 25-26, ..., easting F9.1 in 47-55, northing F10.1 in 56-65,
+elevation F6.1 in 66-71, day of year and time in 72-80 (left blank in a preplot: nothing
+has been surveyed yet). Header records carry the item id in columns 1-4, a description in
+5-32 and the value from column 33.
 """
 
 from __future__ import annotations

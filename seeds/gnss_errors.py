@@ -20,17 +20,23 @@ Horizontal, per axis (east and north drawn independently):
 
 Each GM process is stationary with C(u) = sigma^2 exp(-|u|/tau); it is simulated exactly at
 the logging interval dt as an AR(1) recursion with rho = exp(-dt/tau). The variance of its
-time average over T is 2 sigma^2 tau/T [1 - tau/T (1 - e^(-T/tau))] (check-values §6.2), so over
+time average over T is 2 sigma^2 tau/T [1 - tau/T (1 - e^(-T/tau))] (closed form
+derived from Var = (1/T) int_-T^T (1 - |u|/T) C(u) du and checked against the discrete AR(1)
+sum; its textbook citation, e.g. Gelb, Applied Optimal Estimation, is from memory), so over
 a 3-day deployment the parts above leave about 0.03, 0.17, 0.12 and 0.20 m per axis, about
 0.29 m in all: an expected median horizontal error near 0.34 m (CEP = 1.1774 sigma,
-check-values §3) and a 95th percentile near 0.71 m (R95 = 2.4477 sigma).
+Rayleigh closed form computed with scipy; van Diggelen, "GPS Accuracy: Lies, Damn Lies, and
+Statistics", GPS World, Jan 1998) and a 95th percentile near 0.71 m (R95 = 2.4477 sigma).
 
 The horizontal errors are scaled by HDOP (the UERE model, 1-sigma error = HDOP x UERE,
-check-values §4). HDOP follows a slow satellite-geometry cycle of half a sidereal day (the
-GPS orbital period, from memory) around 0.9, with per-node jitter, rounded to 0.1.
+textbook background, e.g. Misra & Enge (2006), from memory; the SPS Performance
+Standard specifies the signal-in-space URE only). HDOP follows a slow satellite-geometry
+cycle of half a sidereal day (the GPS orbital period, from memory) around 0.9, with per-node
+jitter, rounded to 0.1.
 Satellites used fall as HDOP rises. With these figures a single fix has a 95 % horizontal
 error of about 5-6 m: "several metres", inside the SPS Performance Standard's global 95 %
-bound of 9 m (2008/2020 editions, partially verified, check-values §4) and close to the
+bound of 9 m (GPS SPS Performance Standard, 4th ed. 2008 / 5th ed. 2020; the figure
+read on a secondary page citing the 2020 edition, partially verified) and close to the
 ~4.9 m quoted for phones in open sky (gps.gov).
 
 Vertical: two GM processes (2.0 m / 90 s and 3.5 m / 30 min) plus the common mode times

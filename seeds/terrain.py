@@ -3,9 +3,10 @@
 The terrain is an analytic function of easting and northing (metres, survey CRS): a gentle
 regional slope, a few broad hills and hollows, and a shallow creek valley. Heights are
 orthometric (the scenario's stand-in for NAVD88). The GeoTIFF samples that function at pixel
-centres with the pixel-is-area convention (GDAL geotransform of the upper-left corner,
-check-values §8), so bilinear interpolation between pixel centres reproduces the terrain
-to centimetres and a solver that samples at the wrong half pixel would show it.
+centres with the pixel-is-area convention (GDAL geotransform of the upper-left corner:
+GDAL Geotransform Tutorial / GDAL RFC 33), so bilinear interpolation between pixel centres
+reproduces the terrain to centimetres and a solver that samples at the wrong half pixel
+would show it.
 """
 
 from __future__ import annotations
