@@ -108,8 +108,24 @@ def empty_rejects() -> pa.Table:
     return REJECT_SCHEMA.empty_table()
 
 
+def _in_order(table: pa.Table) -> bool:
+    """True when ``table`` is already sorted by time, then raw line (no nulls in either)."""
+    t, r = table.column("time"), table.column("raw_line")
+    if t.null_count or r.null_count:
+        return False
+    dt = np.diff(t.cast(pa.int64()).to_numpy())
+    if (dt < 0).any():
+        return False
+    same = dt == 0
+    return not (same.any() and (np.diff(r.to_numpy())[same] < 0).any())
+
+
 def sort_fixes(table: pa.Table) -> pa.Table:
-    """Fixes sorted by time, then raw line (a stable order for one node's file)."""
-    if table.num_rows < 2:
+    """Fixes sorted by time, then raw line (a stable order for one node's file).
+
+    A table already in that order (the usual case: a log is written as time goes on) is
+    returned as it is; the sort is stable, so that is the table sorting would give.
+    """
+    if table.num_rows < 2 or _in_order(table):
         return table
     return table.sort_by([("time", "ascending"), ("raw_line", "ascending")])
