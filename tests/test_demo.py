@@ -69,14 +69,16 @@ def test_deliveries_read_back(demo: dict[str, Any]) -> None:
     sps = Path(demo["deliveries"]["sps"]).read_bytes().decode("ascii").splitlines()
     rec = [x for x in sps if x.startswith("R")]
     assert len(rec) == demo["n_delivered"] == 30
-    # SPS rev 2.1: easting cols 47-55 (F9.1), northing 56-65 (F10.1) (check-values §7.1)
+    # SPS rev 2.1: easting cols 47-55 (F9.1), northing 56-65 (F10.1) (SEG SPS format rev 2.1 (2006),
+    # point record layout)
     e = np.array([float(x[46:55]) for x in rec])
     n = np.array([float(x[55:65]) for x in rec])
     assert np.all((e > 583000) & (e < 584000)) and np.all((n > 4062000) & (n < 4063500))
     p1 = Path(demo["deliveries"]["segp1"]).read_bytes().decode("ascii").splitlines()
     data = [x for x in p1 if not x.startswith("H")]
     assert len(data) == 30
-    # SEG-P1: easting 46-53 and northing 54-61 (check-values §7.2); whole metres
+    # SEG-P1: easting 46-53 and northing 54-61 (SEG, "Standard exchange formats for positional
+    # data", Geophysics 1983, as read by GDAL's SEG-P1 driver); whole metres
     e1 = np.array([float(x[45:53]) for x in data])
     assert np.all(np.abs(np.sort(e1) - np.sort(e)) < 1.0)
     for p in demo["deliveries"].values():

@@ -31,7 +31,10 @@ def _csv(path: Path) -> list[dict[str, str]]:
 
 
 def _xor_ok(line: bytes) -> bool:
-    """NMEA 0183 checksum rule: XOR of the bytes between '$' and '*' (check-values §1.2)."""
+    """NMEA 0183 checksum rule: XOR of the bytes between '$' and '*'.
+
+    Source: E. S. Raymond, "NMEA Revealed" v2.24, gpsd project, NMEA encoding conventions.
+    """
     if not line.startswith(b"$") or len(line) < 4 or line[-3:-2] != b"*":
         return False
     cs = 0
@@ -57,7 +60,7 @@ def _all_clean(data: bytes) -> bool:
 
 
 def test_checksum_helper_on_published_sentences() -> None:
-    # DePriest's GGA and RMC examples, checksums 47 and 6A (check-values §1.1 G1, R1)
+    # D. DePriest, 'NMEA data' (GGA and RMC examples), checksums 47 and 6A
     assert _xor_ok(b"$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47")
     assert _xor_ok(b"$GPRMC,123519,A,4807.038,N,01131.000,E,022.4,084.4,230394,003.1,W*6A")
     assert not _xor_ok(b"$GPGGA,123518,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47")
@@ -76,8 +79,9 @@ def test_same_seed_same_bytes(small: Scenario, tmp_path: Path) -> None:
 
 
 def test_sps_point_matches_published_round_trip_vector() -> None:
-    # check-values §7.1: synthetic rev 2.1 record, columns per SU getSPSfield and two other
-    # public readers; our preplot leaves day and time (cols 72-80) blank.
+    # synthetic rev 2.1 record laid out by SEG SPS format rev 2.1 (2006), point record layout
+    # (columns as also read by Seismic Unix getSPSfield); our preplot leaves day and time
+    # (cols 72-80) blank.
     vector = "R   1001.00   2001.00  1G1   0 0.0   0 0   0.0 500123.4 6123456.7 123.4123123456"
     assert sps_point("R", 1001, 2001, 500123.4, 6123456.7, 123.4) == vector[:71]
 
@@ -89,7 +93,7 @@ def test_preplot_columns_rev21(small: Scenario) -> None:
     records = [x for x in lines if x.startswith("R")]
     assert len(records) == small.n_stations and len(headers) + len(records) == len(lines)
     h00 = next(x for x in headers if x.startswith("H00"))
-    assert "SPS 2.1" in h00[32:]  # header data from column 33 (check-values §7.1)
+    assert "SPS 2.1" in h00[32:]  # header data from column 33 (SEG SPS rev 2.1 header records)
     # rev 2.1 columns, 1-based inclusive: line 2-11, point 12-21, index 24, easting 47-55,
     # northing 56-65, elevation 66-71
     line = np.array([float(r[1:11]) for r in records])
@@ -180,7 +184,9 @@ def test_truth_agrees_with_logs_and_log_with_truth(small: Scenario) -> None:
         assert centre < 1.5, row
     d = np.concatenate(errors)
     # single fixes: several metres at 95 %, inside the SPS PS global 95 % bound of 9 m
-    # (check-values §4; outlier bursts included, so the bound is a sanity envelope)
+    # (GPS SPS Performance Standard, 2008 and 2020 editions, partially verified: figure read
+    # on a secondary page citing the 2020 edition; outlier bursts included, so the bound is a
+    # sanity envelope)
     assert 2.0 < np.percentile(d, 95) < 9.0
     parts = [r for r in truth if r["node"] == moved["node"]]
     assert [r["part"] for r in parts] == ["1", "2"]
@@ -230,15 +236,18 @@ def test_dem_pixel_is_area_and_consistent_with_truth(small: Scenario) -> None:
         assert ds.tags().get("AREA_OR_POINT") == "Area"
         assert ds.res == (2.0, 2.0)
         xy = [(float(r["easting"]), float(r["northing"])) for r in truth]
-        # rasterio sample = value of the containing pixel (check-values §8); the terrain is
-        # smooth, so the pixel value is within a few centimetres of the ground under the node
+        # rasterio sample = value of the containing pixel (rasterio 1.4 sample.py source and
+        # transform.rowcol docstring); the terrain is smooth, so the pixel value is within a
+        # few centimetres of the ground under the node
         z = np.array([v[0] for v in ds.sample(xy)])
     g = np.array([float(r["ground_height"]) for r in truth])
     assert np.max(np.abs(z - g)) < 0.1
 
 
 def test_gauss_markov_mean_variance_matches_closed_form() -> None:
-    # check-values §6.2: tau = 600 s, T = 3600 s, sigma = 1 -> Var(mean) = 0.277915
+    # first-order Gauss-Markov variance of the time average (closed form from memory, e.g.
+    # Gelb, Applied Optimal Estimation; value computed from it, numerical quadrature and the
+    # discrete AR(1) sum agree): tau = 600 s, T = 3600 s, sigma = 1 -> Var(mean) = 0.277915
     rng = np.random.default_rng(1)
     x = gauss_markov(rng, 3600, 1.0, 1.0, 600.0, size=2000)
     assert np.var(x.mean(axis=1)) == pytest.approx(0.277915, rel=0.1)

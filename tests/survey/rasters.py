@@ -8,7 +8,9 @@ import numpy as np
 import rasterio
 from rasterio.transform import Affine
 
-# check-values.md §8: 3x3 DEM, GT = (500000, 2, 0, 6000006, 0, -2), rows north to south.
+# 3x3 check DEM, GT = (500000, 2, 0, 6000006, 0, -2), rows north to south; geotransform per
+# the GDAL Geotransform Tutorial (corner-based, GDAL RFC 33); expected values computed with
+# scipy RegularGridInterpolator and rasterio 1.4.
 CHECK_GT = Affine(2, 0, 500000, 0, -2, 6000006)
 CHECK_Z = np.array([[10, 11, 12], [13, 14, 15], [16, 17, 18]], dtype=np.float32)
 

@@ -17,9 +17,10 @@ from archive.survey.crs import (
 
 
 def test_transverse_mercator_guidance_note_7_2():
-    # IOGP Publication 373-7-2 (EPSG Guidance Note 7-2), Transverse Mercator (method 9807)
-    # worked example, OSGB 1936 / British National Grid: 50°30'N, 0°30'E ->
-    # E 577274.99 m, N 69740.50 m (figures rounded to cm; check-values.md §2.1).
+    # IOGP Publication 373-7-2 (EPSG Guidance Note 7-2), §3.2.3 Transverse Mercator (method
+    # 9807) worked example, OSGB 1936 / British National Grid: 50°30'N, 0°30'E ->
+    # E 577274.99 m, N 69740.50 m (figures rounded to cm; computed with pyproj: 577274.984,
+    # 69740.492).
     e, n = transformer(4277, 27700).transform(0.5, 50.5)
     assert e == pytest.approx(577274.99, abs=0.02)
     assert n == pytest.approx(69740.50, abs=0.02)

@@ -1,8 +1,8 @@
 """Elevation-model sampling checked against the GDAL geotransform convention and scipy.
 
-References: check-values.md §8 (GDAL "Geotransform Tutorial": the geotransform locates the
-top-left pixel corner, the top-left pixel centre is at pixel/line (0.5, 0.5); GDAL RFC 33 for
-PixelIsPoint; rasterio ``sample`` returns the containing pixel) and
+References: GDAL "Geotransform Tutorial" (the geotransform locates the top-left pixel corner,
+the top-left pixel centre is at pixel/line (0.5, 0.5); GDAL RFC 33 for PixelIsPoint; rasterio
+``sample`` returns the containing pixel) and
 scipy.interpolate.RegularGridInterpolator(method="linear") as the reference bilinear
 interpolator on the same grid of pixel centres.
 """
@@ -38,7 +38,7 @@ def check_tif(tmp_path):
 
 
 def test_check_vectors_between_pixel_centres(check_tif):
-    # check-values.md §8 (computed): bilinear between centres -> 10, 12, 14, 13.0
+    # computed with scipy RegularGridInterpolator: bilinear between centres -> 10, 12, 14, 13.0
     x = np.array([500001.0, 500002.0, 500003.0, 500002.5])
     y = np.array([6000005.0, 6000004.0, 6000003.0, 6000003.5])
     with DemSampler(check_tif, "test datum") as s:
@@ -48,7 +48,8 @@ def test_check_vectors_between_pixel_centres(check_tif):
 
 
 def test_pixel_corner_trap(check_tif):
-    # check-values.md §8: rasterio's sample() returns the containing pixel: (500002, 6000004)
+    # rasterio 1.4 sample.py / transform.rowcol (op=floor): sample() returns the containing
+    # pixel: (500002, 6000004)
     # -> 14 (a point on a pixel edge goes to the pixel right/below). Treating pixel corners as
     # nodes would reproduce that 14; the bilinear value between centres is 12.
     with rasterio.open(check_tif) as ds:

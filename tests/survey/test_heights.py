@@ -12,7 +12,7 @@ from archive.errors import CRSProblem, UsageError
 from archive.survey.heights import check_height_mode, gnss_orthometric
 from archive.survey.surveys import create_survey
 
-# NMEA GGA example (check-values.md §1.1 G1, D. DePriest "NMEA data"): altitude 545.4 m MSL,
+# NMEA GGA example (D. DePriest, "NMEA data", GGA example): altitude 545.4 m MSL,
 # geoid separation 46.9 m, so the ellipsoidal height is 545.4 + 46.9 = 592.3 m (GGA field 11
 # is the separation from ellipsoid to geoid, h = altitude + separation: gpsd NMEA.adoc §GGA).
 LON, LAT, ALT, SEP = 11.516667, 48.1173, 545.4, 46.9

@@ -37,7 +37,8 @@ def test_load_list_and_sample(survey_arc, runner, tmp_path):
         ("stations", 1, False), ("stations", 2, True), ("deployments", 1, True)]
     r = invoke(runner, root, "inputs")
     assert r.exit_code == 0 and "deployments" in r.output and "stations     2" in r.output
-    # elevation model: the check grid of check-values.md §8, moved into the survey area
+    # elevation model: the 3x3 check grid of tests/survey/rasters.py (GDAL geotransform
+    # convention), moved into the survey area
     r = invoke(runner, root, "dem", "sample", "612000", "3890000")
     assert r.exit_code == 2 and "no elevation model yet" in r.stderr
     gt = Affine(2, 0, 612000, 0, -2, 3890006)

@@ -1,8 +1,9 @@
 """SPS rev 2.1 point records read column by column.
 
-Layout: SEG SPS rev 2.1 (Jan 2006) point record, as tabulated in check-values.md §7.1 from
-three independent public readers. Sample S record verified there (source (c)); the R record
-is the synthetic round-trip vector of the same section (computed, matches the spec).
+Layout: SEG SPS format rev 2.1 (Jan 2006), point record layout; the same columns are read by
+Seismic Unix's getSPSfield (sugeom). The S record is a sample from the rev 2.1 record
+description (its H26 self-description block); the R record is a synthetic round-trip vector
+(computed, laid out by the spec).
 """
 
 from __future__ import annotations
@@ -46,7 +47,7 @@ def test_sample_records_column_by_column(tmp_path):
     rows = f.points.to_pylist()
     assert [r["kind"] for r in rows] == ["R", "R", "S"]
     r, r2, s = rows
-    # check-values.md §7.1, synthetic R vector: line 1001.00 (cols 2-11), point 2001.00
+    # SPS rev 2.1 point record layout, synthetic R vector: line 1001.00 (cols 2-11), point 2001.00
     # (12-21), index 1 (24), code G1 (25-26), E 500123.4 (47-55), N 6123456.7 (56-65),
     # elevation 123.4 (66-71)
     assert (r["line"], r["point"], r["index"], r["code"]) == (1001.0, 2001.0, 1, "G1")
@@ -55,7 +56,7 @@ def test_sample_records_column_by_column(tmp_path):
     # a record with blank optional columns: elevation null, code null, index from column 24
     assert (r2["line"], r2["point"], r2["index"], r2["code"]) == (1001.5, 2002.0, 2, None)
     assert r2["elevation"] is None and r2["easting"] == 500148.4 and r2["src_line"] == 6
-    # check-values.md §7.1 verified S sample: line 3762.00, point 3961.00, index 1, code A2,
+    # S sample of the SPS rev 2.1 record description: line 3762.00, point 3961.00, index 1, code A2,
     # E 454773.4, N 3008241.9, elevation -0.2
     assert (s["line"], s["point"], s["index"], s["code"]) == (3762.0, 3961.0, 1, "A2")
     assert (s["easting"], s["northing"], s["elevation"]) == (454773.4, 3008241.9, -0.2)
