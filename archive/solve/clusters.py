@@ -24,8 +24,12 @@ from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 
 def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
                   stations_id: tuple[np.ndarray, np.ndarray, np.ndarray], crs_epsg: int,
-                  params: dict[str, Any]) -> Windows:
-    """Unlogged windows from the fixes flagged ``candidate`` (kept, outside logged windows)."""
+                  params: dict[str, Any], *, unit_factor: float = 1.0) -> Windows:
+    """Unlogged windows from the fixes flagged ``candidate`` (kept, outside logged windows).
+
+    ``radius`` and ``match_tol`` are metres; grid distances are in the CRS unit, so they
+    are compared with the tolerances divided by ``unit_factor`` (metres per CRS unit).
+    """
     empty = Windows(*(np.zeros(0, dtype=d) for d in
                       (object, np.int64, np.int64, np.int64, np.float64, np.float64,
                        np.int8, object)))
@@ -33,6 +37,8 @@ def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
     if len(sel) == 0 or len(stations_en) == 0:
         return empty
     chunk_us = int(params["chunk_min"] * 60e6)
+    radius = params["radius"] / unit_factor  # CRS units
+    match_tol = params["match_tol"] / unit_factor
     code = fx.node_code[sel]
     t = fx.t_us[sel]
     ck = (code << 32) + (t // chunk_us)
@@ -52,9 +58,9 @@ def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
     # (an outlier burst filling the chunk): drop it before linking
     if n_ck > 2:
         same = ck_code[1:] == ck_code[:-1]
-        far = ~same | (np.hypot(np.diff(e), np.diff(n)) > params["radius"])
+        far = ~same | (np.hypot(np.diff(e), np.diff(n)) > radius)
         bridge = (ck_code[2:] == ck_code[:-2]) & (
-            np.hypot(e[2:] - e[:-2], n[2:] - n[:-2]) <= params["radius"])
+            np.hypot(e[2:] - e[:-2], n[2:] - n[:-2]) <= radius)
         glitch = np.zeros(n_ck, dtype=bool)
         glitch[1:-1] = far[:-1] & far[1:] & bridge
         keep_ck = ~glitch
@@ -64,7 +70,7 @@ def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
     link = np.zeros(n_ck, dtype=bool)
     link[1:] = ((ck_code[1:] == ck_code[:-1])
                 & (t_first[1:] - t_last[:-1] <= 3 * chunk_us)
-                & (np.hypot(np.diff(e), np.diff(n)) <= params["radius"]))
+                & (np.hypot(np.diff(e), np.diff(n)) <= radius))
     run = np.cumsum(~link) - 1
     n_run = int(run[-1]) + 1
     w_run = np.bincount(run, weights=cnt, minlength=n_run)
@@ -75,7 +81,7 @@ def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
     start, end, r_code = t_first[r_first], t_last[r_last], ck_code[r_first]
     long_enough = (end - start) >= params["min_hours"] * 3600e6
     dist, near = cKDTree(stations_en).query(np.column_stack([ce, cn]))
-    keep = np.flatnonzero(long_enough & (dist <= params["match_tol"]))
+    keep = np.flatnonzero(long_enough & (dist <= match_tol))
     if len(keep) == 0:
         return empty
     line, point, index = stations_id

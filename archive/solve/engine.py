@@ -12,6 +12,8 @@ each vectorised over every cloud at once:
 5. robust centre per part (:mod:`robust`), uncertainty (:mod:`uncertainty`);
 6. centre -> latitude/longitude -> survey grid with pyproj, covariance rotated by the grid
    convergence and scaled by the point scale factor;
+   easting/northing are in the CRS unit (feet for a foot grid), while sigmas, ellipses,
+   r95 and the preplot distances are in metres (CRS distances times the unit factor);
 7. heights (:mod:`heights`) and review flags (:mod:`flags`).
 """
 
@@ -42,7 +44,7 @@ from archive.solve.windows import (
     logged_windows,
     node_codes,
 )
-from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+from archive.survey.crs import WGS84_GEOGRAPHIC, survey_crs, transformer
 
 Orthometric = Callable[[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray], np.ndarray]
 
@@ -77,14 +79,19 @@ def _stations(stations: pa.Table) -> dict[str, np.ndarray]:
 
 
 def _grid_covariance(lat: np.ndarray, lon: np.ndarray, e: np.ndarray, n: np.ndarray,
-                     vee: np.ndarray, vnn: np.ndarray, ven: np.ndarray, epsg: int
-                     ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Rotate an east/north covariance into the grid (convergence) and scale it (k²)."""
+                     vee: np.ndarray, vnn: np.ndarray, ven: np.ndarray, epsg: int,
+                     unit_factor: float = 1.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Rotate an east/north covariance into the grid (convergence) and scale it (k²).
+
+    The covariance stays in metres whatever the CRS unit: the step north is measured in
+    CRS units and turned into metres (``unit_factor``, metres per CRS unit) before it is
+    divided by the ground distance, so k is the dimensionless point scale factor.
+    """
     d = 1e-5
     xn, yn = transformer(WGS84_GEOGRAPHIC, epsg).transform(lon, lat + d)
     dx, dy = np.asarray(xn) - e, np.asarray(yn) - n
     m = 6335439.327 / (1 - 0.00669437999014 * np.sin(np.radians(lat)) ** 2) ** 1.5
-    k = np.hypot(dx, dy) / (m * np.radians(d))
+    k = np.hypot(dx, dy) * unit_factor / (m * np.radians(d))
     beta = np.arctan2(dx, dy)
     c, s = np.cos(beta), np.sin(beta)
     # C' = k² R C Rᵀ with R = [[c, s], [-s, c]] acting on (east, north)
@@ -107,6 +114,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     station's cloud is recomputed without searching the node tracks again).
     """
     p = params
+    unit = survey_crs(crs_epsg).unit_factor  # metres per CRS unit (1 for metric grids)
     est = p["estimate"]
     cap = est["scale_sample"]
     fx = fix_arrays(fixes)
@@ -122,7 +130,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     if detect_unlogged and len(fx):
         inside = inside_any(fx, logged.code, raw_s, raw_e)
         unl = find_clusters(fx, ok & ~inside, st_en, (st["line"], st["point"], st["index"]),
-                            crs_epsg, p["clusters"])
+                            crs_epsg, p["clusters"], unit_factor=unit)
         wins = Windows.concat([logged, unl])
     if extra_windows is not None and len(extra_windows):
         extra = extra_windows
@@ -187,7 +195,8 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     lat_c, lon_c = np.where(occupied, lat_c, np.nan), np.where(occupied, lon_c, np.nan)
     east, north = (np.asarray(a) for a in
                    transformer(WGS84_GEOGRAPHIC, crs_epsg).transform(lon_c, lat_c))
-    vee, vnn, ven = _grid_covariance(lat_c, lon_c, east, north, vee, vnn, ven, crs_epsg)
+    vee, vnn, ven = _grid_covariance(lat_c, lon_c, east, north, vee, vnn, ven, crs_epsg,
+                                     unit)
     sig_e, sig_n = np.sqrt(vee), np.sqrt(vnn)
     corr = ven / (sig_e * sig_n)
     major, minor, bearing = ellipse95(vee, vnn, ven)
@@ -226,7 +235,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     rl, rp, ri = wins.line[row_win], wins.point[row_win], wins.index[row_win]
     own_key, st_key = flagmod.station_keys((rl, rp, ri), (st["line"], st["point"], st["index"]))
     pre = flagmod.preplot_checks(east, north, own_key, st_key, st["easting"], st["northing"],
-                                 st["line"], st["point"])
+                                 st["line"], st["point"], unit_factor=unit)
     kind = wins.kind[row_win]
     cols = {"n_used": n_used, "span_s": span, "unit_scale": np.where(occupied, rr.scale, 0.0),
             "moved": moved_w[row_win], "dist_preplot": pre["dist_preplot"],

@@ -33,8 +33,13 @@ def station_keys(*stations: tuple[np.ndarray, np.ndarray, np.ndarray]) -> list[n
 
 def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
                    st_key: np.ndarray, st_e: np.ndarray, st_n: np.ndarray,
-                   st_line: np.ndarray, st_point: np.ndarray) -> dict[str, np.ndarray]:
-    """Own preplot coordinates and distance, and the nearest other station and distance."""
+                   st_line: np.ndarray, st_point: np.ndarray, *,
+                   unit_factor: float = 1.0) -> dict[str, np.ndarray]:
+    """Own preplot coordinates and distance, and the nearest other station and distance.
+
+    Coordinates are in the survey CRS unit; the two distances are returned in metres
+    (times ``unit_factor``, metres per CRS unit) so they compare with metre tolerances.
+    """
     n = len(east)
     out = {k: np.full(n, np.nan) for k in
            ("preplot_e", "preplot_n", "dist_preplot", "nearest_line", "nearest_point",
@@ -47,7 +52,7 @@ def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
     own = order[pos]
     out["preplot_e"] = np.where(found, st_e[own], np.nan)
     out["preplot_n"] = np.where(found, st_n[own], np.nan)
-    out["dist_preplot"] = np.hypot(east - out["preplot_e"], north - out["preplot_n"])
+    out["dist_preplot"] = np.hypot(east - out["preplot_e"], north - out["preplot_n"]) * unit_factor
     fin = np.isfinite(east) & np.isfinite(north)
     if fin.any():
         k = min(2, len(st_key))
@@ -61,7 +66,7 @@ def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
         valid = ~(first_is_own & (k == 1))
         out["nearest_line"][fin] = np.where(valid, st_line[other], np.nan)
         out["nearest_point"][fin] = np.where(valid, st_point[other], np.nan)
-        out["dist_nearest"][fin] = np.where(valid, dist[rows, col], np.nan)
+        out["dist_nearest"][fin] = np.where(valid, dist[rows, col] * unit_factor, np.nan)
     return out
 
 

@@ -3,7 +3,9 @@
 One row per deployment part: normally one part per deployment; a node that moved during its
 deployment gives one row per part, and ``delivered`` marks the part to deliver (the last by
 default). Unlogged stationary clusters get rows with ``kind = "unlogged"`` and no node
-window from the log. Easting/northing are in the survey CRS; sigmas and radii in metres.
+window from the log. Easting/northing (and preplot_e/preplot_n) are in the survey CRS's
+unit, which may be feet; sigmas, ellipse axes, r95, spread and the distances dist_preplot and
+dist_nearest are always metres (grid distances converted with the CRS's unit factor).
 """
 
 from __future__ import annotations
@@ -32,8 +34,8 @@ POSITION_SCHEMA = pa.schema(
         pa.field("h_gnss", pa.float64()),  # GNSS orthometric height, in the model's datum
         pa.field("h_model", pa.float64()),  # elevation model at the position
         pa.field("dh", pa.float64()),  # h_gnss - h_model
-        pa.field("sigma_e", pa.float64()),
-        pa.field("sigma_n", pa.float64()),
+        pa.field("sigma_e", pa.float64()),  # m, whatever the CRS unit
+        pa.field("sigma_n", pa.float64()),  # m
         pa.field("corr_en", pa.float64()),
         pa.field("ell_major", pa.float64()),  # 95 % error ellipse semi-axes, m
         pa.field("ell_minor", pa.float64()),
@@ -48,10 +50,10 @@ POSITION_SCHEMA = pa.schema(
         pa.field("spread", pa.float64()),  # robust horizontal scale of the cloud, m
         pa.field("preplot_e", pa.float64()),
         pa.field("preplot_n", pa.float64()),
-        pa.field("dist_preplot", pa.float64()),
+        pa.field("dist_preplot", pa.float64()),  # m, whatever the CRS unit
         pa.field("nearest_line", pa.float64()),  # nearest other station (mix-up check)
         pa.field("nearest_point", pa.float64()),
-        pa.field("dist_nearest", pa.float64()),
+        pa.field("dist_nearest", pa.float64()),  # m, whatever the CRS unit
         pa.field("estimator", pa.string(), nullable=False),
         pa.field("flags", pa.string(), nullable=False),  # ";"-joined FLAGS keys, "" if none
     ],
