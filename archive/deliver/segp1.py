@@ -1,5 +1,9 @@
 """SEG-P1 (SEG 1983 positional exchange) receiver file: 20 H header records, 80-column data.
 
+Header records: ``Hnn`` in columns 1-3, free text in 5-80 (``description: data``, long data
+continued on the next record indented by two spaces). Statements that need more than 20
+records are refused, never cut.
+
 Data record columns (1-based, inclusive):
 1 record id (blank) · 2-17 line name, left-justified · 18-25 point number I8 ·
 26 reshoot code (blank) · 27-35 latitude DDMMSSss + N/S · 36-45 longitude DDDMMSSss + E/W ·
@@ -30,13 +34,14 @@ from archive.deliver.context import (
     station_label,
     time_fields,
 )
-from archive.deliver.sps import header_record
+from archive.deliver.headers import wrap_data
 from archive.errors import Refused
 from archive.survey.crs import transformer
 
 FORMAT = "SEG-P1"
 SUGGEST = "SPS (--format sps) or CSV (--format csv)"
 N_HEADER = 20
+FREE_WIDTH = 76  # header text in columns 5-80
 
 SHORT_PARAM = {
     "Latitude of natural origin": "lat0", "Longitude of natural origin": "lon0",
@@ -44,8 +49,13 @@ SHORT_PARAM = {
     "Latitude of false origin": "latF", "Longitude of false origin": "lonF",
     "Latitude of 1st standard parallel": "lat1", "Latitude of 2nd standard parallel": "lat2",
     "Easting at false origin": "EF", "Northing at false origin": "NF",
+    "Latitude of projection centre": "latC", "Longitude of projection centre": "lonC",
+    "Azimuth at projection centre": "alphaC", "Angle from Rectified to Skew Grid": "gammaC",
+    "Scale factor at projection centre": "kC", "Scale factor on initial line": "kC",
+    "Easting at projection centre": "EC", "Northing at projection centre": "NC",
+    "Longitude of origin": "lon0",
 }
-UNIT_SHORT = {"degree": "deg", "metre": "m", "unity": ""}
+UNIT_SHORT = {"degree": "deg", "metre": "m", "unity": "", "US survey foot": "ftUS", "foot": "ft"}
 
 
 def dms_fields(degrees: np.ndarray, deg_width: int, pos: str, neg: str) -> np.ndarray:
@@ -73,47 +83,57 @@ def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str
 
 def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]:
     """Exactly 20 H records: survey, datum/spheroid, projection and parameters, units, time
-    basis, what position is mapped, producing run and edit set."""
+    basis, what position is mapped, producing run and edit set.
+
+    Each record is ``Hnn`` and free text in columns 5-80: ``description: data``, long data
+    continuing on the next record indented by two spaces; projection
+    parameters use compact names (:data:`SHORT_PARAM`). When the statements need more than
+    20 records the file is refused (:class:`Refused`), never cut.
+    """
     crs = ctx.crs
     params = " ".join(
-        f"{SHORT_PARAM.get(n, n)}={v:.10g}{UNIT_SHORT.get(u, ' ' + u)}" for n, v, u in crs.params
+        f"{SHORT_PARAM.get(n, n.replace(' ', '_'))}={v:.12g}{UNIT_SHORT.get(u, '_' + u.replace(' ', '_'))}"
+        for n, v, u in crs.params
     )
-    chunks = [params[i:i + 48] for i in range(0, max(len(params), 1), 48)]
-    chunks = (chunks + ["", "", ""])[:3]
+    unit = crs.unit
 
     def prec(name: str) -> str:
-        return "0.1 m" if precision.get(name, 0) == 1 else "1 m"
+        return "0.1" if precision.get(name, 0) == 1 else "1"
+
+    def hprec() -> str:
+        return "0.1 metre" if precision.get("height", 0) == 1 else "1 metre"
 
     produced = ctx.produced_at.strftime("%Y-%m-%d %H:%M UTC") if ctx.produced_at else ""
-    recs = [
-        ("H01", "Survey", ctx.survey + (f", {ctx.area}" if ctx.area else "")),
-        ("H02", "Client", ctx.client),
-        ("H03", "Contractor", ctx.contractor),
-        ("H04", "Geodetic datum", crs.datum),
-        ("H05", "Spheroid", f"{crs.ellipsoid} a={crs.semi_major:.3f} "
-                            f"1/f={crs.inverse_flattening:.9f}"),
-        ("H06", "Coordinate reference system", f"{crs.name} EPSG:{crs.epsg}"),
-        ("H07", "Projection", f"{crs.method} (EPSG method {crs.method_code})"),
-        ("H08", "Projection parameters (1/3)", chunks[0]),
-        ("H09", "Projection parameters (2/3)", chunks[1]),
-        ("H10", "Projection parameters (3/3)", chunks[2]),
-        ("H11", "Grid units and precision", f"{crs.unit}; E {prec('easting')}, "
-                                            f"N {prec('northing')}"),
-        ("H12", "Latitude/longitude", f"{crs.geographic_name} EPSG:{crs.geographic_epsg}, "
-                                      "DDMMSSss 0.01 sec"),
-        ("H13", "Elevation", f"{ctx.vertical_datum or 'datum not stated'}, "
-                             f"metre, {prec('height')}"),
-        ("H14", "Time basis", TIME_BASIS),
-        ("H15", "Position mapped", POSITION_MAPPED),
-        ("H16", "Producing run (1/2)", ctx.run_id[:32]),
-        ("H17", "Producing run (2/2)", ctx.run_id[32:]),
-        ("H18", "Edit set (1/2)", ctx.edit_set_hash[:32]),
-        ("H19", "Edit set (2/2)", ctx.edit_set_hash[32:]),
-        ("H20", "Produced", f"{produced} nodekeep {ctx.code_version}, "
-                            f"{len(ctx.edit_ids)} edits"),
+    items = [
+        ("Survey", ctx.survey + (f", {ctx.area}" if ctx.area else "")),
+        ("Client", ctx.client),
+        ("Contractor", ctx.contractor),
+        ("Geodetic datum and spheroid", f"{crs.datum}; {crs.ellipsoid} "
+                                        f"a={crs.semi_major:.3f} 1/f={crs.inverse_flattening:.9f}"),
+        ("Coordinate reference system", f"EPSG:{crs.epsg} {crs.name}"),
+        ("Projection and parameters", f"{crs.method} (EPSG method {crs.method_code}): "
+                                      f"{params or 'none'}"),
+        ("Grid units", f"{unit}; precision E {prec('easting')}, N {prec('northing')}"),
+        ("Latitude/longitude", f"EPSG:{crs.geographic_epsg} {crs.geographic_name}, "
+                               "DDMMSSss 0.01 sec"),
+        ("Elevation", f"{ctx.vertical_datum or 'datum not stated'}, {hprec()}"),
+        ("Time basis", TIME_BASIS),
+        ("Position mapped", POSITION_MAPPED),
+        ("Run", ctx.run_id),
+        ("Edit set", ctx.edit_set_hash),
+        ("Produced", f"{produced} nodekeep {ctx.code_version}, {len(ctx.edit_ids)} edits"),
     ]
-    assert len(recs) == N_HEADER
-    return [header_record(*r) for r in recs]
+    lines: list[str] = []
+    for desc, data in items:
+        first, *rest = wrap_data(f"{desc}: {data}", FREE_WIDTH)
+        lines.append(first)
+        lines += [f"  {p}" for p in wrap_data(" ".join(rest), FREE_WIDTH - 2)] if rest else []
+    if len(lines) > N_HEADER:
+        raise Refused(f"{FORMAT}: the header statements need {len(lines)} records, the format "
+                      f"has {N_HEADER} (long CRS name, parameters or survey text)",
+                      hint=f"deliver as {SUGGEST}, whose headers have no record limit")
+    lines += [""] * (N_HEADER - len(lines))
+    return [f"H{k:02d} {text:<{FREE_WIDTH}}" for k, text in enumerate(lines, 1)]
 
 
 def data_records(table: pa.Table, ctx: DeliveryContext) -> tuple[list[str], dict[str, int]]:

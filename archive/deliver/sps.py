@@ -6,7 +6,8 @@ Point record columns (1-based, inclusive; SEG SPS rev 2.1, Jan 2006):
 39-40 uphole I2 · 41-46 water depth F6.1 · 47-55 easting F9.1 · 56-65 northing F10.1 ·
 66-71 surface elevation F6.1 · 72-74 day of year I3 · 75-80 time hhmmss.
 
-Header records: columns 1-4 record id (``H`` + item), 5-32 description, 33-80 data. The
+Header records: columns 1-4 record id (``H`` + item), 5-32 description, 33-80 data; data
+longer than 48 characters continues on H26 records described ``(continued)``. The
 fields nodekeep has no value for (point code, static, depth, datum, uphole, water depth)
 are left blank unless the table carries them (``code``, ``static``, ``point_depth``,
 ``datum``, ``uphole``, ``water_depth``). A value that does not fit its field is refused.
@@ -27,15 +28,11 @@ from archive.deliver.context import (
     text_column,
     time_fields,
 )
+from archive.deliver.headers import header_lines
 from archive.errors import Refused
 
 FORMAT = "SPS rev 2.1"
 SUGGEST = "CSV (--format csv)"
-
-
-def header_record(item: str, description: str, data: str) -> str:
-    """One 80-column H record: id in 1-4, description in 5-32, data in 33-80."""
-    return f"{item:<4.4}{description:<28.28}{data:<48.48}"
 
 
 def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[str]:
@@ -70,7 +67,7 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
         ("H08", "Coordinate location", "receiver position as solved"),
         ("H10", "Clock time w.r.t. GMT", "0 (all times UTC)"),
         ("H12", "Geodetic datum,-spheroid", f"{crs.datum}, {crs.ellipsoid}"),
-        ("H13", "Coordinate reference system", f"{crs.name} EPSG:{crs.epsg}"),
+        ("H13", "Coordinate reference system", f"EPSG:{crs.epsg} {crs.name}"),
         ("H14", "Geodetic datum parameters",
          f"a={crs.semi_major:.3f} 1/f={crs.inverse_flattening:.9f}"),
         ("H17", "Vertical datum", ctx.vertical_datum or "not stated"),
@@ -92,14 +89,12 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
         ("H26", "Position mapped", POSITION_MAPPED),
         ("H26", "Day/time columns 72-80", TIME_BASIS),
         ("H26", "Units and precision", f"E/N {crs.unit} to 0.1, elevation metre to 0.1"),
-        ("H26", "Producing run (1/2)", ctx.run_id[:32]),
-        ("H26", "Producing run (2/2)", ctx.run_id[32:]),
-        ("H26", "Edit set (1/2)", ctx.edit_set_hash[:32]),
-        ("H26", "Edit set (2/2)", ctx.edit_set_hash[32:]),
+        ("H26", "Producing run", ctx.run_id),
+        ("H26", "Edit set", ctx.edit_set_hash),
         ("H26", "Edit ids in force", ",".join(str(i) for i in ctx.edit_ids) or "none"),
         ("H26", "Not a certified survey", "for seismic processing, not legal/setback use"),
     ]
-    return [header_record(*r) for r in recs]
+    return [line for r in recs for line in header_lines(*r, continuation_item="H26")]
 
 
 def _date_span(table: pa.Table | None) -> str:

@@ -76,7 +76,7 @@ def test_sps_header_states_crs_datum_units_and_run():
     # UTM zone 14N central meridian -99 degrees (EPSG:32614 definition, read through pyproj)
     assert heads["H22"].startswith("-99")
     h26 = [r[32:].strip() for r in text.splitlines() if r.startswith("H26")]
-    assert "a" * 32 in h26 and "b" * 32 in h26
+    assert "a" * 48 in h26 and "a" * 16 in h26 and "b" * 48 in h26  # run id over 2 records
     assert TIME_BASIS in h26 and POSITION_MAPPED in h26  # stated in full, not cut at col 80
 
 
@@ -120,11 +120,10 @@ def test_segp1_read_back_and_lat_lon_against_pyproj():
         te = d["t_end"][i]
         assert r["year"] == te.year % 100
         assert r["doy"] == te.timetuple().tm_yday and r["time"] == te.strftime("%H%M%S")
-    h = {x[:4].strip(): x[32:].strip() for x in headers}
-    assert "E 0.1 m" in h["H11"] and "N 1 m" in h["H11"]
-    assert "Transverse Mercator" in h["H07"]
-    assert "lon0=-99deg" in h["H08"] + h["H09"] + h["H10"]
-    assert h["H14"] == TIME_BASIS and h["H15"] == POSITION_MAPPED
+    text = " ".join(x[4:].strip() for x in headers)
+    assert "Grid units: metre; precision E 0.1, N 1" in text
+    assert "Transverse Mercator" in text and "lon0=-99deg" in text
+    assert f"Time basis: {TIME_BASIS}" in text and f"Position mapped: {POSITION_MAPPED}" in text
 
 
 def test_segp1_southern_western_hemisphere():
