@@ -1,7 +1,8 @@
 """The solver on simulated truth (error model: archive.solve.simulate, sources cited there).
 
 48 stations, 3.2 days each at 30 s, first-order Gauss–Markov errors (σ = 2 m per axis,
-τ = 30 min: tens of minutes, check-values.md §6.3), a per-deployment multipath bias, outlier
+τ = 30 min: tens of minutes; Howind et al. 1999 report 5–20 min for double-difference
+residuals), a per-deployment multipath bias, outlier
 bursts, void and 2-D fixes, camp and transit fixes, three moves, two swapped pairs of
 serials in the log and one unlogged deployment.
 """
@@ -50,7 +51,7 @@ def test_reported_uncertainty_is_calibrated(big_sim: Simulation, big_solved) -> 
     ven = r * se * sn
     det = se**2 * sn**2 - ven**2
     m2 = (sn**2 * de**2 - 2 * ven * de * dn + se**2 * dn**2) / det
-    inside = np.mean(m2 <= 5.991465)  # χ²₂(0.95), check-values.md §3
+    inside = np.mean(m2 <= 5.991465)  # χ²₂(0.95), computed with scipy.stats.chi2
     print(f"\n{inside:.1%} of {len(m2)} stations inside their own 95 % ellipse")
     assert 0.85 <= inside <= 0.99
     # σ/√n would claim a few centimetres: the reported sigmas must be far above that

@@ -45,7 +45,8 @@ def test_off_model_falls_back_to_gnss() -> None:
 
 
 def test_gga_orthometric_height() -> None:
-    # check-values.md §1.1 G1: altitude 545.4 m MSL, separation 46.9 m -> h_ell 592.3 m
+    # D. DePriest, 'NMEA data' (GGA example): altitude 545.4 m MSL, separation 46.9 m
+    # -> h_ell 592.3 m
     assert gga_orthometric(np.array([592.3]), np.array([545.4]), np.array([46.9]))[0] == 545.4
     assert gga_orthometric(np.array([592.3]), np.array([np.nan]), np.array([46.9]))[0] == \
         pytest.approx(545.4)

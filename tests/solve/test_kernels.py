@@ -12,7 +12,7 @@ from archive.solve.robust import robust_centre, robust_centre_reference
 from archive.solve.segments import seg_median, seg_median_reference
 from archive.solve.uncertainty import batch_covariance, batch_covariance_reference
 
-X = np.array([2, 3, 3.5, 4, 4.5, 5, 40.0])  # check-values.md §5 location vector
+X = np.array([2, 3, 3.5, 4, 4.5, 5, 40.0])  # location vector; oracle: statsmodels RLM
 
 
 def _clouds(sizes: list[int], seed: int = 1) -> tuple[np.ndarray, ...]:
@@ -51,7 +51,7 @@ def test_robust_kernel_equals_numpy_reference(estimator: str, cap: int | None) -
 
 def test_one_dimension_matches_statsmodels_rlm_and_mad() -> None:
     # statsmodels RLM(x, ones, M=HuberT()).fit() -> 4.0, scale 1.48260; mad(x) 1.48260
-    # (check-values.md §5, computed with statsmodels; the oracle is re-run here)
+    # (statsmodels RLM documentation; computed with statsmodels, the oracle is re-run here)
     fit = sm.RLM(X, np.ones(len(X)), M=sm.robust.norms.HuberT()).fit()
     seg = np.zeros(len(X), dtype=np.int64)
     got = robust_centre([X], np.ones(len(X)), seg, 1, reject_quantile=1.0, iterations=50,
@@ -67,7 +67,7 @@ def test_one_dimension_matches_statsmodels_rlm_and_mad() -> None:
 
 def test_many_clouds_match_statsmodels_one_by_one() -> None:
     # each cloud alone through statsmodels RLM (HuberT, MAD scale); 1-D clouds of the
-    # check-values.md §5 vector shifted and stretched, solved all at once by the kernel
+    # location vector X shifted and stretched, solved all at once by the kernel
     xs = [X * s + o for s, o in [(1.0, 0.0), (2.5, -3.0), (0.1, 100.0), (7.0, 5.0)]]
     seg = np.repeat(np.arange(len(xs)), [len(x) for x in xs])
     got = robust_centre([np.concatenate(xs)], np.ones(len(seg)), seg, len(xs),

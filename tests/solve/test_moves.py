@@ -13,7 +13,7 @@ P = default_params()["flags"]
 
 def _clouds(k: int, n: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     rng = np.random.default_rng(seed)
-    rho = np.exp(-30 / 1800)  # 30 s fixes, τ = 30 min (check-values.md §6.3)
+    rho = np.exp(-30 / 1800)  # 30 s fixes, τ = 30 min (cf. Howind et al. 1999: 5–20 min)
 
     def gm() -> np.ndarray:
         return lfilter([2 * np.sqrt(1 - rho**2)], [1, -rho], rng.standard_normal((k, n)),

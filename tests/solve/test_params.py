@@ -14,7 +14,7 @@ from archive.solve.params import default_params, load_params, params_toml, resol
 def test_defaults_carry_the_published_constants() -> None:
     p = default_params()
     # Huber k = 1.345 and Tukey c = 4.685 give 95 % efficiency at the normal
-    # (statsmodels HuberT / TukeyBiweight docs; check-values.md §5).
+    # (statsmodels HuberT / TukeyBiweight docs, statsmodels RLM documentation).
     assert p["estimate"]["huber_k"] == 1.345
     assert p["estimate"]["tukey_c"] == 4.685
     assert p["estimate"]["estimator"] == "huber"

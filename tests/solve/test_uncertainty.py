@@ -1,4 +1,4 @@
-"""Uncertainty formulas against closed forms and published tables (check-values.md §3, §6)."""
+"""Uncertainty formulas against closed forms, scipy and published formulas (NCAR NCL docs)."""
 
 from __future__ import annotations
 
@@ -20,8 +20,9 @@ from archive.solve.uncertainty import (
 
 
 @pytest.mark.parametrize("rho, n, n_eff", [
-    # check-values.md §6.1, exact finite-n AR(1) n_eff (closed form checked there against
-    # direct summation; large-n form n(1-ρ)/(1+ρ) from NCAR NCL equiv_sample_size docs)
+    # exact finite-n AR(1) n_eff (closed form, computed and checked against direct summation;
+    # large-n form n(1-ρ)/(1+ρ) from NCAR NCL equiv_sample_size documentation, after Zwiers &
+    # von Storch (1995))
     (0.5, 100, 33.784), (0.9, 1000, 53.135), (0.99, 3600, 18.605),
     (np.exp(-1 / 600), 3600, 3.598),
 ])
@@ -37,7 +38,8 @@ def test_ar1_variance_equals_direct_summation() -> None:
 
 
 @pytest.mark.parametrize("sigma, tau, span, var", [
-    # check-values.md §6.2 (first-order Gauss–Markov, variance of the time average)
+    # first-order Gauss–Markov, variance of the time average: closed form from memory (e.g.
+    # Gelb, Applied Optimal Estimation); values computed, checked against the AR(1) sum
     (1.0, 600, 3600, 0.277915), (1.0, 600, 86400, 0.0137924), (1.0, 3600, 3600, 0.735759),
     (2.0, 900, 7200, 0.875042),
 ])
@@ -47,7 +49,8 @@ def test_gauss_markov_mean_variance_table(sigma: float, tau: float, span: float,
 
 
 @pytest.mark.parametrize("ratio, r95", [
-    # check-values.md §3: exact R95 of an elliptical normal (σmax = 1) by σmin/σmax
+    # exact R95 of an elliptical normal (σmax = 1) by σmin/σmax, computed with scipy by
+    # numerical integration
     (1.0, 2.4477), (0.8, 2.2303), (0.5, 2.0359), (0.3, 1.9842), (0.2, 1.9704),
     (0.1, 1.9625), (1e-6, 1.9600),
 ])
@@ -63,7 +66,7 @@ def test_r95_matches_the_published_table(ratio: float, r95: float) -> None:
 
 def test_ellipse_axes_and_bearing() -> None:
     assert abs(CHI2_2_95 - chi2.ppf(0.95, 2)) < 1e-12
-    assert abs(CHI2_2_95 - 5.991465) < 1e-6  # check-values.md §3
+    assert abs(CHI2_2_95 - 5.991465) < 1e-6  # computed with scipy.stats.chi2
     # σE = 2, σN = 1: major axis east-west (bearing 90°), semi-axes √5.991·σ
     major, minor, bearing = ellipse95(np.array([4.0]), np.array([1.0]), np.array([0.0]))
     assert major[0] == pytest.approx(2 * 2.447747, abs=1e-5)
@@ -98,7 +101,10 @@ def test_batch_means_are_honest_for_gauss_markov_errors() -> None:
 
 
 def test_local_plane_agrees_with_the_topocentric_frame() -> None:
-    """EPSG method 9837 (geographic -> topocentric) through PROJ, as in check-values §2.3."""
+    """EPSG method 9837 (geographic -> topocentric) through PROJ.
+
+    As in the worked example of IOGP Publication 373-7-2 (Guidance Note 7-2), method 9837.
+    """
     lat0, lon0 = 32.36, -97.81
     topo = Transformer.from_pipeline(
         f"+proj=pipeline +step +proj=cart +ellps=WGS84 +step +proj=topocentric "
