@@ -1,7 +1,9 @@
 """Shared builders for delivery tests: final-position-like tables and independent readers.
 
-The readers here slice fixed columns by the published layouts (check-values.md §7.1 for SPS
-rev 2.1, §7.2 for SEG-P1) and share no code with the writers under test.
+The readers here slice fixed columns by the published layouts (SEG SPS format rev 2.1 (2006),
+point record layout; SEG-P1 data record of SEG, "Standard exchange formats for positional
+data", Geophysics 1983, columns as read by GDAL's SEG-P1 driver) and share no code with the
+writers under test.
 """
 
 from __future__ import annotations
@@ -60,7 +62,7 @@ def cols(rec: str, first: int, last: int) -> str:
 
 
 def read_sps_r(text: str) -> list[dict]:
-    """Independent SPS rev 2.1 R-record reader (check-values.md §7.1 column table)."""
+    """Independent SPS rev 2.1 R-record reader (SEG SPS rev 2.1 (2006) point record layout)."""
     out = []
     for rec in text.splitlines():
         if not rec.startswith("R"):
@@ -83,7 +85,7 @@ def read_sps_r(text: str) -> list[dict]:
 
 
 def read_segp1(text: str) -> tuple[list[str], list[dict]]:
-    """Independent SEG-P1 reader (check-values.md §7.2 column table): headers, data rows."""
+    """Independent SEG-P1 reader (SEG 1983 layout, as read by GDAL): headers, data rows."""
     headers, rows = [], []
     for rec in text.splitlines():
         if rec.startswith("H"):
