@@ -22,7 +22,8 @@ from tests.deliver.helpers import context, final_table, read_segp1, read_sps_r
 
 
 def test_sps_synthetic_vector_exact():
-    # check-values.md §7.1 "Synthetic round-trip vector (computed, matches spec)".
+    # synthetic round-trip vector laid out by SEG SPS format rev 2.1 (2006), point record
+    # layout (computed, matches the spec's column table).
     expected = ("R   1001.00   2001.00  1G1   0 0.0   0 0   0.0 500123.4 6123456.7 "
                 "123.4123123456")
     assert len(expected) == 80
