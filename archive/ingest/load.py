@@ -5,7 +5,10 @@ else works); a raw file already loaded into the survey (same hash) is reported a
 the file is parsed (several files in parallel, one process each) into a fixes and a rejects
 Parquet object; then one transaction registers the objects, inserts the ``raw_files`` row and
 appends the ``load.fixes`` ledger event. A file that is not a fix log fails on its own with
-a message naming it; the other files still load.
+a message naming it; the other files still load. Its raw bytes stay accounted for: one
+transaction registers them (kind ``raw-failed``) and appends a ``load.fixes.failed`` event
+with the file name, node, hash, error and the line counts read, so ``verify`` does not take
+them for the leftovers of an interrupted write.
 """
 
 from __future__ import annotations
@@ -206,7 +209,7 @@ def _record(arc: Archive, survey_id: int, o: FileOutcome, res: dict[str, Any], f
             profile_hash: str | None, date: dt.date | None, node_pattern: str | None) -> None:
     """One transaction for one parsed file: objects, the raw_files row, the ledger event."""
     if not res["ok"]:
-        o.status, o.error = "failed", res["error"]
+        _record_failure(arc, survey_id, o, res, fmt, profile_hash)
         return
     for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid",
               "t_first", "t_last", "rejects"):
@@ -246,3 +249,22 @@ def _record(arc: Archive, survey_id: int, o: FileOutcome, res: dict[str, Any], f
                                    "n_rejected": o.n_rejected},
                 survey_id=survey_id, rows=[row])
     o.status, o.raw_file_id = "loaded", row.id
+
+
+def _record_failure(arc: Archive, survey_id: int, o: FileOutcome, res: dict[str, Any],
+                    fmt: str, profile_hash: str | None) -> None:
+    """One transaction for a file that did not parse: its raw bytes and a ledger event."""
+    o.status, o.error = "failed", res["error"]
+    counts = res.get("counts") or {}
+    for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid"):
+        setattr(o, k, int(counts.get(k, 0)))
+    o.rejects = dict(res.get("rejects") or {})
+    with arc.transaction() as tx:
+        arc.register_object(tx, o.raw_hash, o.size, "raw-failed")
+        if profile_hash:
+            arc.register_object(tx, profile_hash, arc.objects.size(profile_hash), "profile")
+        arc.log(tx, "load.fixes.failed",
+                {"raw": o.raw_hash, "name": Path(o.path).name, "node": o.node,
+                 "format": fmt, "profile": profile_hash, "size": o.size, "error": o.error,
+                 "counts": counts or None, "rejects": o.rejects},
+                survey_id=survey_id)

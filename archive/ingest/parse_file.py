@@ -45,18 +45,20 @@ def parse_file(task: dict[str, Any]) -> dict[str, Any]:
 
     Returns ``{"ok": True, counts..., "fixes_hash", "fixes_size", "rejects_hash",
     "rejects_size", "t_first", "t_last", "rejects": {reason: n}}`` or ``{"ok": False,
-    "error": message}``.
+    "error": message, "counts": {...} or None, "rejects": {reason: n}}`` where ``counts``
+    holds the line counts read before the failure when the whole file was read.
     """
+    seen: dict[str, Any] = {"counts": None, "rejects": {}}
     try:
-        return _parse(task)
+        return _parse(task, seen)
     except NodekeepError as exc:
         message = str(exc)
         if not message.startswith(task["path"]):  # e.g. a profile that does not fit this log
             message = f"{task['path']}: {message}"
-        return {"ok": False, "error": message}
+        return {"ok": False, "error": message, **seen}
     except Exception as exc:  # noqa: BLE001 - one broken file must not stop the others
         return {"ok": False, "error": f"{task['path']}: could not be parsed "
-                f"({type(exc).__name__}: {exc})"}
+                f"({type(exc).__name__}: {exc})", **seen}
 
 
 def _chunks(task: dict[str, Any]):
@@ -78,7 +80,7 @@ def _chunks(task: dict[str, Any]):
     yield Chunk(r.fixes, r.rejects, r.n_lines, r.n_accepted, r.n_rejected, r.n_ignored)
 
 
-def _parse(task: dict[str, Any]) -> dict[str, Any]:
+def _parse(task: dict[str, Any], seen: dict[str, Any]) -> dict[str, Any]:
     store = ObjectStore(task["objects_url"])
     counts = {"n_lines": 0, "n_accepted": 0, "n_rejected": 0, "n_ignored": 0, "n_fixes": 0,
               "n_valid": 0}
@@ -111,6 +113,7 @@ def _parse(task: dict[str, Any]) -> dict[str, Any]:
                     fw.write_table(ch.fixes)
         finally:
             fw.close()
+        seen["counts"], seen["rejects"] = dict(counts), dict(sorted(reasons.items()))
         if counts["n_fixes"] == 0:
             raise _not_a_log(task["path"], counts["n_lines"], reasons, task["format"])
         if in_order:

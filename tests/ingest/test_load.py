@@ -198,3 +198,34 @@ def test_load_on_postgres(any_survey_arc, logs):
     assert [f.status for f in load_fix_files(arc, sid, [logs]).files] == ["already"] * 2
     assert node_fixes(arc, sid, "KF10002").num_rows == 600
     assert verify_archive(arc).ok
+
+
+def test_failed_files_are_kept_and_ledgered(survey_arc, logs):
+    arc = survey_arc
+    (logs / "photo.jpg").write_bytes(bytes(range(256)) * 40)
+    (logs / "empty.nmea").write_bytes(b"")
+    report = load_fix_files(arc, survey_id(arc), [logs], workers=1)
+    by_name = {f.path.rsplit("/", 1)[-1]: f for f in report.files}
+    assert [by_name[n].status for n in ("KF10001.nmea", "KF10002.nmea")] == ["loaded"] * 2
+    photo, empty = by_name["photo.jpg"], by_name["empty.nmea"]
+    assert photo.status == empty.status == "failed"
+    # every line of the binary file is accounted for; the empty file has none
+    assert photo.n_lines > 0 and photo.n_fixes == 0
+    assert photo.n_accepted + photo.n_rejected + photo.n_ignored == photo.n_lines
+    assert photo.rejects.get("binary", 0) > 0
+    assert empty.n_lines == 0
+    v = verify_archive(arc)
+    assert v.ok and v.dangling == []  # the failed raw bytes are referenced, not left over
+    with arc.session() as s:
+        kinds = dict(s.execute(select(StoredObject.hash, StoredObject.kind)).all())
+        events = s.scalars(select(LedgerEvent).where(LedgerEvent.action == "load.fixes.failed")
+                           .order_by(LedgerEvent.seq)).all()
+        payloads = [payload_of(e) for e in events]
+    assert kinds[photo.raw_hash] == kinds[empty.raw_hash] == "raw-failed"
+    got = {p["name"]: p for p in payloads}
+    assert set(got) == {"photo.jpg", "empty.nmea"}
+    assert got["photo.jpg"]["raw"] == photo.raw_hash and got["photo.jpg"]["node"] == "photo"
+    assert "binary data" in got["photo.jpg"]["error"]
+    assert got["photo.jpg"]["counts"]["n_lines"] == photo.n_lines
+    assert got["empty.nmea"]["raw"] == empty.raw_hash
+    assert "the file is empty" in got["empty.nmea"]["error"]
