@@ -231,6 +231,31 @@ def has_checksums(head: bytes) -> bool:
     return head.count(b"*") * 2 > head.count(b"$") > 0
 
 
+def _step(buf: np.ndarray, final: bool, carry: _Carry, node: str, raw_hash: str,
+          date0: int | None) -> tuple[Chunk | None, int]:
+    """Parse the complete epochs at the start of ``buf``: (chunk, bytes consumed).
+
+    ``(None, 0)`` when ``buf`` holds one unfinished epoch and is not the end of the log.
+    """
+    starts, ends, *cols = ns.scan_buffer(buf, final)
+    ncomp = starts.shape[0]
+    cut = ncomp if final else _epoch_cut(cols[1], cols[3], ncomp)
+    if cut == 0 and not final:
+        return None, 0
+    cols = [c[:cut] for c in cols]
+    consumed = int(starts[cut]) if cut < ncomp else (
+        buf.shape[0] if final else _consumed_after(buf, ends, ncomp))
+    chunk = _assemble(buf, starts[:cut], ends[:cut], cols, carry, node, raw_hash, date0)
+    carry.line_base += cut
+    return chunk, consumed
+
+
+def _start(date: dt.date | None, checksummed: bool) -> tuple[_Carry, int | None]:
+    carry = _Carry()
+    carry.checksummed = checksummed
+    return carry, None if date is None else (date - dt.date(1970, 1, 1)).days
+
+
 def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
                 date: dt.date | None = None, checksummed: bool | None = None
                 ) -> Iterator[Chunk]:
@@ -240,29 +265,19 @@ def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
     ``checksummed`` (default: decided on the first megabyte) says whether the log's
     sentences carry checksums, in which case a known sentence without one is truncated.
     """
-    date0 = None if date is None else (date - dt.date(1970, 1, 1)).days
-    carry = _Carry()
     pending = b""
     it = iter(blocks)
     block = next(it, None)
-    carry.checksummed = has_checksums((block or b"")[:1 << 20]) if checksummed is None \
-        else checksummed
+    carry, date0 = _start(date, has_checksums((block or b"")[:1 << 20])
+                          if checksummed is None else checksummed)
     while block is not None:
         nxt = next(it, None)
-        final = nxt is None
         data = pending + block if pending else block
-        buf = np.frombuffer(data, dtype=np.uint8)
-        starts, ends, *cols = ns.scan_buffer(buf, final)
-        ncomp = starts.shape[0]
-        cut = ncomp if final else _epoch_cut(cols[1], cols[3], ncomp)
-        if cut == 0 and not final:
+        chunk, consumed = _step(np.frombuffer(data, dtype=np.uint8), nxt is None, carry, node,
+                                raw_hash, date0)
+        if chunk is None:
             pending, block = data, nxt  # one unfinished epoch so far: read on
             continue
-        cols = tuple(c[:cut] for c in cols)
-        consumed = int(starts[cut]) if cut < ncomp else (
-            len(data) if final else _consumed_after(data, ends, ncomp))
-        chunk = _assemble(buf, starts[:cut], ends[:cut], cols, carry, node, raw_hash, date0)
-        carry.line_base += cut
         yield chunk
         pending = data[consumed:]
         block = nxt
@@ -270,20 +285,31 @@ def iter_chunks(blocks: Iterable[bytes], *, node: str, raw_hash: str,
             block, pending = pending, b""
 
 
-def _consumed_after(data: bytes, ends: np.ndarray, ncomp: int) -> int:
+def _memory_chunks(data: bytes, size: int, *, node: str, raw_hash: str,
+                   date: dt.date | None) -> Iterator[Chunk]:
+    """The chunks :func:`iter_chunks` yields for ``data`` cut in blocks of ``size`` bytes,
+    read from windows of ``data`` itself (no block is copied)."""
+    buf = np.frombuffer(data, dtype=np.uint8)
+    n = buf.shape[0]
+    carry, date0 = _start(date, has_checksums(data[:1 << 20]))
+    start, end = 0, min(size, n)
+    while True:
+        final = end >= n
+        chunk, consumed = _step(buf[start:end], final, carry, node, raw_hash, date0)
+        if chunk is not None:
+            yield chunk
+            start += consumed
+        if final:
+            return
+        end = min(end + size, n)
+
+
+def _consumed_after(buf: np.ndarray, ends: np.ndarray, ncomp: int) -> int:
     """Byte offset just after the line end of the last complete line."""
     if ncomp == 0:
         return 0
     e = int(ends[ncomp - 1])
-    return e + 2 if data[e:e + 2] == b"\r\n" else e + 1
-
-
-def _bytes_blocks(data: bytes, size: int) -> Iterator[bytes]:
-    mv = memoryview(data)
-    for i in range(0, len(data), size):
-        yield bytes(mv[i:i + size])
-    if not data:
-        yield b""
+    return e + 2 if buf[e:e + 2].tobytes() == b"\r\n" else e + 1
 
 
 def file_blocks(path: str | Path, size: int = CHUNK_BYTES) -> Iterator[bytes]:
@@ -324,5 +350,5 @@ def parse_nmea(data: bytes, *, node: str, raw_hash: str, date: dt.date | None = 
     ``node`` and ``raw_hash`` are copied into every fix; ``date`` dates GGA sentences of a
     log without RMC/ZDA. Never raises on bad content: bad lines become rejects.
     """
-    return combine(iter_chunks(_bytes_blocks(data, chunk_bytes), node=node, raw_hash=raw_hash,
-                               date=date, checksummed=has_checksums(data[:1 << 20])))
+    return combine(_memory_chunks(data, max(1, chunk_bytes), node=node, raw_hash=raw_hash,
+                                  date=date))
