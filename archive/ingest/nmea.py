@@ -77,12 +77,22 @@ class Chunk:
     n_ignored: int
 
 
+def _group_starts(k: np.ndarray) -> np.ndarray:
+    """Where each run of equal values of the sorted ``k`` starts."""
+    starts = np.empty(k.shape[0], dtype=bool)
+    starts[:1] = True
+    np.not_equal(k[1:], k[:-1], out=starts[1:])
+    return np.flatnonzero(starts)
+
+
 def _first_per_epoch(k: np.ndarray, values: np.ndarray, n: int) -> np.ndarray:
+    """Per epoch (``k`` sorted), the first finite value of ``values``; NaN if none."""
     out = np.full(n, np.nan)
     ok = np.isfinite(values)
     if ok.any():
-        uk, first = np.unique(k[ok], return_index=True)
-        out[uk] = values[ok][first]
+        kk, vv = k[ok], values[ok]
+        first = _group_starts(kk)
+        out[kk[first]] = vv[first]
     return out
 
 
@@ -167,7 +177,9 @@ def _assemble(buf, starts, ends, cols, carry: _Carry, node: str, raw_hash: str,
         pdop = _first_per_epoch(k, f1[gs], g)
         ghdop = _first_per_epoch(k, f2[gs], g)
         vdop = _first_per_epoch(k, f3[gs], g)
-        np.maximum.at(ftype, k, i1[gs])
+        if gs.size:
+            first = _group_starts(k)
+            ftype[k[first]] = np.maximum(np.maximum.reduceat(i1[gs], first), -1)
     fixes = _fix_table(gga[keep], day[keep], gt[keep], void[keep], pdop[keep], vdop[keep],
                        ghdop[keep], ftype[keep], lat, lon, f1, f2, f3, i1, i2, carry,
                        node, raw_hash)
