@@ -71,7 +71,9 @@ def _flag_refusal(final: pa.Table, flags: dict[str, int], run: Run) -> Refused:
         f"run {run.id[:12]} has {len(flagged)} station(s) with unacknowledged review flags: "
         f"{listed} (e.g. {examples})",
         hint="review them and acknowledge each with 'nodekeep edit ack LINE POINT --flag NAME "
-             "--reason TEXT' (or fix/reject the station), or deliver anyway with --allow-flags",
+             "--reason TEXT', replace the solver's position with 'nodekeep edit set-position' "
+             "(clears the position flags), reject the station with 'nodekeep edit reject', or "
+             "deliver anyway with --allow-flags",
     )
 
 

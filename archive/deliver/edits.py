@@ -156,12 +156,14 @@ def set_position(arc: Archive, survey_id: int, line: float, point: float, index:
                    "northing": _finite(northing, "northing")}
     elif source == "preplot":
         payload = {"source": "preplot", "easting": pre["easting"], "northing": pre["northing"],
+                   "height": pre.get("elevation"),
                    "input": {"kind": "stations", "version": pre["stations_version"],
                              "table": pre["stations_hash"]}}
     elif source == "control":
         c = _control_row(arc, survey_id, line, point, index)
         payload = {"source": "control", "easting": c["easting"], "northing": c["northing"],
                    "sigma_e": c.get("sigma_e"), "sigma_n": c.get("sigma_n"),
+                   "height": c.get("height"),
                    "input": {"kind": "control", "version": c["control_version"],
                              "table": c["control_hash"]}}
     else:

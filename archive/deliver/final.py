@@ -6,11 +6,20 @@ that no ``ack-flag`` edit has acknowledged (those go to ``flags_acknowledged``).
 stations are dropped. A ``set-position`` for a station the run did not position (a node
 that died, an unoccupied station) adds a row. Latitude/longitude (WGS 84) are recomputed
 with pyproj from the final grid coordinates, so they always agree with them.
+
+A ``set-position`` replaces the solver's solution for its station: the flags that describe
+the solver's position (:data:`POSITION_FLAGS`) are cleared, the fix counts become 0 and the
+fix-window times blank, and the height is re-derived at the new position: sampled from the
+elevation model the run used (``height_source`` ``model``), else the height the position's
+source carries (check point height or preplot elevation; ``height_source`` ``control`` or
+``preplot``), else blank (``none``). The node is kept (it was deployed there) and ``source``
+says so with ``node:deployed``. A later ``set-height`` still overrides the height.
 """
 
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from datetime import datetime
 from typing import Any
 
@@ -19,10 +28,11 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from archive.deliver.edits import edit_set
-from archive.deliver.runs import run_positions
+from archive.deliver.runs import run_manifest, run_positions
 from archive.store.archive import Archive
 from archive.store.models import Run
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+from archive.survey.dem import open_dem
 
 UTC_TIME = pa.timestamp("us", tz="UTC")
 
@@ -54,13 +64,23 @@ FINAL_SCHEMA = pa.schema(
 
 Key = tuple[float, float, int]
 
+# Review flags that describe the solver's position; a set-position replaces that solution.
+POSITION_FLAGS = frozenset({"few-fixes", "short-span", "wide-spread", "moved", "far-from-plan",
+                            "nearer-other", "unoccupied"})
+HeightAt = Callable[[float, float], float | None]
+
 
 def _key(line: Any, point: Any, index: Any) -> Key:
     return (float(line), float(point), int(index))
 
 
-def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int) -> pa.Table:
-    """Apply edits (Edit rows in force, oldest first) to a run's delivered rows."""
+def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
+                height_at: HeightAt | None = None) -> pa.Table:
+    """Apply edits (Edit rows in force, oldest first) to a run's delivered rows.
+
+    ``height_at(easting, northing)`` samples the run's elevation model (None when the run
+    had none or the point is off the model); it re-derives the height of a set position.
+    """
     cols = {name: delivered.column(name).to_pylist() if name in delivered.column_names
             else [None] * delivered.num_rows for name in FINAL_SCHEMA.names}
     cols["flags_acknowledged"] = [""] * delivered.num_rows
@@ -69,6 +89,7 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int) -> pa.Table:
     rows = {_key(a, b, c): i for i, (a, b, c) in
             enumerate(zip(cols["line"], cols["point"], cols["index"], strict=True))}
     rejected: set[Key] = set()
+    node_kept: set[int] = set()
 
     def row_of(key: Key, create: bool) -> int | None:
         if key in rows:
@@ -99,6 +120,13 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int) -> pa.Table:
             cols["easting"][i], cols["northing"][i] = p["easting"], p["northing"]
             cols["sigma_e"][i], cols["sigma_n"][i] = p.get("sigma_e"), p.get("sigma_n")
             cols["r95"][i] = None
+            cols["n_used"][i], cols["n_rejected"][i] = 0, 0
+            cols["t_start"][i], cols["t_end"][i] = None, None
+            cols["flags"][i] = ";".join(f for f in cols["flags"][i].split(";")
+                                        if f and f not in POSITION_FLAGS)
+            cols["height"][i], cols["height_source"][i] = _set_height(p, height_at)
+            if cols["node"][i]:
+                node_kept.add(i)
             mark(i, e.id)
         elif e.kind == "set-height":
             i = row_of(key, create=False)
@@ -116,6 +144,8 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int) -> pa.Table:
                 acked = [f for f in cols["flags_acknowledged"][i].split(";") if f]
                 cols["flags_acknowledged"][i] = ";".join([*acked, p["flag"]])
                 cols["flags"][i] = ";".join(flags)
+    for i in node_kept:
+        cols["source"][i] += ";node:deployed"
     table = pa.table({n: pa.array(cols[n], FINAL_SCHEMA.field(n).type)
                       for n in FINAL_SCHEMA.names}, schema=FINAL_SCHEMA)
     if rejected:
@@ -126,6 +156,18 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int) -> pa.Table:
     order = pc.sort_indices(table, [("line", "ascending"), ("point", "ascending"),
                                     ("index", "ascending")])
     return table.take(order)
+
+
+def _set_height(payload: dict[str, Any], height_at: HeightAt | None,
+                ) -> tuple[float | None, str]:
+    """(height, height_source) of a set position: model, else the source's height, else none."""
+    if height_at is not None:
+        z = height_at(float(payload["easting"]), float(payload["northing"]))
+        if z is not None:
+            return z, "model"
+    if payload.get("height") is not None:
+        return float(payload["height"]), str(payload.get("source", "given"))
+    return None, "none"
 
 
 def _with_lonlat(table: pa.Table, epsg: int) -> pa.Table:
@@ -156,7 +198,18 @@ def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | No
         edits, _ = edit_set(arc, survey_id, as_of=as_of)
     with arc.session() as s:
         epsg = s.get(Survey, survey_id).crs_epsg
-    return apply_edits(delivered, edits, epsg)
+    if not any(e.kind == "set-position" for e in edits):
+        return apply_edits(delivered, edits, epsg)
+    dem_version = (run_manifest(arc, run).get("input_versions") or {}).get("dem")
+    sampler = open_dem(arc, survey_id, dem_version) if dem_version is not None else None
+    if sampler is None:
+        return apply_edits(delivered, edits, epsg)
+    with sampler:
+        def height_at(x: float, y: float) -> float | None:
+            z = float(sampler.sample(np.array([x]), np.array([y]), epsg)[0])
+            return None if np.isnan(z) else z
+
+        return apply_edits(delivered, edits, epsg, height_at=height_at)
 
 
 def unacknowledged_flags(final: pa.Table) -> dict[str, int]:

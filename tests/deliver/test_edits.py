@@ -96,7 +96,7 @@ def test_final_positions_apply_edits(setup):
     assert r["northing"] == pytest.approx(n0 - 0.2, abs=1e-3)
     assert r["sigma_e"] == pytest.approx(0.02) and r["r95"] is None
     assert r["height"] == 401.25 and r["height_source"] == "given"
-    assert r["source"] == f"edit:{pos.id};edit:{hgt.id}"
+    assert r["source"] == f"edit:{pos.id};edit:{hgt.id};node:deployed"
     # lat/lon follow the edited grid coordinates (pyproj reference)
     lon, lat = Transformer.from_crs(32614, 4326, always_xy=True).transform(r["easting"],
                                                                            r["northing"])

@@ -84,7 +84,8 @@ def test_where_as_of_before_and_after_second_delivery(delivered, tmp_path):
         t2 = s.get(Delivery, second.delivery_id).created_at
     now = where(arc, sid, 1001, 2002)
     assert now["delivered"]["id"] == second.delivery_id
-    assert (now["delivered"]["easting"], now["delivered"]["source"]) == (612370.0, f"edit:{e.id}")
+    assert (now["delivered"]["easting"], now["delivered"]["source"]) == (
+        612370.0, f"edit:{e.id};node:deployed")
     mid = where(arc, sid, 1001, 2002, as_of=t1 + (t2 - t1) / 2)
     assert mid["delivered"]["id"] == first.delivery_id
     assert mid["delivered"]["easting"] == final.column("easting")[1].as_py()
