@@ -15,6 +15,7 @@ import pyarrow.parquet as pq
 from sqlalchemy import select
 
 from archive.errors import Refused, UsageError
+from archive.ingest.overlap import first_epochs
 from archive.ingest.result import sort_fixes
 from archive.ingest.schema import FIX_SCHEMA
 from archive.store.archive import Archive
@@ -35,14 +36,15 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
     """Every fix of ``node`` in the survey (start <= time < end), deduplicated by time, sorted.
 
     When several raw files hold a fix at the same time (overlapping downloads of one
-    node), the one from the earliest loaded raw file is kept.
+    node), the rule of :mod:`archive.ingest.overlap` keeps one: the fix of the earliest
+    loaded raw file, then of the lowest raw line (the solver keeps the same one).
     """
     start, end = _utc(start), _utc(end)
     with arc.session() as s:
         rows = s.execute(select(RawFile.fixes_hash).where(
             RawFile.survey_id == survey_id, RawFile.node == node,
             RawFile.fixes_hash.is_not(None)).order_by(RawFile.id)).scalars().all()
-    parts = []
+    parts, ranks = [], []
     for order, h in enumerate(rows):
         t = arc.objects.read_table(h)
         mask = None
@@ -53,15 +55,18 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
             mask = m2 if mask is None else pc.and_(mask, m2)
         if mask is not None:
             t = t.filter(mask)
-        parts.append(t.append_column("_order", pa.array(np.full(t.num_rows, order, np.int32))))
+        parts.append(t)
+        ranks.append(np.full(t.num_rows, order, np.int64))
     if not parts:
         return FIX_SCHEMA.empty_table()
     t = pa.concat_tables(parts).combine_chunks()
-    t = t.sort_by([("time", "ascending"), ("_order", "ascending"), ("raw_line", "ascending")])
-    times = t.column("time").to_numpy().astype(np.int64)
-    first = np.ones(len(times), dtype=bool)
-    first[1:] = times[1:] != times[:-1]
-    t = t.filter(pa.array(first)).drop_columns(["_order"])
+    rank = np.concatenate(ranks)
+    times = pc.cast(t.column("time"), pa.int64()).to_numpy(zero_copy_only=False)
+    src, _ = first_epochs(np.zeros(len(times), np.int64), times,
+                          t.column("raw_line").to_numpy(zero_copy_only=False),
+                          lambda r: rank[r])
+    if src is not None:
+        t = t.take(pa.array(src))
     return sort_fixes(t.cast(FIX_SCHEMA))
 
 

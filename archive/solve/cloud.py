@@ -64,7 +64,7 @@ def station_cloud(arc: Archive, run_id: str, line: float, point: float, index: i
     if not nodes:
         raise UsageError(f"station {line:g}/{point:g} index {index} has no deployment in run "
                          f"{run.id[:12]}", hint="check the line and point numbers")
-    hashes = sorted({h for n, h, _ in inp.fix_files if n in nodes or n == ""})
+    hashes = list(dict.fromkeys(h for n, h, _ in inp.fix_files if n in nodes or n == ""))
     fixes = load_fix_tables(arc, hashes)
     fixes = fixes.filter(pc.is_in(fixes["node"], value_set=pa.array(sorted(nodes))))
     epsg = manifest["survey"]["crs_epsg"]

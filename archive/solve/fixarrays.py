@@ -1,14 +1,17 @@
 """The fix table as numpy columns, sorted by node and time, with node codes.
 
-Fix tables arrive one per raw file (one node each). They are concatenated, sorted by
-(node, time, raw line) when not already in that order, and exact repeats of an epoch (the
-same node and time in two overlapping files) are dropped, keeping the first. Nodes get
+Fix tables arrive one per raw file (one node each), concatenated in the order the raw
+files were loaded (:func:`archive.solve.inputs.load_fix_tables` keeps it). They are sorted
+by (node, time) when not already in that order, and repeats of an epoch (the same node and
+time in two overlapping files) are dropped by the rule of :mod:`archive.ingest.overlap`:
+the fix of the earliest loaded raw file, then of the lowest raw line. Nodes get
 integer codes in sorted order of their serials. Window look-ups use a composite integer key
 ``code·2⁴⁴ + (t − t₀)`` in microseconds, so one ``searchsorted`` finds every window at once.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -16,6 +19,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from archive.errors import UsageError
+from archive.ingest.overlap import first_epochs
 from archive.ingest.schema import FIX_SCHEMA
 
 TIME_BITS = 44  # 2^44 µs ≈ 203 days of fixes per survey
@@ -77,6 +81,19 @@ class FixArrays:
                 "lat": self.lat, "lon": self.lon}
 
 
+def _appearance_rank(raw_hash: pa.ChunkedArray) -> Callable[[np.ndarray], np.ndarray]:
+    """Load rank of the raw file of given rows: the table's first row of that raw file
+    (the table's raw files are in load order)."""
+    def rank(rows: np.ndarray) -> np.ndarray:
+        hashes = raw_hash.take(pa.array(rows))
+        idx = pc.index_in(hashes, value_set=pc.unique(hashes)).to_numpy(zero_copy_only=False)
+        idx = idx.astype(np.int64)
+        first = np.full(int(idx.max()) + 1 if len(idx) else 0, np.iinfo(np.int64).max)
+        np.minimum.at(first, idx, rows)
+        return first[idx]
+    return rank
+
+
 def empty_fixes() -> pa.Table:
     """An empty fix table with the canonical schema."""
     return FIX_SCHEMA.empty_table()
@@ -94,21 +111,9 @@ def fix_arrays(table: pa.Table) -> FixArrays:
         raise UsageError(f"{len(names)} nodes in one solve; at most {MAX_NODES - 1} are supported",
                          hint="solve by node selection (--nodes)")
     raw_line = table["raw_line"].to_numpy()
-    ordered = len(codes) < 2 or bool(np.all(
-        (np.diff(codes) > 0) | ((np.diff(codes) == 0) & (
-            (np.diff(t_raw) > 0) | ((np.diff(t_raw) == 0) & (np.diff(raw_line) >= 0))))))
-    src = None
-    if not ordered:
-        src = np.lexsort((raw_line, t_raw, codes))
+    src, n_dup = first_epochs(codes, t_raw, raw_line, _appearance_rank(table["raw_hash"]))
+    if src is not None:
         codes, t_raw, raw_line = codes[src], t_raw[src], raw_line[src]
-    dup = np.zeros(len(codes), dtype=bool)
-    if len(codes) > 1:
-        dup[1:] = (codes[1:] == codes[:-1]) & (t_raw[1:] == t_raw[:-1])
-    n_dup = int(dup.sum())
-    if n_dup:
-        keep = np.flatnonzero(~dup)
-        src = keep if src is None else src[keep]
-        codes, t_raw, raw_line = codes[keep], t_raw[keep], raw_line[keep]
     span = (int(t_raw.max()) - int(t_raw.min())) if len(t_raw) else 0
     if span >= (1 << TIME_BITS):
         raise UsageError("the fixes of one solve span more than 200 days",

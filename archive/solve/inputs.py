@@ -192,7 +192,9 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
         nonlocal cur_nodes, cur_h, cur_n
         mask = np.isin(dep_nodes, np.array(cur_nodes, dtype=object)) if cur_nodes else \
             np.zeros(len(dep_nodes), dtype=bool)
-        out.append(Partition(cur_nodes, sorted(set(cur_h)), cur_n,
+        # fix objects in load order (raw_files.id within each node): the overlap rule of
+        # archive.ingest.overlap reads the load order from the order of the tables
+        out.append(Partition(cur_nodes, list(dict.fromkeys(cur_h)), cur_n,
                              inp.deployments.filter(pa.array(mask, pa.bool_()))))
         cur_nodes, cur_h, cur_n = [], [], 0
 
@@ -213,7 +215,8 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
 
 
 def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
-    """The fix tables of these objects, concatenated (schema of the ingest contract)."""
+    """The fix tables of these objects, concatenated in the order given (schema of the
+    ingest contract). Give them in load order: repeated epochs keep the earlier file's fix."""
     if not hashes:
         return empty_fixes()
     tables = [arc.objects.read_table(h) for h in hashes]
