@@ -38,12 +38,22 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
     When several raw files hold a fix at the same time (overlapping downloads of one
     node), the rule of :mod:`archive.ingest.overlap` keeps one: the fix of the earliest
     loaded raw file, then of the lowest raw line (the solver keeps the same one).
+    A node without any loaded fix log is a :class:`UsageError` naming known nodes.
     """
     start, end = _utc(start), _utc(end)
     with arc.session() as s:
         rows = s.execute(select(RawFile.fixes_hash).where(
             RawFile.survey_id == survey_id, RawFile.node == node,
             RawFile.fixes_hash.is_not(None)).order_by(RawFile.id)).scalars().all()
+        if not rows:
+            known = s.execute(select(RawFile.node).where(
+                RawFile.survey_id == survey_id, RawFile.fixes_hash.is_not(None))
+                .distinct().order_by(RawFile.node).limit(6)).scalars().all()
+    if not rows:
+        some = ", ".join(known[:5]) + (", ..." if len(known) > 5 else "")
+        raise UsageError(f"node {node!r} has no loaded fix log in this survey",
+                         hint=f"known nodes: {some}; list them with 'nodekeep logs'" if known
+                         else "load its logs with 'nodekeep load fixes FILES'")
     parts, ranks = [], []
     for order, h in enumerate(rows):
         t = arc.objects.read_table(h)
@@ -57,8 +67,6 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
             t = t.filter(mask)
         parts.append(t)
         ranks.append(np.full(t.num_rows, order, np.int64))
-    if not parts:
-        return FIX_SCHEMA.empty_table()
     t = pa.concat_tables(parts).combine_chunks()
     rank = np.concatenate(ranks)
     times = pc.cast(t.column("time"), pa.int64()).to_numpy(zero_copy_only=False)

@@ -169,6 +169,11 @@ def test_cli_load_logs_fixes(survey_arc, logs, runner, tmp_path):
     assert json.loads(r.stdout)["n_fixes"] == 600 and pq.read_table(pq_out).num_rows == 600
     r = invoke(runner, root, "verify")
     assert r.exit_code == 0
+    # an unknown node is a usage error naming known ones, and writes nothing
+    nope = tmp_path / "nope.csv"
+    r = invoke(runner, root, "fixes", "NOPE", "--to", str(nope))
+    assert r.exit_code == 2 and not nope.exists()
+    assert "'NOPE' has no loaded fix log" in r.stderr and "10001, 10002" in r.stderr
 
 
 def test_cli_delimited_with_profile(survey_arc, runner, tmp_path):
