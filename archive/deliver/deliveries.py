@@ -4,7 +4,10 @@ One delivery = the file's bytes stored by hash, the final-positions table stored
 a lineage manifest (JSON) stored by hash and written beside the file as
 ``<file>.lineage.json``, a :class:`Delivery` row and a ``deliver`` ledger event. The file is
 written to a temporary name in the target folder first and renamed into place only after
-the transaction committed, so there is never a delivered file without its record.
+the transaction committed, so there is never a delivered file without its record. The
+target and lineage paths are checked before anything is stored (not a folder, parent folder
+exists and is writable); should a rename still fail after the commit, a ``deliver.failed``
+ledger event names the delivery and :class:`StorageError` is raised.
 
 Refusals: unacknowledged review flags (unless ``allow_flags``), an existing file (unless
 ``force``), a station without a position, a value that does not fit its format's field.
@@ -29,7 +32,7 @@ from archive.deliver.edits import edit_dict, edit_set
 from archive.deliver.final import final_positions, unacknowledged_flags
 from archive.deliver.formats import writer
 from archive.deliver.runs import get_run, manifest_inputs, run_manifest
-from archive.errors import Refused, UsageError
+from archive.errors import Refused, StorageError, UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import table_digest
 from archive.store.ledger import row_digest
@@ -122,6 +125,49 @@ def _temp_beside(target: Path, data: bytes) -> Path:
     return Path(tmp)
 
 
+def check_target(path: Path, force: bool) -> None:
+    """Refuse a delivery path that cannot be written: a folder, an existing file without
+    ``force``, a missing or unwritable parent folder. Called before anything is stored."""
+    if path.is_dir():
+        raise UsageError(f"{path} is a folder, not a file name",
+                         hint="give --to a file name, e.g. --to FOLDER/receivers.sps")
+    if path.exists() and not force:
+        raise Refused(f"{path} already exists",
+                      hint="pass --force to overwrite it (earlier deliveries stay in the "
+                           "archive by hash), or choose another --to")
+    parent = path.parent
+    if not parent.is_dir():
+        raise UsageError(f"the folder {parent} does not exist",
+                         hint="create it first or choose another --to")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise UsageError(f"the folder {parent} is not writable",
+                         hint="choose a folder you may write to with --to")
+
+
+def _move_into_place(arc: Archive, survey_id: int, delivery_id: int,
+                     moves: list[tuple[Path, Path]]) -> None:
+    """Rename the temporary files onto their targets; if that fails after the delivery was
+    recorded, ledger ``deliver.failed`` and raise :class:`StorageError`."""
+    done: list[Path] = []
+    try:
+        for tmp, target in moves:
+            os.replace(tmp, target)
+            done.append(target)
+    except OSError as exc:
+        for tmp, _target in moves:
+            with contextlib.suppress(FileNotFoundError):
+                tmp.unlink()
+        with arc.transaction() as tx:
+            arc.log(tx, "deliver.failed",
+                    {"delivery": delivery_id, "error": f"{type(exc).__name__}: {exc}",
+                     "written": [str(p) for p in done]}, survey_id=survey_id)
+        raise StorageError(
+            f"delivery {delivery_id} was recorded but its file could not be put in place "
+            f"({exc}); the ledger says so (deliver.failed)",
+            hint="the delivered bytes are in the archive by hash: fix the folder and deliver "
+                 "again (with --force if a partial file is left)") from exc
+
+
 def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str | Path,
             recipient: str, note: str = "", allow_flags: bool = False,
             force: bool = False) -> DeliveryResult:
@@ -132,13 +178,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         raise UsageError("a delivery needs a recipient", hint="say who gets it with --recipient")
     target = Path(to)
     lineage_path = target.with_name(target.name + LINEAGE_SUFFIX)
-    for p in (target, lineage_path):
-        if p.exists() and not force:
-            raise Refused(f"{p} already exists",
-                          hint="pass --force to overwrite it (earlier deliveries stay in the "
-                               "archive by hash), or choose another --to")
-    if not target.parent.is_dir():
-        raise UsageError(f"the folder {target.parent} does not exist")
+    check_target(target, force)
+    check_target(lineage_path, force)
 
     run = get_run(arc, survey_id, run_ref)
     edits, edit_hash = edit_set(arc, survey_id)
@@ -226,8 +267,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                 with contextlib.suppress(FileNotFoundError):
                     tmp.unlink()
         raise
-    os.replace(tmp_file, target)
-    os.replace(tmp_lineage, lineage_path)
+    _move_into_place(arc, survey_id, next_id, [(tmp_file, target), (tmp_lineage, lineage_path)])
     return DeliveryResult(
         delivery_id=next_id, path=str(target), lineage_path=str(lineage_path), format=fmt,
         file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash, run_id=run.id,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 
 import pyarrow as pa
 import pytest
@@ -10,7 +11,7 @@ from sqlalchemy import select
 
 from archive.deliver import edits as ed
 from archive.deliver.deliveries import deliver, list_deliveries
-from archive.errors import Refused
+from archive.errors import Refused, StorageError, UsageError
 from archive.store.hashing import sha256_file
 from archive.store.models import Delivery, LedgerEvent
 from archive.store.verify import verify_archive
@@ -117,3 +118,62 @@ def test_deliver_on_postgresql(any_survey_arc, tmp_path, backend):
     res2 = deliver(any_survey_arc, sid, None, "csv", tmp_path / "r.csv", "GIS team")
     assert (res.delivery_id, res2.delivery_id) == (1, 2)
     assert verify_archive(any_survey_arc).ok
+
+
+def _no_delivery(arc):
+    with arc.session() as s:
+        return s.scalars(select(Delivery)).first() is None
+
+
+def test_unwritable_targets_are_refused_before_anything_is_recorded(flagged, tmp_path):
+    arc, sid, _final, _run, _ = flagged
+    (tmp_path / "adir").mkdir()
+    with pytest.raises(UsageError, match="is a folder"):
+        deliver(arc, sid, None, "csv", tmp_path / "adir", "processing", allow_flags=True)
+    (tmp_path / "b.csv.lineage.json").mkdir()
+    with pytest.raises(UsageError, match="is a folder"):
+        deliver(arc, sid, None, "csv", tmp_path / "b.csv", "processing", allow_flags=True,
+                force=True)
+    with pytest.raises(UsageError, match="does not exist"):
+        deliver(arc, sid, None, "csv", tmp_path / "nope" / "c.csv", "processing",
+                allow_flags=True)
+    assert _no_delivery(arc)
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason="root may write any folder")
+def test_read_only_folder_is_refused(flagged, tmp_path):
+    arc, sid, _final, _run, _ = flagged
+    ro = tmp_path / "ro"
+    ro.mkdir()
+    ro.chmod(0o500)
+    try:
+        with pytest.raises(UsageError, match="not writable"):
+            deliver(arc, sid, None, "csv", ro / "c.csv", "processing", allow_flags=True)
+    finally:
+        ro.chmod(0o700)
+    assert _no_delivery(arc)
+
+
+def test_rename_failing_after_commit_is_ledgered_and_raised(flagged, tmp_path, monkeypatch):
+    arc, sid, _final, _run, _ = flagged
+    import archive.deliver.deliveries as dmod
+
+    class NoRename:  # the delivery module's os, whose rename fails (as on a full disk)
+        def __getattr__(self, name):
+            return getattr(os, name)
+
+        @staticmethod
+        def replace(src, dst):
+            raise PermissionError(13, "Permission denied", str(dst))
+
+    monkeypatch.setattr(dmod, "os", NoRename())
+    out = tmp_path / "r.csv"
+    with pytest.raises(StorageError, match="delivery 1 was recorded") as exc:
+        deliver(arc, sid, None, "csv", out, "processing", allow_flags=True)
+    assert "deliver again" in exc.value.hint
+    monkeypatch.undo()
+    assert not out.exists() and not list(tmp_path.glob(".r.csv*"))
+    with arc.session() as s:
+        ev = s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq.desc())).first()
+    assert ev.action == "deliver.failed" and json.loads(ev.payload)["delivery"] == 1
+    assert verify_archive(arc).ok
