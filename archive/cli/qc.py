@@ -82,16 +82,20 @@ def qc(state: CliState, survey_name: str | None, run_ref: str | None, tolerance:
 @tolerance_option
 @click.option("--to", "to", required=True, type=click.Path(dir_okay=False, path_type=Path),
               metavar="FILE", help="Where to write the HTML report.")
+@click.option("--max-clouds", "max_clouds", type=click.IntRange(min=0), default=40,
+              show_default=True, metavar="N",
+              help="Draw the fix cloud of at most N stations to review (0: all of them).")
 @force_option
 @output_options
 @pass_state
 def report(state: CliState, survey_name: str | None, run_ref: str | None, tolerance: float,
-           to: Path, force: bool) -> None:
+           to: Path, max_clouds: int, force: bool) -> None:
     """Write a self-contained HTML report of a run: lineage, figures, flagged stations."""
     from archive.qc.report import write_report
 
     written = write_report(state.archive(), state.survey_id(survey_name), run_ref, to,
-                           tolerance=tolerance, force=force, progress=Bar(state))
+                           tolerance=tolerance, force=force, max_clouds=max_clouds,
+                           progress=Bar(state))
     data = written.as_dict()
     emit(state, data, f"wrote {data['path']} ({data['size_bytes'] / 1e6:.1f} MB, "
                       f"{data['n_figures']} figures, {data['n_clouds']} station clouds) "

@@ -4,7 +4,8 @@ Sections: cautions, lineage (run id, parameters, input hashes, code version), su
 against the check points (solved and preplot side by side), overview map, error vectors,
 distributions, stations beyond tolerance, flagged stations with their fix clouds, and the
 definitions. Cloud plots are drawn only for stations needing review (beyond the tolerance
-or flagged by the solver), at most ``max_clouds``; the overview is decimated along lines.
+or flagged by the solver), at most ``max_clouds`` (0: all); the overview is decimated along
+lines.
 The report only reads the archive.
 """
 
@@ -182,9 +183,16 @@ def _definitions() -> str:
 def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | None, *,
                   progress: Progress | None = None, max_clouds: int = MAX_CLOUDS,
                   generated_at: datetime | None = None) -> tuple[str, dict[str, int]]:
-    """The report page as text, with counts of figures and clouds drawn."""
+    """The report page as text, with counts of figures and clouds drawn.
+
+    ``max_clouds`` limits the cloud plots to the first stations to review; 0 draws all.
+    """
+    if max_clouds < 0:
+        raise UsageError(f"the number of cloud plots cannot be negative ({max_clouds})",
+                         hint="give 0 for all, or a positive limit")
     progress = progress or NoProgress()
     review = review_list(data, result)
+    max_clouds = max_clouds or len(review)
     n_clouds = min(len(review), max_clouds)
     progress.start(3 + n_clouds, "figures", "report")
     pts = result.comparison.points
@@ -272,7 +280,8 @@ def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | 
 
     Fix clouds come from the solver (:func:`archive.solve.cloud.station_cloud`) unless
     ``read_cloud`` is given: a function (line, point, index) -> cloud table, for callers
-    that hold the clouds already (simulations, benchmarks). Refuses to overwrite an
+    that hold the clouds already (simulations, benchmarks). ``max_clouds`` limits the
+    cloud plots (0: one per station to review). Refuses to overwrite an
     existing file unless ``force``. The file is written whole to a temporary name and
     renamed, so a failure never leaves half a report.
     """

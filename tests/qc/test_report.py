@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 from datetime import UTC, datetime
 
@@ -139,3 +140,26 @@ def test_cli_report(qc_arc, runner, tmp_path, monkeypatch):
     assert "already exists" in again.stderr and "--force" in again.stderr
     forced = invoke(runner, qc_arc.root, "report", "--to", str(out), "--force")
     assert forced.exit_code == 0
+
+
+def test_cli_report_max_clouds(qc_arc, runner, tmp_path, monkeypatch):
+    monkeypatch.setattr("archive.qc.report.cloud_reader", lambda arc, run_id: _cloud_near)
+    one = tmp_path / "one.html"
+    res = invoke(runner, qc_arc.root, "report", "--tolerance", "1.5", "--max-clouds", "1",
+                 "--to", str(one), "--json")
+    assert res.exit_code == 0, res.output
+    d = json.loads(res.stdout)
+    assert d["n_review"] == 3 and d["n_clouds"] == 1
+    assert one.read_text(encoding="utf-8").count('data-figure="cloud"') == 1
+    every = tmp_path / "all.html"
+    res = invoke(runner, qc_arc.root, "report", "--tolerance", "1.5", "--max-clouds", "0",
+                 "--to", str(every), "--json")
+    assert res.exit_code == 0 and json.loads(res.stdout)["n_clouds"] == 3
+    bad = invoke(runner, qc_arc.root, "report", "--max-clouds", "-1", "--to", str(every))
+    assert bad.exit_code == 2 and "--max-clouds" in bad.output
+
+
+def test_render_report_max_clouds_zero_draws_all(rendered):
+    _page, counts, _calls, data, result = rendered
+    _, all_counts = render_report(data, result, lambda *a: None, max_clouds=0)
+    assert all_counts["n_clouds"] == counts["n_review"] > 3
