@@ -25,6 +25,7 @@ STATUS_REASON = {ST_CHECKSUM: "checksum", ST_TRUNCATED: "truncated", ST_MALFORME
                  ST_BINARY: "binary", ST_NODATE: "no-date", ST_RANGE: "out-of-range"}
 K_OTHER, K_GGA, K_RMC, K_GSA, K_ZDA = 0, 1, 2, 3, 4
 MAX_FIELDS = 40
+_POW10 = np.array([10.0 ** k for k in range(19)])  # exact: every 10^k, k <= 22, is a double
 
 
 @njit(cache=True, nogil=True)
@@ -100,7 +101,7 @@ def _num(buf, a, b):  # pragma: no cover - compiled
             return np.nan, 2
     if ndig == 0:
         return np.nan, 2
-    v = mant / 10.0 ** frac
+    v = mant / _POW10[frac]
     return (-v if neg else v), 0
 
 
@@ -252,6 +253,7 @@ def scan_buffer(buf, final):  # pragma: no cover - compiled
     date = np.full(cap, -1, np.int32)
     fs = np.empty(MAX_FIELDS + 1, np.int64)
     fe = np.empty(MAX_FIELDS + 1, np.int64)
+    cm = np.empty(MAX_FIELDS + 1, np.int64)
     nrec = 0
     pos = 0
     while pos < n:
@@ -261,6 +263,7 @@ def scan_buffer(buf, final):  # pragma: no cover - compiled
         x = 0
         binary = False
         body = False  # between the '$' and the '*'
+        nc = 0  # commas of the body, noted in cm
         c = 0
         while pos < n:
             c = buf[pos]
@@ -268,6 +271,7 @@ def scan_buffer(buf, final):  # pragma: no cover - compiled
                 d = pos
                 p = -1
                 x = 0
+                nc = 0
                 binary = False
                 body = True
             elif c < 32 or c > 126:
@@ -283,6 +287,10 @@ def scan_buffer(buf, final):  # pragma: no cover - compiled
                     c = buf[pos]
                     if c == 42 or c == 36 or c < 32 or c > 126:
                         break
+                    if c == 44:
+                        if nc <= MAX_FIELDS:
+                            cm[nc] = pos
+                        nc += 1
                     x ^= c
                     pos += 1
                 if pos < n and c == 42:
@@ -355,19 +363,11 @@ def scan_buffer(buf, final):  # pragma: no cover - compiled
             continue
         kind[i] = k
         # fields after the address
-        nf = 0
-        a = d + 7
-        for j in range(d + 7, body_end):
-            if buf[j] == 44:
-                if nf < MAX_FIELDS:
-                    fs[nf] = a
-                    fe[nf] = j
-                nf += 1
-                a = j + 1
-        if nf < MAX_FIELDS:
-            fs[nf] = a
-            fe[nf] = body_end
-        nf += 1
+        # (the walk noted the commas of the body; the first one ends the address)
+        nf = nc
+        for j in range(min(nf, MAX_FIELDS)):
+            fs[j] = cm[j] + 1
+            fe[j] = cm[j + 1] if j + 1 < nf else body_end
         need = 14 if k == K_GGA else (11 if k == K_RMC else (17 if k == K_GSA else 4))
         if nf < need:
             status[i] = ST_TRUNCATED
