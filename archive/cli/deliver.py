@@ -49,4 +49,6 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
     if flags:
         text += "\n  delivered with unacknowledged flags: " + ", ".join(
             f"{k} ({v})" for k, v in flags.items())
+    for w in res.warnings:
+        text += f"\n  warning: {w}"
     emit(state, d, text)

@@ -28,7 +28,7 @@ from sqlalchemy import func, select
 
 from archive import __version__
 from archive.deliver.context import CAUTION, DeliveryContext, station_label
-from archive.deliver.edits import edit_dict, edit_set
+from archive.deliver.edits import delivery_edit_set, edit_dict
 from archive.deliver.final import final_positions, unacknowledged_flags
 from archive.deliver.formats import writer
 from archive.deliver.runs import get_run, manifest_inputs, run_manifest
@@ -59,6 +59,7 @@ class DeliveryResult:
     recipient: str = ""
     unacknowledged_flags: dict[str, int] = field(default_factory=dict)
     allowed_flags: bool = False
+    warnings: list[str] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain data for printing."""
@@ -125,6 +126,10 @@ def _temp_beside(target: Path, data: bytes) -> Path:
     return Path(tmp)
 
 
+def _station(e: Any) -> str:
+    return f"station {e.line:g}/{e.point:g} index {e.point_index}"
+
+
 def check_target(path: Path, force: bool) -> None:
     """Refuse a delivery path that cannot be written: a folder, an existing file without
     ``force``, a missing or unwritable parent folder. Called before anything is stored."""
@@ -182,7 +187,10 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     check_target(lineage_path, force)
 
     run = get_run(arc, survey_id, run_ref)
-    edits, edit_hash = edit_set(arc, survey_id)
+    manifest = run_manifest(arc, run)
+    edits, edit_hash, unapplied = delivery_edit_set(arc, survey_id, manifest)
+    warnings = [f"exclude-span edit {e.id} ({_station(e)}) is in force but run {run.id[:12]} "
+                "did not apply it: solve again to apply it" for e in unapplied]
     final = final_positions(arc, survey_id, run, edits=edits)
     if final.num_rows == 0:
         raise Refused(f"run {run.id[:12]} with the edits in force leaves no station to deliver",
@@ -195,7 +203,6 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     with arc.session() as s:
         survey = s.get(Survey, survey_id)
     produced = utcnow()
-    manifest = run_manifest(arc, run)
     heights_datum = _heights_datum(arc, survey, manifest)
     ctx = DeliveryContext(
         survey=survey.name, crs_epsg=survey.crs_epsg, client=survey.client,
@@ -233,6 +240,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                         "created_by": run.created_by, "manifest": manifest},
                 "edit_set_hash": edit_hash,
                 "edits": [edit_dict(e) | {"digest": row_digest(e)} for e in edits],
+                "edits_not_applied": [e.id for e in unapplied],
                 "inputs": inputs,
                 "raw_files": raw_files_of(arc, survey_id, inputs.get("fixes", [])),
                 "final_positions": {"hash": final_hash, "digest": table_digest(final),
@@ -272,7 +280,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         delivery_id=next_id, path=str(target), lineage_path=str(lineage_path), format=fmt,
         file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash, run_id=run.id,
         n_stations=final.num_rows, edit_ids=[e.id for e in edits], edit_set_hash=edit_hash,
-        recipient=recipient, unacknowledged_flags=flags, allowed_flags=bool(allow_flags))
+        recipient=recipient, unacknowledged_flags=flags, allowed_flags=bool(allow_flags),
+        warnings=warnings)
 
 
 def delivery_dict(d: Delivery) -> dict[str, Any]:

@@ -287,3 +287,26 @@ def edit_set(arc: Archive, survey_id: int, *, as_of: datetime | None = None,
         live = edits_in_force(s, survey_id, as_of=as_of)
     return live, canonical_hash([[e.id, row_digest(e)] for e in live])
 
+
+
+# Edits the final positions apply; exclude spans act at the solve and come from the run.
+FINAL_KINDS = ("set-position", "set-height", "reject-station", "ack-flag")
+
+
+def delivery_edit_set(arc: Archive, survey_id: int, manifest: dict[str, Any], *,
+                      as_of: datetime | None = None) -> tuple[list[Edit], str, list[Edit]]:
+    """The edits a delivery of a run rests on, their set hash, and exclude spans it lacks.
+
+    The set is the final-position edits in force plus the exclude-span edits the run's
+    manifest applied (whatever became of them since). The third item lists exclude-span
+    edits in force that the run did not apply: the run must be solved again to apply them.
+    """
+    applied_ids = {int(e["id"]) for e in manifest.get("edits") or []
+                   if e.get("kind", "exclude-span") == "exclude-span"}
+    with arc.session() as s:
+        live = edits_in_force(s, survey_id, as_of=as_of)
+        applied = [s.get(Edit, i) for i in sorted(applied_ids)]
+    final = [e for e in live if e.kind in FINAL_KINDS]
+    missing = [e for e in live if e.kind == "exclude-span" and e.id not in applied_ids]
+    edits = sorted(final + [e for e in applied if e is not None], key=lambda e: e.id)
+    return edits, canonical_hash([[e.id, row_digest(e)] for e in edits]), missing

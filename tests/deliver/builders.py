@@ -97,7 +97,8 @@ def positions_table(final: pa.Table, flags: list[str] | None = None,
 
 
 def make_run(arc: Archive, positions: pa.Table, fixes: list[str], *, label: str = "",
-             params: dict | None = None, input_versions: dict | None = None) -> Run:
+             params: dict | None = None, input_versions: dict | None = None,
+             edits: list | None = None) -> Run:
     """Store a run the way runs are stored (objects, then one ledgered transaction)."""
     sid = survey_id(arc)
     manifest = {"inputs": {"fixes": sorted(fixes), "stations": None, "deployments": None,
@@ -106,6 +107,8 @@ def make_run(arc: Archive, positions: pa.Table, fixes: list[str], *, label: str 
                 "code_version": "0.1.0", "survey": sid}
     if input_versions is not None:
         manifest["input_versions"] = input_versions
+    if edits is not None:
+        manifest["edits"] = edits
     mh, ms = arc.objects.put_bytes(canonical_json(manifest))
     ph, ps = arc.objects.put_table(positions)
     flagged = sum(1 for f in positions.column("flags").to_pylist() if f)

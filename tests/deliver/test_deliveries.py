@@ -15,7 +15,7 @@ from archive.errors import Refused, StorageError, UsageError
 from archive.store.hashing import sha256_file
 from archive.store.models import Delivery, LedgerEvent
 from archive.store.verify import verify_archive
-from tests.deliver.builders import delivery_archive
+from tests.deliver.builders import delivery_archive, make_run, positions_table
 from tests.deliver.helpers import read_sps_r
 
 FLAGS = ["", "far-from-plan;moved", "", "", "", "unoccupied", "", ""]
@@ -177,3 +177,24 @@ def test_rename_failing_after_commit_is_ledgered_and_raised(flagged, tmp_path, m
         ev = s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq.desc())).first()
     assert ev.action == "deliver.failed" and json.loads(ev.payload)["delivery"] == 1
     assert verify_archive(arc).ok
+
+
+def test_edits_in_force_are_those_the_delivery_rests_on(flagged, tmp_path):
+    arc, sid, final, _run, _ = flagged
+    ex = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-11T00:00:00Z",
+                         end="2024-03-11T02:00:00Z", reason="carried by the crew")
+    rej = ed.reject_station(arc, sid, 1001, 2003, reason="node in a trough")
+    res = deliver(arc, sid, None, "csv", tmp_path / "a.csv", "processing", allow_flags=True)
+    # the run was solved before the exclude span: not in its edit set, and said so
+    assert res.edit_ids == [rej.id]
+    assert len(res.warnings) == 1 and f"edit {ex.id}" in res.warnings[0]
+    assert "solve again" in res.warnings[0]
+    lineage = json.loads((tmp_path / "a.csv.lineage.json").read_text())
+    assert [e["id"] for e in lineage["edits"]] == [rej.id]
+    assert lineage["edits_not_applied"] == [ex.id]
+    # a run whose manifest applied the span: the span is in the set, no warning
+    applied = [{"id": ex.id, "kind": "exclude-span", "payload": json.loads(ex.payload)}]
+    run2 = make_run(arc, positions_table(final), [], label="after exclude", edits=applied)
+    res2 = deliver(arc, sid, run2.id, "csv", tmp_path / "b.csv", "processing",
+                   allow_flags=True)
+    assert res2.edit_ids == [ex.id, rej.id] and res2.warnings == []
