@@ -109,3 +109,25 @@ def test_text_summary_names_paths_numbers_and_cautions(demo: dict[str, Any]) -> 
     assert f"{demo['truth']['median']:.2f} m" in text
     assert "review flags allowed" in text
     assert "Not a certified or legal survey" in text
+    assert "Total run time:" in text
+
+
+def test_failed_demo_exits_3(demo: dict[str, Any], monkeypatch: pytest.MonkeyPatch,
+                             tmp_path: Path) -> None:
+    from types import SimpleNamespace
+
+    from archive.cli.demo import failure_line
+
+    assert failure_line(demo) is None
+    # the same run as if verify had failed and the moved node had gone unflagged
+    bad = json.loads(json.dumps(demo))
+    bad["verify_ok"], bad["verify_problems"] = False, ["dangling: 1 object"]
+    moved = next(p for p in bad["problems"] if p["kind"] == "moved")
+    moved["flagged"] = False
+    monkeypatch.setattr("archive.demo.run_demo",
+                        lambda *a, **k: SimpleNamespace(as_dict=lambda: bad))
+    res = CliRunner().invoke(cli, ["demo", str(tmp_path / "x"), "--size", "small"])
+    assert res.exit_code == 3
+    assert "MISSED" in res.stdout and "PROBLEMS: dangling: 1 object" in res.stdout
+    assert "demo FAILED: archive verify found 1 problem(s); 1 planted problem(s) not " \
+           f"flagged: moved {moved['line']:.0f}/{moved['point']:.0f}" in res.stderr

@@ -48,12 +48,24 @@ def summary_text(d: dict) -> str:
         "",
         "Delivered with review flags allowed (demo only: a real delivery waits until each "
         "flag is acknowledged or fixed).",
-        f"Archive verify: {'ok' if d['verify_ok'] else 'PROBLEMS: ' + '; '.join(d['verify_problems'])}"
-        f"   ({d['seconds'].get('total', 0):.0f} s)",
+        f"Archive verify: {'ok' if d['verify_ok'] else 'PROBLEMS: ' + '; '.join(d['verify_problems'])}",
+        f"Total run time: {d['seconds'].get('total', 0):.0f} s",
         "Not a certified or legal survey; safety setbacks follow local regulations and a "
         "licensed surveyor.",
     ]
     return "\n".join(lines)
+
+
+def failure_line(d: dict) -> str | None:
+    """Why a demo run failed (verify problems, planted problems not flagged), or None."""
+    missed = [p for p in d["problems"] if not p["flagged"]]
+    why = []
+    if not d["verify_ok"]:
+        why.append(f"archive verify found {len(d['verify_problems'])} problem(s)")
+    if missed:
+        why.append(f"{len(missed)} planted problem(s) not flagged: "
+                   + ", ".join(f"{p['kind']} {p['line']:.0f}/{p['point']:.0f}" for p in missed))
+    return "demo FAILED: " + "; ".join(why) if why else None
 
 
 @click.command()
@@ -70,7 +82,7 @@ def demo(state: CliState, directory: str, seed: int, size: str) -> None:
     Generates the Kestrel Flats 3D scenario, archives and solves it, writes the QC
     report, delivers SPS and SEG-P1 files, verifies the archive and prints how close the
     positions are to the check points and to the truth, and which planted problems were
-    flagged.
+    flagged. Exits 3 when verify fails or a planted problem is not flagged.
     """
     from archive.demo import run_demo
 
@@ -81,3 +93,7 @@ def demo(state: CliState, directory: str, seed: int, size: str) -> None:
         bar.close()
     data = result.as_dict()
     emit(state, data, lambda: summary_text(data))
+    failed = failure_line(data)
+    if failed:
+        click.echo(f"error: {failed}", err=True)
+        raise click.exceptions.Exit(3)
