@@ -247,6 +247,9 @@ def undo(arc: Archive, survey_id: int, edit_id: int, *, reason: str) -> Edit:
             raise UsageError(f"edit {edit_id} is itself an undo; an undo cannot be undone",
                              hint=f"make a new edit of the kind edit {target.supersedes} was")
         later = s.scalars(select(Edit).where(Edit.supersedes == target.id)).first()
+        if later is not None and later.kind == "undo":
+            raise UsageError(f"edit {edit_id} was already undone by edit {later.id}",
+                             hint=f"make a new {target.kind} edit to restore it")
         if later is not None:
             raise UsageError(f"edit {edit_id} is no longer in force: edit {later.id} "
                              f"({later.kind}) superseded it", hint="undo that edit instead")

@@ -121,3 +121,12 @@ def test_exclude_spans_accumulate(setup):
     assert {e["id"] for e in ed.list_edits(arc, sid)} == {a.id, b.id}
     with arc.session() as s:
         assert s.get(Edit, a.id).payload.startswith('{"end":"2024-03-11T02:00:00+00:00"')
+
+
+def test_undo_of_an_undone_edit_says_what_to_do(setup):
+    arc, sid, _final, _run = setup
+    rej = ed.reject_station(arc, sid, 1001, 2001, reason="node in a puddle")
+    u = ed.undo(arc, sid, rej.id, reason="puddle dried")
+    with pytest.raises(UsageError, match=f"edit {rej.id} was already undone by edit {u.id}") as e:
+        ed.undo(arc, sid, rej.id, reason="again")
+    assert "new reject-station edit" in e.value.hint and "undo that" not in e.value.hint
