@@ -197,6 +197,10 @@ def where(state: CliState, line: float, point: float, index: int, as_of: str | N
         return (f"station {line:g}/{point:g}{when}: E {_f(d['easting'])} N {_f(d['northing'])} "
                 f"H {_f(d['height'])} (source {d['source']}) in delivery {d['id']} "
                 f"({d['format']}, {d['file_name']}, to {d['recipient']}, "
-                f"{_when(d['created_at'])}, sha256 {d['file_hash'][:16]}…)")
+                f"{_when(d['created_at'])}, sha256 {d['file_hash'][:16]}…)"
+                + "".join(f"\n  earlier: delivery {e['id']} ({e['format']}, {e['file_name']}, "
+                          f"{_when(e['created_at'])}): E {_f(e['easting'])} "
+                          f"N {_f(e['northing'])} H {_f(e['height'])}"
+                          for e in reversed(w["history"][:-1])))
 
     emit(state, w, text)

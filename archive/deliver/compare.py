@@ -106,11 +106,12 @@ def reproduce(arc: Archive, run_ref: str, survey_id: int | None = None) -> dict[
 
 
 def parse_as_of(value: str | date | datetime | None) -> datetime | None:
-    """A cut-off time: a date means the end of that day (UTC); times need a zone or are UTC."""
+    """A cut-off time in UTC: a date means the end of that day (UTC); a time with an offset
+    is converted to UTC, one without is taken as UTC."""
     if value is None or isinstance(value, datetime):
         if isinstance(value, datetime) and value.tzinfo is None:
             raise UsageError("as-of time has no time zone", hint="add Z for UTC")
-        return value
+        return value.astimezone(UTC) if value is not None else None
     if isinstance(value, date):
         return datetime.combine(value, time.max, tzinfo=UTC)
     text = str(value).strip()
@@ -121,13 +122,20 @@ def parse_as_of(value: str | date | datetime | None) -> datetime | None:
     except ValueError:
         raise UsageError(f"--as-of {text!r} is not an ISO 8601 date or time",
                          hint="write 2025-06-30 or 2025-06-30T12:00:00Z") from None
-    return dt if dt.tzinfo else dt.replace(tzinfo=UTC)
+    return dt.astimezone(UTC) if dt.tzinfo else dt.replace(tzinfo=UTC)
 
 
 def where(arc: Archive, survey_id: int, line: float, point: float, index: int = 1,
           as_of: str | date | datetime | None = None) -> dict[str, Any]:
-    """The coordinate of a station delivered most recently as of ``as_of`` (default: now)."""
+    """The coordinate of a station delivered most recently as of ``as_of`` (default: now).
+
+    ``as_of`` is converted to UTC. A station not in the current stations input is refused
+    (:class:`UsageError`).
+    """
+    from archive.deliver.edits import station_row
+
     cutoff = parse_as_of(as_of)
+    station_row(arc, survey_id, line, point, index)
     with arc.session() as s:
         q = select(Delivery).where(Delivery.survey_id == survey_id).order_by(Delivery.id)
         if cutoff is not None:

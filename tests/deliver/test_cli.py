@@ -75,6 +75,12 @@ def test_deliver_command_refusals_then_success(runner, arc_dir, tmp_path):
     assert r.exit_code == 0 and "in delivery 1 (segp1, kestrel.p1" in r.output
     r = invoke(runner, arc_dir, "where", "1001", "2002", "--as-of", "2001-01-01", "--json")
     assert json.loads(r.output)["delivered"] is None
+    r = invoke(runner, arc_dir, "deliver", "--format", "csv", "--to", str(out) + ".csv",
+               "--recipient", "Harrow Basin Energy")
+    r = invoke(runner, arc_dir, "where", "1001", "2002")
+    assert "in delivery 2 (csv" in r.output and "earlier: delivery 1 (segp1" in r.output
+    r = invoke(runner, arc_dir, "where", "1009", "2002")
+    assert r.exit_code != 0 and "unknown station 1009/2002" in r.stderr
 
 
 def test_diff_command(runner, arc_dir):

@@ -3,7 +3,7 @@ solve: test_solver_runs.py)."""
 
 from __future__ import annotations
 
-from datetime import timedelta
+from datetime import timedelta, timezone
 
 import numpy as np
 import pyarrow as pa
@@ -99,3 +99,17 @@ def test_parse_as_of():
     assert parse_as_of("2025-06-30T12:00:00Z").isoformat() == "2025-06-30T12:00:00+00:00"
     with pytest.raises(UsageError, match="not an ISO 8601"):
         parse_as_of("30/06/2025")
+
+
+def test_as_of_offsets_are_converted_to_utc():
+    # ISO 8601 offsets: 14:00+02:00 is 12:00 UTC (Python datetime reference arithmetic)
+    got = parse_as_of("2025-06-30T14:00:00+02:00")
+    assert got.utcoffset() == timedelta(0) and got.isoformat() == "2025-06-30T12:00:00+00:00"
+    assert parse_as_of(got.astimezone(timezone(timedelta(hours=-5)))) == got
+    assert parse_as_of(got.astimezone(timezone(timedelta(hours=-5)))).utcoffset() == timedelta(0)
+
+
+def test_where_refuses_an_unknown_station(delivered):
+    arc, sid, *_ = delivered
+    with pytest.raises(UsageError, match=r"unknown station 1009/2001.*not in the preplot"):
+        where(arc, sid, 1009, 2001)
