@@ -202,9 +202,48 @@ def set_height(arc: Archive, survey_id: int, line: float, point: float, index: i
     return _create(arc, survey_id, "set-height", line, point, index, payload, reason)
 
 
+def _window_text(node: str, deployed: datetime, retrieved: datetime | None) -> str:
+    end = retrieved.isoformat() if retrieved is not None else "still deployed"
+    return f"{node} {deployed.isoformat()} to {end}"
+
+
+def _check_span_deployed(arc: Archive, survey_id: int, line: float, point: float, index: int,
+                         node: str, t0: datetime, t1: datetime) -> None:
+    """UsageError unless ``node`` was deployed at the station at some time in [t0, t1)."""
+    from archive.survey.inputs import current_input
+
+    where = _station_text(line, point, index)
+    found = current_input(arc, survey_id, "deployments")
+    if found is None or found[1] is None:
+        raise UsageError(f"the survey has no deployment log, so no node is known at station "
+                         f"{where} and the span could not take effect",
+                         hint="load it with 'nodekeep load deployments FILE'")
+    version, table = found
+    rows = _match(table, line, point, index).to_pylist()
+    if not rows:
+        raise UsageError(f"no node was deployed at station {where} (deployments version "
+                         f"{version.version}), so the span would leave out nothing",
+                         hint="check the line and point numbers (and --index)")
+    windows = "; ".join(_window_text(r["node"], r["deployed"], r["retrieved"]) for r in rows)
+    mine = [r for r in rows if r["node"] == node]
+    if not mine:
+        raise UsageError(f"node {node} was never deployed at station {where}; deployed there: "
+                         f"{windows}", hint="give one of those nodes with --node")
+    if not any((r["retrieved"] is None or t0 < r["retrieved"]) and t1 > r["deployed"]
+               for r in mine):
+        raise UsageError(f"the span {t0.isoformat()} to {t1.isoformat()} overlaps no "
+                         f"deployment of node {node} at station {where}; deployed there: "
+                         f"{windows}", hint="give --start/--end inside one of those windows")
+
+
 def exclude_span(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
                  node: str, start: str | datetime, end: str | datetime, reason: str) -> Edit:
-    """Leave a node's fixes between ``start`` and ``end`` (UTC) out of the next solve."""
+    """Leave a node's fixes between ``start`` and ``end`` (UTC) out of the next solve.
+
+    Refused (UsageError naming the nodes deployed there and their windows) when ``node`` was
+    never deployed at the station in the current deployment log, or when the span overlaps
+    none of its deployment windows there: such a span could have no effect.
+    """
     reason = _require_reason(reason)
     station_row(arc, survey_id, line, point, index)
     node = (node or "").strip()
@@ -213,6 +252,7 @@ def exclude_span(arc: Archive, survey_id: int, line: float, point: float, index:
     t0, t1 = _utc(start, "start"), _utc(end, "end")
     if t1 <= t0:
         raise UsageError(f"the span ends ({t1.isoformat()}) before it starts ({t0.isoformat()})")
+    _check_span_deployed(arc, survey_id, line, point, index, node, t0, t1)
     payload = {"node": node, "start": t0.isoformat(), "end": t1.isoformat()}
     return _create(arc, survey_id, "exclude-span", line, point, index, payload, reason)
 
@@ -225,13 +265,44 @@ def reject_station(arc: Archive, survey_id: int, line: float, point: float, inde
     return _create(arc, survey_id, "reject-station", line, point, index, {}, reason)
 
 
+def _station_flags(arc: Archive, survey_id: int, line: float, point: float,
+                   index: int) -> tuple[str, list[str]]:
+    """The newest run's id and the flags of the station's delivered row in it."""
+    from archive.solve.run import get_run, run_positions
+
+    where = _station_text(line, point, index)
+    try:
+        run = get_run(arc, survey_id)
+    except UsageError:
+        raise UsageError(f"the survey has no solution run yet, so station {where} carries no "
+                         "flag to acknowledge", hint="solve first with 'nodekeep solve'") from None
+    table = _match(run_positions(arc, run), line, point, index)
+    table = table.filter(pc.fill_null(table["delivered"], False))
+    if table.num_rows == 0:
+        raise UsageError(f"station {where} has no delivered position in the newest run "
+                         f"{run.id[:12]}, so it carries no flag to acknowledge",
+                         hint="check the line and point numbers (and --index)")
+    flags = [f for f in (table["flags"][0].as_py() or "").split(";") if f]
+    return run.id, flags
+
+
 def ack_flag(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
              flag: str, reason: str) -> Edit:
-    """Acknowledge a review flag of a station (it no longer blocks a delivery)."""
+    """Acknowledge a review flag of a station (it no longer blocks a delivery).
+
+    Refused (UsageError) when there is no run yet, or when the station's delivered row in
+    the newest run does not carry ``flag`` (the message names the flags it does carry).
+    """
     reason = _require_reason(reason)
     if flag not in FLAGS:
         raise UsageError(f"unknown flag {flag!r}", hint=f"flags are: {', '.join(FLAGS)}")
     station_row(arc, survey_id, line, point, index)
+    run_id, carried = _station_flags(arc, survey_id, line, point, index)
+    if flag not in carried:
+        has = ", ".join(carried) if carried else "no flags"
+        raise UsageError(f"station {_station_text(line, point, index)} does not carry flag "
+                         f"{flag!r} in the newest run {run_id[:12]}; it carries: {has}",
+                         hint="acknowledge one of the flags it carries, or solve again first")
     return _create(arc, survey_id, "ack-flag", line, point, index, {"flag": flag}, reason)
 
 

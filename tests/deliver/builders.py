@@ -28,7 +28,7 @@ def survey_id(arc: Archive) -> int:
 
 
 def load_stations(arc: Archive, tmp: Path, table: pa.Table) -> None:
-    """Load the preplot (and check points at the first two stations) through the loader."""
+    """Load the preplot, check points at the first two stations and the deployment log."""
     sid = survey_id(arc)
     d = table.to_pydict()
     lines = ["line,point,easting,northing,elevation"]
@@ -43,6 +43,13 @@ def load_stations(arc: Archive, tmp: Path, table: pa.Table) -> None:
              for i in range(2)]
     (tmp / "control.csv").write_text("\n".join(ctrl) + "\n")
     load_input(arc, sid, "control", tmp / "control.csv")
+    # node N5000+i at the i-th station, 2024-03-10 to 2024-03-14 (the last still deployed)
+    dep = ["node,line,point,deployed_utc,retrieved_utc"]
+    dep += [f"{d['node'][i]},{d['line'][i]:.0f},{d['point'][i]:.0f},2024-03-10T00:00:00Z,"
+            + ("2024-03-14T12:00:00Z" if i < table.num_rows - 1 else "")
+            for i in range(table.num_rows)]
+    (tmp / "deployments.csv").write_text("\n".join(dep) + "\n")
+    load_input(arc, sid, "deployments", tmp / "deployments.csv")
 
 
 def add_raw_file(arc: Archive, sid: int, node: str, name: str, lat: float, lon: float) -> str:

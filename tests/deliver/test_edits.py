@@ -130,3 +130,47 @@ def test_undo_of_an_undone_edit_says_what_to_do(setup):
     with pytest.raises(UsageError, match=f"edit {rej.id} was already undone by edit {u.id}") as e:
         ed.undo(arc, sid, rej.id, reason="again")
     assert "new reject-station edit" in e.value.hint and "undo that" not in e.value.hint
+
+
+def test_ack_of_a_flag_the_station_does_not_carry_is_refused(setup):
+    arc, sid, _final, _run = setup
+    # 1001/2002 carries far-from-plan;moved in the newest run (fixture), 1001/2001 none
+    with pytest.raises(UsageError, match=r"1001/2002 does not carry flag 'short-span'.*"
+                                         r"carries: far-from-plan, moved"):
+        ed.ack_flag(arc, sid, 1001, 2002, flag="short-span", reason="x")
+    with pytest.raises(UsageError, match=r"1001/2001 does not carry flag 'moved'.*no flags"):
+        ed.ack_flag(arc, sid, 1001, 2001, flag="moved", reason="x")
+    assert ed.list_edits(arc, sid) == []
+    assert ed.ack_flag(arc, sid, 1001, 2002, flag="moved", reason="cow").kind == "ack-flag"
+
+
+def test_ack_before_any_run_says_solve_first(survey_arc, tmp_path):
+    from tests.deliver.builders import load_stations, survey_id
+    from tests.deliver.helpers import final_table
+
+    load_stations(survey_arc, tmp_path, final_table(4))
+    with pytest.raises(UsageError, match="no solution run yet") as e:
+        ed.ack_flag(survey_arc, survey_id(survey_arc), 1001, 2001, flag="moved", reason="x")
+    assert "solve first" in e.value.hint
+
+
+def test_exclude_that_could_have_no_effect_is_refused(setup):
+    arc, sid, _final, _run = setup
+    # deployments (builders.load_stations): N5000 at 1001/2001 from 2024-03-10 to 03-14 12:00
+    with pytest.raises(UsageError, match=r"node N5003 was never deployed at station 1001/2001; "
+                                         r"deployed there: N5000 2024-03-10T00:00:00\+00:00 to "
+                                         r"2024-03-14T12:00:00\+00:00"):
+        ed.exclude_span(arc, sid, 1001, 2001, node="N5003", start="2024-03-11T00:00:00Z",
+                        end="2024-03-11T02:00:00Z", reason="wrong node")
+    with pytest.raises(UsageError, match=r"overlaps no deployment of node N5000 at station "
+                                         r"1001/2001; deployed there: N5000 2024-03-10"):
+        ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-14T12:00:00Z",
+                        end="2024-03-15T00:00:00Z", reason="after retrieval")
+    assert ed.list_edits(arc, sid) == []
+    # touching the window by one microsecond is an overlap (half-open [deployed, retrieved))
+    ok = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-09T00:00:00Z",
+                         end="2024-03-10T00:00:00.000001Z", reason="carried at deployment")
+    assert ok.kind == "exclude-span"
+    # the last node is still deployed: any span after its deployment overlaps
+    assert ed.exclude_span(arc, sid, 1002, 2004, node="N5007", start="2025-01-01T00:00:00Z",
+                           end="2025-01-02T00:00:00Z", reason="late").kind == "exclude-span"
