@@ -127,9 +127,11 @@ def reproduce(state: CliState, run_ref: str, survey_name: str | None) -> None:
                                           else "NOT identical")]
     if not r["identical"]:
         w = r.get("worst_station")
-        lines.append(f"  largest coordinate difference {r['max_difference']:.6g} m"
+        lines.append(f"  {r['what_differs']}")
+        lines.append(f"  {r['n_differing']} row(s) differ; largest horizontal difference "
+                     f"{r['max_difference']:.6g} m"
                      + (f" at {w['line']:g}/{w['point']:g}" if w else "")
-                     + f"; {r['n_differing']} station(s) differ")
+                     + f", largest vertical difference {r['max_vertical']:.6g} m")
     if r["code_version_differs"]:
         lines.append(f"  note: the run was made by nodekeep {r['run_code_version']}, this is "
                      f"{r['current_code_version']}")
