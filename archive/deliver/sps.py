@@ -30,6 +30,7 @@ from archive.deliver.context import (
 )
 from archive.deliver.headers import header_lines
 from archive.errors import Refused
+from archive.survey.crs import survey_crs
 
 FORMAT = "SPS rev 2.1"
 SUGGEST = "CSV (--format csv)"
@@ -75,7 +76,7 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
          f"{crs.method} (EPSG method {crs.method_code})" if crs.method_code else crs.method),
         ("H19", "Projection zone", crs.name),
         ("H20", "Description of grid units", crs.unit),
-        ("H201", "Factor to metre", "1.0" if crs.unit == "metre" else "see H13"),
+        ("H201", "Factor to metre", repr(survey_crs(ctx.crs_epsg).unit_factor)),
         ("H21", "Standard parallel(s)", ", ".join(parallels) or f"none (origin lat {lat0})"),
         ("H22", "Central meridian", lon0),
         ("H231", "Grid origin", f"lat {lat0}, lon {lon0}"),

@@ -85,3 +85,17 @@ def test_wrap_keeps_every_character_and_refuses_overflow():
     assert _squash("".join(pieces)) == _squash(words)
     with pytest.raises(Refused):
         header_record("H26", "d", "y" * 49)
+
+
+@pytest.mark.parametrize(("epsg", "factor"), [
+    # US survey foot = 1200/3937 m exactly (US Federal Register 24 FR 5348, 1959; NIST SP 811)
+    (6473, 1200 / 3937), (2276, 1200 / 3937),
+    # metre grid (EPSG:32614 WGS 84 / UTM zone 14N)
+    (32614, 1.0),
+])
+def test_sps_factor_to_metre_is_the_grid_unit_factor(epsg, factor):
+    text = write_sps(_table(epsg), context(crs_epsg=epsg)).decode("ascii")
+    [rec] = [r for r in text.splitlines() if r.startswith("H201")]
+    # SPS rev 2.1 header record: description in columns 5-32, value from column 33
+    assert rec[4:32].strip() == "Factor to metre"
+    assert float(rec[32:].strip()) == pytest.approx(factor, rel=1e-15)
