@@ -59,8 +59,11 @@ def _station_text(t: dict[str, Any]) -> str:
                    f"{_when(s['t_start'])} to {_when(s['t_end'])}, flags {s['flags'] or 'none'}"
                    + (" (delivered part)" if s["delivered"] else ""))
     fx = t["fixes"]
-    out.append("fixes in the station's windows: "
+    out.append("fixes in the station's windows, all parts: "
                + (", ".join(f"{k} {v}" for k, v in fx.items()) or "none"))
+    out += [f"  part {p['part']} node {p['node']}: used {p['used']}, rejected "
+            f"{p['rejected']}, screened {p['screened']}"
+            + (" (delivered part)" if p["delivered"] else "") for p in t["fixes_by_part"]]
     out.append(f"raw files ({len(t['raw_files'])}):")
     out += _raw_text(t["raw_files"])
     out.append(f"edits ({len(t['edits'])}):")

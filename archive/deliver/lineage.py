@@ -3,7 +3,9 @@
 ``trace_station`` answers "where was this station, what was it derived from, who changed it
 and why": every delivery that carried it, the run behind the latest one (parameters, code
 version, input tables), the raw files whose fixes were in its cloud (name, hash, when and by
-whom received), how many fixes were used and rejected, and every edit of the station.
+whom received), how many fixes were used, rejected and screened (over all parts of the
+station's windows, and per part with the delivered part marked: a moved node has a part
+before and one after the move) and every edit of the station.
 ``trace_file`` starts from a file on disk: its SHA-256 finds the delivery that wrote it.
 Both are read-only views.
 """
@@ -68,14 +70,37 @@ def run_summary(arc: Archive, run: Run) -> dict[str, Any]:
             "n_fix_tables": len(manifest_inputs(manifest).get("fixes", []))}
 
 
-def _cloud_fixes(arc: Archive, survey_id: int, run: Run, row: dict[str, Any]) -> dict[str, Any]:
-    """Raw files and used/rejected/screened counts of the station's fix cloud in the run."""
+STATUSES = ("used", "rejected", "screened")
+
+
+def _counts_by_part(cloud: pa.Table, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Used/rejected/screened fixes per (node, part) of the station, delivered part marked.
+
+    Parts are those of the run's position rows (0 a whole window, 1 and 2 before and after
+    a move) plus any the cloud holds; a part with no fix in the cloud counts zeros.
+    """
+    grouped = cloud.group_by(["node", "part", "status"]).aggregate([("time", "count")])
+    counts: dict[tuple[str, int], dict[str, int]] = {}
+    for node, part, status, n in zip(*(grouped[c].to_pylist() for c in
+                                       ("node", "part", "status", "time_count")), strict=True):
+        counts.setdefault((node, int(part)), {})[status] = int(n)
+    delivered = {(r["node"], int(r["part"])) for r in rows if r["delivered"]}
+    keys = sorted({(r["node"], int(r["part"])) for r in rows} | set(counts))
+    return [{"node": node, "part": part, "delivered": (node, part) in delivered}
+            | {k: counts.get((node, part), {}).get(k, 0) for k in STATUSES}
+            for node, part in keys]
+
+
+def _cloud_fixes(arc: Archive, survey_id: int, run: Run,
+                 solution: list[dict[str, Any]]) -> dict[str, Any]:
+    """Raw files and used/rejected/screened counts of the station's fix cloud in the run:
+    in total over every part, and per part with the delivered one marked."""
     from archive.solve.cloud import station_cloud
 
+    row = solution[0]
     cloud = station_cloud(arc, run.id, row["line"], row["point"], row["index"])
     status = cloud.column("status")
-    counts = {k: int(pc.sum(pc.equal(status, k)).as_py() or 0)
-              for k in ("used", "rejected", "screened")}
+    counts = {k: int(pc.sum(pc.equal(status, k)).as_py() or 0) for k in STATUSES}
     raw_hashes = pc.unique(cloud.column("raw_hash")).to_pylist()
     with arc.session() as s:
         rows = s.scalars(select(RawFile).where(RawFile.survey_id == survey_id,
@@ -83,7 +108,7 @@ def _cloud_fixes(arc: Archive, survey_id: int, run: Run, row: dict[str, Any]) ->
                          .order_by(RawFile.id)).all()
     raw = [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
             "received_at": r.received_at, "received_by": r.received_by} for r in rows]
-    return {"fixes": counts, "raw_files": raw}
+    return {"fixes": counts, "fixes_by_part": _counts_by_part(cloud, solution), "raw_files": raw}
 
 
 def trace_station(arc: Archive, survey_id: int, line: float, point: float,
@@ -105,8 +130,8 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     if not rows and not carried and not edits:
         raise UsageError(f"station {line:g}/{point:g} index {index} is in no run, delivery or "
                          "edit of this survey", hint="check the line and point numbers")
-    fixes = _cloud_fixes(arc, survey_id, run, rows[0]) if rows else {"fixes": {},
-                                                                      "raw_files": []}
+    fixes = (_cloud_fixes(arc, survey_id, run, rows) if rows
+             else {"fixes": {}, "fixes_by_part": [], "raw_files": []})
     return plain({
         "station": {"line": float(line), "point": float(point), "index": int(index)},
         "delivery": carried[-1] if carried else None,
@@ -116,7 +141,8 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
                                      "node": r["node"], "flags": r["flags"],
                                      "t_start": r["t_start"], "t_end": r["t_end"]}
                      for r in rows],
-        "fixes": fixes["fixes"], "raw_files": fixes["raw_files"],
+        "fixes": fixes["fixes"], "fixes_by_part": fixes["fixes_by_part"],
+        "raw_files": fixes["raw_files"],
         "edits": edits,
     })
 

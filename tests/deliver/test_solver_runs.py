@@ -100,6 +100,37 @@ def test_trace_station_counts_fixes_from_its_cloud(solved):
     assert names and names <= _raw_names_by_node(arc, sid)[row["node"]]
 
 
+def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner):
+    from archive.solve.run import get_run, run_positions
+
+    arc, sid, run_id, base = solved
+    pos = run_positions(arc, get_run(arc, sid, run_id))
+    # the scenario plants a node moved mid-deployment: its window is solved in parts 1 and 2
+    moved = pos.filter(pc.and_(pos["delivered"], pc.equal(pos["part"], 2))).to_pylist()
+    assert moved, "the demo scenario plants one moved node"
+    row = moved[0]
+    parts = pos.filter(pc.and_(pc.and_(pc.equal(pos["line"], row["line"]),
+                                       pc.equal(pos["point"], row["point"])),
+                               pc.equal(pos["node"], row["node"]))).to_pylist()
+    t = trace_station(arc, sid, row["line"], row["point"], row["index"])
+    by_part = {p["part"]: p for p in t["fixes_by_part"] if p["node"] == row["node"]}
+    assert {1, 2} <= set(by_part) and by_part[2]["delivered"] and not by_part[1]["delivered"]
+    for r in parts:  # each part's counts agree with the run's own counts of that part
+        p = by_part[r["part"]]
+        assert p["used"] == r["n_used"] and p["rejected"] + p["screened"] == r["n_rejected"]
+    for k in ("used", "rejected", "screened"):  # the parts add up to the total
+        assert sum(p[k] for p in t["fixes_by_part"]) == t["fixes"][k]
+    assert t["fixes"]["used"] > row["n_used"]  # the total is not the delivered part's count
+    r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}")
+    assert r.exit_code == 0, r.stderr
+    assert (f"part 2 node {row['node']}: used {row['n_used']}, rejected "
+            f"{by_part[2]['rejected']}, screened {by_part[2]['screened']} (delivered part)"
+            in r.output)
+    r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}",
+               "--json")
+    assert json.loads(r.output)["fixes_by_part"] == t["fixes_by_part"]
+
+
 def test_trace_station_after_edit_and_delivery(solved, runner):
     from archive.deliver import edits as ed
     from archive.solve.run import get_run, run_positions
