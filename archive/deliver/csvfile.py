@@ -1,7 +1,9 @@
 """CSV of final positions at full precision, for everyone who is not a seismic processor.
 
-Numbers are written in their shortest round-trip form (no rounding); ``flags`` is a
-``;``-separated list (empty when none); times are ISO 8601 UTC with a ``Z``. The ``crs`` and
+Numbers are written in their shortest round-trip form (no rounding), unquoted; every text
+column is in double quotes (Arrow's CSV writer quotes all strings, so an empty ``flags`` is
+``""``); ``flags`` is a ``;``-separated list (empty when none); times are ISO 8601 UTC with
+microseconds and a ``Z`` (``2024-03-14T05:06:07.000000Z``). The file is UTF-8. The ``crs`` and
 ``vertical_datum`` columns repeat the survey's EPSG code and vertical datum on every row so
 the file cannot be separated from what its numbers mean.
 """
@@ -40,7 +42,7 @@ def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
 
 
 def write_csv(table: pa.Table, ctx: DeliveryContext) -> bytes:
-    """CSV bytes (UTF-8, header row, LF line ends, quotes only where needed)."""
+    """CSV bytes (UTF-8, header row, LF line ends, every text value quoted)."""
     sink = pa.BufferOutputStream()
     opts = pacsv.WriteOptions(include_header=True, quoting_style="needed")
     pacsv.write_csv(csv_table(table, ctx), sink, write_options=opts)

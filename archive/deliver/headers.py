@@ -5,9 +5,15 @@ longer than 48 characters is wrapped at spaces over continuation records (a word
 48 characters is split at column 80 and continues on the next record), so every value a
 header states appears whole when the data columns of a record and its continuations are read
 in order. A description or id that does not fit is a programming error and is refused.
+
+Both formats are ASCII: :func:`ascii_text` transliterates header text (Unicode NFKD
+decomposition with the combining marks dropped, so "Sà" becomes "Sa") and refuses, naming
+the field, what is still not ASCII, instead of writing "?" in its place.
 """
 
 from __future__ import annotations
+
+import unicodedata
 
 from archive.errors import Refused
 
@@ -15,6 +21,21 @@ ID_WIDTH = 4
 DESC_WIDTH = 28
 DATA_WIDTH = 48
 CONTINUED = "(continued)"
+
+
+def ascii_text(text: str, field: str) -> str:
+    """``text`` as ASCII: NFKD with combining marks dropped; :class:`Refused` naming ``field``
+    and the characters when some are still not ASCII."""
+    if text.isascii():
+        return text
+    out = "".join(c for c in unicodedata.normalize("NFKD", text) if not unicodedata.combining(c))
+    if out.isascii():
+        return out
+    bad = sorted({c for c in out if not c.isascii()})
+    raise Refused(f"header field {field!r} ({text!r}) has characters with no ASCII form: "
+                  + ", ".join(f"{c!r} (U+{ord(c):04X})" for c in bad),
+                  hint="write that text in ASCII letters (e.g. 'O' for 'Ø'), or deliver as "
+                       "CSV (--format csv), which is UTF-8")
 
 
 def header_record(item: str, description: str, data: str) -> str:
@@ -64,8 +85,10 @@ def wrap_data(data: str, width: int = DATA_WIDTH) -> list[str]:
 def header_lines(item: str, description: str, data: str, continuation_item: str) -> list[str]:
     """The record ``item`` and as many ``continuation_item`` records as its data needs.
 
-    Continuation records carry ``(continued)`` as their description.
+    Continuation records carry ``(continued)`` as their description. Non-ASCII text is
+    transliterated or refused (:func:`ascii_text`).
     """
-    pieces = wrap_data(data)
+    description = ascii_text(description, description)
+    pieces = wrap_data(ascii_text(data, description))
     first = header_record(item, description, pieces[0])
     return [first] + [header_record(continuation_item, CONTINUED, p) for p in pieces[1:]]

@@ -34,7 +34,7 @@ from archive.deliver.context import (
     station_label,
     time_fields,
 )
-from archive.deliver.headers import wrap_data
+from archive.deliver.headers import ascii_text, wrap_data
 from archive.errors import Refused
 from archive.survey.crs import transformer
 
@@ -125,7 +125,7 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
     ]
     lines: list[str] = []
     for desc, data in items:
-        first, *rest = wrap_data(f"{desc}: {data}", FREE_WIDTH)
+        first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)
         lines.append(first)
         lines += [f"  {p}" for p in wrap_data(" ".join(rest), FREE_WIDTH - 2)] if rest else []
     if len(lines) > N_HEADER:

@@ -99,3 +99,20 @@ def test_sps_factor_to_metre_is_the_grid_unit_factor(epsg, factor):
     # SPS rev 2.1 header record: description in columns 5-32, value from column 33
     assert rec[4:32].strip() == "Factor to metre"
     assert float(rec[32:].strip()) == pytest.approx(factor, rel=1e-15)
+
+
+@pytest.mark.parametrize("writer", [write_sps, write_segp1])
+def test_accented_header_text_is_transliterated_not_replaced(writer):
+    # NFKD (Unicode Standard Annex #15) splits "é" into "e" + U+0301 COMBINING ACUTE ACCENT
+    ctx = context(client="Harrow Basin Énergie", survey="Kestrel Flats 3D - Sàbana")
+    text = writer(final_table(2), ctx).decode("ascii")
+    assert "?" not in text
+    assert "Harrow Basin Energie" in text and "Kestrel Flats 3D - Sabana" in text
+
+
+@pytest.mark.parametrize("writer", [write_sps, write_segp1])
+def test_header_text_with_no_ascii_form_is_refused_naming_the_field(writer):
+    # "Ø" (U+00D8) has no decomposition in Unicode (UnicodeData.txt), so NFKD keeps it
+    with pytest.raises(Refused, match=r"header field 'Client'.*'Ø' \(U\+00D8\)") as e:
+        writer(final_table(2), context(client="Harrow Basin Ørsted-free Energy"))
+    assert "--format csv" in e.value.hint
