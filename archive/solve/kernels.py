@@ -35,6 +35,9 @@ ESTIMATOR_CODE = {"huber": EST_HUBER, "tukey": EST_TUKEY, "geomedian": EST_GEOME
                   "mean": EST_MEAN}
 LANES = 8  # interleaved partial sums per weighted sum (fixed: part of the result's definition)
 MIN_SPLIT = 1 << 15  # elements per thread below which one thread does everything
+# IEEE division (x/0 gives inf or NaN, as numpy does) instead of a raised ZeroDivisionError:
+# the check for a zero divisor inside a loop keeps it from compiling to vector instructions.
+_JIT = {"cache": True, "nogil": True, "error_model": "numpy"}
 
 _threads = max(1, min(len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
                       else (os.cpu_count() or 1), 8))
@@ -74,7 +77,7 @@ def run_split(kernel: Callable[..., None], counts: np.ndarray, *args: object) ->
             f.result()
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _select(buf, m, k):  # pragma: no cover - compiled
     """Put the k-th smallest of buf[:m] at buf[k] (Hoare's quickselect, median of three)."""
     lo = 0
@@ -107,7 +110,7 @@ def _select(buf, m, k):  # pragma: no cover - compiled
             return
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _median(buf, m):  # pragma: no cover - compiled
     """Median of buf[:m] (NaN when empty or holding a NaN); reorders buf."""
     if m == 0:
@@ -127,7 +130,7 @@ def _median(buf, m):  # pragma: no cover - compiled
     return 0.5 * (lo + hi)
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
     """Median of the systematic subsample (at most ``cap``) of values[start:start+count]."""
     m = count if (cap <= 0 or count <= cap) else cap
@@ -140,7 +143,7 @@ def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
     return _median(buf, m)
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def seg_medians(s_lo, s_hi, values, starts, counts, cap, out):  # pragma: no cover
     """out[s] = median of the subsample of segment s, for s in [s_lo, s_hi)."""
     size = 1
@@ -151,7 +154,7 @@ def seg_medians(s_lo, s_hi, values, starts, counts, cap, out):  # pragma: no cov
         out[s] = _sub_median(values, starts[s], counts[s], cap, buf)
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _w_huber(e, n, invh, keep, ce, cn, isc, k, wbuf):  # pragma: no cover - compiled
     for j in range(e.shape[0]):
         ih = invh[j]
@@ -161,7 +164,7 @@ def _w_huber(e, n, invh, keep, ce, cn, isc, k, wbuf):  # pragma: no cover - comp
         wbuf[j] = keep[j] * (ih * ih * k / max(r, k))
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _w_tukey(e, n, invh, keep, ce, cn, isc, c, wbuf):  # pragma: no cover - compiled
     for j in range(e.shape[0]):
         ih = invh[j]
@@ -172,7 +175,7 @@ def _w_tukey(e, n, invh, keep, ce, cn, isc, c, wbuf):  # pragma: no cover - comp
         wbuf[j] = keep[j] * (ih * ih * v * v if u < 1.0 else 0.0)
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _w_geomedian(e, n, invh, keep, ce, cn, isc, wbuf):  # pragma: no cover - compiled
     for j in range(e.shape[0]):
         ih = invh[j]
@@ -182,14 +185,14 @@ def _w_geomedian(e, n, invh, keep, ce, cn, isc, wbuf):  # pragma: no cover - com
         wbuf[j] = keep[j] * (ih * ih / max(r, 1e-9))
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _w_mean(invh, keep, wbuf):  # pragma: no cover - compiled
     for j in range(invh.shape[0]):
         ih = invh[j]
         wbuf[j] = keep[j] * (ih * ih)
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _weights(e, n, invh, keep, ce, cn, isc, est, k, c, wbuf):  # pragma: no cover - compiled
     """IRLS weights of one segment's elements around (ce, cn) into ``wbuf``.
 
@@ -207,27 +210,53 @@ def _weights(e, n, invh, keep, ce, cn, isc, est, k, c, wbuf):  # pragma: no cove
         _w_mean(invh, keep, wbuf)
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
     """Weighted centre of one segment (its slices) from ``wbuf``: sums in ``LANES`` fixed
     interleaved lanes (a fixed order, so the same result on any thread), then the lanes in
-    order."""
-    lanes[:] = 0.0
+    order. The lanes are local scalars (registers, so the loop compiles to vector
+    instructions); ``lanes`` is kept for the signature."""
     cnt = e.shape[0]
     full = cnt - cnt % LANES
+    w0 = w1 = w2 = w3 = w4 = w5 = w6 = w7 = 0.0
+    e0 = e1 = e2 = e3 = e4 = e5 = e6 = e7 = 0.0
+    n0 = n1 = n2 = n3 = n4 = n5 = n6 = n7 = 0.0
     for j0 in range(0, full, LANES):
-        for q in range(LANES):
-            w = wbuf[j0 + q]
-            lanes[0, q] += w
-            lanes[1, q] += w * e[j0 + q]
-            lanes[2, q] += w * n[j0 + q]
-    sw = 0.0
-    se = 0.0
-    sn = 0.0
-    for q in range(LANES):
-        sw += lanes[0, q]
-        se += lanes[1, q]
-        sn += lanes[2, q]
+        w = wbuf[j0]
+        w0 += w
+        e0 += w * e[j0]
+        n0 += w * n[j0]
+        w = wbuf[j0 + 1]
+        w1 += w
+        e1 += w * e[j0 + 1]
+        n1 += w * n[j0 + 1]
+        w = wbuf[j0 + 2]
+        w2 += w
+        e2 += w * e[j0 + 2]
+        n2 += w * n[j0 + 2]
+        w = wbuf[j0 + 3]
+        w3 += w
+        e3 += w * e[j0 + 3]
+        n3 += w * n[j0 + 3]
+        w = wbuf[j0 + 4]
+        w4 += w
+        e4 += w * e[j0 + 4]
+        n4 += w * n[j0 + 4]
+        w = wbuf[j0 + 5]
+        w5 += w
+        e5 += w * e[j0 + 5]
+        n5 += w * n[j0 + 5]
+        w = wbuf[j0 + 6]
+        w6 += w
+        e6 += w * e[j0 + 6]
+        n6 += w * n[j0 + 6]
+        w = wbuf[j0 + 7]
+        w7 += w
+        e7 += w * e[j0 + 7]
+        n7 += w * n[j0 + 7]
+    sw = 0.0 + w0 + w1 + w2 + w3 + w4 + w5 + w6 + w7
+    se = 0.0 + e0 + e1 + e2 + e3 + e4 + e5 + e6 + e7
+    sn = 0.0 + n0 + n1 + n2 + n3 + n4 + n5 + n6 + n7
     for j in range(full, cnt):
         w = wbuf[j]
         sw += w
@@ -238,7 +267,7 @@ def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
         cen[1] = sn / sw
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, rounds, steps,
                     cap, median_unit, min_scale, centre, scale, weight, rejected, r
                     ):  # pragma: no cover - compiled
@@ -307,7 +336,7 @@ def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, ro
         scale[s] = sc
 
 
-@njit(cache=True, nogil=True)
+@njit(**_JIT)
 def batch_segments(s_lo, s_hi, de, dn, w, t, starts, counts, batch_s, min_batches,
                    out):  # pragma: no cover - compiled
     """Batch-means covariance of :func:`archive.solve.uncertainty.batch_covariance`.
