@@ -268,12 +268,14 @@ def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
 
 
 @njit(**_JIT)
-def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, rounds, steps,
+def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, rounds, steps,
                     cap, median_unit, min_scale, centre, scale, weight, rejected, r
                     ):  # pragma: no cover - compiled
     """The robust schedule of :mod:`archive.solve.robust` for segments [s_lo, s_hi).
 
-    ``e, n`` the coordinates (``n`` all zero for 1-D data), ``invh`` 1/HDOP; outputs
+    ``e, n`` the coordinates (``n`` all zero for 1-D data), ``hdop`` the HDOP (a value
+    that is not finite and positive counts as 1; 1/HDOP is formed per segment in a
+    per-thread buffer, not as a whole array before the call); outputs
     ``centre`` (2, n_seg), ``scale``, and per element ``weight``, ``rejected``, ``r``.
     """
     size = 1
@@ -282,13 +284,17 @@ def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, ro
     buf = np.empty(size)
     wbuf = np.empty(size)
     keep = np.ones(size)
+    invh = np.empty(size)
     lanes = np.zeros((3, LANES))
     cen = np.empty(2)
     for s in range(s_lo, s_hi):
         a = starts[s]
         cnt = counts[s]
         b = a + cnt
-        es, ns, hs, kp, wb = e[a:b], n[a:b], invh[a:b], keep[:cnt], wbuf[:cnt]
+        es, ns, hs, kp, wb = e[a:b], n[a:b], invh[:cnt], keep[:cnt], wbuf[:cnt]
+        for j in range(cnt):
+            h = hdop[a + j]
+            hs[j] = 1.0 / h if (np.isfinite(h) and h > 0) else 1.0
         kp[:] = 1.0
         for d, x in enumerate((e, n)):
             m = _sub_median(x, a, cnt, cap, buf)
@@ -302,7 +308,7 @@ def robust_segments(s_lo, s_hi, e, n, invh, starts, counts, est, k, c, limit, ro
                     i = a + j if mm == cnt else a + ((2 * j + 1) * cnt) // (2 * mm)
                     de = e[i] - cen[0]
                     dn = n[i] - cen[1]
-                    buf[j] = np.sqrt(de * de + dn * dn) * invh[i]
+                    buf[j] = np.sqrt(de * de + dn * dn) * hs[i - a]
                 sc = _median(buf, mm) / median_unit
                 if not np.isfinite(sc):
                     sc = min_scale

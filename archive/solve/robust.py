@@ -112,7 +112,7 @@ def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
     n = len(seg)
     e = np.ascontiguousarray(xs[0], dtype=np.float64)
     north = np.ascontiguousarray(xs[1], dtype=np.float64) if dim == 2 else np.zeros(n)
-    invh = 1.0 / _clean_hdop(np.asarray(hdop))
+    hd = np.ascontiguousarray(hdop, dtype=np.float64)  # cleaned and inverted in the kernel
     starts, counts = seg_starts(np.asarray(seg), n_seg)
     limit = float(np.sqrt(chi2.ppf(reject_quantile, dim))) if reject_quantile < 1.0 else np.inf
     mean = estimator == "mean"
@@ -121,7 +121,7 @@ def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
     weight = np.zeros(n)
     rejected = np.zeros(n, dtype=np.bool_)
     r = np.zeros(n)
-    run_split(robust_segments, counts, e, north, invh, starts, counts, ESTIMATOR_CODE[estimator],
+    run_split(robust_segments, counts, e, north, hd, starts, counts, ESTIMATOR_CODE[estimator],
               float(huber_k), float(tukey_c), limit, 1 if mean else int(scale_updates),
               1 if mean else int(iterations), int(scale_sample or 0),
               float(np.sqrt(chi2.ppf(0.5, dim))), MIN_SCALE, centre, scale, weight, rejected, r)
