@@ -6,7 +6,9 @@ each segment (cloud) is handled by one compiled loop that touches its fixes a fe
 while they sit in cache:
 
 - :func:`seg_medians`: median of a deterministic systematic subsample of each segment, by
-  selection (Hoare's quickselect in a per-thread buffer), not by sorting everything;
+  selection in per-thread buffers, not by sorting everything: the rank is bracketed from a
+  small sorted sample, then out-of-place partitions without data-dependent branches
+  (:func:`_median_pp`) finish it;
 - :func:`robust_segments`: the whole robust schedule of :mod:`robust` per segment (start at
   the coordinate-wise median, MAD scale, IRLS steps with distance, ψ-weight and weighted
   sums fused in one pass per step, chi-square rejection, final weights);
@@ -110,28 +112,118 @@ def _select(buf, m, k):  # pragma: no cover - compiled
             return
 
 
+SMALL = 24  # range size below which the selection finishes with quickselect in place
+BRACKET = 256  # values above which the median first brackets its rank from a sample
+SAMPLE = 64  # values in that sample
+SPREAD = 8  # sample ranks each side of the wanted one (about two standard deviations)
+
+
 @njit(**_JIT)
-def _median(buf, m):  # pragma: no cover - compiled
-    """Median of buf[:m] (NaN when empty or holding a NaN); reorders buf."""
+def _select_pp(src, dst, n, k, upper):  # pragma: no cover - compiled
+    """(k-th smallest of src[:n], the next value up) with ``dst`` as scratch; both reordered.
+
+    Selection by out-of-place partitions without data-dependent branches: each pass writes
+    every element to both ends of the other buffer and advances one end by the comparison,
+    so the processor never mispredicts on the data (most of the cost of an in-place
+    quickselect on a few thousand values is mispredicted branches). A first pass splits
+    < pivot / >= pivot; when the wanted rank is not below, a second pass splits the upper
+    part into == pivot / > pivot, so ties end the search at once. The next value up is the
+    smaller of the least value above the k-th in the final range and ``upper`` lowered to
+    the pivot of every range left behind on the right (each holds its pivot as minimum).
+    """
+    off = 0
+    while n > SMALL:
+        x0 = src[off]
+        x1 = src[off + (n >> 1)]
+        x2 = src[off + n - 1]
+        pivot = max(min(x0, x1), min(max(x0, x1), x2))
+        lo = 0
+        hi = n - 1
+        for i in range(off, off + n):
+            x = src[i]
+            dst[lo] = x
+            dst[hi] = x
+            lt = x < pivot
+            lo += lt
+            hi -= 1 - lt
+        if k < lo:  # the rank is among the smaller ones; the rest start at the pivot
+            upper = min(upper, pivot)
+            src, dst = dst, src
+            off = 0
+            n = lo
+            continue
+        lo2 = 0
+        hi2 = n - lo - 1
+        for i in range(lo, n):
+            x = dst[i]
+            src[lo2] = x
+            src[hi2] = x
+            le = x <= pivot
+            lo2 += le
+            hi2 -= 1 - le
+        k -= lo
+        n -= lo
+        if k < lo2:  # the rank falls among the values equal to the pivot
+            if k + 1 < lo2:
+                return pivot, pivot
+            for i in range(lo2, n):
+                upper = min(upper, src[i])
+            return pivot, upper
+        k -= lo2
+        n -= lo2
+        off = lo2
+    part = src[off:off + n]
+    _select(part, n, k)
+    for i in range(k + 1, n):
+        upper = min(upper, part[i])
+    return part[k], upper
+
+
+@njit(**_JIT)
+def _median_pp(a, b, m):  # pragma: no cover - compiled
+    """Median of a[:m] (NaN when empty or holding a NaN), ``b`` (size >= m) as scratch.
+
+    For more than ``BRACKET`` values, a sorted systematic sample of ``SAMPLE`` values gives
+    two bounds that hold the wanted ranks with high probability; one pass without
+    data-dependent branches counts the values below, keeps those between and the least
+    above, and only those between go on to :func:`_select_pp`. When the ranks fall outside
+    (rare), the selection runs on all values. Either way the median is a value (or the
+    mean of two values) of the data, exactly the one a sort gives.
+    """
     if m == 0:
         return np.nan
+    bad = False
     for j in range(m):
-        if np.isnan(buf[j]):
-            return np.nan
+        bad |= np.isnan(a[j])
+    if bad:
+        return np.nan
     k = (m - 1) // 2
-    _select(buf, m, k)
-    lo = buf[k]
-    if m % 2 == 1:
-        return lo
-    hi = buf[k + 1]
-    for j in range(k + 2, m):
-        if buf[j] < hi:
-            hi = buf[j]
-    return 0.5 * (lo + hi)
+    if m > BRACKET:
+        smp = np.empty(SAMPLE)
+        for j in range(SAMPLE):
+            smp[j] = a[((2 * j + 1) * m) // (2 * SAMPLE)]
+        smp.sort()
+        ks = (k * SAMPLE) // m
+        lo_v = smp[ks - SPREAD] if ks >= SPREAD else -np.inf
+        hi_v = smp[ks + SPREAD] if ks + SPREAD < SAMPLE else np.inf
+        below = 0
+        c = 0
+        above = np.inf
+        for j in range(m):
+            x = a[j]
+            b[c] = x
+            below += x < lo_v
+            c += (x >= lo_v) & (x <= hi_v)
+            above = min(above, x if x > hi_v else np.inf)
+        if below <= k and k + 1 < below + c:
+            v, nxt = _select_pp(b, a, c, k - below, above)
+            return v if m % 2 == 1 else 0.5 * (v + nxt)
+    v, nxt = _select_pp(a, b, m, k, np.inf)
+    return v if m % 2 == 1 else 0.5 * (v + nxt)
 
 
 @njit(**_JIT)
-def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
+def _sub_median(values, start, count, cap, buf, buf2):  # pragma: no cover - compiled
     """Median of the systematic subsample (at most ``cap``) of values[start:start+count]."""
     m = count if (cap <= 0 or count <= cap) else cap
     if m == count:
@@ -140,7 +232,7 @@ def _sub_median(values, start, count, cap, buf):  # pragma: no cover - compiled
     else:
         for j in range(m):
             buf[j] = values[start + ((2 * j + 1) * count) // (2 * m)]
-    return _median(buf, m)
+    return _median_pp(buf, buf2, m)
 
 
 @njit(**_JIT)
@@ -150,8 +242,9 @@ def seg_medians(s_lo, s_hi, values, starts, counts, cap, out):  # pragma: no cov
     for s in range(s_lo, s_hi):
         size = max(size, counts[s] if cap <= 0 else min(counts[s], cap))
     buf = np.empty(size)
+    buf2 = np.empty(size)
     for s in range(s_lo, s_hi):
-        out[s] = _sub_median(values, starts[s], counts[s], cap, buf)
+        out[s] = _sub_median(values, starts[s], counts[s], cap, buf, buf2)
 
 
 @njit(**_JIT)
@@ -268,6 +361,12 @@ def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
 
 
 @njit(**_JIT)
+def _step(e, n, invh, keep, cen, isc, est, k, c, wbuf, lanes):  # pragma: no cover - compiled
+    """One IRLS step of a segment: new weights around ``cen``, then the weighted centre."""
+    _weights(e, n, invh, keep, cen[0], cen[1], isc, est, k, c, wbuf)
+    _update(e, n, wbuf, cen, lanes)
+
+@njit(**_JIT)
 def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, rounds, steps,
                     cap, median_unit, min_scale, centre, scale, weight, rejected, r
                     ):  # pragma: no cover - compiled
@@ -282,6 +381,7 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
     for s in range(s_lo, s_hi):
         size = max(size, counts[s])
     buf = np.empty(size)
+    buf2 = np.empty(size)
     wbuf = np.empty(size)
     keep = np.ones(size)
     invh = np.empty(size)
@@ -297,7 +397,7 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
             hs[j] = 1.0 / h if (np.isfinite(h) and h > 0) else 1.0
         kp[:] = 1.0
         for d, x in enumerate((e, n)):
-            m = _sub_median(x, a, cnt, cap, buf)
+            m = _sub_median(x, a, cnt, cap, buf, buf2)
             cen[d] = m if np.isfinite(m) else 0.0
         sc = min_scale
         for _ in range(rounds):
@@ -309,13 +409,12 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
                     de = e[i] - cen[0]
                     dn = n[i] - cen[1]
                     buf[j] = np.sqrt(de * de + dn * dn) * hs[i - a]
-                sc = _median(buf, mm) / median_unit
+                sc = _median_pp(buf, buf2, mm) / median_unit
                 if not np.isfinite(sc):
                     sc = min_scale
             sc = max(sc, min_scale)
             for _ in range(steps):
-                _weights(es, ns, hs, kp, cen[0], cen[1], 1.0 / sc, est, k, c, wb)
-                _update(es, ns, wb, cen, lanes)
+                _step(es, ns, hs, kp, cen, 1.0 / sc, est, k, c, wb, lanes)
         isc = 1.0 / sc
         n_rej = 0
         rj = rejected[a:b]
@@ -328,11 +427,9 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
             n_rej += out
         if n_rej > 0:  # only a cloud that lost fixes runs the steps without them
             for _ in range(steps):
-                _weights(es, ns, hs, kp, cen[0], cen[1], isc, est, k, c, wb)
-                _update(es, ns, wb, cen, lanes)
-        _weights(es, ns, hs, kp, cen[0], cen[1], isc, est, k, c, wb)
+                _step(es, ns, hs, kp, cen, isc, est, k, c, wb, lanes)
+        _weights(es, ns, hs, kp, cen[0], cen[1], isc, est, k, c, weight[a:b])
         rs = r[a:b]
-        weight[a:b] = wb
         for j in range(cnt):
             de = es[j] - cen[0]
             dn = ns[j] - cen[1]
