@@ -385,6 +385,9 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
     wbuf = np.empty(size)
     keep = np.ones(size)
     invh = np.empty(size)
+    sub_e = np.empty(size)
+    sub_n = np.empty(size)
+    sub_h = np.empty(size)
     lanes = np.zeros((3, LANES))
     cen = np.empty(2)
     for s in range(s_lo, s_hi):
@@ -396,19 +399,27 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
             h = hdop[a + j]
             hs[j] = 1.0 / h if (np.isfinite(h) and h > 0) else 1.0
         kp[:] = 1.0
-        for d, x in enumerate((e, n)):
-            m = _sub_median(x, a, cnt, cap, buf, buf2)
+        # the systematic subsample of the medians, gathered once per cloud
+        mm = cnt if (cap <= 0 or cnt <= cap) else cap
+        for j in range(mm):
+            i = j if mm == cnt else ((2 * j + 1) * cnt) // (2 * mm)
+            sub_e[j] = es[i]
+            sub_n[j] = ns[i]
+            sub_h[j] = hs[i]
+        for d in range(2):
+            buf[:mm] = sub_e[:mm] if d == 0 else sub_n[:mm]
+            m = _median_pp(buf, buf2, mm)
             cen[d] = m if np.isfinite(m) else 0.0
         sc = min_scale
         for _ in range(rounds):
             # MAD-type scale of the HDOP-normalised distances, from the subsample
             if cnt > 0:
-                mm = cnt if (cap <= 0 or cnt <= cap) else cap
+                ce = cen[0]
+                cn = cen[1]
                 for j in range(mm):
-                    i = a + j if mm == cnt else a + ((2 * j + 1) * cnt) // (2 * mm)
-                    de = e[i] - cen[0]
-                    dn = n[i] - cen[1]
-                    buf[j] = np.sqrt(de * de + dn * dn) * hs[i - a]
+                    de = sub_e[j] - ce
+                    dn = sub_n[j] - cn
+                    buf[j] = np.sqrt(de * de + dn * dn) * sub_h[j]
                 sc = _median_pp(buf, buf2, mm) / median_unit
                 if not np.isfinite(sc):
                     sc = min_scale
