@@ -72,9 +72,14 @@ def run_split(kernel: Callable[..., None], counts: np.ndarray, *args: object) ->
     ends = np.cumsum(counts)
     cuts = np.searchsorted(ends, np.arange(1, parts) * (total / parts), side="left") + 1
     bounds = np.unique(np.concatenate([[0], np.minimum(cuts, n_seg), [n_seg]]))
-    with ThreadPoolExecutor(max_workers=len(bounds) - 1) as pool:
+    if len(bounds) <= 2:
+        kernel(0, n_seg, *args)
+        return
+    # the calling thread takes the last range itself instead of waiting idle
+    with ThreadPoolExecutor(max_workers=len(bounds) - 2) as pool:
         futures = [pool.submit(kernel, int(a), int(b), *args)
-                   for a, b in zip(bounds[:-1], bounds[1:], strict=True)]
+                   for a, b in zip(bounds[:-2], bounds[1:-1], strict=True)]
+        kernel(int(bounds[-2]), int(bounds[-1]), *args)
         for f in futures:
             f.result()
 
@@ -365,6 +370,7 @@ def _step(e, n, invh, keep, cen, isc, est, k, c, wbuf, lanes):  # pragma: no cov
     """One IRLS step of a segment: new weights around ``cen``, then the weighted centre."""
     _weights(e, n, invh, keep, cen[0], cen[1], isc, est, k, c, wbuf)
     _update(e, n, wbuf, cen, lanes)
+
 
 @njit(**_JIT)
 def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, rounds, steps,
