@@ -45,7 +45,7 @@ from archive.solve.robust import robust_centre
 from archive.solve.segments import from_local
 from archive.solve.uncertainty import batch_covariance
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
-from archive.survey.schema import DEPLOYMENT_SCHEMA, STATION_SCHEMA
+from archive.survey.schema import DEPLOYMENT_LOG_SCHEMA, STATION_SCHEMA
 
 EPSG = 32614
 T0_US = 1_714_521_600_000_000  # 2024-05-01T00:00:00Z
@@ -187,9 +187,9 @@ def _partition(first_node: int, n_nodes: int, n_epochs: int, seed: int) -> tuple
     deps = pa.table({
         "node": nodes.tolist(), "line": 1001.0 + ids // 400, "point": 2001.0 + ids % 400,
         "index": pa.array(np.ones(n_nodes), pa.int8()),
-        "deployed": pa.array(np.full(n_nodes, T0_US)).cast(DEPLOYMENT_SCHEMA.field("deployed").type),
-        "retrieved": pa.array(np.full(n_nodes, end)).cast(DEPLOYMENT_SCHEMA.field("retrieved").type),
-        "src_line": ids + 1}, schema=DEPLOYMENT_SCHEMA)
+        "deployed": pa.array(np.full(n_nodes, T0_US)).cast(DEPLOYMENT_LOG_SCHEMA.field("deployed").type),
+        "retrieved": pa.array(np.full(n_nodes, end)).cast(DEPLOYMENT_LOG_SCHEMA.field("retrieved").type),
+        "src_line": ids + 1}, schema=DEPLOYMENT_LOG_SCHEMA)
     stations = pa.table({
         "line": 1001.0 + ids // 400, "point": 2001.0 + ids % 400,
         "index": pa.array(np.ones(n_nodes), pa.int8()), "code": ["G1"] * n_nodes,

@@ -28,27 +28,41 @@ FORMATS = ("sps", "segp1", "csv", "geojson", "gpkg")  # archive.deliver.formats.
 @click.option("--note", default="", metavar="TEXT", help="A note kept with the delivery.")
 @click.option("--allow-flags", is_flag=True,
               help="Deliver even though some stations carry unacknowledged review flags.")
+@click.option("--merge-occupations", "merge", is_flag=True,
+              help="Deliver the occupations of a station as one position when they cannot be "
+                   "told apart (difference inside its 95 % radius); default: one record each.")
 @force_option
 @survey_option
 @output_options
 @pass_state
 def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: str | None,
-            note: str, allow_flags: bool, force: bool, survey_name: str | None) -> None:
+            note: str, allow_flags: bool, merge: bool, force: bool,
+            survey_name: str | None) -> None:
     """Deliver a run's final positions (run + edits in force) as a file."""
     from archive.deliver.deliveries import deliver as run
 
     arc = state.archive()
     sid = state.survey_id(survey_name)
     res = run(arc, sid, run_ref, fmt, to, recipient or "", note=note, allow_flags=allow_flags,
-              force=force)
+              force=force, merge_occupations=merge)
     d = res.as_dict()
     flags = res.unacknowledged_flags
-    text = (f"delivery {res.delivery_id}: {res.n_stations} stations of run {res.run_id[:12]} "
+    records = (f" ({res.n_records} records: stations occupied more than once have one per "
+               "occupation)" if res.n_records != res.n_stations else "")
+    text = (f"delivery {res.delivery_id}: {res.n_stations} stations{records} of run "
+            f"{res.run_id[:12]} "
             f"with {len(res.edit_ids)} edit(s) in force, as {fmt}, to {res.path} for "
             f"{res.recipient}\n  file sha256 {res.file_hash}\n  lineage {res.lineage_path}")
     if flags:
         text += "\n  delivered with unacknowledged flags: " + ", ".join(
             f"{k} ({v})" for k, v in flags.items())
+    merged = [m for m in res.merges if m["merged"]]
+    if res.merges:
+        text += (f"\n  occupations merged at {len(merged)} of {len(res.merges)} station(s) "
+                 "occupied more than once")
+        for m in res.merges:
+            if not m["merged"]:
+                text += f"\n    {m['line']:g}/{m['point']:g} kept apart: {m['reason']}"
     for w in res.warnings:
         text += f"\n  warning: {w}"
     emit(state, d, text)

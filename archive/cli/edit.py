@@ -15,10 +15,16 @@ SOURCES = ["control", "preplot", "given"]
 
 
 def _station(f: Callable[..., Any]) -> Callable[..., Any]:
-    f = click.option("--index", "index", type=int, default=1, show_default=True,
-                     help="SPS point index of the station.")(f)
+    f = click.option("--index", "index", type=click.IntRange(1, 127), default=None,
+                     help="Point index of the occupation (needed when the station was "
+                          "occupied more than once; default: its only occupation).")(f)
     f = click.argument("point", type=float)(f)
     return click.argument("line", type=float)(f)
+
+
+def _node(f: Callable[..., Any]) -> Callable[..., Any]:
+    return click.option("--node", default=None, metavar="SERIAL",
+                        help="Choose the occupation by the node deployed there.")(f)
 
 
 reason_option = click.option("--reason", default=None, metavar="TEXT",
@@ -29,9 +35,13 @@ def _done(state: CliState, e: Any) -> None:
     from archive.deliver.edits import edit_dict
 
     d = edit_dict(e)
-    where = f"{d['line']:g}/{d['point']:g}" + (f" index {d['index']}" if d["index"] != 1 else "")
+    occ = d["payload"].get("occupation") or {}
+    where = f"{d['line']:g}/{d['point']:g} index {d['index']}"
+    if occ.get("node") or d["payload"].get("node"):
+        where += f" (node {occ.get('node') or d['payload'].get('node')})"
     sup = f", supersedes edit {d['supersedes']}" if d["supersedes"] else ""
-    what = ", ".join(f"{k}={v}" for k, v in d["payload"].items() if k != "input")
+    what = ", ".join(f"{k}={v}" for k, v in d["payload"].items()
+                     if k not in ("input", "occupation"))
     emit(state, d, f"edit {d['id']} ({d['kind']}) on {where}{sup}" + (f": {what}" if what else ""))
 
 
@@ -42,6 +52,7 @@ def edit() -> None:
 
 @edit.command("set-position")
 @_station
+@_node
 @click.option("--from", "source", type=click.Choice(SOURCES), default="given", show_default=True,
               help="Take the position from the station's check point, its preplot, or "
                    "--easting/--northing.")
@@ -51,18 +62,20 @@ def edit() -> None:
 @survey_option
 @output_options
 @pass_state
-def set_position(state: CliState, line: float, point: float, index: int, source: str,
-                 easting: float | None, northing: float | None, reason: str | None,
-                 survey_name: str | None) -> None:
-    """Set the delivered position of station LINE POINT."""
+def set_position(state: CliState, line: float, point: float, index: int | None,
+                 node: str | None, source: str, easting: float | None,
+                 northing: float | None, reason: str | None, survey_name: str | None) -> None:
+    """Set the delivered position of an occupation of station LINE POINT."""
     from archive.deliver.edits import set_position as run
 
     _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
-                     reason=reason, source=source, easting=easting, northing=northing))
+                     reason=reason, source=source, easting=easting, northing=northing,
+                     node=node))
 
 
 @edit.command("set-height")
 @_station
+@_node
 @click.option("--from", "source", type=click.Choice(SOURCES), default="given", show_default=True,
               help="Take the height from the check point, the preplot, or --height.")
 @click.option("--height", type=float, default=None, help="Height in the survey's vertical datum.")
@@ -70,25 +83,28 @@ def set_position(state: CliState, line: float, point: float, index: int, source:
 @survey_option
 @output_options
 @pass_state
-def set_height(state: CliState, line: float, point: float, index: int, source: str,
-               height: float | None, reason: str | None, survey_name: str | None) -> None:
-    """Set the delivered height of station LINE POINT."""
+def set_height(state: CliState, line: float, point: float, index: int | None,
+               node: str | None, source: str, height: float | None, reason: str | None,
+               survey_name: str | None) -> None:
+    """Set the delivered height of an occupation of station LINE POINT."""
     from archive.deliver.edits import set_height as run
 
     _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
-                     reason=reason, source=source, height=height))
+                     reason=reason, source=source, height=height, node=node))
 
 
 @edit.command("exclude")
 @_station
-@click.option("--node", required=True, metavar="SERIAL", help="Node whose fixes to leave out.")
+@click.option("--node", required=True, metavar="SERIAL",
+              help="Node whose fixes to leave out (it chooses the occupation).")
 @click.option("--start", required=True, metavar="TIME", help="Start, ISO 8601 UTC (…Z).")
 @click.option("--end", required=True, metavar="TIME", help="End, ISO 8601 UTC (…Z).")
 @reason_option
 @survey_option
 @output_options
 @pass_state
-def exclude(state: CliState, line: float, point: float, index: int, node: str, start: str,
+def exclude(state: CliState, line: float, point: float, index: int | None, node: str,
+            start: str,
             end: str, reason: str | None, survey_name: str | None) -> None:
     """Leave a span of a node's fixes out of the next solve of station LINE POINT."""
     from archive.deliver.edits import exclude_span
@@ -99,33 +115,36 @@ def exclude(state: CliState, line: float, point: float, index: int, node: str, s
 
 @edit.command("reject")
 @_station
+@_node
 @reason_option
 @survey_option
 @output_options
 @pass_state
-def reject(state: CliState, line: float, point: float, index: int, reason: str | None,
-           survey_name: str | None) -> None:
-    """Do not deliver station LINE POINT."""
+def reject(state: CliState, line: float, point: float, index: int | None, node: str | None,
+           reason: str | None, survey_name: str | None) -> None:
+    """Do not deliver an occupation of station LINE POINT."""
     from archive.deliver.edits import reject_station
 
     _done(state, reject_station(state.archive(), state.survey_id(survey_name), line, point,
-                                index, reason=reason))
+                                index, reason=reason, node=node))
 
 
 @edit.command("ack")
 @_station
+@_node
 @click.option("--flag", required=True, metavar="NAME", help="The review flag acknowledged.")
 @reason_option
 @survey_option
 @output_options
 @pass_state
-def ack(state: CliState, line: float, point: float, index: int, flag: str, reason: str | None,
-        survey_name: str | None) -> None:
-    """Acknowledge a review flag of station LINE POINT (it no longer blocks delivery)."""
+def ack(state: CliState, line: float, point: float, index: int | None, node: str | None,
+        flag: str, reason: str | None, survey_name: str | None) -> None:
+    """Acknowledge a review flag of an occupation of station LINE POINT (it no longer
+    blocks delivery)."""
     from archive.deliver.edits import ack_flag
 
     _done(state, ack_flag(state.archive(), state.survey_id(survey_name), line, point, index,
-                          flag=flag, reason=reason))
+                          flag=flag, reason=reason, node=node))
 
 
 @edit.command("undo")

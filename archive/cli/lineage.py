@@ -6,7 +6,13 @@ from typing import Any
 
 import click
 
-from archive.cli.options import CliState, output_options, pass_state, survey_option
+from archive.cli.options import (
+    CliState,
+    occupation_options,
+    output_options,
+    pass_state,
+    survey_option,
+)
 from archive.cli.output import emit, table
 
 
@@ -33,39 +39,50 @@ def _raw_text(raw: list[dict[str, Any]]) -> list[str]:
 
 
 def _edits_text(edits: list[dict[str, Any]]) -> list[str]:
-    return [f"  edit {e['id']} {e['kind']} {e['payload'] or ''} by {e['created_by']} at "
+    return [f"  edit {e['id']} {e['kind']} index {e['index']} {e['payload'] or ''} by "
+            f"{e['created_by']} at "
             f"{_when(e['created_at'])}: {e['reason']}"
             + ("" if e.get("in_force", True) else " (no longer in force)") for e in edits]
 
 
-def _station_text(t: dict[str, Any]) -> str:
-    st = t["station"]
-    out = [f"station {st['line']:g}/{st['point']:g} index {st['index']}"]
-    d = t["delivery"]
+def _occupation_text(o: dict[str, Any]) -> list[str]:
+    out = [f"occupation index {o['index']}: node {o['node']}, {_window(o)}"]
+    d = o["delivery"]
     if d:
         p = d["position"]
-        out.append(f"last delivered in delivery {d['id']} ({d['format']}, {d['file_name']}, "
+        out.append(f"  last delivered in delivery {d['id']} ({d['format']}, {d['file_name']}, "
                    f"to {d['recipient']}, {_when(d['created_at'])} by {d['created_by']}): "
                    f"E {_f(p['easting'])} N {_f(p['northing'])} H {_f(p['height'])} "
                    f"source {p['source']}")
-        out.append(f"delivered {len(t['deliveries'])} time(s): "
-                   + ", ".join(str(x["id"]) for x in t["deliveries"]))
+        out.append(f"  delivered {len(o['deliveries'])} time(s): "
+                   + ", ".join(str(x["id"]) for x in o["deliveries"]))
     else:
-        out.append("never delivered")
-    out += _run_text(t["run"])
-    for s in t["solution"]:
+        out.append("  never delivered")
+    for s in o["solution"]:
         out.append(f"  solved part {s['part']} node {s['node']}: E {_f(s['easting'])} "
                    f"N {_f(s['northing'])} r95 {_f(s['r95'], '{:.2f}')} m, window "
                    f"{_when(s['t_start'])} to {_when(s['t_end'])}, flags {s['flags'] or 'none'}"
-                   + (" (delivered part)" if s["delivered"] else ""))
-    fx = t["fixes"]
-    out.append("fixes in the station's windows, all parts: "
+                   + (" (delivered part)" if s["delivered"] else "")
+                   + (" (from the settle-margin fixes)" if s.get("from_margins") else ""))
+    fx = o["fixes"]
+    out.append("  fixes in its window, all parts: "
                + (", ".join(f"{k} {v}" for k, v in fx.items()) or "none"))
-    out += [f"  part {p['part']} node {p['node']}: used {p['used']}, rejected "
+    out += [f"    part {p['part']} node {p['node']}: used {p['used']}, rejected "
             f"{p['rejected']}, screened {p['screened']}"
-            + (" (delivered part)" if p["delivered"] else "") for p in t["fixes_by_part"]]
-    out.append(f"raw files ({len(t['raw_files'])}):")
-    out += _raw_text(t["raw_files"])
+            + (" (delivered part)" if p["delivered"] else "") for p in o["fixes_by_part"]]
+    out.append(f"  raw files ({len(o['raw_files'])}):")
+    out += ["  " + line for line in _raw_text(o["raw_files"])]
+    return out
+
+
+def _station_text(t: dict[str, Any]) -> str:
+    st = t["station"]
+    occs = t["occupations"]
+    out = [f"station {st['line']:g}/{st['point']:g}: {len(occs)} occupation(s)"
+           + (" (each delivered under its own point index)" if len(occs) > 1 else "")]
+    out += _run_text(t["run"])
+    for o in occs:
+        out += _occupation_text(o)
     out.append(f"edits ({len(t['edits'])}):")
     out += _edits_text(t["edits"])
     return "\n".join(out)
@@ -87,15 +104,16 @@ def _file_text(t: dict[str, Any]) -> str:
 @click.command()
 @click.argument("line", type=float, required=False)
 @click.argument("point", type=float, required=False)
-@click.option("--index", type=int, default=1, show_default=True, help="SPS point index.")
+@occupation_options
 @click.option("--file", "path", type=click.Path(exists=True, dir_okay=False), default=None,
               help="Trace a delivered file (found by its SHA-256) instead of a station.")
 @survey_option
 @output_options
 @pass_state
-def trace(state: CliState, line: float | None, point: float | None, index: int,
-          path: str | None, survey_name: str | None) -> None:
-    """The whole chain behind station LINE POINT, or behind a delivered --file."""
+def trace(state: CliState, line: float | None, point: float | None, index: int | None,
+          node: str | None, path: str | None, survey_name: str | None) -> None:
+    """The whole chain behind station LINE POINT (every occupation, or the one --index /
+    --node choose), or behind a delivered --file."""
     from archive.errors import UsageError
 
     arc = state.archive()
@@ -111,7 +129,7 @@ def trace(state: CliState, line: float | None, point: float | None, index: int,
         raise UsageError("trace needs LINE POINT or --file FILE")
     from archive.deliver.lineage import trace_station
 
-    t = trace_station(arc, state.survey_id(survey_name), line, point, index)
+    t = trace_station(arc, state.survey_id(survey_name), line, point, index, node=node)
     emit(state, t, lambda: _station_text(t))
 
 
@@ -145,67 +163,125 @@ def reproduce(state: CliState, run_ref: str, survey_name: str | None) -> None:
 @click.argument("run_a", metavar="RUN_A")
 @click.argument("run_b", metavar="RUN_B")
 @click.option("--threshold", type=float, default=1.0, show_default=True, metavar="M",
-              help="List stations that moved more than M metres.")
+              help="List occupations that moved more than M metres.")
+@click.option("--station", default=None, metavar="LINE:POINT",
+              help="Compare only this station (with --index / --node: one occupation).")
+@occupation_options
 @survey_option
 @output_options
 @pass_state
-def diff(state: CliState, run_a: str, run_b: str, threshold: float,
-         survey_name: str | None) -> None:
-    """Per-station movement from RUN_A to RUN_B."""
+def diff(state: CliState, run_a: str, run_b: str, threshold: float, station: str | None,
+         index: int | None, node: str | None, survey_name: str | None) -> None:
+    """Per-occupation movement from RUN_A to RUN_B (paired by line, point and point index)."""
     from archive.deliver.compare import diff_runs
+    from archive.errors import UsageError
 
-    d = diff_runs(state.archive(), run_a, run_b, threshold, state.survey_id(survey_name))
+    where = None
+    if station is not None:
+        try:
+            a, b = station.split(":")
+            where = (float(a), float(b))
+        except ValueError:
+            raise UsageError(f"--station {station!r} is not LINE:POINT",
+                             hint="e.g. --station 1001:5002") from None
+    d = diff_runs(state.archive(), run_a, run_b, threshold, state.survey_id(survey_name),
+                  station=where, index=index, node=node)
 
     def text() -> str:
         s = d["summary"]
-        out = [f"{d['run_a'][:12]} -> {d['run_b'][:12]}: {s['n_common']} common stations"]
+        out = [f"{d['run_a'][:12]} -> {d['run_b'][:12]}: {s['n_common']} occupations in both "
+               "runs (paired by line, point and point index)"]
         if s.get("n_compared"):
             out.append(f"horizontal movement (m): mean {s['mean']:.3f}, median "
                        f"{s['median']:.3f}, 95th percentile {s['p95']:.3f}, rms "
                        f"{s['rms']:.3f}, max {s['max']:.3f}")
-        out.append(f"{len(d['beyond'])} station(s) moved more than {threshold:g} m")
+        out.append(f"{len(d['beyond'])} occupation(s) moved more than {threshold:g} m")
         if d["beyond"]:
             out.append(table([(f"{b['line']:g}", f"{b['point']:g}", b["index"],
-                               f"{b['de']:+.3f}", f"{b['dn']:+.3f}", f"{b['moved']:.3f}",
-                               _f(b["dh"], "{:+.3f}")) for b in d["beyond"][:200]],
-                             ["line", "point", "idx", "dE", "dN", "moved", "dH"]))
+                               b.get("node") or "", f"{b['de']:+.3f}", f"{b['dn']:+.3f}",
+                               f"{b['moved']:.3f}", _f(b["dh"], "{:+.3f}"))
+                              for b in d["beyond"][:200]],
+                             ["line", "point", "idx", "node", "dE", "dN", "moved", "dH"]))
         for what in ("added", "removed"):
             st = d[what]
             out.append(f"{what}: {len(st)}" + (": " + ", ".join(
-                f"{x['line']:g}/{x['point']:g}" for x in st[:50]) if st else ""))
+                f"{x['line']:g}/{x['point']:g} index {x['index']}" for x in st[:50])
+                if st else ""))
         return "\n".join(out)
 
     emit(state, d, text)
 
 
+def _window(d: dict[str, Any]) -> str:
+    start = _when(d.get("deployed"))
+    end = "still deployed" if d.get("retrieved") is None else _when(d["retrieved"])
+    return f"{start} to {end}" if d.get("deployed") is not None else "window not recorded"
+
+
+def _record_text(d: dict[str, Any]) -> str:
+    return (f"E {_f(d['easting'])} N {_f(d['northing'])} H {_f(d['height'])} "
+            f"(source {d['source']}) in delivery {d['id']} ({d['format']}, {d['file_name']}, "
+            f"to {d['recipient']}, {_when(d['created_at'])}, sha256 {d['file_hash'][:16]}…)")
+
+
+def _where_text(w: dict[str, Any]) -> str:
+    st = w["station"]
+    name = f"station {st['line']:g}/{st['point']:g}"
+    when = f" as of {_when(w['as_of'])}" if w["as_of"] else ""
+    occs = w["occupations"]
+    if not occs:
+        return f"{name} had not been delivered{when}"
+    out = []
+    if w["at"] is not None:
+        d = w["delivered"]
+        if d is None:
+            near = "; ".join(
+                f"index {n['index']} (node {n['node']}) ended {_when(n['ended'])}"
+                if "ended" in n else
+                f"index {n['index']} (node {n['node']}) started {_when(n['started'])}"
+                for n in w["nearest"])
+            return (f"{name}{when}: no delivered occupation was in the ground at "
+                    f"{_when(w['at'])}" + (f"; nearest: {near}" if near else ""))
+        out.append(f"{name} index {d['index']} (node {d['node']}, {_window(d)}) held "
+                   f"{_when(w['at'])}{when}: {_record_text(d)}")
+    elif len(occs) == 1:
+        d = w["delivered"]
+        out.append(f"{name} index {d['index']} (node {d['node']}, {_window(d)}){when}: "
+                   f"{_record_text(d)}")
+    else:
+        out.append(f"{name}{when}: {len(occs)} occupations, each delivered under its own "
+                   "point index (choose one with --index, --node or --at TIME)")
+        for o in occs:
+            d = o["delivered"]
+            out.append(f"  index {o['index']}: node {d['node']}, {_window(d)}: "
+                       f"{_record_text(d)}")
+    for o in occs:
+        if w["at"] is not None and (w["delivered"] or {}).get("index") != o["index"]:
+            continue
+        for e in reversed(o["history"][:-1]):
+            out.append(f"  earlier (index {o['index']}): delivery {e['id']} ({e['format']}, "
+                       f"{e['file_name']}, {_when(e['created_at'])}): E {_f(e['easting'])} "
+                       f"N {_f(e['northing'])} H {_f(e['height'])}")
+    return "\n".join(out)
+
+
 @click.command()
 @click.argument("line", type=float)
 @click.argument("point", type=float)
-@click.option("--index", type=int, default=1, show_default=True, help="SPS point index.")
+@occupation_options
+@click.option("--at", "at", default=None, metavar="TIME",
+              help="ISO 8601 UTC time (e.g. a shot time): the occupation in the ground then.")
 @click.option("--as-of", "as_of", default=None, metavar="DATE",
               help="ISO 8601 date (end of that day, UTC) or time; default now.")
 @survey_option
 @output_options
 @pass_state
-def where(state: CliState, line: float, point: float, index: int, as_of: str | None,
-          survey_name: str | None) -> None:
-    """The coordinate delivered for station LINE POINT as of a date, and in which delivery."""
+def where(state: CliState, line: float, point: float, index: int | None, node: str | None,
+          at: str | None, as_of: str | None, survey_name: str | None) -> None:
+    """The coordinates delivered for station LINE POINT as of a date, and in which delivery:
+    every occupation, the one --index / --node choose, or the one in the ground --at a time."""
     from archive.deliver.compare import where as run
 
-    w = run(state.archive(), state.survey_id(survey_name), line, point, index, as_of)
-
-    def text() -> str:
-        when = f" as of {_when(w['as_of'])}" if w["as_of"] else ""
-        d = w["delivered"]
-        if d is None:
-            return f"station {line:g}/{point:g} had not been delivered{when}"
-        return (f"station {line:g}/{point:g}{when}: E {_f(d['easting'])} N {_f(d['northing'])} "
-                f"H {_f(d['height'])} (source {d['source']}) in delivery {d['id']} "
-                f"({d['format']}, {d['file_name']}, to {d['recipient']}, "
-                f"{_when(d['created_at'])}, sha256 {d['file_hash'][:16]}…)"
-                + "".join(f"\n  earlier: delivery {e['id']} ({e['format']}, {e['file_name']}, "
-                          f"{_when(e['created_at'])}): E {_f(e['easting'])} "
-                          f"N {_f(e['northing'])} H {_f(e['height'])}"
-                          for e in reversed(w["history"][:-1])))
-
-    emit(state, w, text)
+    w = run(state.archive(), state.survey_id(survey_name), line, point, index, as_of,
+            node=node, at=at)
+    emit(state, w, lambda: _where_text(w))

@@ -7,6 +7,9 @@ Catalogue:
 - ``--run RUN`` (show, deliver, qc, report): a run id or a unique prefix of one; defaults to
   the newest run of the survey.
 - ``--force`` (commands writing files): overwrite an existing output file.
+- ``--index N`` / ``--node SERIAL`` (show, trace, where, diff, every edit): choose one
+  occupation of a station by its delivered point index or by the node deployed there; the
+  query commands show every occupation when neither is given.
 - ``--to FILE`` (commands writing files): where to write.
 The archive itself (``--archive/-A``), ``--actor`` and ``--debug`` are options of the
 ``nodekeep`` group, placed before the command name.
@@ -50,6 +53,15 @@ run_option = click.option(
 )
 
 force_option = click.option("--force", is_flag=True, help="Overwrite an existing output file.")
+
+
+def occupation_options(f: Callable[..., Any]) -> Callable[..., Any]:
+    """Add ``--index N`` and ``--node SERIAL`` (choose one occupation of the station)."""
+    f = click.option("--node", default=None, metavar="SERIAL",
+                     help="Only the occupation of this node.")(f)
+    return click.option("--index", "index", type=click.IntRange(1, 127), default=None,
+                        help="Only the occupation delivered under this point index "
+                             "(default: every occupation of the station).")(f)
 
 
 class CliState:

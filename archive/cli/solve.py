@@ -8,6 +8,7 @@ import click
 
 from archive.cli.options import (
     CliState,
+    occupation_options,
     output_options,
     pass_state,
     run_option,
@@ -123,13 +124,24 @@ def _fmt(v: Any, digits: int = 2) -> str:
     return str(v)
 
 
-def _show_text(run_id: str, rows: list[dict[str, Any]]) -> str:
+def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int) -> str:
     out = [f"run {run_id}"]
+    if n_occupations > 1:
+        out.append(f"{n_occupations} occupations (one delivered record each, under its own "
+                   "point index); choose one with --index N or --node SERIAL")
     for r in rows:
+        occ = (f"occupation index {r['occupation']} (preplot index {r['index']})"
+               if r["occupation"] is not None else f"preplot index {r['index']}")
+        held = (f"  deployed   {r['deployed']} .. "
+                f"{r['retrieved'] if r['retrieved'] is not None else 'still deployed'}"
+                if r["deployed"] is not None else "")
+        margins = ("  (no usable fix in the settled window: solved from the settle-margin "
+                   "fixes, uncertainty widened)" if r["from_margins"] else "")
         out += [
-            f"station {r['line']:g}/{r['point']:g} index {r['index']}  node {r['node']}  "
+            f"station {r['line']:g}/{r['point']:g} {occ}  node {r['node']}  "
             f"{r['kind']} part {r['part']}{'  (delivered)' if r['delivered'] else ''}",
-            f"  window     {r['t_start']} .. {r['t_end']}",
+            *([held] if held else []),
+            f"  window     {r['t_start']} .. {r['t_end']}{margins}",
             f"  position   E {_fmt(r['easting'], 3)}  N {_fmt(r['northing'], 3)}  "
             f"lat {_fmt(r['lat'], 8)}  lon {_fmt(r['lon'], 8)}",
             f"  height     {_fmt(r['height'], 2)} ({r['height_source']})  GNSS "
@@ -152,16 +164,17 @@ def _show_text(run_id: str, rows: list[dict[str, Any]]) -> str:
 @click.command()
 @click.argument("line", type=float)
 @click.argument("point", type=float)
-@click.option("--index", "index", type=int, default=1, show_default=True, help="Point index.")
+@occupation_options
 @run_option
 @survey_option
 @output_options
 @pass_state
-def show(state: CliState, line: float, point: float, index: int, run_ref: str | None,
-         survey_name: str | None) -> None:
-    """Show the solution of station LINE POINT in a run (the newest by default)."""
+def show(state: CliState, line: float, point: float, index: int | None, node: str | None,
+         run_ref: str | None, survey_name: str | None) -> None:
+    """Show the solution of station LINE POINT in a run (the newest by default): every
+    occupation, or the one --index / --node choose."""
     from archive.solve.run import station_solution
 
     res = station_solution(state.archive(), _survey_id(state, survey_name), line, point,
-                           index, run_ref)
-    emit(state, res, lambda: _show_text(res["run"], res["rows"]))
+                           index, run_ref, node=node)
+    emit(state, res, lambda: _show_text(res["run"], res["rows"], res["n_occupations"]))

@@ -19,30 +19,35 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import select
 
 from archive import __version__
-from archive.deliver.deliveries import delivery_dict
 from archive.deliver.runs import get_run, plain, run_positions
 from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import table_digest
-from archive.store.models import Delivery
 
 KEY = ["line", "point", "index"]
 
 
 def _frame(table: pa.Table, delivered_only: bool = True) -> pd.DataFrame:
+    """Delivered rows keyed by occupation: ``index`` is the occupation's point index (the
+    ``occupation`` column of a positions table, the ``index`` of a final table)."""
     if delivered_only and "delivered" in table.column_names:
         table = table.filter(pc.equal(table["delivered"], True))
-    cols = [c for c in (*KEY, "easting", "northing", "height") if c in table.column_names]
-    return table.select(cols).to_pandas()
+    cols = [c for c in (*KEY, "node", "easting", "northing", "height")
+            if c in table.column_names]
+    df = table.select(cols).to_pandas()
+    if "occupation" in table.column_names:
+        df["index"] = table["occupation"].to_pandas().fillna(df["index"]).astype("int64")
+    return df
 
 
 def compare_positions(a: pa.Table, b: pa.Table, threshold: float = 1.0) -> dict[str, Any]:
     """Per-station movement from table ``a`` to table ``b`` (delivered rows, metres)."""
     fa, fb = _frame(a), _frame(b)
     m = fa.merge(fb, on=KEY, how="outer", suffixes=("_a", "_b"), indicator=True)
+    if "node_a" in m.columns:
+        m["node"] = m["node_b"].where(m["node_b"].notna(), m["node_a"])
     both = m[m["_merge"] == "both"].copy()
     both["de"] = both["easting_b"] - both["easting_a"]
     both["dn"] = both["northing_b"] - both["northing_a"]
@@ -57,22 +62,28 @@ def compare_positions(a: pa.Table, b: pa.Table, threshold: float = 1.0) -> dict[
                     "rms": float(np.sqrt(np.mean(d * d))), "max": float(d.max())}
     beyond = both[both["moved"] > threshold].sort_values("moved", ascending=False)
 
+    def node(r: dict[str, Any]) -> str | None:
+        v = r.get("node")
+        return None if v is None or (isinstance(v, float) and v != v) else str(v)
+
     def stations(frame: pd.DataFrame) -> list[dict[str, Any]]:
-        return [{"line": float(r["line"]), "point": float(r["point"]), "index": int(r["index"])}
-                for r in frame[KEY].to_dict("records")]
+        cols = [*KEY, "node"] if "node" in frame.columns else KEY
+        return [{"line": float(r["line"]), "point": float(r["point"]), "index": int(r["index"]),
+                 "node": node(r)} for r in frame[cols].to_dict("records")]
 
     moved_rows = [
         {"line": float(r["line"]), "point": float(r["point"]), "index": int(r["index"]),
-         "de": float(r["de"]), "dn": float(r["dn"]), "moved": float(r["moved"]),
-         "dh": None if pd.isna(r["dh"]) else float(r["dh"])}
-        for r in beyond[[*KEY, "de", "dn", "dh", "moved"]].to_dict("records")
+         "node": node(r), "de": float(r["de"]), "dn": float(r["dn"]),
+         "moved": float(r["moved"]), "dh": None if pd.isna(r["dh"]) else float(r["dh"])}
+        for r in beyond[[c for c in (*KEY, "node", "de", "dn", "dh", "moved")
+                         if c in beyond.columns]].to_dict("records")
     ]
     return {"threshold": threshold, "summary": summary, "beyond": moved_rows,
             "added": stations(m[m["_merge"] == "right_only"]),
             "removed": stations(m[m["_merge"] == "left_only"])}
 
 
-ROW_KEY = ["line", "point", "index", "node", "kind", "part"]
+ROW_KEY = ["line", "point", "index", "occupation", "node", "kind", "part"]
 
 
 def table_differences(a: pa.Table, b: pa.Table) -> dict[str, Any]:
@@ -152,13 +163,32 @@ def difference_text(d: dict[str, Any]) -> str:
 
 
 def diff_runs(arc: Archive, a: str, b: str, threshold: float = 1.0,
-              survey_id: int | None = None) -> dict[str, Any]:
-    """Per-station movement between runs ``a`` and ``b`` (ids or unique prefixes)."""
+              survey_id: int | None = None, *, station: tuple[float, float] | None = None,
+              index: int | None = None, node: str | None = None) -> dict[str, Any]:
+    """Per-occupation movement between runs ``a`` and ``b`` (ids or unique prefixes).
+
+    Occupations are paired by (line, point, point index of the occupation), whatever the
+    format of either run. ``station`` (line, point) with ``index``/``node`` narrows the
+    comparison to one station or one of its occupations.
+    """
+    from archive.solve.occupancy import run_occupations, station_rows
+
     if threshold < 0:
         raise UsageError("the threshold must be zero or more metres")
+    if station is None and (index is not None or node is not None):
+        raise UsageError("--index and --node choose an occupation of one station",
+                         hint="give the station too with --station LINE:POINT")
     ra, rb = get_run(arc, survey_id, a), get_run(arc, survey_id, b)
-    out = compare_positions(run_positions(arc, ra), run_positions(arc, rb), threshold)
-    return plain({"run_a": ra.id, "run_b": rb.id} | out)
+    pa_, pb = run_occupations(arc, ra), run_occupations(arc, rb)
+    if station is not None:
+        pa_ = station_rows(pa_, station[0], station[1], index, node)
+        pb = station_rows(pb, station[0], station[1], index, node)
+        if pa_.num_rows == 0 and pb.num_rows == 0:
+            raise UsageError(f"station {station[0]:g}/{station[1]:g} is in neither run"
+                             + (" with that occupation" if index or node else ""),
+                             hint="check the line and point numbers")
+    out = compare_positions(pa_, pb, threshold)
+    return plain({"run_a": ra.id, "run_b": rb.id, "station": station} | out)
 
 
 def reproduce(arc: Archive, run_ref: str, survey_id: int | None = None) -> dict[str, Any]:
@@ -204,34 +234,89 @@ def parse_as_of(value: str | date | datetime | None) -> datetime | None:
     return dt.astimezone(UTC) if dt.tzinfo else dt.replace(tzinfo=UTC)
 
 
-def where(arc: Archive, survey_id: int, line: float, point: float, index: int = 1,
-          as_of: str | date | datetime | None = None) -> dict[str, Any]:
-    """The coordinate of a station delivered most recently as of ``as_of`` (default: now).
+def parse_at(value: str | datetime | None) -> datetime | None:
+    """A moment in UTC (``--at``): an ISO 8601 time; one without a zone is taken as UTC."""
+    if value is None or isinstance(value, datetime):
+        if isinstance(value, datetime) and value.tzinfo is None:
+            raise UsageError("--at time has no time zone", hint="add Z for UTC")
+        return value.astimezone(UTC) if value is not None else None
+    text = str(value).strip()
+    try:
+        dt = datetime.fromisoformat(text.replace("Z", "+00:00"))
+    except ValueError:
+        raise UsageError(f"--at {text!r} is not an ISO 8601 time",
+                         hint="write 2025-04-09T13:20:00Z") from None
+    return dt.astimezone(UTC) if dt.tzinfo else dt.replace(tzinfo=UTC)
 
-    ``as_of`` is converted to UTC. A station not in the current stations input is refused
+
+def _nearest(occupations: list[dict[str, Any]], t: datetime) -> list[dict[str, Any]]:
+    """The occupations closest in time to ``t`` (one ending before it, one starting after)."""
+    before = [o for o in occupations if o["retrieved"] is not None and o["retrieved"] <= t]
+    after = [o for o in occupations if o["deployed"] is not None and o["deployed"] > t]
+    out = []
+    if before:
+        o = max(before, key=lambda o: o["retrieved"])
+        out.append({"index": o["index"], "node": o["node"], "ended": o["retrieved"],
+                    "seconds_before": (t - o["retrieved"]).total_seconds()})
+    if after:
+        o = min(after, key=lambda o: o["deployed"])
+        out.append({"index": o["index"], "node": o["node"], "started": o["deployed"],
+                    "seconds_after": (o["deployed"] - t).total_seconds()})
+    return out
+
+
+def where(arc: Archive, survey_id: int, line: float, point: float, index: int | None = None,
+          as_of: str | date | datetime | None = None, *, node: str | None = None,
+          at: str | datetime | None = None) -> dict[str, Any]:
+    """The coordinates delivered for station (line, point) as of ``as_of`` (default: now).
+
+    One entry per occupation in ``occupations`` (its latest delivered record and the
+    history of its records); ``index``/``node`` keep one occupation. ``at`` (a UTC moment,
+    e.g. a shot time) picks the occupation whose logged window [deployed, retrieved)
+    contains it; a moment in no window gives ``delivered`` None and the ``nearest``
+    occupations. ``delivered`` is the chosen record, or the only occupation's. ``as_of``
+    is converted to UTC. A station not in the current stations input is refused
     (:class:`UsageError`).
     """
-    from archive.deliver.edits import station_row
+    from archive.deliver.records import by_occupation, holds, station_records
+    from archive.survey.inputs import current_input
 
-    cutoff = parse_as_of(as_of)
-    station_row(arc, survey_id, line, point, index)
-    with arc.session() as s:
-        q = select(Delivery).where(Delivery.survey_id == survey_id).order_by(Delivery.id)
-        if cutoff is not None:
-            q = q.where(Delivery.created_at <= cutoff)
-        deliveries = s.scalars(q).all()
-    history = []
-    for d in deliveries:
-        t = arc.objects.read_table(d.final_hash)
-        m = pc.and_(pc.and_(pc.equal(t["line"], float(line)), pc.equal(t["point"], float(point))),
-                    pc.equal(t["index"], int(index)))
-        rows = t.filter(m).to_pylist()
-        if rows:
-            r = rows[0]
-            history.append(delivery_dict(d) | {
-                "easting": r["easting"], "northing": r["northing"], "height": r["height"],
-                "lat": r.get("lat"), "lon": r.get("lon"), "source": r["source"],
-                "flags": r["flags"]})
-    return plain({"station": {"line": float(line), "point": float(point), "index": int(index)},
-                  "as_of": cutoff, "delivered": history[-1] if history else None,
-                  "history": history})
+    cutoff, moment = parse_as_of(as_of), parse_at(at)
+    found = current_input(arc, survey_id, "stations")
+    if found is None or found[1] is None or _station_absent(found[1], line, point):
+        raise UsageError(f"unknown station {line:g}/{point:g}: not in the preplot"
+                         + (f" (stations version {found[0].version})" if found else ""),
+                         hint="check the line and point numbers")
+    records = station_records(arc, survey_id, line, point, cutoff=cutoff)
+    if index is not None:
+        records = [r for r in records if r["record"]["index"] == int(index)]
+    if node is not None:
+        records = [r for r in records if str(r["record"]["node"]) == str(node)]
+    occupations = by_occupation(records)
+    chosen, nearest = None, []
+    if moment is not None:
+        inside = [o for o in occupations if holds(o["delivered"]["record"], moment)]
+        chosen = inside[-1] if inside else None
+        nearest = [] if inside else _nearest(occupations, moment)
+    elif len(occupations) == 1:
+        chosen = occupations[0]
+    return plain({"station": {"line": float(line), "point": float(point)},
+                  "index": index, "node": node, "as_of": cutoff, "at": moment,
+                  "n_occupations": len(occupations),
+                  "delivered": _flat(chosen["delivered"]) if chosen else None,
+                  "occupations": [o | {"delivered": _flat(o["delivered"]),
+                                       "history": [_flat(h) for h in o["history"]]}
+                                  for o in occupations],
+                  "nearest": nearest})
+
+
+def _flat(entry: dict[str, Any]) -> dict[str, Any]:
+    """A delivery entry with its record's values at the top level."""
+    out = {k: v for k, v in entry.items() if k != "record"}
+    return out | entry["record"]
+
+
+def _station_absent(stations: pa.Table, line: float, point: float) -> bool:
+    mask = pc.and_(pc.equal(stations["line"], float(line)),
+                   pc.equal(stations["point"], float(point)))
+    return not bool(pc.any(mask).as_py())

@@ -13,12 +13,14 @@ from functools import lru_cache
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from archive.errors import Refused
 from archive.survey.crs import crs_from_epsg
 
 # Which instant the day-of-year / time fields of SPS and SEG-P1 records hold.
-TIME_BASIS = "UTC, end of the fix window used"
+TIME_BASIS = "UTC, when the node was laid out (deployment log)"
+TIME_COLUMN = "deployed"
 POSITION_MAPPED = "receiver (node) as solved from its GNSS fixes"
 CAUTION = ("positions for seismic processing; not a certified or legal survey, not for "
            "boundaries, construction or safety setbacks")
@@ -102,13 +104,32 @@ def _num(v: float | None) -> str:
     return str(int(v)) if float(v).is_integer() else f"{v:g}"
 
 
+def check_unique_keys(table: pa.Table, fmt_name: str) -> None:
+    """Refuse a table in which (line, point, index) is not unique: processing keys receiver
+    positions on it, so a repeated key would silently lose or mix up a position."""
+    n = table.num_rows
+    if n < 2:
+        return
+    keys = table.select(["line", "point", "index"]).group_by(["line", "point", "index"]) \
+        .aggregate([("line", "count")])
+    dup = keys.filter(pc.greater(keys["line_count"], 1))
+    if dup.num_rows == 0:
+        return
+    names = ", ".join(station_label(dup, i) + f" ({dup['line_count'][i].as_py()} records)"
+                      for i in range(min(dup.num_rows, 5)))
+    raise Refused(f"{fmt_name}: {dup.num_rows} key(s) (line, point, index) appear more than "
+                  f"once: {names}", hint="each occupation of a station needs its own point "
+                                        "index; this is a fault of the table, not of the data: "
+                                        "report it with the run id")
+
+
 def numbers_text(values: np.ndarray) -> np.ndarray:
     """Line/point numbers as short text: ``1001.00`` -> ``1001``, ``1001.50`` -> ``1001.5``."""
     text = np.char.mod("%.2f", np.asarray(values, dtype=np.float64))
     return np.char.rstrip(np.char.rstrip(text, "0"), ".")
 
 
-def time_fields(table: pa.Table, name: str = "t_end") -> tuple[np.ndarray, ...]:
+def time_fields(table: pa.Table, name: str = TIME_COLUMN) -> tuple[np.ndarray, ...]:
     """(valid, year, day of year, hour, minute, second) of a UTC timestamp column, vectorised."""
     n = table.num_rows
     if name not in table.column_names:

@@ -3,7 +3,11 @@
 Numbers are written in their shortest round-trip form (no rounding), unquoted; every text
 column is in double quotes (Arrow's CSV writer quotes all strings, so an empty ``flags`` is
 ``""``); ``flags`` is a ``;``-separated list (empty when none); times are ISO 8601 UTC with
-microseconds and a ``Z`` (``2024-03-14T05:06:07.000000Z``). The file is UTF-8. The ``crs`` and
+microseconds and a ``Z`` (``2024-03-14T05:06:07.000000Z``). One row per occupation: ``index`` is
+the point index it is delivered under, ``station_index`` the preplot station's,
+``deployed``/``retrieved`` its logged window (``retrieved`` empty while the node is still
+out), ``t_start``/``t_end`` the fixes used; ``merged`` lists the indices merged into the row
+(``deliver --merge-occupations``). The file is UTF-8. The ``crs`` and
 ``vertical_datum`` columns repeat the survey's EPSG code and vertical datum on every row so
 the file cannot be separated from what its numbers mean.
 """
@@ -14,12 +18,13 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
-from archive.deliver.context import DeliveryContext
+from archive.deliver.context import DeliveryContext, check_unique_keys
 
 CSV_COLUMNS = (
-    "line", "point", "index", "node", "easting", "northing", "height", "height_source",
-    "sigma_e", "sigma_n", "r95", "n_used", "n_rejected", "flags", "source",
-    "lat", "lon", "t_end",
+    "line", "point", "index", "station_index", "node", "deployed", "retrieved",
+    "easting", "northing", "height", "height_source",
+    "sigma_e", "sigma_n", "r95", "n_used", "n_rejected", "flags", "source", "merged",
+    "lat", "lon", "t_start", "t_end",
 )
 
 
@@ -43,6 +48,7 @@ def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
 
 def write_csv(table: pa.Table, ctx: DeliveryContext) -> bytes:
     """CSV bytes (UTF-8, header row, LF line ends, every text value quoted)."""
+    check_unique_keys(table, "CSV")
     sink = pa.BufferOutputStream()
     opts = pacsv.WriteOptions(include_header=True, quoting_style="needed")
     pacsv.write_csv(csv_table(table, ctx), sink, write_options=opts)

@@ -18,7 +18,6 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-import tempfile
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -29,7 +28,7 @@ from sqlalchemy import func, select
 from archive import __version__
 from archive.deliver.context import CAUTION, DeliveryContext, station_label
 from archive.deliver.edits import delivery_edit_set, edit_dict
-from archive.deliver.final import final_positions, unacknowledged_flags
+from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
 from archive.deliver.runs import get_run, manifest_inputs, run_manifest
 from archive.errors import Refused, StorageError, UsageError
@@ -37,6 +36,7 @@ from archive.store.archive import Archive
 from archive.store.hashing import table_digest
 from archive.store.ledger import row_digest
 from archive.store.models import Delivery, LedgerHead, RawFile, Run, Survey, utcnow
+from archive.store.outfiles import temp_beside
 
 LINEAGE_SUFFIX = ".lineage.json"
 
@@ -53,13 +53,15 @@ class DeliveryResult:
     manifest_hash: str
     final_hash: str
     run_id: str
-    n_stations: int
+    n_stations: int  # stations (line, point) delivered
+    n_records: int  # records: one per occupation (stations occupied twice count twice)
     edit_ids: list[int] = field(default_factory=list)
     edit_set_hash: str = ""
     recipient: str = ""
     unacknowledged_flags: dict[str, int] = field(default_factory=dict)
     allowed_flags: bool = False
     warnings: list[str] = field(default_factory=list)
+    merges: list[dict[str, Any]] = field(default_factory=list)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain data for printing."""
@@ -116,16 +118,6 @@ def _json_bytes(doc: dict[str, Any]) -> bytes:
                        allow_nan=False) + "\n").encode("utf-8")
 
 
-def _temp_beside(target: Path, data: bytes) -> Path:
-    """Write ``data`` to a fsynced temporary file in ``target``'s folder."""
-    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
-    with os.fdopen(fd, "wb") as fh:
-        fh.write(data)
-        fh.flush()
-        os.fsync(fh.fileno())
-    return Path(tmp)
-
-
 def _station(e: Any) -> str:
     return f"station {e.line:g}/{e.point:g} index {e.point_index}"
 
@@ -173,10 +165,27 @@ def _move_into_place(arc: Archive, survey_id: int, delivery_id: int,
                  "again (with --force if a partial file is left)") from exc
 
 
+def occupations_of(final: pa.Table) -> list[dict[str, Any]]:
+    """The delivered occupations of every station (line, point): for the lineage manifest."""
+    cols = ["line", "point", "index", "station_index", "node", "deployed", "retrieved",
+            "merged"]
+    stations: dict[tuple[float, float], list[dict[str, Any]]] = {}
+    for r in final.select(cols).to_pylist():  # one entry per delivered record
+        occ = {k: r[k] for k in cols[2:]}
+        occ["merged"] = [int(i) for i in r["merged"].split(";")] if r["merged"] else []
+        stations.setdefault((r["line"], r["point"]), []).append(occ)
+    return [{"line": k[0], "point": k[1], "occupations": v} for k, v in stations.items()]
+
+
 def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str | Path,
             recipient: str, note: str = "", allow_flags: bool = False,
-            force: bool = False) -> DeliveryResult:
-    """Deliver the final positions of a run (plus edits in force) as ``fmt`` to ``to``."""
+            force: bool = False, merge_occupations: bool = False) -> DeliveryResult:
+    """Deliver the final positions of a run (plus edits in force) as ``fmt`` to ``to``.
+
+    One record per occupation, under its own point index; with ``merge_occupations`` the
+    occupations of a station that cannot be told apart are delivered as one position
+    (:mod:`archive.deliver.merge`), and the lineage says what was merged and what was not.
+    """
     write = writer(fmt)
     recipient = (recipient or "").strip()
     if not recipient:
@@ -191,11 +200,14 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     edits, edit_hash, unapplied = delivery_edit_set(arc, survey_id, manifest)
     warnings = [f"exclude-span edit {e.id} ({_station(e)}) is in force but run {run.id[:12]} "
                 "did not apply it: solve again to apply it" for e in unapplied]
-    final = final_positions(arc, survey_id, run, edits=edits)
+    built = build_final(arc, survey_id, run, edits=edits, merge=merge_occupations)
+    final = built.table
     if final.num_rows == 0:
         raise Refused(f"run {run.id[:12]} with the edits in force leaves no station to deliver",
                       hint="check the run ('nodekeep show') and the reject edits "
                            "('nodekeep edits')")
+    n_stations = len(set(zip(final["line"].to_pylist(), final["point"].to_pylist(),
+                             strict=True)))
     flags = unacknowledged_flags(final)
     if flags and not allow_flags:
         raise _flag_refusal(final, flags, run)
@@ -214,7 +226,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     inputs = manifest_inputs(manifest)
     file_hash, file_size = arc.objects.put_bytes(data)
     final_hash, final_size = arc.objects.put_table(final)
-    tmp_file = _temp_beside(target, data)
+    tmp_file = temp_beside(target, data)
     tmp_lineage = None
     try:
         with arc.transaction() as tx:
@@ -227,7 +239,9 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                              "file_hash": file_hash, "size": file_size,
                              "recipient": recipient, "note": note, "actor": arc.actor,
                              "at": produced, "allowed_flags": bool(allow_flags),
-                             "unacknowledged_flags": flags, "n_stations": final.num_rows},
+                             "unacknowledged_flags": flags, "n_stations": n_stations,
+                             "n_records": final.num_rows,
+                             "merge_occupations": bool(merge_occupations)},
                 "survey": {"name": survey.name, "crs": f"EPSG:{survey.crs_epsg}",
                            "crs_name": survey.crs_name, "unit": survey.linear_unit,
                            "vertical_datum": survey.vertical_datum,
@@ -245,12 +259,14 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                 "raw_files": raw_files_of(arc, survey_id, inputs.get("fixes", [])),
                 "final_positions": {"hash": final_hash, "digest": table_digest(final),
                                     "rows": final.num_rows},
+                "occupations": occupations_of(final),
+                "merges": built.merges,
                 "code_version": __version__,
                 "caution": CAUTION,
             }
             lineage_bytes = _json_bytes(lineage)
             manifest_hash, manifest_size = arc.objects.put_bytes(lineage_bytes)
-            tmp_lineage = _temp_beside(lineage_path, lineage_bytes)
+            tmp_lineage = temp_beside(lineage_path, lineage_bytes)
             arc.register_object(tx, file_hash, file_size, "delivery")
             arc.register_object(tx, final_hash, final_size, "table")
             arc.register_object(tx, manifest_hash, manifest_size, "lineage")
@@ -267,7 +283,9 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                      "name": target.name, "final": final_hash, "lineage": manifest_hash,
                      "recipient": recipient, "edit_set": edit_hash,
                      "edits": [e.id for e in edits], "allowed_flags": bool(allow_flags),
-                     "unacknowledged_flags": flags},
+                     "unacknowledged_flags": flags,
+                     "merge_occupations": bool(merge_occupations),
+                     "merged_stations": sum(1 for m in built.merges if m["merged"])},
                     survey_id=survey_id, rows=[row])
     except BaseException:
         for tmp in (tmp_file, tmp_lineage):
@@ -279,9 +297,9 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
     return DeliveryResult(
         delivery_id=next_id, path=str(target), lineage_path=str(lineage_path), format=fmt,
         file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash, run_id=run.id,
-        n_stations=final.num_rows, edit_ids=[e.id for e in edits], edit_set_hash=edit_hash,
+        n_stations=n_stations, n_records=final.num_rows, edit_ids=[e.id for e in edits], edit_set_hash=edit_hash,
         recipient=recipient, unacknowledged_flags=flags, allowed_flags=bool(allow_flags),
-        warnings=warnings)
+        warnings=warnings, merges=built.merges)
 
 
 def delivery_dict(d: Delivery) -> dict[str, Any]:

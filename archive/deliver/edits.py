@@ -1,5 +1,10 @@
 """Manual edits: immutable, reasoned decisions on stations, each ledgered on its own.
 
+An edit names one *occupation* of a station (one deployment of a node there) by its delivered
+point index (``index``; :mod:`archive.survey.occupations`), chosen with ``index`` and/or
+``node``. A station occupied more than once must be given one of them: an edit never lands on
+more than one occupation. A station never deployed is named by its preplot index.
+
 Kinds (payloads in :mod:`archive.store.edit_log`): ``set-position`` (from a check point,
 the preplot or given coordinates), ``set-height``, ``exclude-span`` (a time span of a node's
 fixes left out at the next solve), ``reject-station`` (not delivered), ``ack-flag`` (a review
@@ -89,6 +94,36 @@ def _control_row(arc: Archive, survey_id: int, line: float, point: float,
     return row | {"control_version": version.version, "control_hash": version.table_hash}
 
 
+def _target(arc: Archive, survey_id: int, line: float, point: float, index: int | None,
+            node: str | None, what: str) -> tuple[int, int, dict[str, Any] | None]:
+    """(delivered point index, preplot station index, occupation) an edit addresses.
+
+    The occupation comes from the current deployment log: ``index`` (its delivered point
+    index) and/or ``node`` choose it; a station occupied more than once with neither given is
+    refused with the list of its occupations. A station never deployed is addressed by its
+    preplot index (``index``, default 1). The preplot station must exist.
+    """
+    from archive.survey.occupations import current_occupations, pick_one
+
+    _, occs = current_occupations(arc, survey_id, line, point)
+    occ = pick_one(occs, line, point, index, node, what=what)
+    if occ is None:
+        idx = 1 if index is None else int(index)
+        station_row(arc, survey_id, line, point, idx)
+        return idx, idx, None
+    station_row(arc, survey_id, line, point, occ["station_index"])
+    return int(occ["index"]), int(occ["station_index"]), occ
+
+
+def _occupation_payload(occ: dict[str, Any] | None) -> dict[str, Any]:
+    """What an edit records of the occupation it names (node and logged window)."""
+    if occ is None:
+        return {}
+    return {"occupation": {"node": occ["node"], "deployed": occ["deployed"].isoformat(),
+                           "retrieved": occ["retrieved"].isoformat() if occ["retrieved"]
+                           else None}}
+
+
 def _require_reason(reason: str | None) -> str:
     text = (reason or "").strip()
     if not text:
@@ -143,12 +178,17 @@ def _create(arc: Archive, survey_id: int, kind: str, line: float, point: float, 
     return edit
 
 
-def set_position(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
-                 reason: str, source: str = "given", easting: float | None = None,
-                 northing: float | None = None) -> Edit:
-    """Set a station's delivered position from a check point, the preplot or coordinates."""
+def set_position(arc: Archive, survey_id: int, line: float, point: float,
+                 index: int | None = None, *, reason: str, source: str = "given",
+                 easting: float | None = None, northing: float | None = None,
+                 node: str | None = None) -> Edit:
+    """Set an occupation's delivered position from a check point, the preplot or coordinates.
+
+    ``index``/``node`` choose the occupation (see :func:`_target`).
+    """
     reason = _require_reason(reason)
-    pre = station_row(arc, survey_id, line, point, index)
+    index, st_index, occ = _target(arc, survey_id, line, point, index, node, "set-position")
+    pre = station_row(arc, survey_id, line, point, st_index)
     if source == "given":
         if easting is None or northing is None:
             raise UsageError("--from given needs --easting and --northing")
@@ -160,7 +200,7 @@ def set_position(arc: Archive, survey_id: int, line: float, point: float, index:
                    "input": {"kind": "stations", "version": pre["stations_version"],
                              "table": pre["stations_hash"]}}
     elif source == "control":
-        c = _control_row(arc, survey_id, line, point, index)
+        c = _control_row(arc, survey_id, line, point, st_index)
         payload = {"source": "control", "easting": c["easting"], "northing": c["northing"],
                    "sigma_e": c.get("sigma_e"), "sigma_n": c.get("sigma_n"),
                    "height": c.get("height"),
@@ -169,14 +209,17 @@ def set_position(arc: Archive, survey_id: int, line: float, point: float, index:
     else:
         raise UsageError(f"unknown position source {source!r}", hint=f"use one of {SOURCES}")
     payload = {k: (None if isinstance(v, float) and v != v else v) for k, v in payload.items()}
+    payload |= _occupation_payload(occ)
     return _create(arc, survey_id, "set-position", line, point, index, payload, reason)
 
 
-def set_height(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
-               reason: str, source: str = "given", height: float | None = None) -> Edit:
-    """Set a station's delivered height from a check point, the preplot or a given value."""
+def set_height(arc: Archive, survey_id: int, line: float, point: float,
+               index: int | None = None, *, reason: str, source: str = "given",
+               height: float | None = None, node: str | None = None) -> Edit:
+    """Set an occupation's delivered height from a check point, the preplot or a value."""
     reason = _require_reason(reason)
-    pre = station_row(arc, survey_id, line, point, index)
+    index, st_index, occ = _target(arc, survey_id, line, point, index, node, "set-height")
+    pre = station_row(arc, survey_id, line, point, st_index)
     if source == "given":
         if height is None:
             raise UsageError("--from given needs --height")
@@ -190,7 +233,7 @@ def set_height(arc: Archive, survey_id: int, line: float, point: float, index: i
                    "input": {"kind": "stations", "version": pre["stations_version"],
                              "table": pre["stations_hash"]}}
     elif source == "control":
-        c = _control_row(arc, survey_id, line, point, index)
+        c = _control_row(arc, survey_id, line, point, st_index)
         if c.get("height") is None:
             raise UsageError(f"the check point at {_station_text(line, point, index)} has "
                              "no height", hint="use --from given --height H")
@@ -199,76 +242,87 @@ def set_height(arc: Archive, survey_id: int, line: float, point: float, index: i
                              "table": c["control_hash"]}}
     else:
         raise UsageError(f"unknown height source {source!r}", hint=f"use one of {SOURCES}")
+    payload |= _occupation_payload(occ)
     return _create(arc, survey_id, "set-height", line, point, index, payload, reason)
 
 
-def _window_text(node: str, deployed: datetime, retrieved: datetime | None) -> str:
-    end = retrieved.isoformat() if retrieved is not None else "still deployed"
-    return f"{node} {deployed.isoformat()} to {end}"
+def _span_occupation(arc: Archive, survey_id: int, line: float, point: float,
+                     index: int | None, node: str, t0: datetime, t1: datetime) -> dict[str, Any]:
+    """The occupation of ``node`` at the station whose logged window the span overlaps.
 
+    UsageError (naming the occupations there) when the node was never deployed at the
+    station, when the span overlaps none of its windows (it could have no effect) or more
+    than one (split it: an edit names one occupation).
+    """
+    from archive.survey.occupations import choose, current_occupations, listing
 
-def _check_span_deployed(arc: Archive, survey_id: int, line: float, point: float, index: int,
-                         node: str, t0: datetime, t1: datetime) -> None:
-    """UsageError unless ``node`` was deployed at the station at some time in [t0, t1)."""
-    from archive.survey.inputs import current_input
-
-    where = _station_text(line, point, index)
-    found = current_input(arc, survey_id, "deployments")
-    if found is None or found[1] is None:
-        raise UsageError(f"the survey has no deployment log, so no node is known at station "
-                         f"{where} and the span could not take effect",
+    where = f"station {line:g}/{point:g}"
+    version, occs = current_occupations(arc, survey_id, line, point)
+    if version is None:
+        raise UsageError(f"the survey has no deployment log, so no node is known at {where} "
+                         "and the span could not take effect",
                          hint="load it with 'nodekeep load deployments FILE'")
-    version, table = found
-    rows = _match(table, line, point, index).to_pylist()
-    if not rows:
-        raise UsageError(f"no node was deployed at station {where} (deployments version "
+    if not occs:
+        raise UsageError(f"no node was deployed at {where} (deployments version "
                          f"{version.version}), so the span would leave out nothing",
-                         hint="check the line and point numbers (and --index)")
-    windows = "; ".join(_window_text(r["node"], r["deployed"], r["retrieved"]) for r in rows)
-    mine = [r for r in rows if r["node"] == node]
+                         hint="check the line and point numbers")
+    mine = choose(occs, index, node)
     if not mine:
-        raise UsageError(f"node {node} was never deployed at station {where}; deployed there: "
-                         f"{windows}", hint="give one of those nodes with --node")
-    if not any((r["retrieved"] is None or t0 < r["retrieved"]) and t1 > r["deployed"]
-               for r in mine):
+        raise UsageError(f"node {node} was never deployed at {where}"
+                         + (f" under index {index}" if index is not None else "")
+                         + f"; occupations there: {listing(occs)}",
+                         hint="give one of those nodes with --node")
+    hit = [o for o in mine if (o["retrieved"] is None or t0 < o["retrieved"])
+           and t1 > o["deployed"]]
+    if not hit:
         raise UsageError(f"the span {t0.isoformat()} to {t1.isoformat()} overlaps no "
-                         f"deployment of node {node} at station {where}; deployed there: "
-                         f"{windows}", hint="give --start/--end inside one of those windows")
+                         f"deployment of node {node} at {where}; occupations there: "
+                         f"{listing(occs)}", hint="give --start/--end inside one of those windows")
+    if len(hit) > 1:
+        raise UsageError(f"the span {t0.isoformat()} to {t1.isoformat()} overlaps "
+                         f"{len(hit)} occupations of node {node} at {where}: {listing(hit)}",
+                         hint="make one exclude edit per occupation (--index N)")
+    return hit[0]
 
 
-def exclude_span(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
-                 node: str, start: str | datetime, end: str | datetime, reason: str) -> Edit:
+def exclude_span(arc: Archive, survey_id: int, line: float, point: float,
+                 index: int | None = None, *, node: str, start: str | datetime,
+                 end: str | datetime, reason: str) -> Edit:
     """Leave a node's fixes between ``start`` and ``end`` (UTC) out of the next solve.
 
-    Refused (UsageError naming the nodes deployed there and their windows) when ``node`` was
-    never deployed at the station in the current deployment log, or when the span overlaps
-    none of its deployment windows there: such a span could have no effect.
+    The edit names the occupation of ``node`` at the station whose logged window the span
+    overlaps (``index`` narrows the choice). Refused (UsageError naming the occupations
+    there) when ``node`` was never deployed at the station in the current deployment log, or
+    when the span overlaps none of its deployment windows there: such a span could have no
+    effect.
     """
     reason = _require_reason(reason)
-    station_row(arc, survey_id, line, point, index)
     node = (node or "").strip()
     if not node:
         raise UsageError("exclude needs the node serial (--node)")
     t0, t1 = _utc(start, "start"), _utc(end, "end")
     if t1 <= t0:
         raise UsageError(f"the span ends ({t1.isoformat()}) before it starts ({t0.isoformat()})")
-    _check_span_deployed(arc, survey_id, line, point, index, node, t0, t1)
+    occ = _span_occupation(arc, survey_id, line, point, index, node, t0, t1)
+    station_row(arc, survey_id, line, point, occ["station_index"])
     payload = {"node": node, "start": t0.isoformat(), "end": t1.isoformat()}
-    return _create(arc, survey_id, "exclude-span", line, point, index, payload, reason)
+    return _create(arc, survey_id, "exclude-span", line, point, occ["index"], payload, reason)
 
 
-def reject_station(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
-                   reason: str) -> Edit:
-    """Mark a station as not to be delivered."""
+def reject_station(arc: Archive, survey_id: int, line: float, point: float,
+                   index: int | None = None, *, reason: str, node: str | None = None) -> Edit:
+    """Mark an occupation of a station as not to be delivered (``index``/``node`` choose it)."""
     reason = _require_reason(reason)
-    station_row(arc, survey_id, line, point, index)
-    return _create(arc, survey_id, "reject-station", line, point, index, {}, reason)
+    index, _, occ = _target(arc, survey_id, line, point, index, node, "reject")
+    return _create(arc, survey_id, "reject-station", line, point, index,
+                   _occupation_payload(occ), reason)
 
 
 def _station_flags(arc: Archive, survey_id: int, line: float, point: float,
                    index: int) -> tuple[str, list[str]]:
-    """The newest run's id and the flags of the station's delivered row in it."""
-    from archive.solve.run import get_run, run_positions
+    """The newest run's id and the flags of the occupation's delivered row in it."""
+    from archive.solve.occupancy import run_occupations, station_rows
+    from archive.solve.run import get_run
 
     where = _station_text(line, point, index)
     try:
@@ -276,7 +330,7 @@ def _station_flags(arc: Archive, survey_id: int, line: float, point: float,
     except UsageError:
         raise UsageError(f"the survey has no solution run yet, so station {where} carries no "
                          "flag to acknowledge", hint="solve first with 'nodekeep solve'") from None
-    table = _match(run_positions(arc, run), line, point, index)
+    table = station_rows(run_occupations(arc, run), line, point, index)
     table = table.filter(pc.fill_null(table["delivered"], False))
     if table.num_rows == 0:
         raise UsageError(f"station {where} has no delivered position in the newest run "
@@ -286,24 +340,26 @@ def _station_flags(arc: Archive, survey_id: int, line: float, point: float,
     return run.id, flags
 
 
-def ack_flag(arc: Archive, survey_id: int, line: float, point: float, index: int = 1, *,
-             flag: str, reason: str) -> Edit:
-    """Acknowledge a review flag of a station (it no longer blocks a delivery).
+def ack_flag(arc: Archive, survey_id: int, line: float, point: float,
+             index: int | None = None, *, flag: str, reason: str,
+             node: str | None = None) -> Edit:
+    """Acknowledge a review flag of an occupation (it no longer blocks a delivery).
 
-    Refused (UsageError) when there is no run yet, or when the station's delivered row in
+    Refused (UsageError) when there is no run yet, or when the occupation's delivered row in
     the newest run does not carry ``flag`` (the message names the flags it does carry).
     """
     reason = _require_reason(reason)
     if flag not in FLAGS:
         raise UsageError(f"unknown flag {flag!r}", hint=f"flags are: {', '.join(FLAGS)}")
-    station_row(arc, survey_id, line, point, index)
+    index, _, occ = _target(arc, survey_id, line, point, index, node, "ack")
     run_id, carried = _station_flags(arc, survey_id, line, point, index)
     if flag not in carried:
         has = ", ".join(carried) if carried else "no flags"
         raise UsageError(f"station {_station_text(line, point, index)} does not carry flag "
                          f"{flag!r} in the newest run {run_id[:12]}; it carries: {has}",
                          hint="acknowledge one of the flags it carries, or solve again first")
-    return _create(arc, survey_id, "ack-flag", line, point, index, {"flag": flag}, reason)
+    return _create(arc, survey_id, "ack-flag", line, point, index,
+                   {"flag": flag} | _occupation_payload(occ), reason)
 
 
 def undo(arc: Archive, survey_id: int, edit_id: int, *, reason: str) -> Edit:

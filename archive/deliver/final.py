@@ -1,5 +1,12 @@
 """Final positions: a run's delivered rows with the edits in force applied.
 
+One row per occupation (one deployment of a node at a station): ``index`` is the point index
+the occupation is delivered under (:mod:`archive.survey.occupations`), ``station_index`` the
+preplot station's own index, ``deployed``/``retrieved`` its logged window. An edit names one
+occupation by (line, point, index), so it never lands on another occupation of the station.
+With ``merge``, occupations of a station that cannot be told apart statistically are
+delivered as one position (:mod:`archive.deliver.merge`).
+
 Every row says where its values came from in ``source``: ``solver``, or the edits that
 changed it (``edit:12``, ``edit:12;edit:15``). ``flags`` keeps only the run's review flags
 that no ``ack-flag`` edit has acknowledged (those go to ``flags_acknowledged``). Rejected
@@ -18,8 +25,10 @@ says so with ``node:deployed``. A later ``set-height`` still overrides the heigh
 
 from __future__ import annotations
 
+import contextlib
 import json
 from collections.abc import Callable
+from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
@@ -28,7 +37,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from archive.deliver.edits import edit_set
-from archive.deliver.runs import run_manifest, run_positions
+from archive.deliver.runs import run_manifest
 from archive.store.archive import Archive
 from archive.store.models import Run
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
@@ -40,8 +49,11 @@ FINAL_SCHEMA = pa.schema(
     [
         pa.field("line", pa.float64(), nullable=False),
         pa.field("point", pa.float64(), nullable=False),
-        pa.field("index", pa.int8(), nullable=False),
+        pa.field("index", pa.int8(), nullable=False),  # delivered point index (occupation)
+        pa.field("station_index", pa.int8(), nullable=False),  # the preplot station's index
         pa.field("node", pa.string()),
+        pa.field("deployed", UTC_TIME),  # the occupation's logged window
+        pa.field("retrieved", UTC_TIME),  # null: still in the ground
         pa.field("easting", pa.float64()),
         pa.field("northing", pa.float64()),
         pa.field("height", pa.float64()),
@@ -50,6 +62,7 @@ FINAL_SCHEMA = pa.schema(
         pa.field("lon", pa.float64()),
         pa.field("sigma_e", pa.float64()),
         pa.field("sigma_n", pa.float64()),
+        pa.field("corr_en", pa.float64()),
         pa.field("r95", pa.float64()),
         pa.field("n_used", pa.int64()),
         pa.field("n_rejected", pa.int64()),
@@ -58,8 +71,9 @@ FINAL_SCHEMA = pa.schema(
         pa.field("flags", pa.string(), nullable=False),
         pa.field("flags_acknowledged", pa.string(), nullable=False),
         pa.field("source", pa.string(), nullable=False),
+        pa.field("merged", pa.string(), nullable=False),  # "1;2": occupations merged here
     ],
-    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "1"},
+    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "2"},
 )
 
 Key = tuple[float, float, int]
@@ -74,17 +88,35 @@ def _key(line: Any, point: Any, index: Any) -> Key:
     return (float(line), float(point), int(index))
 
 
+def _delivered_rows(positions: pa.Table) -> dict[str, list[Any]]:
+    """The delivered row of every occupation as columns of FINAL_SCHEMA (``index`` is the
+    occupation's delivered point index, ``station_index`` the preplot station's)."""
+    dl = positions.filter(pc.equal(positions["delivered"], True))
+    cols = {name: dl.column(name).to_pylist() if name in dl.column_names
+            else [None] * dl.num_rows for name in FINAL_SCHEMA.names}
+    cols["station_index"] = dl.column("index").to_pylist()
+    if "occupation" in dl.column_names:
+        cols["index"] = [o if o is not None else i for o, i in
+                         zip(dl.column("occupation").to_pylist(), cols["station_index"],
+                             strict=True)]
+    return cols
+
+
 def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
                 height_at: HeightAt | None = None) -> pa.Table:
     """Apply edits (Edit rows in force, oldest first) to a run's delivered rows.
 
-    ``height_at(easting, northing)`` samples the run's elevation model (None when the run
-    had none or the point is off the model); it re-derives the height of a set position.
+    ``delivered`` holds positions rows (with the occupation columns of
+    :func:`archive.solve.occupancy.upgrade_positions`); an edit names one occupation by its
+    delivered point index. ``height_at(easting, northing)`` samples the run's elevation
+    model (None when the run had none or the point is off the model); it re-derives the
+    height of a set position.
     """
-    cols = {name: delivered.column(name).to_pylist() if name in delivered.column_names
-            else [None] * delivered.num_rows for name in FINAL_SCHEMA.names}
-    cols["flags_acknowledged"] = [""] * delivered.num_rows
-    cols["source"] = ["solver"] * delivered.num_rows
+    cols = _delivered_rows(delivered)
+    n = len(cols["line"])
+    cols["flags_acknowledged"] = [""] * n
+    cols["source"] = ["solver"] * n
+    cols["merged"] = [""] * n
     cols["flags"] = [f or "" for f in cols["flags"]]
     rows = {_key(a, b, c): i for i, (a, b, c) in
             enumerate(zip(cols["line"], cols["point"], cols["index"], strict=True))}
@@ -100,7 +132,8 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
             cols[name].append(None)
         i = len(cols["line"]) - 1
         cols["line"][i], cols["point"][i], cols["index"][i] = key
-        cols["flags"][i], cols["flags_acknowledged"][i] = "", ""
+        cols["station_index"][i] = key[2]
+        cols["flags"][i], cols["flags_acknowledged"][i], cols["merged"][i] = "", "", ""
         cols["source"][i], cols["n_used"][i], cols["n_rejected"][i] = "", 0, 0
         rows[key] = i
         return i
@@ -119,7 +152,7 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
             i = row_of(key, create=True)
             cols["easting"][i], cols["northing"][i] = p["easting"], p["northing"]
             cols["sigma_e"][i], cols["sigma_n"][i] = p.get("sigma_e"), p.get("sigma_n")
-            cols["r95"][i] = None
+            cols["corr_en"][i], cols["r95"][i] = None, None
             cols["n_used"][i], cols["n_rejected"][i] = 0, 0
             cols["t_start"][i], cols["t_end"][i] = None, None
             cols["flags"][i] = ";".join(f for f in cols["flags"][i].split(";")
@@ -152,10 +185,7 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
         keep = np.array([_key(a, b, c) not in rejected for a, b, c in
                          zip(cols["line"], cols["point"], cols["index"], strict=True)], bool)
         table = table.filter(pa.array(keep))
-    table = _with_lonlat(table, epsg)
-    order = pc.sort_indices(table, [("line", "ascending"), ("point", "ascending"),
-                                    ("index", "ascending")])
-    return table.take(order)
+    return _sorted(_with_lonlat(table, epsg))
 
 
 def _set_height(payload: dict[str, Any], height_at: HeightAt | None,
@@ -184,32 +214,65 @@ def _with_lonlat(table: pa.Table, epsg: int) -> pa.Table:
                             pa.array(lon, mask=~ok))
 
 
-def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,
-                    *, edits: list[Any] | None = None) -> pa.Table:
-    """The run's delivered rows plus the survey's edits in force (as of a time, if given).
+@dataclass
+class Final:
+    """Final positions and, when occupations were merged, the decision for each station
+    occupied more than once (see :mod:`archive.deliver.merge`)."""
+
+    table: pa.Table
+    merges: list[dict[str, Any]] = field(default_factory=list)
+
+
+def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None, *,
+                edits: list[Any] | None = None, merge: bool = False) -> Final:
+    """The run's delivered rows (one per occupation) plus the survey's edits in force (as of
+    a time, if given); with ``merge``, statistically indistinguishable occupations of a
+    station become one position.
 
     ``edits`` overrides the edits applied (Edit rows, e.g. the set a delivery recorded).
     """
+    from archive.solve.occupancy import run_occupations
     from archive.store.models import Survey
+    from archive.survey.crs import survey_crs
 
-    positions = run_positions(arc, run)
+    positions = run_occupations(arc, run)
     delivered = positions.filter(pc.equal(positions["delivered"], True))
     if edits is None:
         edits, _ = edit_set(arc, survey_id, as_of=as_of)
     with arc.session() as s:
         epsg = s.get(Survey, survey_id).crs_epsg
-    if not any(e.kind == "set-position" for e in edits):
-        return apply_edits(delivered, edits, epsg)
-    dem_version = (run_manifest(arc, run).get("input_versions") or {}).get("dem")
-    sampler = open_dem(arc, survey_id, dem_version) if dem_version is not None else None
-    if sampler is None:
-        return apply_edits(delivered, edits, epsg)
-    with sampler:
-        def height_at(x: float, y: float) -> float | None:
-            z = float(sampler.sample(np.array([x]), np.array([y]), epsg)[0])
-            return None if np.isnan(z) else z
+    sampler = None
+    if merge or any(e.kind == "set-position" for e in edits):
+        dem_version = (run_manifest(arc, run).get("input_versions") or {}).get("dem")
+        sampler = open_dem(arc, survey_id, dem_version) if dem_version is not None else None
+    with contextlib.ExitStack() as stack:
+        height_at = None
+        if sampler is not None:
+            stack.enter_context(sampler)
 
-        return apply_edits(delivered, edits, epsg, height_at=height_at)
+            def height_at(x: float, y: float) -> float | None:
+                z = float(sampler.sample(np.array([x]), np.array([y]), epsg)[0])
+                return None if np.isnan(z) else z
+
+        table = apply_edits(delivered, edits, epsg, height_at=height_at)
+        merges: list[dict[str, Any]] = []
+        if merge:
+            from archive.deliver.merge import merge_occupations
+
+            table, merges = merge_occupations(table, survey_crs(epsg).unit_factor, height_at)
+            table = _sorted(_with_lonlat(table, epsg))
+    return Final(table, merges)
+
+
+def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,
+                    *, edits: list[Any] | None = None, merge: bool = False) -> pa.Table:
+    """The table of :func:`build_final`."""
+    return build_final(arc, survey_id, run, as_of, edits=edits, merge=merge).table
+
+
+def _sorted(table: pa.Table) -> pa.Table:
+    return table.take(pc.sort_indices(table, [("line", "ascending"), ("point", "ascending"),
+                                              ("index", "ascending")]))
 
 
 def unacknowledged_flags(final: pa.Table) -> dict[str, int]:

@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from archive.deliver.context import DeliveryContext, column
+from archive.deliver.context import DeliveryContext, check_unique_keys, column
 from archive.deliver.csvfile import csv_table
 from archive.errors import Refused
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
@@ -46,6 +46,7 @@ def wgs84_lonlat(table: pa.Table, ctx: DeliveryContext) -> tuple[np.ndarray, np.
 
 def write_geojson(table: pa.Table, ctx: DeliveryContext) -> bytes:
     """RFC 7946 FeatureCollection (UTF-8), coordinates [lon, lat, height] to 1e-9 degree."""
+    check_unique_keys(table, "GeoJSON")
     lon, lat = wgs84_lonlat(table, ctx)
     height = column(table, "height")
     props = csv_table(table, ctx).to_pylist()
@@ -80,6 +81,7 @@ def write_gpkg(table: pa.Table, ctx: DeliveryContext) -> bytes:
     """GeoPackage bytes: layer ``receivers`` of points in the survey CRS."""
     from pyogrio.raw import write_arrow
 
+    check_unique_keys(table, "GeoPackage")
     east, north = _require_positions(table, "GeoPackage")
     attrs = csv_table(table, ctx)
     data = attrs.append_column("geometry", point_wkb(east, north))

@@ -22,20 +22,13 @@ from sqlalchemy import or_, select
 
 from archive.deliver.deliveries import delivery_dict, raw_files_of
 from archive.deliver.edits import list_edits
-from archive.deliver.runs import get_run, manifest_inputs, plain, run_manifest, run_positions
+from archive.deliver.runs import get_run, manifest_inputs, plain, run_manifest
 from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import sha256_file
 from archive.store.models import Delivery, InputVersion, RawFile, Run
 
 INPUT_KINDS = ("stations", "deployments", "control", "dem")
-
-
-def _station_rows(table: pa.Table, line: float, point: float, index: int) -> list[dict]:
-    m = pc.and_(pc.and_(pc.equal(table["line"], float(line)),
-                        pc.equal(table["point"], float(point))),
-                pc.equal(table["index"], int(index)))
-    return table.filter(m).to_pylist()
 
 
 def input_tables(arc: Archive, survey_id: int, inputs: dict[str, Any]) -> list[dict[str, Any]]:
@@ -74,7 +67,7 @@ STATUSES = ("used", "rejected", "screened")
 
 
 def _counts_by_part(cloud: pa.Table, rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """Used/rejected/screened fixes per (node, part) of the station, delivered part marked.
+    """Used/rejected/screened fixes per (node, part) of an occupation, delivered part marked.
 
     Parts are those of the run's position rows (0 a whole window, 1 and 2 before and after
     a move) plus any the cloud holds; a part with no fix in the cloud counts zeros.
@@ -91,60 +84,97 @@ def _counts_by_part(cloud: pa.Table, rows: list[dict[str, Any]]) -> list[dict[st
             for node, part in keys]
 
 
-def _cloud_fixes(arc: Archive, survey_id: int, run: Run,
-                 solution: list[dict[str, Any]]) -> dict[str, Any]:
-    """Raw files and used/rejected/screened counts of the station's fix cloud in the run:
+def _cloud_fixes(arc: Archive, survey_id: int, cloud: pa.Table,
+                 rows: list[dict[str, Any]]) -> dict[str, Any]:
+    """Raw files and used/rejected/screened counts of an occupation's fix cloud in the run:
     in total over every part, and per part with the delivered one marked."""
-    from archive.solve.cloud import station_cloud
-
-    row = solution[0]
-    cloud = station_cloud(arc, run.id, row["line"], row["point"], row["index"])
     status = cloud.column("status")
     counts = {k: int(pc.sum(pc.equal(status, k)).as_py() or 0) for k in STATUSES}
     raw_hashes = pc.unique(cloud.column("raw_hash")).to_pylist()
     with arc.session() as s:
-        rows = s.scalars(select(RawFile).where(RawFile.survey_id == survey_id,
+        raws = s.scalars(select(RawFile).where(RawFile.survey_id == survey_id,
                                                RawFile.object_hash.in_(raw_hashes))
                          .order_by(RawFile.id)).all()
     raw = [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
-            "received_at": r.received_at, "received_by": r.received_by} for r in rows]
-    return {"fixes": counts, "fixes_by_part": _counts_by_part(cloud, solution), "raw_files": raw}
+            "received_at": r.received_at, "received_by": r.received_by} for r in raws]
+    return {"fixes": counts, "fixes_by_part": _counts_by_part(cloud, rows), "raw_files": raw}
+
+
+def _solution_row(r: dict[str, Any]) -> dict[str, Any]:
+    return _position(r) | {"part": r["part"], "delivered": r["delivered"], "node": r["node"],
+                           "flags": r["flags"], "t_start": r["t_start"], "t_end": r["t_end"],
+                           "from_margins": r["from_margins"]}
 
 
 def trace_station(arc: Archive, survey_id: int, line: float, point: float,
-                  index: int = 1) -> dict[str, Any]:
-    """Everything behind station (line, point, index): deliveries, run, inputs, raw, edits."""
-    with arc.session() as s:
-        deliveries = s.scalars(select(Delivery).where(Delivery.survey_id == survey_id)
-                               .order_by(Delivery.id)).all()
-    carried = []
-    for d in deliveries:
-        rows = _station_rows(arc.objects.read_table(d.final_hash), line, point, index)
-        if rows:
-            carried.append(delivery_dict(d) | {"position": _position(rows[0])})
-    run_id = carried[-1]["run"] if carried else None
-    run = get_run(arc, survey_id, run_id)
-    rows = _station_rows(run_positions(arc, run), line, point, index)
+                  index: int | None = None, *, node: str | None = None) -> dict[str, Any]:
+    """Everything behind station (line, point): per occupation (``index``/``node`` keep one)
+    its deliveries, the run behind the latest one, its solution rows, the raw files whose
+    fixes were in its cloud with the fix counts, and the station's edits."""
+    from archive.deliver.records import by_occupation, station_records
+    from archive.solve.cloud import station_cloud
+    from archive.solve.occupancy import run_occupations, station_rows
+
+    records = station_records(arc, survey_id, line, point)
+    if index is not None:
+        records = [r for r in records if r["record"]["index"] == int(index)]
+    if node is not None:
+        records = [r for r in records if str(r["record"]["node"]) == str(node)]
+    delivered = by_occupation(records)
+    run = get_run(arc, survey_id, records[-1]["run"] if records else None)
+    solved = [r for r in station_rows(run_occupations(arc, run), line, point, index,
+                                      node).to_pylist() if r["kind"] == "logged"]
     edits = list_edits(arc, survey_id, all_edits=True, line=float(line), point=float(point))
-    edits = [e for e in edits if e["index"] == int(index)]
-    if not rows and not carried and not edits:
-        raise UsageError(f"station {line:g}/{point:g} index {index} is in no run, delivery or "
-                         "edit of this survey", hint="check the line and point numbers")
-    fixes = (_cloud_fixes(arc, survey_id, run, rows) if rows
-             else {"fixes": {}, "fixes_by_part": [], "raw_files": []})
+    if index is not None:
+        edits = [e for e in edits if e["index"] == int(index)]
+    if node is not None:
+        edits = [e for e in edits if _edit_node(e) in (None, str(node))]
+    if not solved and not records and not edits:
+        which = "".join(f" {k} {v}" for k, v in (("index", index), ("node", node)) if v)
+        raise UsageError(f"station {line:g}/{point:g}{which} is in no run, delivery or edit "
+                         "of this survey", hint="check the line and point numbers")
+    cloud = None
+    if solved:
+        cloud = station_cloud(arc, run.id, line, point)
+    keys = sorted({int(r["occupation"]) for r in solved if r["occupation"] is not None}
+                  | {o["index"] for o in delivered})
+    occupations = []
+    for k in keys:
+        rows = [r for r in solved if r["occupation"] == k]
+        past = next((o for o in delivered if o["index"] == k), None)
+        fixes = {"fixes": {}, "fixes_by_part": [], "raw_files": []}
+        if rows and cloud is not None:
+            part = cloud.filter(pc.fill_null(pc.equal(cloud["occupation"], k), False))
+            fixes = _cloud_fixes(arc, survey_id, part, rows)
+        first = rows[0] if rows else (past["delivered"]["record"] if past else {})
+        occupations.append({
+            "index": k, "node": first.get("node"), "deployed": first.get("deployed"),
+            "retrieved": first.get("retrieved"),
+            "delivery": _carried(past["delivered"]) if past else None,
+            "deliveries": [_carried(h) for h in past["history"]] if past else [],
+            "solution": [_solution_row(r) for r in rows],
+            "fixes": fixes["fixes"], "fixes_by_part": fixes["fixes_by_part"],
+            "raw_files": fixes["raw_files"],
+            "edits": [e for e in edits if e["index"] == k],
+        })
     return plain({
-        "station": {"line": float(line), "point": float(point), "index": int(index)},
-        "delivery": carried[-1] if carried else None,
-        "deliveries": carried,
+        "station": {"line": float(line), "point": float(point), "index": index, "node": node},
         "run": run_summary(arc, run),
-        "solution": [_position(r) | {"part": r["part"], "delivered": r["delivered"],
-                                     "node": r["node"], "flags": r["flags"],
-                                     "t_start": r["t_start"], "t_end": r["t_end"]}
-                     for r in rows],
-        "fixes": fixes["fixes"], "fixes_by_part": fixes["fixes_by_part"],
-        "raw_files": fixes["raw_files"],
+        "occupations": occupations,
         "edits": edits,
     })
+
+
+def _carried(entry: dict[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in entry.items() if k != "record"} | {
+        "position": _position(entry["record"]) | {"index": entry["record"]["index"],
+                                                   "node": entry["record"]["node"]}}
+
+
+def _edit_node(e: dict[str, Any]) -> str | None:
+    p = e.get("payload") or {}
+    occ = p.get("occupation") or {}
+    return occ.get("node") or p.get("node")
 
 
 def _position(r: dict[str, Any]) -> dict[str, Any]:

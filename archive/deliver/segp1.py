@@ -6,7 +6,7 @@ records are refused, never cut.
 
 Data record columns (1-based, inclusive):
 1 record id (blank) · 2-17 line name, left-justified · 18-25 point number I8 ·
-26 reshoot code (blank) · 27-35 latitude DDMMSSss + N/S · 36-45 longitude DDDMMSSss + E/W ·
+26 reshoot code (the occupation's point index: blank for 1, the digit 2-9 otherwise) · 27-35 latitude DDMMSSss + N/S · 36-45 longitude DDDMMSSss + E/W ·
 46-53 easting F8 · 54-61 northing F8 · 62-66 elevation F5 · 67-68 year I2 ·
 69-71 day of year I3 · 72-77 time hhmmss (UTC) · 78-80 spare.
 
@@ -15,8 +15,9 @@ header names), computed from the delivered grid coordinates with pyproj, to 0.01
 with an implied decimal point. The grid and elevation fields are written with one decimal
 when every value of the file fits, else as whole metres; the header says which. A value
 that does not fit even as whole metres, a point number that is not a whole number, or a
-point index other than 1 (the format has no index field) is refused, never spilled into
-the next columns.
+point index above 9 (one digit in column 26) is refused, never spilled into the next
+columns. A station occupied more than once has one record per occupation: the point index
+goes in the reshoot-code column, as the header states, so (line, point, column 26) is unique.
 """
 
 from __future__ import annotations
@@ -28,6 +29,7 @@ from archive.deliver.context import (
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
+    check_unique_keys,
     column,
     fixed_field,
     numbers_text,
@@ -68,6 +70,12 @@ def dms_fields(degrees: np.ndarray, deg_width: int, pos: str, neg: str) -> np.nd
     text = np.char.add(np.char.mod(f"%0{deg_width}d", deg), np.char.mod("%02d", minutes))
     text = np.char.add(text, np.char.mod("%04d", hundredths))
     return np.char.add(text, np.where(d < 0, neg, pos))
+
+
+def reshoot_codes(index: np.ndarray) -> np.ndarray:
+    """Column 26 of each record: blank for point index 1, else the index digit (2-9)."""
+    idx = np.asarray(index, dtype=np.int64)
+    return np.where(idx == 1, " ", np.char.mod("%d", idx))
 
 
 def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str,
@@ -118,6 +126,7 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
                                "DDMMSSss 0.01 sec"),
         ("Elevation", f"{ctx.vertical_datum or 'datum not stated'}, {hprec()}"),
         ("Time basis", TIME_BASIS),
+        ("Reshoot code col 26", "occupation's point index, blank = 1"),
         ("Position mapped", POSITION_MAPPED),
         ("Run", ctx.run_id),
         ("Edit set", ctx.edit_set_hash),
@@ -141,11 +150,15 @@ def data_records(table: pa.Table, ctx: DeliveryContext) -> tuple[list[str], dict
     n = table.num_rows
     if n == 0:
         return [], {"easting": 1, "northing": 1, "height": 1}
+    check_unique_keys(table, FORMAT)
     index = column(table, "index", 1.0)
-    if (index != 1).any():
-        i = int(np.flatnonzero(index != 1)[0])
-        raise Refused(f"{FORMAT}: {station_label(table, i)}: the format has no point index "
-                      "field, only index 1 can be written", hint=f"deliver as {SUGGEST}")
+    bad = ~((index >= 1) & (index <= 9))
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise Refused(f"{FORMAT}: {station_label(table, i)}: point index {index[i]:g} cannot "
+                      "be written in the reshoot code (column 26 holds one digit, 2-9)",
+                      hint=f"deliver as {SUGGEST}, or merge indistinguishable occupations "
+                           "with --merge-occupations")
     east, north = column(table, "easting"), column(table, "northing")
     for name, v in (("easting", east), ("northing", north)):
         if (~np.isfinite(v)).any():
@@ -176,7 +189,7 @@ def data_records(table: pa.Table, ctx: DeliveryContext) -> tuple[list[str], dict
         np.full(n, " "),
         np.char.ljust(line_t, 16),
         point_t,
-        np.full(n, " "),
+        reshoot_codes(index),
         dms_fields(lat, 2, "N", "S"),
         dms_fields(lon, 3, "E", "W"),
         east_t,

@@ -22,6 +22,7 @@ from archive.deliver.context import (
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
+    check_unique_keys,
     column,
     fixed_field,
     station_label,
@@ -89,6 +90,9 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
     recs += [
         ("H26", "Position mapped", POSITION_MAPPED),
         ("H26", "Day/time columns 72-80", TIME_BASIS),
+        ("H26", "Point index column 24", "one per occupation of the station (a node deployed "
+                                         "there), numbered in order of deployment; the lineage "
+                                         "manifest gives each one's node and window"),
         ("H26", "Units and precision", f"E/N {crs.unit} to 0.1, elevation metre to 0.1"),
         ("H26", "Producing run", ctx.run_id),
         ("H26", "Edit set", ctx.edit_set_hash),
@@ -99,15 +103,19 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
 
 
 def _date_span(table: pa.Table | None) -> str:
-    if table is None or "t_end" not in table.column_names or table.num_rows == 0:
-        return ""
-    col = table.column("t_end")
+    """First deployment to last retrieval (or fix) of the delivered occupations."""
     import pyarrow.compute as pc
 
-    lo, hi = pc.min(col).as_py(), pc.max(col).as_py()
-    if lo is None:
+    if table is None or table.num_rows == 0:
         return ""
-    return f"{lo:%Y-%m-%d} to {hi:%Y-%m-%d} (window ends, UTC)"
+    lows = [pc.min(table.column(c)).as_py() for c in ("deployed", "t_start")
+            if c in table.column_names]
+    highs = [pc.max(table.column(c)).as_py() for c in ("retrieved", "t_end", "deployed")
+             if c in table.column_names]
+    lows, highs = [t for t in lows if t is not None], [t for t in highs if t is not None]
+    if not lows or not highs:
+        return ""
+    return f"{min(lows):%Y-%m-%d} to {max(highs):%Y-%m-%d} (occupations, UTC)"
 
 
 def point_records(table: pa.Table) -> list[str]:
@@ -120,12 +128,15 @@ def point_records(table: pa.Table) -> list[str]:
         return fixed_field(column(table, name), spec, width, table=table, field_name=label,
                            fmt_name=FORMAT, columns=cols, suggest=SUGGEST)
 
+    check_unique_keys(table, FORMAT)
     index = column(table, "index", 1.0)
     bad = ~((index >= 1) & (index <= 9))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])
         raise Refused(f"{FORMAT}: {station_label(table, i)}: point index must be 1-9 "
-                      "(column 24)", hint=f"deliver as {SUGGEST}")
+                      "(column 24); the station is occupied more often than SPS can number",
+                      hint=f"deliver as {SUGGEST}, or merge indistinguishable occupations "
+                           "with --merge-occupations")
     for name in ("easting", "northing"):
         missing = ~np.isfinite(column(table, name))
         if missing.any():

@@ -53,7 +53,7 @@ class QcResult:
 
 
 def _rows(table: pa.Table) -> list[dict[str, Any]]:
-    cols = ["line", "point", "index", "node", "de", "dn", "dh", "dist", "pre_de", "pre_dn",
+    cols = ["line", "point", "index", "occupation", "node", "de", "dn", "dh", "dist", "pre_de", "pre_dn",
             "pre_dist", "flags"]
     out = table.select(cols).to_pylist()
     for row in out:

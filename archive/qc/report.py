@@ -11,7 +11,6 @@ The report only reads the archive.
 
 from __future__ import annotations
 
-import os
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -33,6 +32,7 @@ from archive.qc.clouds import Station, cloud_figure
 from archive.qc.sources import RunData, cloud_reader, load_run_data
 from archive.qc.stats import delivered
 from archive.store.archive import Archive
+from archive.store.outfiles import write_file
 
 MAX_CLOUDS = 40
 """Stations drawn with their fix cloud; the rest of the review list is tabled only."""
@@ -63,10 +63,10 @@ class ReportWritten:
 
 def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
     """Stations to review: beyond the tolerance first (largest first), then solver flags."""
-    pos = delivered(data.positions).to_pandas()
+    pos = _with_occupation(delivered(data.positions).to_pandas())
     pts = result.comparison.points.select(
-        ["line", "point", "index", "dist", "check_e", "check_n"]).to_pandas()
-    df = pos.merge(pts, on=["line", "point", "index"], how="left")
+        [*OCC_KEY, "dist", "check_e", "check_n"]).to_pandas()
+    df = pos.merge(pts, on=OCC_KEY, how="left")
     df["dist_preplot"] = df["dist_preplot"].fillna(
         np.hypot(df["easting"] - df["preplot_e"], df["northing"] - df["preplot_n"]))
     df["beyond"] = df["dist"] > result.tolerance
@@ -74,8 +74,21 @@ def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
     df["reasons"] = np.where(df["beyond"], np.where(df["flags"] != "", BEYOND + ";" + df["flags"],
                                                     BEYOND), df["flags"])
     df["_d"] = df["dist"].where(df["beyond"], -1.0)
-    return df.sort_values(["_d", "line", "point", "index"], ascending=[False, True, True, True],
+    return df.sort_values(["_d", "line", "point", "occupation"],
+                          ascending=[False, True, True, True],
                           kind="stable").reset_index(drop=True)
+
+
+OCC_KEY = ["line", "point", "index", "occupation"]
+"""A delivered record: the preplot station (line, point, index) and the occupation's index."""
+
+
+def _with_occupation(df: pd.DataFrame) -> pd.DataFrame:
+    """``occupation`` filled with the station index where a table has none (older runs)."""
+    if "occupation" not in df.columns:
+        df["occupation"] = df["index"]
+    df["occupation"] = df["occupation"].fillna(df["index"]).astype("int64")
+    return df
 
 
 def _summary_section(result: QcResult) -> str:
@@ -120,7 +133,8 @@ def _review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
     for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
         name = f"{r.line:g} / {r.point:g}"
         link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
-        rows.append((link, r.index, escape(str(r.node)), escape(r.reasons.replace(";", ", ")),
+        rows.append((link, r.occupation, escape(str(r.node)),
+                     escape(r.reasons.replace(";", ", ")),
                      html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
                      html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}"))
     more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more stations are not listed; '
@@ -132,7 +146,7 @@ def _review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
 
 
 def _station(r: Any) -> Station:
-    return Station(line=r.line, point=r.point, index=int(r.index), easting=r.easting,
+    return Station(line=r.line, point=r.point, index=int(r.occupation), easting=r.easting,
                    northing=r.northing, ell_major=r.ell_major, ell_minor=r.ell_minor,
                    ell_bearing=r.ell_bearing, preplot_e=r.preplot_e, preplot_n=r.preplot_n,
                    check_e=r.check_e, check_n=r.check_n, flags=r.reasons)
@@ -145,7 +159,7 @@ def _clouds(df: pd.DataFrame, read_cloud: CloudReader | None, max_clouds: int,
         cloud, problem = None, ""
         if read_cloud is not None:
             try:
-                cloud = read_cloud(float(r.line), float(r.point), int(r.index))
+                cloud = read_cloud(float(r.line), float(r.point), int(r.occupation))
             except NodekeepError as exc:
                 problem = f"fixes unavailable: {exc}"
         uri, caption = cloud_figure(_station(r), cloud)
@@ -204,9 +218,10 @@ def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | Non
            ("line", "point", "easting", "northing", "preplot_e", "preplot_n")}
     flagged = np.zeros(dl.num_rows, dtype=bool)
     if len(review):
-        keys = dl.select(["line", "point", "index"]).to_pandas()
-        marked = keys.merge(review[["line", "point", "index"]].drop_duplicates(),
-                            on=["line", "point", "index"], how="left", indicator=True)
+        keys = _with_occupation(dl.select(
+            [c for c in OCC_KEY if c in dl.column_names]).to_pandas())
+        marked = keys.merge(review[OCC_KEY].drop_duplicates(), on=OCC_KEY, how="left",
+                            indicator=True)
         flagged = (marked["_merge"] == "both").to_numpy()
     crs = data.survey["crs"]
     figs: list[str] = []
@@ -279,7 +294,7 @@ def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | 
     """Write the report of a run (the newest when ``run_ref`` is None) to ``path``.
 
     Fix clouds come from the solver (:func:`archive.solve.cloud.station_cloud`) unless
-    ``read_cloud`` is given: a function (line, point, index) -> cloud table, for callers
+    ``read_cloud`` is given: a function (line, point, occupation index) -> cloud table, for callers
     that hold the clouds already (simulations, benchmarks). ``max_clouds`` limits the
     cloud plots (0: one per station to review). Refuses to overwrite an
     existing file unless ``force``. The file is written whole to a temporary name and
@@ -297,9 +312,7 @@ def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | 
     reader = read_cloud if read_cloud is not None else cloud_reader(arc, data.run["id"])
     page, counts = render_report(data, result, reader, progress=progress,
                                  max_clouds=max_clouds)
-    tmp = path.with_name(path.name + ".tmp")
-    tmp.write_text(page, encoding="utf-8")
-    os.replace(tmp, path)
+    write_file(path, page.encode("utf-8"))
     return ReportWritten(path=path, size_bytes=path.stat().st_size, n_figures=counts["n_figures"],
                          n_clouds=counts["n_clouds"], n_review=counts["n_review"],
                          run=data.run["id"], seconds=time.perf_counter() - t0)

@@ -82,11 +82,12 @@ def run_info(run: Any) -> dict[str, Any]:
 
 def load_run_data(arc: Archive, survey_id: int, run_ref: str | None = None) -> RunData:
     """Read a run (the newest when ``run_ref`` is None) and the current survey inputs."""
-    from archive.solve.run import get_run, run_manifest, run_positions
+    from archive.solve.occupancy import run_occupations
+    from archive.solve.run import get_run, run_manifest
 
     survey = survey_info(arc, survey_id)
     run = get_run(arc, survey_id, run_ref)
-    positions = run_positions(arc, run)
+    positions = run_occupations(arc, run)
     manifest = run_manifest(arc, run)
     control_info, control = _input(arc, survey_id, "control")
     stations_info, stations = _input(arc, survey_id, "stations")
@@ -96,11 +97,11 @@ def load_run_data(arc: Archive, survey_id: int, run_ref: str | None = None) -> R
 
 
 def cloud_reader(arc: Archive, run_id: str):
-    """A function (line, point, index) -> the station's fix cloud table, re-solved by the
-    solver from the run's manifest."""
+    """A function (line, point, occupation index) -> that occupation's fix cloud table,
+    re-solved by the solver from the run's manifest."""
     from archive.solve.cloud import station_cloud
 
-    def read(line: float, point: float, index: int) -> pa.Table | None:
-        return station_cloud(arc, run_id, line, point, index)
+    def read(line: float, point: float, occupation: int) -> pa.Table | None:
+        return station_cloud(arc, run_id, line, point, occupation=occupation)
 
     return read

@@ -2,7 +2,9 @@
 
 Pure functions over Arrow tables (positions of :data:`archive.solve.schema.POSITION_SCHEMA`,
 check points of :data:`archive.survey.schema.CONTROL_SCHEMA`, stations of
-:data:`archive.survey.schema.STATION_SCHEMA`). Stations are matched by (line, point, index).
+:data:`archive.survey.schema.STATION_SCHEMA`). Stations are matched by (line, point, index); a station occupied more than once is compared
+through the occupation that was in the ground when the check point was surveyed (else the
+nearest in time; a check point without a survey time checks the last occupation).
 
 Sign convention: every difference is *position minus check point* (dE = E - E_check), so a
 positive dE means the position lies east of the check point. The preplot columns compare
@@ -21,6 +23,7 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -30,7 +33,7 @@ KEY = ["line", "point", "index"]
 
 POINT_SCHEMA = pa.schema([
     pa.field("line", pa.float64()), pa.field("point", pa.float64()), pa.field("index", pa.int8()),
-    pa.field("node", pa.string()),
+    pa.field("occupation", pa.int8()), pa.field("node", pa.string()),
     pa.field("easting", pa.float64()), pa.field("northing", pa.float64()),
     pa.field("height", pa.float64()),
     pa.field("check_e", pa.float64()), pa.field("check_n", pa.float64()),
@@ -55,6 +58,28 @@ def delivered(positions: pa.Table) -> pa.Table:
     return positions.filter(mask)
 
 
+def _nearest_occupation(df: pd.DataFrame) -> pd.DataFrame:
+    """One row per check point: the occupation in the ground when it was surveyed, else the
+    one nearest in time, else (no survey time) the last occupation of the station."""
+    big = np.iinfo(np.int64).max
+    t = df["surveyed"]
+    has_t = t.notna().to_numpy()
+    tt = np.where(has_t, _us(t), 0)
+    d0 = np.where(df["deployed"].notna(), _us(df["deployed"]), -big)
+    d1 = np.where(df["retrieved"].notna(), _us(df["retrieved"]), big)
+    gap = np.where(tt < d0, d0 - tt, np.where(tt >= d1, tt - d1 + 1, 0)).astype(float)
+    order = -np.where(df["deployed"].notna(), _us(df["deployed"]), 0).astype(float)
+    df = df.assign(_gap=np.where(has_t, gap, order))
+    return df.sort_values(["_chk", "_gap"], kind="stable").drop_duplicates("_chk", keep="first")
+
+
+def _us(col: pd.Series) -> np.ndarray:
+    """UTC times as integer microseconds since 1970 (NaT as 0), whatever the resolution."""
+    t = pd.to_datetime(col, utc=True).fillna(pd.Timestamp(0, tz="UTC"))
+    return ((t - pd.Timestamp(0, tz="UTC")) // pd.Timedelta(microseconds=1)).to_numpy(
+        dtype=np.int64)
+
+
 def latest_checks(control: pa.Table) -> pa.Table:
     """One check point per station: the latest surveyed (then the last in the file)."""
     df = control.select([*KEY, "easting", "northing", "height", "surveyed", "src_line"]).to_pandas()
@@ -71,12 +96,19 @@ def join_checks(positions: pa.Table, control: pa.Table,
     ``stations`` when the positions carry none; the preplot height from ``stations``'
     elevation when given. Returns a table of :data:`POINT_SCHEMA`, sorted by station.
     """
-    pos = delivered(positions).select(
-        [*KEY, "node", "easting", "northing", "height", "preplot_e", "preplot_n", "r95", "flags"]
-    ).to_pandas()
+    dl = delivered(positions)
+    cols = [*KEY, "node", "easting", "northing", "height", "preplot_e", "preplot_n", "r95",
+            "flags"]
+    pos = dl.select(cols).to_pandas()
+    for c in ("occupation", "deployed", "retrieved"):
+        pos[c] = dl[c].to_pandas() if c in dl.column_names else None
+    pos["occupation"] = pos["occupation"].fillna(pos["index"])
     chk = latest_checks(control).to_pandas().rename(
         columns={"easting": "check_e", "northing": "check_n", "height": "check_h"})
-    df = pos.merge(chk[[*KEY, "check_e", "check_n", "check_h"]], on=KEY, how="inner")
+    chk["_chk"] = np.arange(len(chk))
+    df = pos.merge(chk[[*KEY, "check_e", "check_n", "check_h", "surveyed", "_chk"]], on=KEY,
+                   how="inner")
+    df = _nearest_occupation(df)
     df["preplot_h"] = np.nan
     if stations is not None and stations.num_rows:
         st = stations.select([*KEY, "easting", "northing", "elevation"]).to_pandas()
@@ -94,8 +126,9 @@ def join_checks(positions: pa.Table, control: pa.Table,
     df["pre_dn"] = df["preplot_n"] - df["check_n"]
     df["pre_dh"] = df["preplot_h"] - df["check_h"]
     df["pre_dist"] = np.hypot(df["pre_de"], df["pre_dn"])
-    df = df.sort_values(KEY, kind="stable")
+    df = df.sort_values([*KEY, "occupation"], kind="stable")
     df["index"] = df["index"].astype("int8")
+    df["occupation"] = df["occupation"].astype("int8")
     return pa.Table.from_pandas(df[POINT_SCHEMA.names], schema=POINT_SCHEMA, preserve_index=False)
 
 

@@ -19,7 +19,7 @@ from archive.solve.engine import solve_fixes
 from archive.solve.inputs import excludes_of, load_fix_tables, survey_inputs
 from archive.solve.run import get_run, run_manifest, run_positions
 from archive.solve.screen import SCREEN_REASONS
-from archive.solve.windows import Windows
+from archive.solve.windows import FOREVER, Windows, no_windows
 from archive.store.archive import Archive
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 
@@ -30,17 +30,17 @@ CLOUD_SCHEMA = pa.schema([
     pa.field("hdop", pa.float64()), pa.field("node", pa.string()),
     pa.field("part", pa.int8()), pa.field("status", pa.string()),
     pa.field("reason", pa.string()), pa.field("raw_hash", pa.string()),
-    pa.field("raw_line", pa.int64()),
+    pa.field("raw_line", pa.int64()), pa.field("occupation", pa.int8()),
 ], metadata={"nodekeep.table": "cloud"})
 
 
-def _station_mask(table: pa.Table, line: float, point: float, index: int) -> pa.Array:
-    return pc.and_(pc.and_(pc.equal(table["line"], float(line)),
-                           pc.equal(table["point"], float(point))),
-                   pc.equal(table["index"], int(index)))
+def _station_mask(table: pa.Table, line: float, point: float, index: int | None) -> pa.Array:
+    mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
+    return mask if index is None else pc.and_(mask, pc.equal(table["index"], int(index)))
 
 
-def _unlogged_windows(positions: pa.Table, line: float, point: float, index: int) -> Windows:
+def _unlogged_windows(positions: pa.Table, line: float, point: float,
+                      index: int | None) -> Windows:
     rows = positions.filter(pc.and_(_station_mask(positions, line, point, index),
                                     pc.equal(positions["kind"], "unlogged")))
     n = rows.num_rows
@@ -49,20 +49,34 @@ def _unlogged_windows(positions: pa.Table, line: float, point: float, index: int
         start=pc.cast(rows["t_start"], pa.int64()).to_numpy(zero_copy_only=False),
         end=pc.cast(rows["t_end"], pa.int64()).to_numpy(zero_copy_only=False),
         line=np.full(n, float(line)), point=np.full(n, float(point)),
-        index=np.full(n, index, dtype=np.int8), kind=np.full(n, "unlogged", dtype=object))
+        index=rows["index"].to_numpy().astype(np.int8),
+        kind=np.full(n, "unlogged", dtype=object),
+        occupation=np.zeros(n, dtype=np.int8), deployed=np.full(n, FOREVER, dtype=np.int64),
+        retrieved=np.full(n, FOREVER, dtype=np.int64))
 
 
-def station_cloud(arc: Archive, run_id: str, line: float, point: float, index: int = 1
-                  ) -> pa.Table:
-    """The fixes of one station's window(s) in run ``run_id`` and their status (see doc)."""
+def station_cloud(arc: Archive, run_id: str, line: float, point: float,
+                  index: int | None = None, *, occupation: int | None = None) -> pa.Table:
+    """The fixes of one station's window(s) in run ``run_id`` and their status (see doc).
+
+    Every occupation of (line, point) by default; ``index`` keeps the preplot station of
+    that point index, ``occupation`` the one occupation delivered under that point index
+    (its ``occupation`` column says which occupation each fix belongs to; null for an
+    unlogged cluster).
+    """
     run = get_run(arc, None, run_id)
     manifest = run_manifest(arc, run)
     inp = survey_inputs(arc, run.survey_id, manifest["selection"], manifest=manifest)
     dep = inp.deployments.filter(_station_mask(inp.deployments, line, point, index))
-    extra = _unlogged_windows(run_positions(arc, run), line, point, index)
+    if occupation is not None:
+        dep = dep.filter(pc.equal(dep["occupation"], int(occupation)))
+    extra = (_unlogged_windows(run_positions(arc, run), line, point, index)
+             if occupation is None else no_windows())
     nodes = set(dep["node"].to_pylist()) | set(extra.node.tolist())
     if not nodes:
-        raise UsageError(f"station {line:g}/{point:g} index {index} has no deployment in run "
+        which = (f" occupation {occupation}" if occupation is not None
+                 else f" index {index}" if index is not None else "")
+        raise UsageError(f"station {line:g}/{point:g}{which} has no deployment in run "
                          f"{run.id[:12]}", hint="check the line and point numbers")
     hashes = list(dict.fromkeys(h for n, h, _ in inp.fix_files if n in nodes or n == ""))
     fixes = load_fix_tables(arc, hashes)
@@ -73,6 +87,8 @@ def station_cloud(arc: Archive, run_id: str, line: float, point: float, index: i
                       extra_windows=extra, want_members=True)
     m = out.members
     fx, f = m.fx, m.fix
+    occ = np.asarray(out.positions["occupation"].fill_null(0).to_numpy(zero_copy_only=False),
+                     dtype=np.int8)[m.row]
     east, north = transformer(WGS84_GEOGRAPHIC, epsg).transform(fx.lon[f], fx.lat[f])
     status = np.where(m.screen > 0, "screened", np.where(m.rejected, "rejected", "used"))
     reasons = np.array(SCREEN_REASONS, dtype=object)[m.screen]
@@ -85,4 +101,5 @@ def station_cloud(arc: Archive, run_id: str, line: float, point: float, index: i
         "part": pa.array(m.part, pa.int8()), "status": status.astype(str).tolist(),
         "reason": [str(r) for r in reasons], "raw_hash": fx.raw_hashes(f),
         "raw_line": fx.raw_line[f],
+        "occupation": pa.array(occ, pa.int8(), mask=occ == 0),
     }, schema=CLOUD_SCHEMA)

@@ -18,7 +18,7 @@ from scipy.spatial import cKDTree
 
 from archive.solve.fixarrays import FixArrays
 from archive.solve.segments import seg_median
-from archive.solve.windows import Windows
+from archive.solve.windows import FOREVER, Windows, no_windows
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 
 
@@ -30,9 +30,7 @@ def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
     ``radius`` and ``match_tol`` are metres; grid distances are in the CRS unit, so they
     are compared with the tolerances divided by ``unit_factor`` (metres per CRS unit).
     """
-    empty = Windows(*(np.zeros(0, dtype=d) for d in
-                      (object, np.int64, np.int64, np.int64, np.float64, np.float64,
-                       np.int8, object)))
+    empty = no_windows()
     sel = np.flatnonzero(candidate)
     if len(sel) == 0 or len(stations_en) == 0:
         return empty
@@ -91,4 +89,7 @@ def find_clusters(fx: FixArrays, candidate: np.ndarray, stations_en: np.ndarray,
         line=line[near[keep]].astype(np.float64), point=point[near[keep]].astype(np.float64),
         index=index[near[keep]].astype(np.int8),
         kind=np.full(len(keep), "unlogged", dtype=object),
+        occupation=np.zeros(len(keep), dtype=np.int8),
+        deployed=np.full(len(keep), FOREVER, dtype=np.int64),
+        retrieved=np.full(len(keep), FOREVER, dtype=np.int64),
     )

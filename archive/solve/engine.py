@@ -5,8 +5,9 @@ from its manifest and a partition of nodes can be solved in another process. The
 each vectorised over every cloud at once:
 
 1. sort the fixes and screen them (:mod:`screen`);
-2. windows from the log minus settle margins, plus unlogged stationary clusters
-   (:mod:`windows`, :mod:`clusters`); gather each window's fixes;
+2. windows from the log minus settle margins (the whole logged window when the settled one
+   holds no usable fix: a node that died just after lay-out), plus unlogged stationary
+   clusters (:mod:`windows`, :mod:`clusters`); gather each window's fixes;
 3. a local east/north plane per window around the median fix (:mod:`segments`);
 4. move detection; a moved window becomes two parts (:mod:`moves`);
 5. robust centre per part (:mod:`robust`), uncertainty (:mod:`uncertainty`);
@@ -43,6 +44,7 @@ from archive.solve.windows import (
     inside_any,
     logged_windows,
     node_codes,
+    usable_counts,
 )
 from archive.survey.crs import WGS84_GEOGRAPHIC, survey_crs, transformer
 
@@ -126,6 +128,14 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
 
     logged, raw_s, raw_e = logged_windows(deployments, fx, p["window"]["settle_start_min"] * 60,
                                           p["window"]["settle_end_min"] * 60)
+    # A run made before the fallback existed has no such parameter: it never used margins.
+    margins = np.zeros(len(logged), dtype=bool)
+    if p["window"].get("margin_fallback", False) and len(logged):
+        settled = usable_counts(fx, ok, logged.code, logged.start, logged.end)
+        whole = usable_counts(fx, ok, logged.code, raw_s, raw_e)
+        margins = (settled == 0) & (whole > 0)
+        logged.start = np.where(margins, raw_s, logged.start)
+        logged.end = np.where(margins, raw_e, logged.end)
     wins = logged
     if detect_unlogged and len(fx):
         inside = inside_any(fx, logged.code, raw_s, raw_e)
@@ -137,6 +147,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
         extra.code = node_codes(extra.node, fx)
         wins = Windows.concat([wins, extra])
     n_win = len(wins)
+    win_margins = np.concatenate([margins, np.zeros(n_win - len(margins), dtype=bool)])
     idx, wseg = gather(fx, wins)
     m_ok = ok[idx]
     oi, os_ = idx[m_ok], wseg[m_ok]
@@ -189,6 +200,15 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     occupied = n_used > 0
     floor2 = unc["floor"] ** 2
     vee, vnn, ven = cov.vee + floor2, cov.vnn + floor2, cov.ven
+    us_seg = rseg[used]
+    med_hdop = seg_median(np.nan_to_num(fx.hdop[oi][used], nan=1.0), us_seg, n_rows, cap)
+    row_margins = win_margins[row_win]
+    if row_margins.any():
+        # Margin fixes span minutes, far less than the error correlation time: their mean is
+        # no better than one fix, whose per-axis error is sigma0 * HDOP (the weight model).
+        single = (est["sigma0"] * np.where(np.isfinite(med_hdop), med_hdop, 1.0)) ** 2
+        vee = np.where(row_margins, np.maximum(vee, single + floor2), vee)
+        vnn = np.where(row_margins, np.maximum(vnn, single + floor2), vnn)
 
     # 6. to geographic and grid
     lat_c, lon_c = from_local(ce, cn, lat0[row_win], lon0[row_win])
@@ -203,11 +223,10 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     r95 = radius95(vee, vnn, ven)
 
     # span and spread of the used fixes
-    us_seg, us_t = rseg[used], t_s[used]
+    us_t = t_s[used]
     starts, counts = seg_starts(us_seg, n_rows)
     span = np.zeros(n_rows)
     span[occupied] = us_t[starts[occupied] + counts[occupied] - 1] - us_t[starts[occupied]]
-    med_hdop = seg_median(np.nan_to_num(fx.hdop[oi][used], nan=1.0), us_seg, n_rows, cap)
     spread = rr.scale * med_hdop
 
     # 7. heights
@@ -262,6 +281,9 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
         "n_total": n_total, "n_used": n_used, "n_rejected": n_total - n_used,
         "n_eff": cov.n_eff, "span_s": span, "spread": spread, **pre,
         "estimator": np.full(n_rows, est["estimator"], dtype=object), "flags": flag_col,
+        "occupation": np.where(kind == "logged", wins.occupation[row_win], 0),
+        "deployed": wins.deployed[row_win], "retrieved": wins.retrieved[row_win],
+        "from_margins": row_margins,
     }
     for key in ("sigma_e", "sigma_n", "corr_en", "ell_major", "ell_minor", "ell_bearing",
                 "r95", "n_eff", "spread", "span_s", "h_gnss", "dh"):
@@ -291,6 +313,8 @@ def _table(data: dict[str, np.ndarray]) -> pa.Table:
             v = np.where(v >= FOREVER, np.iinfo(np.int64).min, v)
             arr = pa.array(v.astype(np.int64), type=pa.int64(),
                            mask=v == np.iinfo(np.int64).min).cast(f.type)
+        elif f.name == "occupation":
+            arr = pa.array(np.asarray(v, dtype=np.int8), type=f.type, mask=np.asarray(v) == 0)
         elif pa.types.is_floating(f.type):
             arr = pa.array(np.asarray(v, dtype=np.float64), type=f.type, from_pandas=True)
         elif pa.types.is_string(f.type):

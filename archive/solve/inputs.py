@@ -25,6 +25,7 @@ from archive.solve.screen import parse_excludes
 from archive.store.archive import Archive
 from archive.store.edit_log import edits_in_force
 from archive.store.models import InputVersion, RawFile, Survey
+from archive.survey.occupations import with_occupations
 
 PARTITION_FIXES = 4_000_000
 
@@ -149,7 +150,8 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
         dem_v = _by_hash(arc, survey_id, "dem", dem_hash)
         edits = manifest["edits"]
     stations = arc.objects.read_table(st_hash)
-    dep_all = arc.objects.read_table(dep_hash)
+    # occupations are numbered over the whole log, before any selection or partition
+    dep_all = with_occupations(arc.objects.read_table(dep_hash))
     deployments, keys = _select(dep_all, selection)
     if keys is not None and deployments.num_rows == 0:
         raise UsageError("none of the selected stations is in the deployment log",

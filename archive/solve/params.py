@@ -25,6 +25,8 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
     "window": {
         "settle_start_min": (30.0, "minutes dropped after the logged deployment time"),
         "settle_end_min": (30.0, "minutes dropped before the logged retrieval time"),
+        "margin_fallback": (True, "solve from the settle margins when the settled window has "
+                                  "no usable fix (a node that died just after lay-out)"),
     },
     "screen": {
         "min_quality": (1, "lowest GGA fix quality kept (0 = no fix)"),

@@ -41,6 +41,10 @@ from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
 from archive.store.models import Run, utcnow
 
+MANIFEST_FORMAT = 2
+"""Format 2: positions carry each row's occupation (``POSITION_SCHEMA``); format 1 runs were
+solved before occupations were numbered and are recomputed with ``POSITION_SCHEMA_V1``."""
+
 SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
              ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
              ("part", "ascending")]
@@ -75,7 +79,7 @@ def build_manifest(inp: SolveInputs, params: dict[str, Any], selection: dict[str
                    ) -> dict[str, Any]:
     """The run manifest (see module doc) of these inputs, parameters and selection."""
     return {
-        "format": 1,
+        "format": MANIFEST_FORMAT,
         "survey": inp.survey,
         "inputs": {"fixes": sorted(inp.fix_hashes), "stations": inp.stations_hash,
                    "deployments": inp.deployments_hash, "dem": inp.dem_hash},
@@ -112,7 +116,7 @@ def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
         progress.close()
         if dem is not None:
             dem.close()
-    return _combine(tables), stats
+    return _combine(tables, manifest), stats
 
 
 def _height_sampler(dem: Any, epsg: int):  # noqa: ANN202 - returns a callable or None
@@ -146,12 +150,16 @@ def _add_stats(total: dict[str, Any], more: dict[str, Any]) -> None:
         total[k] = total.get(k, 0) + v
 
 
-def _combine(tables: list[pa.Table]) -> pa.Table:
-    """The partitions' positions as one table in the run's sort order."""
-    from archive.solve.schema import POSITION_SCHEMA
+def _combine(tables: list[pa.Table], manifest: dict[str, Any]) -> pa.Table:
+    """The partitions' positions as one table in the run's sort order, in the schema of
+    the manifest's format (format 1 runs have no occupation columns)."""
+    from archive.solve.schema import POSITION_SCHEMA, POSITION_SCHEMA_V1
 
     table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
-    return table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
+    table = table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
+    if manifest.get("format", 1) < 2:
+        table = table.select(POSITION_SCHEMA_V1.names).cast(POSITION_SCHEMA_V1)
+    return table
 
 
 def solve_partition(part: Partition, shared: tuple[str, SolveInputs, dict[str, Any]]
@@ -187,7 +195,7 @@ def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     stats: dict[str, Any] = {}
     for _, st in results:
         _add_stats(stats, st)
-    return _combine([pos for pos, _ in results]), stats
+    return _combine([pos for pos, _ in results], manifest), stats
 
 
 def _orthometric(survey: dict[str, Any]):  # noqa: ANN202 - returns a callable or None
@@ -344,16 +352,24 @@ def list_runs(arc: Archive, survey_id: int) -> list[dict[str, Any]]:
     return out
 
 
-def station_solution(arc: Archive, survey_id: int, line: float, point: float, index: int = 1,
-                     run_ref: str | None = None) -> dict[str, Any]:
-    """One station's rows of a run (the newest by default) as plain data."""
+def station_solution(arc: Archive, survey_id: int, line: float, point: float,
+                     index: int | None = None, run_ref: str | None = None, *,
+                     node: str | None = None) -> dict[str, Any]:
+    """A station's rows of a run (the newest by default) as plain data: every occupation
+    (and every part of a moved one), or the occupation ``index``/``node`` choose."""
+    from archive.solve.occupancy import run_occupations, station_rows
+
     run = get_run(arc, survey_id, run_ref)
-    pos = run_positions(arc, run)
-    mask = pc.and_(pc.and_(pc.equal(pos["line"], float(line)),
-                           pc.equal(pos["point"], float(point))),
-                   pc.equal(pos["index"], int(index)))
-    rows = pos.filter(mask).to_pylist()
+    pos = run_occupations(arc, run)
+    rows = station_rows(pos, line, point, index, node).to_pylist()
     if not rows:
-        raise UsageError(f"station {line:g}/{point:g} index {index} is not in run {run.id[:12]}",
+        every = station_rows(pos, line, point).to_pylist()
+        have = ", ".join(sorted({f"index {r['occupation']} (node {r['node']})" for r in every
+                                 if r["occupation"] is not None}))
+        raise UsageError(f"station {line:g}/{point:g}"
+                         + (f" index {index}" if index is not None else "")
+                         + (f" node {node}" if node is not None else "")
+                         + f" is not in run {run.id[:12]}" + (f"; it has {have}" if have else ""),
                          hint="check the line and point numbers, or choose a run with --run")
-    return {"run": run.id, "rows": rows}
+    n_occ = len({r["occupation"] for r in rows if r["occupation"] is not None})
+    return {"run": run.id, "n_occupations": n_occ, "rows": rows}

@@ -1,6 +1,7 @@
 """The positions table a solution run produces, and the review flags it may carry.
 
-One row per deployment part: normally one part per deployment; a node that moved during its
+One row per deployment part: normally one part per deployment (one *occupation* of its
+station, see :mod:`archive.survey.occupations`); a node that moved during its
 deployment gives one row per part, and ``delivered`` marks the part to deliver (the last by
 default). Unlogged stationary clusters get rows with ``kind = "unlogged"`` and no node
 window from the log. Easting/northing (and preplot_e/preplot_n) are in the survey CRS's
@@ -14,50 +15,66 @@ import pyarrow as pa
 
 UTC_TIME = pa.timestamp("us", tz="UTC")
 
-POSITION_SCHEMA = pa.schema(
-    [
-        pa.field("line", pa.float64(), nullable=False),
-        pa.field("point", pa.float64(), nullable=False),
-        pa.field("index", pa.int8(), nullable=False),
-        pa.field("node", pa.string(), nullable=False),
-        pa.field("kind", pa.string(), nullable=False),  # "logged" | "unlogged"
-        pa.field("part", pa.int8(), nullable=False),  # 0 whole window, 1.. parts after a move
-        pa.field("delivered", pa.bool_(), nullable=False),  # this row is the one to deliver
-        pa.field("t_start", UTC_TIME),  # window used (after settle margins)
-        pa.field("t_end", UTC_TIME),
-        pa.field("easting", pa.float64()),
-        pa.field("northing", pa.float64()),
-        pa.field("lat", pa.float64()),
-        pa.field("lon", pa.float64()),
-        pa.field("height", pa.float64()),  # delivered height (model, or GNSS fallback)
-        pa.field("height_source", pa.string()),  # "model" | "gnss" | "none"
-        pa.field("h_gnss", pa.float64()),  # GNSS orthometric height, in the model's datum
-        pa.field("h_model", pa.float64()),  # elevation model at the position
-        pa.field("dh", pa.float64()),  # h_gnss - h_model
-        pa.field("sigma_e", pa.float64()),  # m, whatever the CRS unit
-        pa.field("sigma_n", pa.float64()),  # m
-        pa.field("corr_en", pa.float64()),
-        pa.field("ell_major", pa.float64()),  # 95 % error ellipse semi-axes, m
-        pa.field("ell_minor", pa.float64()),
-        pa.field("ell_bearing", pa.float64()),  # bearing of the major axis, degrees from grid north
-        pa.field("r95", pa.float64()),  # 95 % horizontal radius, m
-        pa.field("sigma_h", pa.float64()),
-        pa.field("n_total", pa.int64(), nullable=False),  # fixes in the window
-        pa.field("n_used", pa.int64(), nullable=False),
-        pa.field("n_rejected", pa.int64(), nullable=False),
-        pa.field("n_eff", pa.float64()),  # effective number of independent fixes
-        pa.field("span_s", pa.float64()),  # time span of the used fixes, s
-        pa.field("spread", pa.float64()),  # robust horizontal scale of the cloud, m
-        pa.field("preplot_e", pa.float64()),
-        pa.field("preplot_n", pa.float64()),
-        pa.field("dist_preplot", pa.float64()),  # m, whatever the CRS unit
-        pa.field("nearest_line", pa.float64()),  # nearest other station (mix-up check)
-        pa.field("nearest_point", pa.float64()),
-        pa.field("dist_nearest", pa.float64()),  # m, whatever the CRS unit
-        pa.field("estimator", pa.string(), nullable=False),
-        pa.field("flags", pa.string(), nullable=False),  # ";"-joined FLAGS keys, "" if none
-    ],
+_POSITION_FIELDS_V1 = [
+    pa.field("line", pa.float64(), nullable=False),
+    pa.field("point", pa.float64(), nullable=False),
+    pa.field("index", pa.int8(), nullable=False),
+    pa.field("node", pa.string(), nullable=False),
+    pa.field("kind", pa.string(), nullable=False),  # "logged" | "unlogged"
+    pa.field("part", pa.int8(), nullable=False),  # 0 whole window, 1.. parts after a move
+    pa.field("delivered", pa.bool_(), nullable=False),  # this row is the one to deliver
+    pa.field("t_start", UTC_TIME),  # window used (after settle margins)
+    pa.field("t_end", UTC_TIME),
+    pa.field("easting", pa.float64()),
+    pa.field("northing", pa.float64()),
+    pa.field("lat", pa.float64()),
+    pa.field("lon", pa.float64()),
+    pa.field("height", pa.float64()),  # delivered height (model, or GNSS fallback)
+    pa.field("height_source", pa.string()),  # "model" | "gnss" | "none"
+    pa.field("h_gnss", pa.float64()),  # GNSS orthometric height, in the model's datum
+    pa.field("h_model", pa.float64()),  # elevation model at the position
+    pa.field("dh", pa.float64()),  # h_gnss - h_model
+    pa.field("sigma_e", pa.float64()),  # m, whatever the CRS unit
+    pa.field("sigma_n", pa.float64()),  # m
+    pa.field("corr_en", pa.float64()),
+    pa.field("ell_major", pa.float64()),  # 95 % error ellipse semi-axes, m
+    pa.field("ell_minor", pa.float64()),
+    pa.field("ell_bearing", pa.float64()),  # bearing of the major axis, degrees from grid north
+    pa.field("r95", pa.float64()),  # 95 % horizontal radius, m
+    pa.field("sigma_h", pa.float64()),
+    pa.field("n_total", pa.int64(), nullable=False),  # fixes in the window
+    pa.field("n_used", pa.int64(), nullable=False),
+    pa.field("n_rejected", pa.int64(), nullable=False),
+    pa.field("n_eff", pa.float64()),  # effective number of independent fixes
+    pa.field("span_s", pa.float64()),  # time span of the used fixes, s
+    pa.field("spread", pa.float64()),  # robust horizontal scale of the cloud, m
+    pa.field("preplot_e", pa.float64()),
+    pa.field("preplot_n", pa.float64()),
+    pa.field("dist_preplot", pa.float64()),  # m, whatever the CRS unit
+    pa.field("nearest_line", pa.float64()),  # nearest other station (mix-up check)
+    pa.field("nearest_point", pa.float64()),
+    pa.field("dist_nearest", pa.float64()),  # m, whatever the CRS unit
+    pa.field("estimator", pa.string(), nullable=False),
+    pa.field("flags", pa.string(), nullable=False),  # ";"-joined FLAGS keys, "" if none
+]
+
+POSITION_SCHEMA_V1 = pa.schema(
+    _POSITION_FIELDS_V1,
     metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "1"},
+)
+"""The positions table of runs whose manifest has ``format`` 1 (before occupations)."""
+
+POSITION_SCHEMA = pa.schema(
+    [*_POSITION_FIELDS_V1,
+     # the occupation (deployment record) the row belongs to: its delivered point index and
+     # its logged window; null for unlogged clusters. A station occupied twice has two
+     # occupations, each delivered under its own index.
+     pa.field("occupation", pa.int8()),
+     pa.field("deployed", UTC_TIME),
+     pa.field("retrieved", UTC_TIME),  # null: still in the ground (or unlogged)
+     # the settled window held no usable fix, so the fixes of the settle margins were used
+     pa.field("from_margins", pa.bool_(), nullable=False)],
+    metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "2"},
 )
 
 # Review flags: key -> what a reviewer should understand.

@@ -31,7 +31,7 @@ from scipy.signal import lfilter
 from archive.ingest.schema import FIX_SCHEMA
 from archive.solve.segments import from_local
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
-from archive.survey.schema import DEPLOYMENT_SCHEMA, STATION_SCHEMA
+from archive.survey.schema import DEPLOYMENT_LOG_SCHEMA, STATION_SCHEMA
 
 EPOCH = datetime(2024, 5, 1, tzinfo=UTC)
 
@@ -203,9 +203,9 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
     deployments = pa.table({
         "node": list(nodes[logged]), "line": st_line[ls], "point": st_point[ls],
         "index": pa.array(np.ones(len(ls)), pa.int8()),
-        "deployed": pa.array(dep[logged].astype(np.int64)).cast(DEPLOYMENT_SCHEMA.field("deployed").type),
-        "retrieved": pa.array(ret[logged].astype(np.int64)).cast(DEPLOYMENT_SCHEMA.field("retrieved").type),
-        "src_line": np.arange(1, logged.sum() + 1, dtype=np.int64)}, schema=DEPLOYMENT_SCHEMA)
+        "deployed": pa.array(dep[logged].astype(np.int64)).cast(DEPLOYMENT_LOG_SCHEMA.field("deployed").type),
+        "retrieved": pa.array(ret[logged].astype(np.int64)).cast(DEPLOYMENT_LOG_SCHEMA.field("retrieved").type),
+        "src_line": np.arange(1, logged.sum() + 1, dtype=np.int64)}, schema=DEPLOYMENT_LOG_SCHEMA)
     truth = {"node": nodes, "station": np.arange(n_st), "line": st_line, "point": st_point,
              "logged_station": logged_station, "e": fin_e, "n": fin_n, "e_first": true_e,
              "n_first": true_n, "moved": moved, "move_t": move_t, "swapped": swapped,

@@ -33,6 +33,9 @@ class Windows:
     point: np.ndarray
     index: np.ndarray
     kind: np.ndarray  # object array: "logged" | "unlogged"
+    occupation: np.ndarray  # delivered point index of the occupation (0: unlogged)
+    deployed: np.ndarray  # µs, the occupation's logged window (FOREVER: none / still out)
+    retrieved: np.ndarray
 
     def __len__(self) -> int:
         return len(self.start)
@@ -55,9 +58,22 @@ def node_codes(names: np.ndarray, fx: FixArrays) -> np.ndarray:
     return np.array([lookup.get(str(n), -1) for n in names], dtype=np.int64)
 
 
+def no_windows() -> Windows:
+    """An empty list of windows."""
+    return Windows(*(np.zeros(0, dtype=d) for d in
+                     (object, np.int64, np.int64, np.int64, np.float64, np.float64, np.int8,
+                      object, np.int8, np.int64, np.int64)))
+
+
 def logged_windows(deployments: pa.Table, fx: FixArrays, settle_start_s: float,
                    settle_end_s: float) -> tuple[Windows, np.ndarray, np.ndarray]:
-    """Windows of the deployment log; also the raw (untrimmed) start/end of each, µs."""
+    """Windows of the deployment log; also the raw (untrimmed) start/end of each, µs.
+
+    Each window carries its occupation's delivered point index (the table's ``occupation``
+    column, numbered by :mod:`archive.survey.occupations` when the table has none).
+    """
+    from archive.survey.occupations import occupation_array
+
     names = np.array(deployments["node"].to_pylist(), dtype=object)
     raw_start = _us(deployments["deployed"])
     raw_end = _us(deployments["retrieved"])
@@ -69,8 +85,19 @@ def logged_windows(deployments: pa.Table, fx: FixArrays, settle_start_s: float,
         point=deployments["point"].to_numpy().astype(np.float64),
         index=deployments["index"].to_numpy().astype(np.int8),
         kind=np.full(len(names), "logged", dtype=object),
+        occupation=occupation_array(deployments).astype(np.int8),
+        deployed=raw_start.copy(), retrieved=raw_end.copy(),
     )
     return w, raw_start, raw_end
+
+
+def usable_counts(fx: FixArrays, usable: np.ndarray, code: np.ndarray, start: np.ndarray,
+                  end: np.ndarray) -> np.ndarray:
+    """Number of ``usable`` fixes inside each (node, start..end) window."""
+    lo, hi = window_ranges(fx, code, start, end)
+    cum = np.zeros(len(fx) + 1, dtype=np.int64)
+    np.cumsum(usable, out=cum[1:])
+    return cum[hi] - cum[lo]
 
 
 def window_ranges(fx: FixArrays, code: np.ndarray, start: np.ndarray, end: np.ndarray

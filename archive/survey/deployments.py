@@ -23,8 +23,9 @@ import pyarrow.compute as pc
 
 from archive.errors import InputError
 from archive.survey.csvtable import parse_column_mapping, read_csv_columns
+from archive.survey.occupations import with_occupations
 from archive.survey.parsed import ParsedInput, problem
-from archive.survey.schema import DEPLOYMENT_SCHEMA
+from archive.survey.schema import DEPLOYMENT_LOG_SCHEMA
 from archive.survey.stations import unknown_stations
 
 REQUIRED = ("node", "line", "point", "deployed_utc", "retrieved_utc")
@@ -35,7 +36,8 @@ OPEN_END = np.iinfo(np.int64).max  # a deployment without retrieval lasts "for e
 
 def read_deployments(data: bytes, path: str,
                      columns: str | dict[str, str] | None = None) -> ParsedInput:
-    """Parse a deployment log CSV into DEPLOYMENT_SCHEMA (no cross-record checks yet)."""
+    """Parse a deployment log CSV into DEPLOYMENT_LOG_SCHEMA (no cross-record checks, no
+    occupation numbering yet: the loader numbers occupations against the previous version)."""
     mapping = parse_column_mapping(columns, FIELDS)
     c = read_csv_columns(data, path, REQUIRED, OPTIONAL, mapping)
     if len(c) == 0:
@@ -58,9 +60,19 @@ def read_deployments(data: bytes, path: str,
             "retrieved": c.times("retrieved_utc", required=False),
             "src_line": c.lines,
         },
-        schema=DEPLOYMENT_SCHEMA,
+        schema=DEPLOYMENT_LOG_SCHEMA,
     )
     return ParsedInput(table=table, meta={"format": "csv", "columns": mapping})
+
+
+def number_occupations(table: pa.Table, path: str, previous: pa.Table | None) -> pa.Table:
+    """The log with its ``occupation`` column numbered against the ``previous`` version
+    (:mod:`archive.survey.occupations`); a station occupied too often is refused."""
+    try:
+        return with_occupations(table, previous)
+    except ValueError as exc:
+        raise InputError(path, str(exc), expected="at most 127 occupations of one station "
+                         "(SPS rev 2.1 writes point indices 1-9)") from None
 
 
 def check_deployments(table: pa.Table, stations: pa.Table | None) -> list[dict[str, Any]]:

@@ -21,6 +21,7 @@ from archive.errors import InputError, Refused, UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_json
 from archive.store.models import InputVersion, Survey, utcnow
+from archive.survey.occupations import occupation_summary, occupation_warnings
 from archive.survey.parsed import ParsedInput, format_problem
 from archive.survey.schema import INPUT_KINDS
 
@@ -70,6 +71,14 @@ def _parse(arc: Archive, survey: Survey, kind: str, path: Path,
         current = current_input(arc, survey.id, "stations")
         parsed.warnings += deployments.check_deployments(parsed.table,
                                                          current[1] if current else None)
+        previous = current_input(arc, survey.id, "deployments")
+        parsed.table = deployments.number_occupations(parsed.table, name,
+                                                      previous[1] if previous else None)
+        parsed.warnings += occupation_warnings(parsed.table)
+        parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
+        parsed.meta["occupations"] = occupation_summary(parsed.table)
+        if previous is not None:
+            parsed.meta["occupations"]["numbered_after_version"] = previous[0].version
         parsed.meta["strict"] = bool(options.get("strict", False))
         if options.get("strict") and parsed.warnings:
             listed = "; ".join(format_problem(path.name, w) for w in parsed.warnings[:5])

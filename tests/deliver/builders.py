@@ -99,6 +99,8 @@ def positions_table(final: pa.Table, flags: list[str] | None = None,
         "spread": nan, "preplot_e": nan, "preplot_n": nan, "dist_preplot": nan,
         "nearest_line": nan, "nearest_point": nan, "dist_nearest": nan,
         "estimator": ["huber"] * n, "flags": flags or [""] * n,
+        "occupation": d["index"], "deployed": d["deployed"], "retrieved": d["retrieved"],
+        "from_margins": [False] * n,
     }
     return pa.table(cols, schema=POSITION_SCHEMA)
 

@@ -8,7 +8,7 @@ writers under test.
 
 from __future__ import annotations
 
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 
 import numpy as np
 import pyarrow as pa
@@ -43,6 +43,12 @@ def final_table(n: int = 12, *, seed: int = 7, east0: float = 612_345.0,
         "n_rejected": pa.array(rng.integers(0, 50, n)),
         "flags": pa.array([""] * n), "source": pa.array(["solver"] * n),
         "t_end": pa.array(t_end, pa.timestamp("us", tz="UTC")),
+        # each receiver laid out three days before its last fix (one occupation each)
+        "deployed": pa.array([t - timedelta(days=3) for t in t_end],
+                             pa.timestamp("us", tz="UTC")),
+        "retrieved": pa.array([t + timedelta(minutes=30) for t in t_end],
+                              pa.timestamp("us", tz="UTC")),
+        "station_index": pa.array(np.ones(n, dtype=np.int8)),
     })
 
 

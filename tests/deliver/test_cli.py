@@ -78,7 +78,8 @@ def test_deliver_command_refusals_then_success(runner, arc_dir, tmp_path):
     r = invoke(runner, arc_dir, "deliver", "--format", "csv", "--to", str(out) + ".csv",
                "--recipient", "Harrow Basin Energy")
     r = invoke(runner, arc_dir, "where", "1001", "2002")
-    assert "in delivery 2 (csv" in r.output and "earlier: delivery 1 (segp1" in r.output
+    assert "in delivery 2 (csv" in r.output
+    assert "earlier (index 1): delivery 1 (segp1" in r.output
     r = invoke(runner, arc_dir, "where", "1009", "2002")
     assert r.exit_code != 0 and "unknown station 1009/2002" in r.stderr
 
@@ -91,6 +92,7 @@ def test_diff_command(runner, arc_dir):
         run_id = s.query(Run.id).scalar()
     r = invoke(runner, arc_dir, "diff", run_id[:8], run_id[:8], "--threshold", "0.5")
     assert r.exit_code == 0, r.stderr
-    assert "8 common stations" in r.output and "0 station(s) moved more than 0.5 m" in r.output
+    assert "8 occupations in both runs" in r.output
+    assert "0 occupation(s) moved more than 0.5 m" in r.output
     r = invoke(runner, arc_dir, "diff", "zzzz", run_id[:8])
     assert r.exit_code == 2 and "no run 'zzzz'" in r.stderr

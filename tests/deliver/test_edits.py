@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import pyarrow.compute as pc
 import pytest
 from pyproj import Transformer
@@ -105,7 +107,10 @@ def test_final_positions_apply_edits(setup):
     assert f["flags"] == "far-from-plan" and f["flags_acknowledged"] == "moved"
     assert f["source"] == "solver"  # an acknowledgement does not change values
     assert unacknowledged_flags(final) == {"far-from-plan": 1}
-    assert ack.payload == '{"flag":"moved"}'
+    # the edit records the occupation it names (node and logged window)
+    assert json.loads(ack.payload) == {"flag": "moved", "occupation": {
+        "node": "N5001", "deployed": "2024-03-10T00:00:00+00:00",
+        "retrieved": "2024-03-14T12:00:00+00:00"}}
     # as of before the edits: the solver's values
     before = final_positions(arc, sid, run, as_of=pos.created_at.replace(year=2000))
     assert _row(before, 1001, 2001)["source"] == "solver"
@@ -158,12 +163,13 @@ def test_exclude_that_could_have_no_effect_is_refused(setup):
     arc, sid, _final, _run = setup
     # deployments (builders.load_stations): N5000 at 1001/2001 from 2024-03-10 to 03-14 12:00
     with pytest.raises(UsageError, match=r"node N5003 was never deployed at station 1001/2001; "
-                                         r"deployed there: N5000 2024-03-10T00:00:00\+00:00 to "
-                                         r"2024-03-14T12:00:00\+00:00"):
+                                         r"occupations there: index 1: node N5000, "
+                                         r"2024-03-10T00:00:00Z to 2024-03-14T12:00:00Z"):
         ed.exclude_span(arc, sid, 1001, 2001, node="N5003", start="2024-03-11T00:00:00Z",
                         end="2024-03-11T02:00:00Z", reason="wrong node")
     with pytest.raises(UsageError, match=r"overlaps no deployment of node N5000 at station "
-                                         r"1001/2001; deployed there: N5000 2024-03-10"):
+                                         r"1001/2001; occupations there: index 1: node N5000, "
+                                         r"2024-03-10"):
         ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-14T12:00:00Z",
                         end="2024-03-15T00:00:00Z", reason="after retrieval")
     assert ed.list_edits(arc, sid) == []

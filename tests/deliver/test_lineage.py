@@ -66,10 +66,10 @@ def test_diff_runs_movement_summary_added_removed(survey_arc, tmp_path):
     assert d["summary"]["p95"] == pytest.approx(np.percentile(moved, 95), abs=1e-9)
     assert [round(b["moved"], 6) for b in d["beyond"]] == sorted(
         [round(float(x), 6) for x in moved if x > 1.6], reverse=True)
-    assert d["removed"] == [{"line": 1001.0, "point": 2001.0, "index": 1}]
+    assert d["removed"] == [{"line": 1001.0, "point": 2001.0, "index": 1, "node": "N5000"}]
     assert d["added"] == []
     back = compare_positions(pos_b, pos.slice(0), threshold=0.1)
-    assert back["added"] == [{"line": 1001.0, "point": 2001.0, "index": 1}]
+    assert back["added"] == [{"line": 1001.0, "point": 2001.0, "index": 1, "node": "N5000"}]
 
 
 def test_where_as_of_before_and_after_second_delivery(delivered, tmp_path):
@@ -91,7 +91,7 @@ def test_where_as_of_before_and_after_second_delivery(delivered, tmp_path):
     assert mid["delivered"]["easting"] == final.column("easting")[1].as_py()
     assert mid["delivered"]["source"] == "solver"
     assert where(arc, sid, 1001, 2002, as_of=t1 - timedelta(seconds=1))["delivered"] is None
-    assert len(now["history"]) == 2
+    assert now["n_occupations"] == 1 and len(now["occupations"][0]["history"]) == 2
 
 
 def test_parse_as_of():

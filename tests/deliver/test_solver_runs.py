@@ -86,25 +86,29 @@ def test_trace_of_delivered_file_names_every_contributing_raw_file(solved):
 
 
 def test_trace_station_counts_fixes_from_its_cloud(solved):
-    from archive.solve.run import get_run, run_positions
+    from archive.solve.occupancy import run_occupations
+    from archive.solve.run import get_run
 
     arc, sid, run_id, _ = solved
-    pos = run_positions(arc, get_run(arc, sid, run_id))
+    pos = run_occupations(arc, get_run(arc, sid, run_id))
     row = pos.filter(pc.and_(pos["delivered"], pc.greater(pos["n_used"], 0))).to_pylist()[0]
-    t = trace_station(arc, sid, row["line"], row["point"], row["index"])
-    assert t["fixes"]["used"] == row["n_used"]  # the cloud agrees with the run's count
+    t = trace_station(arc, sid, row["line"], row["point"], row["occupation"])
+    [o] = t["occupations"]
+    assert o["index"] == row["occupation"] and o["node"] == row["node"]
+    assert o["fixes"]["used"] == row["n_used"]  # the cloud agrees with the run's count
     # the run counts every fix of the window not used (screened or rejected) as n_rejected
-    assert t["fixes"]["rejected"] + t["fixes"]["screened"] == row["n_rejected"]
-    assert t["fixes"]["used"] + row["n_rejected"] == row["n_total"]
-    names = {r["name"] for r in t["raw_files"]}
+    assert o["fixes"]["rejected"] + o["fixes"]["screened"] == row["n_rejected"]
+    assert o["fixes"]["used"] + row["n_rejected"] == row["n_total"]
+    names = {r["name"] for r in o["raw_files"]}
     assert names and names <= _raw_names_by_node(arc, sid)[row["node"]]
 
 
 def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner):
-    from archive.solve.run import get_run, run_positions
+    from archive.solve.occupancy import run_occupations
+    from archive.solve.run import get_run
 
     arc, sid, run_id, base = solved
-    pos = run_positions(arc, get_run(arc, sid, run_id))
+    pos = run_occupations(arc, get_run(arc, sid, run_id))
     # the scenario plants a node moved mid-deployment: its window is solved in parts 1 and 2
     moved = pos.filter(pc.and_(pos["delivered"], pc.equal(pos["part"], 2))).to_pylist()
     assert moved, "the demo scenario plants one moved node"
@@ -112,45 +116,50 @@ def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner)
     parts = pos.filter(pc.and_(pc.and_(pc.equal(pos["line"], row["line"]),
                                        pc.equal(pos["point"], row["point"])),
                                pc.equal(pos["node"], row["node"]))).to_pylist()
-    t = trace_station(arc, sid, row["line"], row["point"], row["index"])
-    by_part = {p["part"]: p for p in t["fixes_by_part"] if p["node"] == row["node"]}
+    t = trace_station(arc, sid, row["line"], row["point"], row["occupation"])
+    [o] = t["occupations"]
+    by_part = {p["part"]: p for p in o["fixes_by_part"] if p["node"] == row["node"]}
     assert {1, 2} <= set(by_part) and by_part[2]["delivered"] and not by_part[1]["delivered"]
     for r in parts:  # each part's counts agree with the run's own counts of that part
         p = by_part[r["part"]]
         assert p["used"] == r["n_used"] and p["rejected"] + p["screened"] == r["n_rejected"]
     for k in ("used", "rejected", "screened"):  # the parts add up to the total
-        assert sum(p[k] for p in t["fixes_by_part"]) == t["fixes"][k]
-    assert t["fixes"]["used"] > row["n_used"]  # the total is not the delivered part's count
-    r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}")
+        assert sum(p[k] for p in o["fixes_by_part"]) == o["fixes"][k]
+    assert o["fixes"]["used"] > row["n_used"]  # the total is not the delivered part's count
+    r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}",
+               "--index", str(row["occupation"]))
     assert r.exit_code == 0, r.stderr
     assert (f"part 2 node {row['node']}: used {row['n_used']}, rejected "
             f"{by_part[2]['rejected']}, screened {by_part[2]['screened']} (delivered part)"
             in r.output)
     r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}",
-               "--json")
-    assert json.loads(r.output)["fixes_by_part"] == t["fixes_by_part"]
+               "--node", row["node"], "--json")
+    assert json.loads(r.output)["occupations"][0]["fixes_by_part"] == o["fixes_by_part"]
 
 
 def test_trace_station_after_edit_and_delivery(solved, runner):
     from archive.deliver import edits as ed
-    from archive.solve.run import get_run, run_positions
+    from archive.solve.occupancy import run_occupations
+    from archive.solve.run import get_run
 
     arc, sid, run_id, base = solved
-    pos = run_positions(arc, get_run(arc, sid, run_id))
+    pos = run_occupations(arc, get_run(arc, sid, run_id))
     row = pos.filter(pc.and_(pos["delivered"], pc.greater(pos["n_used"], 0))).to_pylist()[-1]
     line, point = row["line"], row["point"]
-    e = ed.set_height(arc, sid, line, point, source="given", height=612.5,
+    e = ed.set_height(arc, sid, line, point, row["occupation"], source="given", height=612.5,
                       reason="levelled from the benchmark by the crew")
     res = deliver(arc, sid, run_id, "sps", base / "r_trace.sps", "processing",
                   allow_flags=True, force=True)
-    t = trace_station(arc, sid, line, point)
-    assert t["delivery"]["id"] == res.delivery_id
-    assert t["delivery"]["position"]["height"] == 612.5
-    assert t["delivery"]["position"]["source"] == f"edit:{e.id}"
+    t = trace_station(arc, sid, line, point, row["occupation"])
+    [o] = t["occupations"]
+    assert o["delivery"]["id"] == res.delivery_id
+    assert o["delivery"]["position"]["height"] == 612.5
+    assert o["delivery"]["position"]["source"] == f"edit:{e.id}"
     assert t["run"]["id"] == run_id and t["run"]["params"]
     assert {i["kind"] for i in t["run"]["inputs"]} >= {"stations", "deployments"}
     assert [x["reason"] for x in t["edits"]] == ["levelled from the benchmark by the crew"]
-    r = invoke(runner, base / "archive", "trace", f"{line:g}", f"{point:g}")
+    r = invoke(runner, base / "archive", "trace", f"{line:g}", f"{point:g}",
+               "--index", str(row["occupation"]))
     assert r.exit_code == 0, r.stderr
     assert f"last delivered in delivery {res.delivery_id}" in r.output
     assert "levelled from the benchmark" in r.output and "received" in r.output

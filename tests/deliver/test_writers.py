@@ -32,9 +32,10 @@ def test_sps_synthetic_vector_exact():
         "code": ["G1"], "static": [0.0], "point_depth": [0.0], "datum": [0.0],
         "uphole": [0.0], "water_depth": [0.0], "easting": [500123.4],
         "northing": [6123456.7], "height": [123.4],
-        # day 123 of 2024 is 2 May (leap year): 2024-01-01 + 122 days
-        "t_end": pa.array([datetime(2024, 5, 2, 12, 34, 56, tzinfo=UTC)],
-                          pa.timestamp("us", tz="UTC")),
+        # day 123 of 2024 is 2 May (leap year): 2024-01-01 + 122 days; the day/time
+        # columns hold when the node was laid out (the occupation's start)
+        "deployed": pa.array([datetime(2024, 5, 2, 12, 34, 56, tzinfo=UTC)],
+                             pa.timestamp("us", tz="UTC")),
     })
     text = write_sps(t, context()).decode("ascii")
     records = [r for r in text.splitlines() if r.startswith("R")]
@@ -58,7 +59,7 @@ def test_sps_read_back_column_by_column():
         assert r["easting"] == pytest.approx(d["easting"][i], abs=0.05 + 1e-9)
         assert r["northing"] == pytest.approx(d["northing"][i], abs=0.05 + 1e-9)
         assert r["elevation"] == pytest.approx(d["height"][i], abs=0.05 + 1e-9)
-        te = d["t_end"][i]
+        te = d["deployed"][i]  # day/time columns: when the node was laid out
         assert r["doy"] == te.timetuple().tm_yday
         assert r["time"] == te.strftime("%H%M%S")
         assert r["static"] is None and r["water"] is None  # not known: left blank
@@ -118,7 +119,7 @@ def test_segp1_read_back_and_lat_lon_against_pyproj():
         assert r["easting"] == pytest.approx(d["easting"][i], abs=0.05 + 1e-9)
         assert r["northing"] == pytest.approx(d["northing"][i], abs=0.5 + 1e-9)
         assert r["elevation"] == pytest.approx(d["height"][i], abs=0.05 + 1e-9)
-        te = d["t_end"][i]
+        te = d["deployed"][i]  # day/time columns: when the node was laid out
         assert r["year"] == te.year % 100
         assert r["doy"] == te.timetuple().tm_yday and r["time"] == te.strftime("%H%M%S")
     text = " ".join(x[4:].strip() for x in headers)
@@ -140,7 +141,7 @@ def test_segp1_southern_western_hemisphere():
 
 @pytest.mark.parametrize("field,value,what", [
     ("northing", 123_456_789.0, "northing"), ("height", 123_456.0, "elevation"),
-    ("point", 2001.5, "whole number"), ("index", 2, "point index"),
+    ("point", 2001.5, "whole number"), ("index", 10, "point index"),
 ])
 def test_segp1_refuses_unfit_values(field, value, what):
     t = final_table(4)

@@ -31,7 +31,8 @@ def positions_table(rows: Sequence[dict]) -> pa.Table:
         "n_rejected": 100, "n_eff": 40.0, "span_s": 250000.0, "spread": 2.0,
         "preplot_e": None, "preplot_n": None, "dist_preplot": None, "nearest_line": None,
         "nearest_point": None, "dist_nearest": None, "estimator": "huber", "flags": "",
-        "index": 1,
+        "index": 1, "occupation": 1, "deployed": T0 - timedelta(minutes=30),
+        "retrieved": T0 + timedelta(days=3, minutes=30), "from_margins": False,
     }
     cols = {}
     for f in POSITION_SCHEMA:

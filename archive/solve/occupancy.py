@@ -1,0 +1,127 @@
+"""A run's positions with their occupations, whatever the run's format.
+
+Runs of manifest format 2 store each row's occupation (delivered point index, logged window,
+``from_margins``). Runs of format 1 were solved before occupations were numbered: their rows
+are matched here to the run's own deployments table (numbered by
+:mod:`archive.survey.occupations`): same station and node, the row's window start inside the
+deployment's logged window. So an old run is delivered, traced and compared by occupation
+exactly like a new one, and its stored table (what ``reproduce`` checks) is never changed.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+
+from archive.solve.schema import POSITION_SCHEMA
+from archive.survey.occupations import Records, number_occupations, with_occupations
+
+UPGRADE_COLUMNS = ("occupation", "deployed", "retrieved", "from_margins")
+
+
+NULL_US = np.iinfo(np.int64).min  # a null timestamp while the columns are int64
+
+
+def _us(col: pa.ChunkedArray) -> np.ndarray:
+    return pc.fill_null(pc.cast(col, pa.int64()), NULL_US).to_numpy(zero_copy_only=False)
+
+
+def _from_deployments(positions: pa.Table, deployments: pa.Table) -> dict[str, np.ndarray]:
+    """Occupation columns of v1 rows, matched to the numbered deployment records."""
+    dep = with_occupations(deployments)
+    d = pd.DataFrame({
+        "node": dep["node"].to_pylist(), "line": dep["line"].to_numpy(),
+        "point": dep["point"].to_numpy(), "index": dep["index"].to_numpy(),
+        "occupation": dep["occupation"].to_numpy(), "d0": _us(dep["deployed"]),
+        "d1": _us(dep["retrieved"]),
+    })
+    n = positions.num_rows
+    pos = pd.DataFrame({
+        "row": np.arange(n), "node": positions["node"].to_pylist(),
+        "line": positions["line"].to_numpy(), "point": positions["point"].to_numpy(),
+        "index": positions["index"].to_numpy(), "kind": positions["kind"].to_pylist(),
+        "t_start": _us(positions["t_start"]),
+    })
+    m = pos[pos["kind"] == "logged"].merge(d, on=["node", "line", "point", "index"])
+    inside = (m["t_start"] >= m["d0"]) & ((m["d1"] == NULL_US) | (m["t_start"] <= m["d1"]))
+    m = m[inside].sort_values(["row", "d0"]).drop_duplicates("row", keep="first")
+    occ = np.zeros(n, dtype=np.int8)
+    deployed = np.full(n, NULL_US, dtype=np.int64)
+    retrieved = np.full(n, NULL_US, dtype=np.int64)
+    rows = m["row"].to_numpy()
+    occ[rows] = m["occupation"].to_numpy()
+    deployed[rows] = m["d0"].to_numpy()
+    retrieved[rows] = m["d1"].to_numpy()
+    return {"occupation": occ, "deployed": deployed, "retrieved": retrieved}
+
+
+def _from_rows(positions: pa.Table) -> dict[str, np.ndarray]:
+    """Occupation columns numbered from the rows alone (a run without a deployments table):
+    one occupation per station and node, in order of the rows' window starts."""
+    n = positions.num_rows
+    df = pd.DataFrame({
+        "row": np.arange(n),
+        "line": positions["line"].to_numpy(), "point": positions["point"].to_numpy(),
+        "index": positions["index"].to_numpy(), "node": positions["node"].to_pylist(),
+        "kind": positions["kind"].to_pylist(), "t": _us(positions["t_start"]),
+    })
+    logged = df[df["kind"] == "logged"]
+    first = logged.groupby(["line", "point", "index", "node"], sort=False)["t"].min()
+    first = first.reset_index()
+    rec = Records(line=first["line"].to_numpy(float), point=first["point"].to_numpy(float),
+                  index=first["index"].to_numpy(np.int64),
+                  node=first["node"].to_numpy(object), start=first["t"].to_numpy(np.int64),
+                  end=first["t"].to_numpy(np.int64), order=np.arange(len(first)))
+    first["occupation"] = number_occupations(rec)
+    m = logged.merge(first.drop(columns="t"), on=["line", "point", "index", "node"])
+    occ = np.zeros(n, dtype=np.int8)
+    occ[m["row"].to_numpy()] = m["occupation"].to_numpy()
+    none = np.full(n, NULL_US, dtype=np.int64)
+    return {"occupation": occ, "deployed": none, "retrieved": none.copy()}
+
+
+def upgrade_positions(positions: pa.Table, deployments: pa.Table | None) -> pa.Table:
+    """``positions`` in :data:`POSITION_SCHEMA`: a v1 table gets its occupation columns from
+    ``deployments`` (the run's own deployments table), or from its rows when there is none."""
+    if all(c in positions.column_names for c in UPGRADE_COLUMNS):
+        return positions
+    cols = (_from_deployments(positions, deployments) if deployments is not None
+            else _from_rows(positions))
+    n = positions.num_rows
+    arrays: list[Any] = [positions[name] for name in positions.column_names]
+    arrays.append(pa.array(cols["occupation"], pa.int8(), mask=cols["occupation"] == 0))
+    for name in ("deployed", "retrieved"):
+        v = cols[name]
+        arrays.append(pa.array(v, pa.int64(), mask=v == NULL_US).cast(
+            POSITION_SCHEMA.field(name).type))
+    arrays.append(pa.array(np.zeros(n, dtype=bool)))
+    return pa.Table.from_arrays(arrays, schema=POSITION_SCHEMA)
+
+
+def run_occupations(arc: Any, run: Any) -> pa.Table:
+    """The run's positions (checked against its digest) with the occupation columns."""
+    from archive.solve.run import run_manifest, run_positions
+
+    positions = run_positions(arc, run)
+    if all(c in positions.column_names for c in UPGRADE_COLUMNS):
+        return positions
+    dep_hash = (run_manifest(arc, run).get("inputs") or {}).get("deployments")
+    deployments = arc.objects.read_table(dep_hash) if dep_hash else None
+    return upgrade_positions(positions, deployments)
+
+
+def station_rows(table: pa.Table, line: float, point: float, index: int | None = None,
+                 node: str | None = None) -> pa.Table:
+    """Rows of (line, point) of a positions-like table, narrowed to one occupation's delivered
+    point index (``occupation`` column, else ``index``) and/or node when given."""
+    mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
+    if index is not None:
+        col = "occupation" if "occupation" in table.column_names else "index"
+        mask = pc.and_(mask, pc.fill_null(pc.equal(table[col], int(index)), False))
+    if node is not None:
+        mask = pc.and_(mask, pc.equal(table["node"], str(node)))
+    return table.filter(mask)

@@ -1,0 +1,54 @@
+"""Files written for people (deliveries, lineage manifests, reports): whole or not at all.
+
+A file is written to a temporary name in its target folder, flushed and fsynced, given the
+permissions a new file gets from the user's umask (``0666 & ~umask``: team-readable when the
+umask says so, unlike the owner-only mode of a temporary file), and renamed onto its target
+by the caller once everything it depends on is recorded. A failure removes the temporary
+file, so no half-written file is ever left under the target's name.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+import threading
+from pathlib import Path
+
+_UMASK_LOCK = threading.Lock()
+
+
+def new_file_mode() -> int:
+    """The mode a new regular file gets under the process umask (``0o666 & ~umask``)."""
+    with _UMASK_LOCK:  # os.umask can only be read by setting it
+        mask = os.umask(0o022)
+        os.umask(mask)
+    return 0o666 & ~mask
+
+
+def temp_beside(target: Path, data: bytes) -> Path:
+    """Write ``data`` to a fsynced temporary file in ``target``'s folder, with the umask's
+    permissions; returns its path (rename it onto ``target`` with :func:`os.replace`)."""
+    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+            fh.flush()
+            os.fchmod(fh.fileno(), new_file_mode())
+            os.fsync(fh.fileno())
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            os.unlink(tmp)
+        raise
+    return Path(tmp)
+
+
+def write_file(target: Path, data: bytes) -> None:
+    """Write ``target`` atomically (temporary file beside it, fsync, rename)."""
+    tmp = temp_beside(target, data)
+    try:
+        os.replace(tmp, target)
+    except BaseException:
+        with contextlib.suppress(FileNotFoundError):
+            tmp.unlink()
+        raise
