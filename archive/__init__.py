@@ -5,4 +5,4 @@ The import package is ``archive``; the command is ``nodekeep``. Layers, from the
 ``deliver`` < ``cli``. Every layer is usable as a library.
 """
 
-__version__ = "0.1.0"
+__version__ = "0.2.0"

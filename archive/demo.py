@@ -63,10 +63,12 @@ class DemoSummary:
     size: str
     run_id: str
     n_stations: int
+    n_reoccupied: int  # stations occupied more than once
+    n_occupations: int  # deployments in the log (one delivered record each)
     n_logs: int
     n_fixes: int
     n_rejected_lines: int
-    n_delivered: int
+    n_delivered: int  # delivered records (one per occupation)
     n_flagged: int
     check_points: dict[str, Any]
     truth: dict[str, Any]
@@ -104,26 +106,31 @@ def _read_csv(path: Path) -> list[dict[str, str]]:
 
 
 def score(positions: Any, truth_csv: Path, problems: list[dict[str, Any]],
-          rejects_by_node: dict[str, dict[str, int]]) -> tuple[dict[str, Any],
-                                                               list[ProblemOutcome],
-                                                               dict[str, int]]:
+          rejects_by_node: dict[str, dict[str, int]],
+          reoccupied: list[dict[str, Any]] | None = None
+          ) -> tuple[dict[str, Any], list[ProblemOutcome], dict[str, int]]:
     """Score delivered positions against the truth and the planted problems.
 
-    ``positions`` is a run's positions table (rows with ``delivered`` true are scored).
+    ``positions`` is a run's positions table with its occupation columns (rows with
+    ``delivered`` true are scored, each against the truth of its own occupation: the
+    scenario numbers a station's occupations in time order, as the deployment log does).
     Returns the truth statistics (stations with a planted problem left out: their log or
-    their stay is wrong on purpose), one outcome per planted problem, and the count of each
-    flag raised on stations without a planted problem.
+    their stay is wrong on purpose; ``reoccupied`` repeats them over the occupations of
+    stations laid out more than once), one outcome per planted problem, and the count of
+    each flag raised on stations without a planted problem.
     """
     pos = positions.to_pandas()
     pos = pos[pos["delivered"] & (pos["kind"] == "logged")]
-    key = list(zip(pos["line"].astype(float), pos["point"].astype(float), strict=True))
+    occ = pos["occupation"].fillna(pos["index"]).astype(int)
+    key = list(zip(pos["line"].astype(float), pos["point"].astype(float), occ, strict=True))
     at = dict(zip(key, range(len(pos)), strict=True))
-    truth = {(float(r["line"]), float(r["point"])): r for r in _read_csv(truth_csv)
-             if r["final"] == "true"}
+    truth = {(float(r["line"]), float(r["point"]), int(r.get("occupation") or 1)): r
+             for r in _read_csv(truth_csv) if r["final"] == "true"}
     planted = {(float(p["line"]), float(p["point"])) for p in problems
                if p["kind"] != "damaged-log"}
+    again = {(float(r["line"]), float(r["point"])) for r in reoccupied or []}
 
-    def dist_to_truth(k: tuple[float, float]) -> float | None:
+    def dist_to_truth(k: tuple[float, float, int]) -> float | None:
         if k not in at or k not in truth:
             return None
         row = pos.iloc[at[k]]
@@ -131,26 +138,32 @@ def score(positions: Any, truth_csv: Path, problems: list[dict[str, Any]],
                            row["northing"] - float(truth[k]["northing"])))
         return d if np.isfinite(d) else None
 
-    clean = [k for k in at if k not in planted]
+    clean = [k for k in at if k[:2] not in planted]
     d = np.array([dist_to_truth(k) for k in clean], dtype=float)
     stats = _distances(d)
     stats["excluded_planted"] = len(planted)
+    d_again = np.array([dist_to_truth(k) for k in clean if k[:2] in again], dtype=float)
+    stats["reoccupied"] = _distances(d_again) | {"stations": len(again)}
+
+    def first(line: float, point: float) -> tuple[float, float, int] | None:
+        keys = sorted(k for k in at if k[:2] == (line, point))
+        return keys[0] if keys else None
 
     outcomes = []
     for p in problems:
-        k = (float(p["line"]), float(p["point"]))
+        k = first(float(p["line"]), float(p["point"]))
         if p["kind"] == "damaged-log":
             rejects = rejects_by_node.get(p["node"], {})
             found = sorted(r for r in rejects if rejects[r] > 0)
             expected = list(p["expect_rejects"])
         else:
-            found = sorted({f for f in pos.iloc[at[k]]["flags"].split(";") if f}) if k in at \
-                else ["(not delivered)"]
+            found = sorted({f for f in pos.iloc[at[k]]["flags"].split(";") if f}) \
+                if k is not None else ["(not delivered)"]
             expected = list(p["expect_flags"])
         outcomes.append(ProblemOutcome(
-            kind=p["kind"], line=k[0], point=k[1], node=p["node"], expected=expected,
-            found=found, flagged=bool(set(found) & set(expected)), what=p.get("what", ""),
-            truth_distance=dist_to_truth(k)))
+            kind=p["kind"], line=float(p["line"]), point=float(p["point"]), node=p["node"],
+            expected=expected, found=found, flagged=bool(set(found) & set(expected)),
+            what=p.get("what", ""), truth_distance=dist_to_truth(k) if k else None))
 
     unexpected: dict[str, int] = {}
     for k in clean:
@@ -175,11 +188,12 @@ def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
     stations) or ``"small"`` (thirty, for tests).
     """
     from archive.deliver.deliveries import deliver
-    from archive.deliver.runs import get_run, run_positions
+    from archive.deliver.runs import get_run
     from archive.ingest.load import load_fix_files
     from archive.qc.check import qc_run
     from archive.qc.report import write_report
     from archive.seeds.scenario import generate
+    from archive.solve.occupancy import run_occupations
     from archive.solve.run import solve_survey
     from archive.store.archive import Archive
     from archive.store.verify import verify_archive
@@ -225,18 +239,21 @@ def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
                 note=DEMO_NOTE, allow_flags=True))
             delivered[fmt] = res.path
         ver = _timed(sec, "verify", lambda: verify_archive(arc, progress=progress))
-        positions = run_positions(arc, run)
+        positions = run_occupations(arc, run)
     finally:
         arc.close()
 
     rejects = {o.node: dict(o.rejects) for o in report.files if o.node}
-    truth, outcomes, unexpected = score(positions, sc.truth, sc.problems, rejects)
+    truth, outcomes, unexpected = score(positions, sc.truth, sc.problems, rejects,
+                                        sc.reoccupied)
     solved_h = qc.comparison.solved.horizontal
     sec["total"] = round(time.perf_counter() - t_start, 2)
     return DemoSummary(
         out_dir=str(out), scenario_dir=str(sc.out_dir), archive_dir=str(out / ARCHIVE_DIR),
         report=str(written.path), deliveries=delivered, survey=sc.survey_name, seed=seed,
         size=size, run_id=run.id, n_stations=sc.n_stations, n_logs=len(sc.logs),
+        n_reoccupied=len(sc.reoccupied),
+        n_occupations=sc.n_deployments,
         n_fixes=sum(o.n_fixes for o in report.files),
         n_rejected_lines=sum(o.n_rejected for o in report.files),
         n_delivered=qc.n_delivered, n_flagged=qc.n_flagged,

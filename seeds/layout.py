@@ -106,6 +106,7 @@ class Occupation:
     wave: int
     moved_at: float = float("nan")  # time of a planted disturbance, if any
     moved_to: tuple[float, float] | None = None
+    place: tuple[float, float] | None = None  # where it stood, when not the station's spot
 
 
 @dataclass
@@ -151,6 +152,61 @@ def make_plan(rng: np.random.Generator, size: Size, spread: Spread,
     return plan
 
 
+def _walk(spread: Spread, s: int) -> float:
+    """Seconds to walk between station ``s`` and its line head."""
+    return float(np.hypot(spread.true_e[s] - spread.head_e[s],
+                          spread.true_n[s] - spread.head_n[s]) / WALK_SPEED)
+
+
+def add_relays(plan: Plan, spread: Spread, size: Size, rng: np.random.Generator,
+               avoid: set[int], count: int = 4,
+               offset: tuple[float, float] = (2.0, 6.0)) -> list[int]:
+    """Occupy ``count`` stations again after their first pickup (a station occupied twice is
+    ordinary field work: a node re-laid after a flood, a replacement for a failed node).
+
+    The first chosen station gets its own node back; the others get a node picked up earlier
+    on the same line (a spare), each laid ``offset`` (2-6 m) from where the first node sat;
+    the last one
+    is occupied a third time by another spare. Stations in ``avoid`` (planted problems) and
+    rolled stations take no part. Returns the stations re-occupied.
+    """
+    first = {o.station: o for o in plan.occupations if o.wave == 1}
+    rolled = {o.node for o in plan.occupations if o.wave == 2}
+    free = [s for s in sorted(first) if s not in avoid and first[s].node not in rolled]
+    if len(free) < 2 or count < 1:
+        return []
+    chosen = sorted(int(x) for x in rng.choice(free, size=min(count, len(free) // 2),
+                                               replace=False))
+    spares = [s for s in free if s not in chosen]
+    end = 2 * size.days * DAY + 14 * HOUR  # the second wave's pickup day
+    for k, s in enumerate(chosen):
+        o1 = first[s]
+        if k == 0:
+            donors = [s]  # its own node, re-laid (after a flood, say)
+        else:
+            wanted = 2 if k == len(chosen) - 1 else 1
+            near = sorted(spares, key=lambda d: (spread.line_index[d] != spread.line_index[s],
+                                                 first[d].retrieved >= o1.retrieved, d))
+            donors = near[:wanted]
+            for d in donors:
+                spares.remove(d)
+        stops = [end] if len(donors) == 1 else [0.5 * (o1.retrieved + end), end]
+        t = o1.retrieved
+        for donor, stop in zip(donors, stops, strict=True):
+            node = first[donor].node
+            prev = max(x.retrieved for x in plan.occupations if x.node == node)
+            ready = prev + _walk(spread, donor) + _walk(spread, s) + 900.0
+            start = float(np.round(max(t, ready) + rng.uniform(1.0, 2.0) * HOUR))
+            r = rng.uniform(*offset)
+            az = rng.uniform(0, 2 * np.pi)
+            place = (float(spread.true_e[s] + r * np.sin(az)),
+                     float(spread.true_n[s] + r * np.cos(az)))
+            stop = float(np.round(stop + rng.uniform(-0.5, 0.5) * HOUR))
+            plan.occupations.append(Occupation(node, s, start, stop, 3, place=place))
+            t = stop
+    return chosen
+
+
 def build_tracks(plan: Plan, spread: Spread, camp: tuple[float, float],
                  rng: np.random.Generator) -> None:
     """Waypoints of every node: racks in camp, drive, walk, stand, walk, drive, racks."""
@@ -166,7 +222,7 @@ def build_tracks(plan: Plan, spread: Spread, camp: tuple[float, float],
         for o in occs:
             s = o.station
             head = (spread.head_e[s], spread.head_n[s])
-            here = (spread.true_e[s], spread.true_n[s])
+            here = o.place if o.place is not None else (spread.true_e[s], spread.true_n[s])
             walk = np.hypot(here[0] - head[0], here[1] - head[1]) / WALK_SPEED
             if prev_exit is None:  # from the racks: drive to the head, wait, walk out
                 drive = np.hypot(head[0] - slot[0], head[1] - slot[1]) / DRIVE_SPEED

@@ -7,12 +7,16 @@
     control.csv        RTK check points on about 10 % of stations (at the sensor)
     dem.tif            bare-earth elevation model, float32 GeoTIFF, pixel-is-area
     logs/<serial>.nmea one NMEA 0183 log per node serial (GGA, GSA, RMC per epoch)
-    truth.csv          where every node really stood (one row per standing part)
+    truth.csv          where every node really stood (one row per standing part; the
+                       ``occupation`` column numbers the station's occupations in time order)
     problems.json      the planted problems and the review flags that should catch them
     scenario.json      names, CRS, datum, sizes and the list of files
 
 Planted problems: a node moved mid-deployment, two node serials swapped in the deployment
 log, a node whose battery died a few hours after it was laid out, and a damaged log file.
+Ordinary field work besides: a few stations are occupied again after their first pickup (one
+by its own node, the others by spare nodes laid 2-6 m from the first spot; the last one three
+times in all).
 Everything is a pure function of ``seed`` and ``size``: the same arguments give the same
 bytes.
 """
@@ -28,7 +32,16 @@ import numpy as np
 from archive.seeds import files
 from archive.seeds.damage import damage_log
 from archive.seeds.gnss_errors import ErrorModel, common_mode
-from archive.seeds.layout import HOUR, SIZES, Plan, Spread, build_tracks, make_plan, make_spread
+from archive.seeds.layout import (
+    HOUR,
+    SIZES,
+    Plan,
+    Spread,
+    add_relays,
+    build_tracks,
+    make_plan,
+    make_spread,
+)
 from archive.seeds.terrain import make_terrain, write_dem
 from archive.seeds.tracks import LogContext, node_log, standing_parts
 
@@ -43,7 +56,7 @@ GEOID_SEP = -27.4  # m, the receivers' GGA geoid separation here (plausible valu
 
 # stream ids of the random generators, so each part draws from its own stream
 _STREAMS = {"spread": 1, "plan": 2, "terrain": 3, "common": 4, "serials": 5, "problems": 6,
-            "control": 7, "damage": 8, "node": 100}
+            "control": 7, "damage": 8, "relays": 9, "node": 100}
 
 
 @dataclass
@@ -71,6 +84,7 @@ class Scenario:
     n_deployments: int = 0
     n_check_points: int = 0
     dt: float = 0.0
+    reoccupied: list[dict[str, Any]] = field(default_factory=list)  # stations laid out again
 
     def as_dict(self) -> dict[str, Any]:
         """Plain data (paths as text) for JSON."""
@@ -108,11 +122,14 @@ def _plant(seed: int, spread: Spread, plan: Plan, size_roll: int, n_nodes: int,
     return {"swap": (a, b), "moved": (moved, dist), "died": (died, death), "damaged": damaged}
 
 
-def generate(out_dir: str | Path, *, seed: int = 7, size: str = "demo") -> Scenario:
+def generate(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
+             reoccupy: int = 4, relay_offset: tuple[float, float] = (2.0, 6.0)) -> Scenario:
     """Write the invented Kestrel Flats 3D scenario into ``out_dir`` and describe it.
 
     ``size`` is ``"demo"`` (240 stations on 6 lines, 3-day deployments logged every 30 s)
     or ``"small"`` (30 stations on 2 lines, 3-day deployments at 60 s, for tests).
+    ``reoccupy`` stations are laid out again after their first pickup (the last one twice
+    more), each new node ``relay_offset`` (2-6 m) from where the first one sat.
     """
     if size not in SIZES:
         raise ValueError(f"unknown scenario size {size!r}; use one of {', '.join(SIZES)}")
@@ -125,6 +142,9 @@ def generate(out_dir: str | Path, *, seed: int = 7, size: str = "demo") -> Scena
             ORIGIN[1] - 1500.0 * spread.across[1] - 400.0 * spread.along[1])
     plan = make_plan(_rng(seed, "plan"), sz, spread, camp)
     planted = _plant(seed, spread, plan, sz.roll, sz.n_nodes, sz.per_line)
+    avoid = {*planted["swap"], planted["moved"][0], planted["died"][0], planted["damaged"]}
+    relaid = add_relays(plan, spread, sz, _rng(seed, "relays"), avoid, count=reoccupy,
+                        offset=relay_offset)
     build_tracks(plan, spread, camp, _rng(seed, "plan", 1))
     died_node, death = planted["died"][0], planted["died"][1]
     plan.switch_off[died_node] = death
@@ -162,7 +182,7 @@ def generate(out_dir: str | Path, *, seed: int = 7, size: str = "demo") -> Scena
 
     _write_inputs(out, sz, spread, plan, planted, serials, terrain)
     problems = _problems(spread, plan, planted, serials, damage_counts, logs)
-    ctl = _write_control(out, seed, spread, plan, planted, terrain, sz)
+    ctl = _write_control(out, seed, spread, plan, planted, terrain, sz, relaid)
     _write_truth(out, spread, plan, serials, terrain)
     (out / "problems.json").write_text(json.dumps({"problems": problems}, indent=2) + "\n",
                                        encoding="utf-8")
@@ -172,7 +192,9 @@ def generate(out_dir: str | Path, *, seed: int = 7, size: str = "demo") -> Scena
                   control=out / "control.csv", dem=out / "dem.tif", logs=logs,
                   truth=out / "truth.csv", problems_file=out / "problems.json",
                   problems=problems, n_stations=sz.n_stations, n_nodes=sz.n_nodes,
-                  n_deployments=len(plan.occupations), n_check_points=ctl, dt=sz.dt)
+                  n_deployments=len(plan.occupations), n_check_points=ctl, dt=sz.dt,
+                  reoccupied=[{**_station(spread, st), "occupations": sum(
+                      1 for o in plan.occupations if o.station == st)} for st in relaid])
     meta = sc.as_dict()
     meta["out_dir"] = "."
     for k in ("preplot", "deployments", "control", "dem", "truth", "problems_file"):
@@ -207,12 +229,13 @@ def _write_inputs(out: Path, sz, spread: Spread, plan: Plan, planted: dict[str, 
     files.write_preplot(out / "preplot.sps", headers, spread.line, spread.point, spread.pre_e,
                         spread.pre_n, elev)
     a, b = planted["swap"]
-    logged = {o.station: o.node for o in plan.occupations}
-    logged[a], logged[b] = logged[b], logged[a]  # the crew scanned the two serials the wrong way
+    first = {o.station: o.node for o in plan.occupations if o.wave == 1}
+    swapped = {a: first[b], b: first[a]}  # the crew scanned the two serials the wrong way
     occs = sorted(plan.occupations, key=lambda o: (o.deployed, o.station))
     files.write_csv(out / "deployments.csv",
                     ["node", "line", "point", "deployed_utc", "retrieved_utc"],
-                    [(serials[logged[o.station]], f"{spread.line[o.station]:.0f}",
+                    [(serials[swapped.get(o.station, o.node) if o.wave == 1 else o.node],
+                      f"{spread.line[o.station]:.0f}",
                       f"{spread.point[o.station]:.0f}", d, r)
                      for o, d, r in zip(occs, files.iso(START, [o.deployed for o in occs]),
                                         files.iso(START, [o.retrieved for o in occs]),
@@ -254,20 +277,31 @@ def _problems(spread: Spread, plan: Plan, planted: dict[str, Any], serials: list
 
 
 def _write_control(out: Path, seed: int, spread: Spread, plan: Plan, planted: dict[str, Any],
-                   terrain, sz) -> int:
-    """RTK check points on about 10 % of the stations, away from the planted problems."""
+                   terrain, sz, relaid: list[int]) -> int:
+    """RTK check points on about 10 % of the stations, away from the planted problems.
+
+    A station occupied more than once is surveyed during its last occupation, at the sensor
+    of the node then in the ground (the first re-occupied station always gets one), so its
+    check point belongs to one occupation only.
+    """
     rng = _rng(seed, "control")
     a, b = planted["swap"]
     avoid = {a, b, planted["moved"][0], planted["died"][0], planted["damaged"]}
     cand = np.array([s for s in range(sz.n_stations) if s not in avoid])
     k = max(3, int(round(0.10 * sz.n_stations)))
     chosen = np.sort(rng.choice(cand, size=k, replace=False))
-    occ = {o.station: o for o in plan.occupations}
+    if relaid and relaid[0] not in chosen:
+        chosen = np.sort(np.r_[chosen[chosen != chosen[-1]], relaid[0]])
+    occ = {}
+    for o in sorted(plan.occupations, key=lambda x: x.deployed):
+        occ[o.station] = o  # the last occupation of each station
+    spot = np.array([occ[s].place if occ[s].place is not None
+                     else (spread.true_e[s], spread.true_n[s]) for s in chosen])
     # the sensor sits up to about a metre from the node on its cable
     r = rng.uniform(0.2, 1.0, k)
     az = rng.uniform(0, 2 * np.pi, k)
-    e = spread.true_e[chosen] + r * np.sin(az) + rng.normal(0, 0.015, k)
-    n = spread.true_n[chosen] + r * np.cos(az) + rng.normal(0, 0.015, k)
+    e = spot[:, 0] + r * np.sin(az) + rng.normal(0, 0.015, k)
+    n = spot[:, 1] + r * np.cos(az) + rng.normal(0, 0.015, k)
     h = terrain.height(e, n) + rng.normal(0, 0.025, k)
     when = [occ[s].deployed + rng.uniform(0.2, 0.8) * (occ[s].retrieved - occ[s].deployed)
             for s in chosen]
@@ -283,19 +317,24 @@ def _write_control(out: Path, seed: int, spread: Spread, plan: Plan, planted: di
 def _write_truth(out: Path, spread: Spread, plan: Plan, serials: list[str], terrain) -> None:
     """Where each node really stood, one row per standing part (part 0: the whole stay)."""
     rows = []
+    nth: dict[int, int] = {}
     for o in sorted(plan.occupations, key=lambda x: (x.station, x.deployed)):
+        nth[o.station] = nth.get(o.station, 0) + 1  # occupations numbered in time order
         parts = standing_parts([o])
-        places = [(spread.true_e[o.station], spread.true_n[o.station])]
+        places = [o.place if o.place is not None
+                  else (spread.true_e[o.station], spread.true_n[o.station])]
         if o.moved_to is not None:
             places.append(o.moved_to)
         for j, ((t1, t2), (e, n)) in enumerate(zip(parts, places, strict=True)):
             part = 0 if len(parts) == 1 else j + 1
             rows.append((serials[o.node], f"{spread.line[o.station]:.0f}",
-                         f"{spread.point[o.station]:.0f}", part, f"{e:.3f}", f"{n:.3f}",
-                         f"{float(terrain.height(e, n)):.3f}", *files.iso(START, [t1, t2]),
+                         f"{spread.point[o.station]:.0f}", nth[o.station], part, f"{e:.3f}",
+                         f"{n:.3f}", f"{float(terrain.height(e, n)):.3f}",
+                         *files.iso(START, [t1, t2]),
                          "true" if j == len(parts) - 1 else "false"))
-    files.write_csv(out / "truth.csv", ["node", "line", "point", "part", "easting", "northing",
-                                        "ground_height", "start_utc", "end_utc", "final"], rows)
+    files.write_csv(out / "truth.csv", ["node", "line", "point", "occupation", "part",
+                                        "easting", "northing", "ground_height", "start_utc",
+                                        "end_utc", "final"], rows)
 
 
 __all__ = ["Scenario", "generate", "SURVEY_NAME", "CLIENT", "CONTRACTOR", "EPSG"]

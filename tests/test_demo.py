@@ -68,7 +68,11 @@ def test_no_false_alarms_beyond_a_few(demo: dict[str, Any]) -> None:
 def test_deliveries_read_back(demo: dict[str, Any]) -> None:
     sps = Path(demo["deliveries"]["sps"]).read_bytes().decode("ascii").splitlines()
     rec = [x for x in sps if x.startswith("R")]
-    assert len(rec) == demo["n_delivered"] == 30
+    # one record per occupation: 30 stations, four of them occupied again (one of those
+    # three times), so 35 records under unique (line, point, index) keys
+    assert len(rec) == demo["n_delivered"] == demo["n_occupations"] == 35
+    keys = {(x[1:11], x[11:21], x[23]) for x in rec}
+    assert len(keys) == 35 and sum(1 for x in rec if x[23] != "1") == 5
     # SPS rev 2.1: easting cols 47-55 (F9.1), northing 56-65 (F10.1) (SEG SPS format rev 2.1 (2006),
     # point record layout)
     e = np.array([float(x[46:55]) for x in rec])
@@ -76,7 +80,9 @@ def test_deliveries_read_back(demo: dict[str, Any]) -> None:
     assert np.all((e > 583000) & (e < 584000)) and np.all((n > 4062000) & (n < 4063500))
     p1 = Path(demo["deliveries"]["segp1"]).read_bytes().decode("ascii").splitlines()
     data = [x for x in p1 if not x.startswith("H")]
-    assert len(data) == 30
+    assert len(data) == 35
+    # the point index of re-occupied stations rides in the reshoot-code column 26
+    assert len({(x[1:17], x[17:25], x[25]) for x in data}) == 35
     # SEG-P1: easting 46-53 and northing 54-61 (SEG, "Standard exchange formats for positional
     # data", Geophysics 1983, as read by GDAL's SEG-P1 driver); whole metres
     e1 = np.array([float(x[45:53]) for x in data])
@@ -106,6 +112,9 @@ def test_text_summary_names_paths_numbers_and_cautions(demo: dict[str, Any]) -> 
     text = summary_text(demo)
     assert "Kestrel Flats 3D" in text and demo["report"] in text
     assert "Planted problems flagged: 5 of 5" in text and "MISSED" not in text
+    assert demo["n_reoccupied"] == 4
+    assert "occupied   4 stations more than once (35 occupations of 30 stations" in text
+    assert demo["truth"]["reoccupied"]["n"] == 9
     assert f"{demo['truth']['median']:.2f} m" in text
     assert "review flags allowed" in text
     assert "Not a certified or legal survey" in text

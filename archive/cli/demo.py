@@ -21,8 +21,11 @@ def summary_text(d: dict) -> str:
         f"  scenario   {d['scenario_dir']}  ({d['n_stations']} stations, {d['n_logs']} node "
         f"logs, {d['n_fixes']:,} fixes, {d['n_rejected_lines']} lines rejected)",
         f"  archive    {d['archive_dir']}",
-        f"  run        {d['run_id'][:12]}  ({d['n_delivered']} stations delivered, "
-        f"{d['n_flagged']} flagged)",
+        f"  run        {d['run_id'][:12]}  ({d['n_delivered']} records delivered: one per "
+        f"occupation, {d['n_flagged']} flagged)",
+        f"  occupied   {d['n_reoccupied']} stations more than once ({d['n_occupations']} "
+        f"occupations of {d['n_stations']} stations, each delivered under its own point "
+        "index)",
         f"  report     {d['report']}",
     ]
     lines += [f"  delivery   {p}  ({fmt})" for fmt, p in d["deliveries"].items()]
@@ -32,7 +35,12 @@ def summary_text(d: dict) -> str:
         f"  to RTK check points  {_m(cp['median'])} / {_m(cp['p95'])} / {_m(cp['max'])}"
         f"  ({cp['n']} points; the sensor can sit up to ~1 m from the node)",
         f"  to the truth         {_m(tr['median'])} / {_m(tr['p95'])} / {_m(tr['max'])}"
-        f"  ({tr['n']} stations; {tr['excluded_planted']} with planted problems left out)",
+        f"  ({tr['n']} occupations; {tr['excluded_planted']} stations with planted problems "
+        "left out)",
+        f"  re-occupied only     {_m(tr['reoccupied']['median'])} / "
+        f"{_m(tr['reoccupied']['p95'])} / {_m(tr['reoccupied']['max'])}"
+        f"  ({tr['reoccupied']['n']} occupations of {tr['reoccupied']['stations']} stations "
+        "occupied more than once)",
         "",
         f"Planted problems flagged: {caught} of {len(d['problems'])}",
     ]

@@ -178,11 +178,15 @@ def edits(state: CliState, all_edits: bool, line: float | None, point: float | N
     def text() -> str:
         if not rows:
             return "no edits" + ("" if all_edits else " in force")
+        def node(r: dict[str, Any]) -> str:
+            p = r["payload"] or {}
+            return str((p.get("occupation") or {}).get("node") or p.get("node") or "")
+
         return table([(r["id"], r["kind"], f"{r['line']:g}", f"{r['point']:g}", r["index"],
-                       "yes" if r["in_force"] else "no", r["supersedes"] or "",
+                       node(r), "yes" if r["in_force"] else "no", r["supersedes"] or "",
                        r["created_at"].strftime("%Y-%m-%d %H:%M"), r["created_by"],
                        r["reason"][:50]) for r in rows],
-                     ["id", "kind", "line", "point", "idx", "in force", "supersedes", "UTC",
-                      "by", "reason"])
+                     ["id", "kind", "line", "point", "idx", "node", "in force", "supersedes",
+                      "UTC", "by", "reason"])
 
     emit(state, rows, text)

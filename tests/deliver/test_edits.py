@@ -180,3 +180,34 @@ def test_exclude_that_could_have_no_effect_is_refused(setup):
     # the last node is still deployed: any span after its deployment overlaps
     assert ed.exclude_span(arc, sid, 1002, 2004, node="N5007", start="2025-01-01T00:00:00Z",
                            end="2025-01-02T00:00:00Z", reason="late").kind == "exclude-span"
+
+
+def test_an_edit_names_one_occupation_on_both_backends(any_survey_arc, tmp_path):
+    """A station laid out twice: an edit without --index/--node is refused with the list of
+    occupations; with one it lands on that occupation only (SQLite and PostgreSQL)."""
+    from archive.survey.inputs import load_input
+    from tests.deliver.builders import survey_id
+
+    arc = any_survey_arc
+    sid = survey_id(arc)
+    (tmp_path / "p.csv").write_text("line,point,easting,northing\n1001,2002,612370,3512345\n")
+    load_input(arc, sid, "stations", tmp_path / "p.csv")
+    (tmp_path / "d.csv").write_text(
+        "node,line,point,deployed_utc,retrieved_utc\n"
+        "N5001,1001,2002,2024-03-10T00:00:00Z,2024-03-12T00:00:00Z\n"
+        "N5009,1001,2002,2024-03-12T03:00:00Z,\n")
+    load_input(arc, sid, "deployments", tmp_path / "d.csv")
+    with pytest.raises(UsageError, match=r"station 1001/2002 was occupied 2 times and reject "
+                                         r"must name one occupation: index 1: node N5001, "
+                                         r"2024-03-10T00:00:00Z to 2024-03-12T00:00:00Z; "
+                                         r"index 2: node N5009, 2024-03-12T03:00:00Z to "
+                                         r"still deployed"):
+        ed.reject_station(arc, sid, 1001, 2002, reason="flooded")
+    e = ed.reject_station(arc, sid, 1001, 2002, node="N5009", reason="flooded")
+    assert e.point_index == 2
+    assert json.loads(e.payload)["occupation"]["node"] == "N5009"
+    h = ed.set_height(arc, sid, 1001, 2002, 1, height=401.0, reason="levelled")
+    assert h.point_index == 1
+    assert [(x["kind"], x["index"]) for x in ed.list_edits(arc, sid)] == [
+        ("reject-station", 2), ("set-height", 1)]
+    assert verify_archive(arc).ok

@@ -1,0 +1,76 @@
+"""An archive written before occupations were numbered still reproduces, traces and delivers.
+
+``saved/rev0001-run`` (see its README) holds a run of manifest format 1 and two deliveries
+whose files repeat the key 1001/5002 index 1 for two occupations of that station.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import pytest
+
+from archive.deliver.check import check_delivery
+from archive.deliver.compare import reproduce, where
+from archive.deliver.deliveries import deliver
+from archive.deliver.lineage import trace_file, trace_station
+from archive.store import migrate
+from archive.store.archive import Archive
+from archive.store.verify import verify_archive
+from tests.conftest import invoke
+from tests.deliver.helpers import read_sps_r
+
+SAVED = Path(__file__).parent / "saved" / "rev0001-run"
+RUN = "29fef7454d464f37ddef675f66ba5ae613dcdccc95540c81e752ea92b682e61a"
+
+
+@pytest.fixture
+def old(tmp_path):
+    root = tmp_path / "archive"
+    shutil.copytree(SAVED, root)
+    arc = Archive.open(root, check_schema=False)
+    migrate.upgrade(arc.engine)
+    yield arc, root
+    arc.close()
+
+
+def test_its_run_reproduces_bit_for_bit(old):
+    arc, _ = old
+    r = reproduce(arc, RUN[:10])
+    assert r["identical"] is True and r["code_version_differs"] is True
+    assert verify_archive(arc).ok
+
+
+def test_its_deliveries_still_check_and_trace(old):
+    arc, root = old
+    for name in ("receivers.csv", "receivers.sps"):
+        c = check_delivery(arc, root / "delivered" / name)
+        assert c.ok, [str(p) for p in c.problems]
+        t = trace_file(arc, root / "delivered" / name)
+        assert t["run"]["id"] == RUN and len(t["raw_files"]) == 4
+    # the old files hold 1001/5002 index 1 twice; read through the run, each record is
+    # tied to its own occupation (node 310002 first, 310004 re-laid)
+    w = where(arc, 1, 1001, 5002)
+    assert [(o["index"], o["node"]) for o in w["occupations"]] == [(1, "310002"), (2, "310004")]
+    assert all(h["legacy"] for o in w["occupations"] for h in o["history"])
+    t = trace_station(arc, 1, 1001, 5002)
+    assert [(o["index"], [d["id"] for d in o["deliveries"]]) for o in t["occupations"]] == [
+        (1, [1, 2]), (2, [1, 2])]
+
+
+def test_a_new_delivery_of_the_old_run_numbers_the_occupations(old, runner):
+    arc, root = old
+    res = deliver(arc, 1, RUN, "sps", root / "again.sps", "Harrow Basin Energy",
+                  allow_flags=True)
+    recs = read_sps_r((root / "again.sps").read_text())
+    keys = [(r["line"], r["point"], r["index"]) for r in recs]
+    assert keys == [(1001.0, 5001.0, 1), (1001.0, 5002.0, 1), (1001.0, 5002.0, 2),
+                    (1001.0, 5003.0, 1)]
+    assert res.n_records == 4 and res.n_stations == 3
+    lineage = json.loads((root / "again.sps.lineage.json").read_text())
+    st = next(s for s in lineage["occupations"] if s["point"] == 5002.0)
+    assert [(o["index"], o["node"]) for o in st["occupations"]] == [(1, "310002"), (2, "310004")]
+    r = invoke(runner, root, "edit", "reject", "1001", "5002", "--reason", "x")
+    assert r.exit_code == 2 and "index 1: node 310002" in r.stderr
