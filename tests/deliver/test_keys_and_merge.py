@@ -131,14 +131,14 @@ def test_merge_end_to_end_on_a_survey_relaid_at_the_same_spot(tmp_path, runner):
     assert len(merged) == 2 and all(p["inside"] for m in merged for p in m["pairs"])
     import csv as _csv
 
-    rows = list(_csv.DictReader(out.open()))
+    rows = list(_csv.DictReader(out.read_text().splitlines()))
     again = {(float(x["line"]), float(x["point"])): x["occupations"] for x in sc.reoccupied}
     for x in rows:
         n = again.get((float(x["line"]), float(x["point"])))
         if n:
             assert x["index"] == "1" and x["merged"] == ";".join(str(k) for k in range(1, n + 1))
             assert x["node"].count("+") == n - 1 and x["height_source"] == "model"
-    n_log = len(list(_csv.DictReader(open(sc.deployments))))
+    n_log = len(sc.deployments.read_text().splitlines()) - 1
     assert len(rows) == n_log - sum(n - 1 for n in again.values())
 
 
