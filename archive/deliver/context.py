@@ -123,6 +123,22 @@ def check_unique_keys(table: pa.Table, fmt_name: str) -> None:
                                         "report it with the run id")
 
 
+def digit_indices(table: pa.Table, fmt_name: str, where: str, suggest: str) -> np.ndarray:
+    """The point index column after the key check, refusing indices that are not one digit
+    1-9 (``where`` names the column that holds it in the format)."""
+    check_unique_keys(table, fmt_name)
+    index = column(table, "index", 1.0)
+    bad = ~((index >= 1) & (index <= 9))
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        raise Refused(f"{fmt_name}: {station_label(table, i)}: point index {index[i]:g} cannot "
+                      f"be written ({where} holds one digit, 1-9): the station is occupied "
+                      "more often than the format can number",
+                      hint=f"deliver as {suggest}, or merge indistinguishable occupations "
+                           "with --merge-occupations")
+    return index
+
+
 def numbers_text(values: np.ndarray) -> np.ndarray:
     """Line/point numbers as short text: ``1001.00`` -> ``1001``, ``1001.50`` -> ``1001.5``."""
     text = np.char.mod("%.2f", np.asarray(values, dtype=np.float64))

@@ -29,8 +29,8 @@ from archive.deliver.context import (
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
-    check_unique_keys,
     column,
+    digit_indices,
     fixed_field,
     numbers_text,
     station_label,
@@ -150,15 +150,7 @@ def data_records(table: pa.Table, ctx: DeliveryContext) -> tuple[list[str], dict
     n = table.num_rows
     if n == 0:
         return [], {"easting": 1, "northing": 1, "height": 1}
-    check_unique_keys(table, FORMAT)
-    index = column(table, "index", 1.0)
-    bad = ~((index >= 1) & (index <= 9))
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise Refused(f"{FORMAT}: {station_label(table, i)}: point index {index[i]:g} cannot "
-                      "be written in the reshoot code (column 26 holds one digit, 2-9)",
-                      hint=f"deliver as {SUGGEST}, or merge indistinguishable occupations "
-                           "with --merge-occupations")
+    index = digit_indices(table, FORMAT, "the reshoot code, column 26,", SUGGEST)
     east, north = column(table, "easting"), column(table, "northing")
     for name, v in (("easting", east), ("northing", north)):
         if (~np.isfinite(v)).any():

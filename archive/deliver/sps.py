@@ -22,8 +22,8 @@ from archive.deliver.context import (
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
-    check_unique_keys,
     column,
+    digit_indices,
     fixed_field,
     station_label,
     text_column,
@@ -128,15 +128,7 @@ def point_records(table: pa.Table) -> list[str]:
         return fixed_field(column(table, name), spec, width, table=table, field_name=label,
                            fmt_name=FORMAT, columns=cols, suggest=SUGGEST)
 
-    check_unique_keys(table, FORMAT)
-    index = column(table, "index", 1.0)
-    bad = ~((index >= 1) & (index <= 9))
-    if bad.any():
-        i = int(np.flatnonzero(bad)[0])
-        raise Refused(f"{FORMAT}: {station_label(table, i)}: point index must be 1-9 "
-                      "(column 24); the station is occupied more often than SPS can number",
-                      hint=f"deliver as {SUGGEST}, or merge indistinguishable occupations "
-                           "with --merge-occupations")
+    index = digit_indices(table, FORMAT, "column 24", SUGGEST)
     for name in ("easting", "northing"):
         missing = ~np.isfinite(column(table, name))
         if missing.any():

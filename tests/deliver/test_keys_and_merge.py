@@ -100,25 +100,12 @@ def test_occupations_apart_or_edited_are_kept_apart():
 
 
 def test_merge_end_to_end_on_a_survey_relaid_at_the_same_spot(tmp_path, runner):
-    from archive.seeds.scenario import generate
-
-    from archive.ingest.load import load_fix_files
-    from archive.solve.run import solve_survey
-    from archive.store.archive import Archive
-    from archive.survey.inputs import load_input
-    from archive.survey.surveys import create_survey
     from tests.conftest import invoke
+    from tests.support.scenarios import scenario_archive
 
     # re-laid within 0.2 m of the first spot: the occupations cannot be told apart
-    sc = generate(tmp_path / "sc", seed=5, size="small", reoccupy=2, relay_offset=(0.0, 0.2))
-    arc = Archive.init(tmp_path / "archive", actor="tester")
-    sid = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
-                        vertical_datum=sc.vertical_datum).id
-    load_input(arc, sid, "stations", sc.preplot)
-    load_input(arc, sid, "deployments", sc.deployments)
-    load_input(arc, sid, "dem", sc.dem, vertical_datum=sc.vertical_datum)
-    load_fix_files(arc, sid, [sc.out_dir / "logs"])
-    solve_survey(arc, sid)
+    arc, _, _, sc = scenario_archive(tmp_path, seed=5, control=False, dem=True, reoccupy=2,
+                                     relay_offset=(0.0, 0.2))
     arc.close()
     out = tmp_path / "merged.csv"
     r = invoke(runner, tmp_path / "archive", "deliver", "--format", "csv", "--to", str(out),

@@ -26,9 +26,9 @@ from archive.deliver.deliveries import deliver
 from archive.deliver.final import final_positions
 from archive.errors import UsageError
 from archive.solve.run import get_run
-from archive.store.archive import Archive
 from tests.conftest import invoke
 from tests.deliver.helpers import read_segp1, read_sps_r
+from tests.support.scenarios import scenario_archive
 
 pytestmark = pytest.mark.slow
 
@@ -46,25 +46,8 @@ def _t(text: str) -> datetime:
 
 @pytest.fixture(scope="module")
 def survey(tmp_path_factory):
-    from archive.seeds.scenario import generate
-
-    from archive.ingest.load import load_fix_files
-    from archive.solve.run import solve_survey
-    from archive.survey.inputs import load_input
-    from archive.survey.surveys import create_survey
-
     base = tmp_path_factory.mktemp("occupations")
-    sc = generate(base / "scenario", seed=11, size="small")
-    arc = Archive.init(base / "archive", actor="tester")
-    sid = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
-                        vertical_datum=sc.vertical_datum, client=sc.client,
-                        contractor=sc.contractor).id
-    for kind, path in (("stations", sc.preplot), ("deployments", sc.deployments),
-                       ("control", sc.control)):
-        load_input(arc, sid, kind, path)
-    load_input(arc, sid, "dem", sc.dem, vertical_datum=sc.vertical_datum)
-    load_fix_files(arc, sid, [sc.out_dir / "logs"])
-    run_id = solve_survey(arc, sid).run_id
+    arc, sid, run_id, sc = scenario_archive(base, seed=11, dem=True)
     yield arc, sid, run_id, sc, base
     arc.close()
 

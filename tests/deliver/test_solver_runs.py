@@ -22,30 +22,15 @@ from archive.errors import IntegrityError
 from archive.store.archive import Archive
 from archive.store.models import RawFile
 from tests.conftest import invoke
+from tests.support.scenarios import scenario_archive
 
 pytestmark = pytest.mark.slow
 
 
 @pytest.fixture(scope="module")
 def solved(tmp_path_factory):
-    from archive.seeds.scenario import generate
-
-    from archive.ingest.load import load_fix_files
-    from archive.solve.run import solve_survey
-    from archive.survey.inputs import load_input
-    from archive.survey.surveys import create_survey
-
     base = tmp_path_factory.mktemp("solved")
-    sc = generate(base / "scenario", seed=7, size="small")
-    arc = Archive.init(base / "archive", actor="tester")
-    sid = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
-                        vertical_datum=sc.vertical_datum, client=sc.client,
-                        contractor=sc.contractor).id
-    load_input(arc, sid, "stations", sc.preplot)
-    load_input(arc, sid, "deployments", sc.deployments)
-    load_input(arc, sid, "control", sc.control)
-    load_fix_files(arc, sid, [sc.out_dir / "logs"])
-    run_id = solve_survey(arc, sid).run_id
+    arc, sid, run_id, _ = scenario_archive(base, seed=7)
     yield arc, sid, run_id, base
     arc.close()
 

@@ -1,0 +1,1 @@
+"""Helpers shared by test modules (not fixtures): kept here, not in conftest files."""
