@@ -24,6 +24,9 @@ from tests.deliver.helpers import read_sps_r
 
 SAVED = Path(__file__).parent / "saved" / "rev0001-run"
 RUN = "29fef7454d464f37ddef675f66ba5ae613dcdccc95540c81e752ea92b682e61a"
+# the same survey solved and delivered by nodekeep 0.2.0 (manifest format 2, occupations)
+SAVED_V2 = Path(__file__).parent / "saved" / "rev0001-occupations"
+RUN_V2 = "dcbad3903fac9d84e3448fd0af6ec2e15522520703a924ae4a04f013c296c961"
 
 
 @pytest.fixture
@@ -74,3 +77,19 @@ def test_a_new_delivery_of_the_old_run_numbers_the_occupations(old, runner):
     assert [(o["index"], o["node"]) for o in st["occupations"]] == [(1, "310002"), (2, "310004")]
     r = invoke(runner, root, "edit", "reject", "1001", "5002", "--reason", "x")
     assert r.exit_code == 2 and "index 1: node 310002" in r.stderr
+
+
+def test_a_run_with_occupations_saved_by_an_earlier_version_reproduces(tmp_path):
+    root = tmp_path / "v2"
+    shutil.copytree(SAVED_V2, root)
+    with Archive.open(root, check_schema=False) as arc:
+        migrate.upgrade(arc.engine)
+        r = reproduce(arc, RUN_V2[:10])
+        assert r["identical"] is True
+        for name in ("receivers.csv", "receivers.sps"):
+            c = check_delivery(arc, root / "delivered" / name)
+            assert c.ok, [str(p) for p in c.problems]
+        keys = [(x["line"], x["point"], x["index"])
+                for x in read_sps_r((root / "delivered" / "receivers.sps").read_text())]
+        assert (1001.0, 5002.0, 2) in keys and len(set(keys)) == 4
+        assert verify_archive(arc).ok
