@@ -6,6 +6,7 @@ import click
 
 from archive.cli.options import (
     CliState,
+    RegistryOption,
     force_option,
     output_options,
     pass_state,
@@ -13,15 +14,13 @@ from archive.cli.options import (
     survey_option,
 )
 from archive.cli.output import emit
-
-FORMATS = ("sps", "segp1", "csv", "geojson", "gpkg")  # archive.deliver.formats.FORMATS
+from archive.deliver.formats import FORMATS
 
 
 @click.command()
 @run_option
-@click.option("--format", "fmt", type=click.Choice(FORMATS), required=True,
-              help="sps: SPS rev 2.1 R records; segp1: SEG-P1 80 columns; csv: full "
-                   "precision; geojson: WGS 84 lon/lat; gpkg: GeoPackage in the survey CRS.")
+@click.option("--format", "fmt", cls=RegistryOption, registry=FORMATS, required=True,
+              help="Exchange format:")
 @click.option("--to", "to", required=True, metavar="FILE", type=click.Path(dir_okay=False),
               help="File to write (a FILE.lineage.json is written beside it).")
 @click.option("--recipient", default=None, metavar="TEXT", help="Who receives it (required).")

@@ -1,7 +1,9 @@
-"""``nodekeep load stations|deployments|control|dem``, ``nodekeep inputs``, ``nodekeep dem sample``."""
+"""``nodekeep load KIND`` for every registered survey input kind, ``nodekeep inputs``,
+``nodekeep dem sample``."""
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from typing import Any
 
 import click
@@ -15,6 +17,7 @@ file_argument = click.argument("file", type=click.Path(exists=True, dir_okay=Fal
 def _load(state: CliState, survey_name: str | None, kind: str, file: str,
           **options: Any) -> None:
     from archive.survey.inputs import load_input, survey_for
+    from archive.survey.kinds import input_kind
     from archive.survey.parsed import format_problem
 
     arc = state.archive()
@@ -22,16 +25,14 @@ def _load(state: CliState, survey_name: str | None, kind: str, file: str,
     res = load_input(arc, survey.id, kind, file, **options)
     data = res.as_dict()
     v = res.version
+    spec = input_kind(kind)
 
     def text() -> str:
         counts = res.meta.get("counts")
         extra = (" (" + ", ".join(f"{k} {n}" for k, n in sorted(counts.items())) + ")"
                  if counts else "")
-        what = f"{v.n_rows} rows{extra}" if kind != "dem" else (
-            f"{res.meta['width']}x{res.meta['height']} pixels, "
-            f"{'EPSG:' + str(res.meta['crs_epsg']) if res.meta['crs_epsg'] else 'custom CRS'}, "
-            f"pixel-is-{res.meta['area_or_point'].lower()}, "
-            f"heights in {res.meta['vertical_datum']}")
+        what = (spec.summary(res.meta, v.n_rows) if spec.summary is not None
+                else f"{v.n_rows} rows{extra}")
         lines = [f"loaded {kind} version {v.version} of {survey.name} from {v.original_name}: "
                  f"{what}; source {v.source_hash[:12]}"]
         if res.warnings and not state.quiet:
@@ -44,54 +45,30 @@ def _load(state: CliState, survey_name: str | None, kind: str, file: str,
     emit(state, data, text)
 
 
-@click.command("stations")
-@file_argument
-@click.option("--format", "fmt", type=click.Choice(["sps", "csv"]), default=None,
-              help="File format (default: guessed from the name and content).")
-@survey_option
-@output_options
-@pass_state
-def load_stations(state: CliState, file: str, fmt: str | None, survey_name: str | None) -> None:
-    """Load a preplot: SPS rev 2.1 R/S records or CSV line,point,easting,northing[,elevation][,index][,code]."""
-    _load(state, survey_name, "stations", file, format=fmt)
+def _click_option(opt: Any) -> Callable[[Callable[..., Any]], Callable[..., Any]]:
+    flag = "--" + opt.name.replace("_", "-")
+    if opt.kind == "flag":
+        return click.option(flag, opt.name, is_flag=True, help=opt.help)
+    kind = click.Choice(list(opt.choices)) if opt.kind == "choice" else str
+    return click.option(flag, opt.name, type=kind, default=None, required=opt.required,
+                        metavar=None if opt.kind == "choice" else opt.metavar, help=opt.help)
 
 
-@click.command("deployments")
-@file_argument
-@click.option("--columns", default=None, metavar="MAPPING",
-              help="Header names when they differ: node=Serial,line=Line,point=Station,...")
-@click.option("--strict", is_flag=True, help="Refuse the log if any problem is found.")
-@survey_option
-@output_options
-@pass_state
-def load_deployments(state: CliState, file: str, columns: str | None, strict: bool,
-                     survey_name: str | None) -> None:
-    """Load a deployment log: CSV node,line,point,deployed_utc,retrieved_utc (ISO 8601)."""
-    _load(state, survey_name, "deployments", file, columns=columns, strict=strict)
+def load_command(name: str) -> click.Command:
+    """``nodekeep load NAME FILE [options]`` for a registered input kind: the options and
+    help come from its registry entry (:mod:`archive.survey.kinds`)."""
+    from archive.survey.kinds import input_kind
 
+    spec = input_kind(name)
 
-@click.command("control")
-@file_argument
-@click.option("--format", "fmt", type=click.Choice(["csv", "sps"]), default=None,
-              help="File format (default: guessed from the name and content).")
-@survey_option
-@output_options
-@pass_state
-def load_control(state: CliState, file: str, fmt: str | None, survey_name: str | None) -> None:
-    """Load RTK check points (they survey the sensor position): CSV or SPS records."""
-    _load(state, survey_name, "control", file, format=fmt)
+    @pass_state
+    def command(state: CliState, file: str, survey_name: str | None, **options: Any) -> None:
+        _load(state, survey_name, name, file, **options)
 
-
-@click.command("dem")
-@file_argument
-@click.option("--vertical-datum", required=True, metavar="TEXT",
-              help="Vertical datum of the model's heights, e.g. 'NAVD88 (GEOID18)'.")
-@survey_option
-@output_options
-@pass_state
-def load_dem(state: CliState, file: str, vertical_datum: str, survey_name: str | None) -> None:
-    """Load a bare-earth elevation model (single-band GeoTIFF, any CRS)."""
-    _load(state, survey_name, "dem", file, vertical_datum=vertical_datum)
+    command = survey_option(output_options(command))
+    for opt in reversed(spec.options):
+        command = _click_option(opt)(command)
+    return click.command(name, help=spec.file_help)(file_argument(command))
 
 
 @click.command("inputs")

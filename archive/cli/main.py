@@ -47,11 +47,8 @@ COMMANDS: dict[str, str] = {
 
 LOAD_COMMANDS: dict[str, str] = {
     "fixes": "archive.cli.load_fixes:load_fixes",
-    "stations": "archive.cli.inputs:load_stations",
-    "deployments": "archive.cli.inputs:load_deployments",
-    "control": "archive.cli.inputs:load_control",
-    "dem": "archive.cli.inputs:load_dem",
 }
+"""``load`` subcommands besides one per registered survey input kind (LoadGroup)."""
 
 
 class LazyGroup(click.Group):
@@ -122,7 +119,25 @@ def cli(ctx: click.Context, archive_dir: str | None, actor: str | None, debug: b
     ctx.obj = CliState(archive_dir, actor, debug or bool(os.environ.get("NODEKEEP_DEBUG")))
 
 
-@click.group(cls=LazyGroup, lazy=LOAD_COMMANDS)
+class LoadGroup(LazyGroup):
+    """``load``: raw fix logs, and one command per registered survey input kind."""
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        from archive.survey.kinds import INPUT_KINDS
+
+        return sorted(set(super().list_commands(ctx)) | set(INPUT_KINDS.names()))
+
+    def get_command(self, ctx: click.Context, name: str) -> click.Command | None:
+        from archive.survey.kinds import INPUT_KINDS
+
+        if name not in self.lazy and name in INPUT_KINDS:
+            from archive.cli.inputs import load_command
+
+            return load_command(name)
+        return super().get_command(ctx, name)
+
+
+@click.group(cls=LoadGroup, lazy=LOAD_COMMANDS)
 def load() -> None:
     """Load raw fix logs and survey inputs into the archive."""
 

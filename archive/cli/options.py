@@ -64,6 +64,37 @@ def occupation_options(f: Callable[..., Any]) -> Callable[..., Any]:
                              "(default: every occupation of the station).")(f)
 
 
+class RegistryChoice(click.Choice):
+    """A choice among the names of a registry, read when the command runs (so an entry
+    registered after import is offered too)."""
+
+    def __init__(self, registry: Any) -> None:
+        self.registry = registry
+        super().__init__(list(registry.names()))
+
+    @property  # type: ignore[override]
+    def choices(self) -> list[str]:
+        return list(self.registry.names())
+
+    @choices.setter
+    def choices(self, value: Any) -> None:  # click's __init__ assigns it; the registry rules
+        pass
+
+
+class RegistryOption(click.Option):
+    """An option whose help ends with the registry's ``name: description`` list."""
+
+    def __init__(self, *args: Any, registry: Any, **kwargs: Any) -> None:
+        self.registry = registry
+        kwargs.setdefault("type", RegistryChoice(registry))
+        super().__init__(*args, **kwargs)
+        self.base_help = self.help or ""
+
+    def get_help_record(self, ctx: click.Context) -> tuple[str, str] | None:
+        self.help = f"{self.base_help} {self.registry.describe()}.".strip()
+        return super().get_help_record(ctx)
+
+
 class CliState:
     """What the ``nodekeep`` group knows, shared with every command through ``ctx.obj``."""
 

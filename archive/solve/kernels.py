@@ -33,8 +33,6 @@ import numpy as np
 from numba import njit
 
 EST_HUBER, EST_TUKEY, EST_GEOMEDIAN, EST_MEAN = 0, 1, 2, 3
-ESTIMATOR_CODE = {"huber": EST_HUBER, "tukey": EST_TUKEY, "geomedian": EST_GEOMEDIAN,
-                  "mean": EST_MEAN}
 LANES = 8  # interleaved partial sums per weighted sum (fixed: part of the result's definition)
 MIN_SPLIT = 1 << 15  # elements per thread below which one thread does everything
 # IEEE division (x/0 gives inf or NaN, as numpy does) instead of a raised ZeroDivisionError:

@@ -17,7 +17,6 @@ from typing import Any
 
 from archive.errors import InputError, UsageError
 
-ESTIMATORS = ("huber", "tukey", "geomedian", "mean")
 UNCERTAINTY_METHODS = ("batch", "ar1")
 
 # section -> key -> (default, help). Order here is the order printed by ``nodekeep params``.
@@ -36,7 +35,7 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "max_hdop": (4.0, "largest HDOP kept"),
     },
     "estimate": {
-        "estimator": ("huber", "huber | tukey | geomedian | mean"),
+        "estimator": ("huber", "robust estimator, one of:"),
         "sigma0": (3.0, "per-axis error at HDOP 1, m (sigma_i = sigma0 * HDOP_i)"),
         "huber_k": (1.345, "Huber tuning constant (95 % efficiency at the normal, 1-D)"),
         "tukey_c": (4.685, "Tukey biweight tuning constant (95 % efficiency, 1-D)"),
@@ -120,10 +119,12 @@ def resolve_params(overrides: dict[str, Any] | None = None, *, source: str = "pa
 
 
 def _validate(p: dict[str, dict[str, Any]], source: str) -> None:
+    from archive.solve.estimators import ESTIMATORS
+
     est = p["estimate"]
     if est["estimator"] not in ESTIMATORS:
         raise UsageError(f"{source}: estimate.estimator {est['estimator']!r} is unknown",
-                         hint=f"use one of {', '.join(ESTIMATORS)}")
+                         hint=f"use one of {', '.join(ESTIMATORS.names())}")
     if p["uncertainty"]["method"] not in UNCERTAINTY_METHODS:
         raise UsageError(f"{source}: uncertainty.method {p['uncertainty']['method']!r} is unknown",
                          hint=f"use one of {', '.join(UNCERTAINTY_METHODS)}")
@@ -176,5 +177,9 @@ def params_toml(params: dict[str, dict[str, Any]] | None = None) -> str:
         for key, (_default, text) in keys.items():
             item = f"{key} = {_toml_value(params[sec][key])}"
             lines.append(f"{item.ljust(width)}  # {text}")
+            if (sec, key) == ("estimate", "estimator"):
+                from archive.solve.estimators import ESTIMATORS
+
+                lines += [f"{'':{width}}  #   {e.name}: {e.description}" for e in ESTIMATORS]
         lines.append("")
     return "\n".join(lines)

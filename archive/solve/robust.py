@@ -5,7 +5,8 @@ For every cloud (segment) the centre c minimises Σ ρ(rᵢ) with rᵢ = |xᵢ �
 matters) and s is a robust per-axis scale at HDOP 1 from the median absolute deviation,
 generalised to d dimensions as median(|zᵢ|)/√χ²_d(0.5) with zᵢ = (xᵢ − c)/HDOPᵢ (in 1-D this
 is the usual MAD/0.6745). Weights by iteratively reweighted least squares (Huber 1964;
-Holland & Welsch 1977): wᵢ = ψ(rᵢ)/rᵢ / HDOPᵢ². Estimators:
+Holland & Welsch 1977): wᵢ = ψ(rᵢ)/rᵢ / HDOPᵢ². Estimators (registered in
+:mod:`archive.solve.estimators`):
 
 - ``huber``: ψ(r) = r for r ≤ k, k·sign(r) beyond (k = 1.345: 95 % efficiency, 1-D);
 - ``tukey``: Tukey's biweight, ψ(r) = r(1 − (r/c)²)² for r < c, else 0 (c = 4.685);
@@ -34,8 +35,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.stats import chi2
 
-from archive.errors import UsageError
-from archive.solve.kernels import ESTIMATOR_CODE, robust_segments, run_split
+from archive.solve.estimators import ESTIMATORS
+from archive.solve.kernels import robust_segments, run_split
 from archive.solve.segments import seg_median_reference, seg_starts, seg_sum
 
 MIN_SCALE = 1e-3  # m: a cloud of identical fixes still gets a usable scale
@@ -51,17 +52,6 @@ class RobustResult:
     weight: np.ndarray  # final IRLS weight per element (0 when rejected)
     rejected: np.ndarray  # bool per element
     r: np.ndarray  # final standardised distance per element
-
-
-def _psi_weight(r: np.ndarray, estimator: str, k: float, c: float) -> np.ndarray:
-    if estimator == "huber":
-        return k / np.maximum(r, k)
-    if estimator == "tukey":
-        u = r / c
-        return np.where(u < 1.0, (1.0 - u * u) ** 2, 0.0)
-    if estimator == "geomedian":
-        return 1.0 / np.maximum(r, 1e-9)
-    return np.ones_like(r)
 
 
 def _distance(xs: Sequence[np.ndarray], centre: list[np.ndarray], seg: np.ndarray
@@ -100,11 +90,9 @@ def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
     in :mod:`archive.solve.params` ``[estimate]``; ``scale_sample`` caps the fixes per
     cloud used for the medians (None: all).
     """
-    if estimator not in ESTIMATOR_CODE:
-        raise UsageError(f"estimator {estimator!r} is unknown",
-                         hint=f"use one of {', '.join(ESTIMATOR_CODE)}")
+    est = ESTIMATORS.get(estimator)
     dim = len(xs)
-    if dim not in (1, 2):
+    if dim not in (1, 2) or est.kernel_code is None:
         return robust_centre_reference(xs, hdop, seg, n_seg, estimator=estimator,
                                        huber_k=huber_k, tukey_c=tukey_c,
                                        reject_quantile=reject_quantile, iterations=iterations,
@@ -115,13 +103,13 @@ def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
     hd = np.ascontiguousarray(hdop, dtype=np.float64)  # cleaned and inverted in the kernel
     starts, counts = seg_starts(np.asarray(seg), n_seg)
     limit = float(np.sqrt(chi2.ppf(reject_quantile, dim))) if reject_quantile < 1.0 else np.inf
-    mean = estimator == "mean"
+    mean = est.one_step
     centre = np.zeros((2, n_seg))
     scale = np.full(n_seg, MIN_SCALE)
     weight = np.zeros(n)
     rejected = np.zeros(n, dtype=np.bool_)
     r = np.zeros(n)
-    run_split(robust_segments, counts, e, north, hd, starts, counts, ESTIMATOR_CODE[estimator],
+    run_split(robust_segments, counts, e, north, hd, starts, counts, est.kernel_code,
               float(huber_k), float(tukey_c), limit, 1 if mean else int(scale_updates),
               1 if mean else int(iterations), int(scale_sample or 0),
               float(np.sqrt(chi2.ppf(0.5, dim))), MIN_SCALE, centre, scale, weight, rejected, r)
@@ -162,6 +150,12 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
                   reject_quantile: float = 0.999, iterations: int = 6, scale_updates: int = 3,
                   scale_sample: int | None = 2048) -> RobustResult:
     dim = len(xs)
+    est = ESTIMATORS.get(estimator)
+    tuning = {"huber_k": huber_k, "tukey_c": tukey_c}
+
+    def psi_weight(r: np.ndarray) -> np.ndarray:
+        return est.weight(r, tuning)
+
     hd = _clean_hdop(hdop)
     prior = 1.0 / (hd * hd)
     median_unit = np.sqrt(chi2.ppf(0.5, dim))
@@ -175,8 +169,8 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
         return np.maximum(np.nan_to_num(s, nan=MIN_SCALE), MIN_SCALE)
 
     limit = np.sqrt(chi2.ppf(reject_quantile, dim)) if reject_quantile < 1.0 else np.inf
-    rounds = 1 if estimator == "mean" else scale_updates
-    steps = 1 if estimator == "mean" else iterations
+    rounds = 1 if est.one_step else scale_updates
+    steps = 1 if est.one_step else iterations
     scale = np.full(n_seg, MIN_SCALE)
     r = np.zeros(len(seg))
     w = prior
@@ -185,7 +179,7 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
         scale = scale_of(z)
         for _ in range(steps):
             r = _distance(xs, centre, seg) / hd / scale[seg]
-            w = prior * _psi_weight(r, estimator, huber_k, tukey_c)
+            w = prior * psi_weight(r)
             centre = _weighted_centre(xs, w, seg, n_seg, centre)
     r = _distance(xs, centre, seg) / hd / scale[seg]
     rejected = r > limit
@@ -194,9 +188,9 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
         active = ~rejected
         for _ in range(steps):
             r = _distance(xs, centre, seg) / hd / scale[seg]
-            w = prior * _psi_weight(r, estimator, huber_k, tukey_c) * active
+            w = prior * psi_weight(r) * active
             new = _weighted_centre(xs, w, seg, n_seg, centre)
             centre = [np.where(lost, c1, c0) for c1, c0 in zip(new, centre, strict=True)]
     r = _distance(xs, centre, seg) / hd / scale[seg]
-    w = prior * _psi_weight(r, estimator, huber_k, tukey_c) * ~rejected
+    w = prior * psi_weight(r) * ~rejected
     return RobustResult(centre=centre, scale=scale, weight=w, rejected=rejected, r=r)

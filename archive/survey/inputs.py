@@ -17,13 +17,11 @@ from typing import Any
 import pyarrow as pa
 from sqlalchemy import func, select
 
-from archive.errors import InputError, Refused, UsageError
+from archive.errors import InputError, UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_json
 from archive.store.models import InputVersion, Survey, utcnow
-from archive.survey.occupations import occupation_summary, occupation_warnings
-from archive.survey.parsed import ParsedInput, format_problem
-from archive.survey.schema import INPUT_KINDS
+from archive.survey.kinds import INPUT_KINDS, LoadContext, input_kind
 
 
 @dataclass
@@ -40,78 +38,17 @@ class LoadedInput:
         return {**version_dict(self.version), "warnings": self.warnings}
 
 
-def _read_bytes(path: Path) -> bytes:
-    try:
-        return path.read_bytes()
-    except OSError as exc:
-        raise InputError(str(path), f"cannot read the file: {exc.strerror or exc}") from None
-
-
-def _parse(arc: Archive, survey: Survey, kind: str, path: Path,
-           options: dict[str, Any]) -> ParsedInput:
-    """Read and validate one input file against its survey."""
-    from archive.survey import deployments, stations
-
-    name = str(path)
-    margin = float(options.get("area_margin_deg", 0.0))
-    if kind == "stations":
-        parsed = stations.read_stations(_read_bytes(path), name, options.get("format"))
-        stations.check_area(parsed.table, survey.crs_epsg, name, margin_deg=margin)
-        return parsed
-    if kind == "control":
-        parsed = stations.read_control(_read_bytes(path), name, options.get("format"))
-        stations.check_area(parsed.table, survey.crs_epsg, name, margin_deg=margin)
-        current = current_input(arc, survey.id, "stations")
-        parsed.warnings += stations.unknown_stations(
-            parsed.table, current[1] if current else None, "check point")
-        parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
-        return parsed
-    if kind == "deployments":
-        parsed = deployments.read_deployments(_read_bytes(path), name, options.get("columns"))
-        current = current_input(arc, survey.id, "stations")
-        parsed.warnings += deployments.check_deployments(parsed.table,
-                                                         current[1] if current else None)
-        previous = current_input(arc, survey.id, "deployments")
-        parsed.table = deployments.number_occupations(parsed.table, name,
-                                                      previous[1] if previous else None)
-        parsed.warnings += occupation_warnings(parsed.table)
-        parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
-        parsed.meta["occupations"] = occupation_summary(parsed.table)
-        if previous is not None:
-            parsed.meta["occupations"]["numbered_after_version"] = previous[0].version
-        parsed.meta["strict"] = bool(options.get("strict", False))
-        if options.get("strict") and parsed.warnings:
-            listed = "; ".join(format_problem(path.name, w) for w in parsed.warnings[:5])
-            more = f" (and {len(parsed.warnings) - 5} more)" if len(parsed.warnings) > 5 else ""
-            raise Refused(f"{name}: {len(parsed.warnings)} problem(s) in the deployment log, "
-                          f"refused by --strict: {listed}{more}",
-                          hint="correct the log, or load it without --strict to keep the "
-                               "warnings with the version")
-        return parsed
-    if kind == "dem":
-        from archive.survey.dem import inspect_dem
-
-        datum = str(options.get("vertical_datum") or "").strip()
-        if not datum:
-            raise UsageError("an elevation model needs its vertical datum",
-                             hint="pass --vertical-datum, e.g. 'NAVD88 (GEOID18)'")
-        meta = inspect_dem(path)
-        meta["vertical_datum"] = datum
-        return ParsedInput(table=None, meta=meta)
-    raise UsageError(f"unknown input kind {kind!r}", hint=f"use one of {', '.join(INPUT_KINDS)}")
-
-
 def load_input(arc: Archive, survey_id: int, kind: str, path: str | Path,
                **options: Any) -> LoadedInput:
-    """Load one input file as the next version of ``kind`` for the survey.
+    """Load one input file as the next version of ``kind`` (a registered input kind,
+    :mod:`archive.survey.kinds`) for the survey.
 
-    Options: ``format`` ("csv"/"sps", stations and control), ``columns`` (deployments,
-    ``field=Header,...``), ``strict`` (deployments: refuse on any problem),
-    ``vertical_datum`` (dem, required), ``area_margin_deg`` (degrees beyond the CRS area of
-    use still accepted, default 0).
+    Options of the built-in kinds: ``format`` ("csv"/"sps", stations and control),
+    ``columns`` (deployments, ``field=Header,...``), ``strict`` (deployments: refuse on any
+    problem), ``vertical_datum`` (dem, required), ``area_margin_deg`` (degrees beyond the
+    CRS area of use still accepted, default 0).
     """
-    if kind not in INPUT_KINDS:
-        raise UsageError(f"unknown input kind {kind!r}", hint=f"use one of {', '.join(INPUT_KINDS)}")
+    spec = input_kind(kind)
     path = Path(path)
     if not path.is_file():
         raise InputError(str(path), "no such file")
@@ -119,7 +56,7 @@ def load_input(arc: Archive, survey_id: int, kind: str, path: str | Path,
         survey = s.get(Survey, survey_id)
         if survey is None:
             raise UsageError(f"no survey with id {survey_id}")
-    parsed = _parse(arc, survey, kind, path, options)
+    parsed = spec.parse(LoadContext(arc, survey, path, dict(options)))
 
     source_hash, source_size = arc.objects.put_file(path)
     table_hash = table_size = None
@@ -156,8 +93,7 @@ def load_input(arc: Archive, survey_id: int, kind: str, path: str | Path,
 def input_version(arc: Archive, survey_id: int, kind: str,
                   version: int | None = None) -> InputVersion | None:
     """The version row of ``kind`` (newest when ``version`` is None), or None."""
-    if kind not in INPUT_KINDS:
-        raise UsageError(f"unknown input kind {kind!r}", hint=f"use one of {', '.join(INPUT_KINDS)}")
+    input_kind(kind)  # UsageError for an unknown kind
     with arc.session() as s:
         q = select(InputVersion).where(InputVersion.survey_id == survey_id,
                                        InputVersion.kind == kind)
@@ -215,7 +151,7 @@ def list_inputs(arc: Archive, survey_id: int, all_versions: bool = False) -> lis
             d["current"] = current
             d["n_warnings"] = len(d["warnings"])
             out.append(d)
-    order = {k: i for i, k in enumerate(INPUT_KINDS)}
+    order = {k: i for i, k in enumerate(INPUT_KINDS.names())}
     return sorted(out, key=lambda d: (order.get(d["kind"], 99), d["version"]))
 
 

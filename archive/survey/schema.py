@@ -69,5 +69,3 @@ CONTROL_SCHEMA = pa.schema(
     ],
     metadata={"nodekeep.table": "control", "nodekeep.schema_version": "1"},
 )
-
-INPUT_KINDS = ("stations", "deployments", "control", "dem")

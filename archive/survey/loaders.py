@@ -1,0 +1,82 @@
+"""Reading and checking each kind of survey input file (the parse functions of
+:mod:`archive.survey.kinds`): the file's table, its warnings and format details."""
+
+from __future__ import annotations
+
+from archive.errors import Refused, UsageError
+from archive.survey.kinds import LoadContext
+from archive.survey.parsed import ParsedInput, format_problem
+
+
+def _current_table(ctx: LoadContext, kind: str):  # noqa: ANN202 - pa.Table | None
+    from archive.survey.inputs import current_input
+
+    found = current_input(ctx.arc, ctx.survey.id, kind)
+    return found[1] if found else None
+
+
+def parse_stations(ctx: LoadContext) -> ParsedInput:
+    """A preplot (SPS or CSV), inside the survey CRS's area of use."""
+    from archive.survey import stations
+
+    margin = float(ctx.options.get("area_margin_deg", 0.0))
+    parsed = stations.read_stations(ctx.read(), str(ctx.path), ctx.options.get("format"))
+    stations.check_area(parsed.table, ctx.survey.crs_epsg, str(ctx.path), margin_deg=margin)
+    return parsed
+
+
+def parse_control(ctx: LoadContext) -> ParsedInput:
+    """RTK check points (CSV or SPS), inside the area, warned when not at a preplot station."""
+    from archive.survey import stations
+
+    margin = float(ctx.options.get("area_margin_deg", 0.0))
+    parsed = stations.read_control(ctx.read(), str(ctx.path), ctx.options.get("format"))
+    stations.check_area(parsed.table, ctx.survey.crs_epsg, str(ctx.path), margin_deg=margin)
+    parsed.warnings += stations.unknown_stations(parsed.table, _current_table(ctx, "stations"),
+                                                 "check point")
+    parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
+    return parsed
+
+
+def parse_deployments(ctx: LoadContext) -> ParsedInput:
+    """A deployment log: checked against the preplot and itself, occupations numbered
+    against the previous version (:mod:`archive.survey.occupations`); ``strict`` refuses a
+    log with any problem."""
+    from archive.survey import deployments
+    from archive.survey.inputs import current_input
+    from archive.survey.occupations import occupation_summary, occupation_warnings
+
+    name = str(ctx.path)
+    parsed = deployments.read_deployments(ctx.read(), name, ctx.options.get("columns"))
+    parsed.warnings += deployments.check_deployments(parsed.table,
+                                                     _current_table(ctx, "stations"))
+    previous = current_input(ctx.arc, ctx.survey.id, "deployments")
+    parsed.table = deployments.number_occupations(parsed.table, name,
+                                                  previous[1] if previous else None)
+    parsed.warnings += occupation_warnings(parsed.table)
+    parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
+    parsed.meta["occupations"] = occupation_summary(parsed.table)
+    if previous is not None:
+        parsed.meta["occupations"]["numbered_after_version"] = previous[0].version
+    parsed.meta["strict"] = bool(ctx.options.get("strict", False))
+    if ctx.options.get("strict") and parsed.warnings:
+        listed = "; ".join(format_problem(ctx.path.name, w) for w in parsed.warnings[:5])
+        more = f" (and {len(parsed.warnings) - 5} more)" if len(parsed.warnings) > 5 else ""
+        raise Refused(f"{name}: {len(parsed.warnings)} problem(s) in the deployment log, "
+                      f"refused by --strict: {listed}{more}",
+                      hint="correct the log, or load it without --strict to keep the "
+                           "warnings with the version")
+    return parsed
+
+
+def parse_dem(ctx: LoadContext) -> ParsedInput:
+    """An elevation model: its raster facts (no table); the vertical datum is required."""
+    from archive.survey.dem import inspect_dem
+
+    datum = str(ctx.options.get("vertical_datum") or "").strip()
+    if not datum:
+        raise UsageError("an elevation model needs its vertical datum",
+                         hint="pass --vertical-datum, e.g. 'NAVD88 (GEOID18)'")
+    meta = inspect_dem(ctx.path)
+    meta["vertical_datum"] = datum
+    return ParsedInput(table=None, meta=meta)
