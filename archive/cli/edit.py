@@ -9,9 +9,7 @@ import click
 
 from archive.cli.options import CliState, output_options, pass_state, survey_option
 from archive.cli.output import emit, table
-
-SOURCES = ["control", "preplot", "given"]
-
+from archive.edits.kinds import SOURCES
 
 
 def _station(f: Callable[..., Any]) -> Callable[..., Any]:
@@ -32,7 +30,7 @@ reason_option = click.option("--reason", default=None, metavar="TEXT",
 
 
 def _done(state: CliState, e: Any) -> None:
-    from archive.deliver.edits import edit_dict
+    from archive.edits.log import edit_dict
 
     d = edit_dict(e)
     occ = d["payload"].get("occupation") or {}
@@ -53,7 +51,7 @@ def edit() -> None:
 @edit.command("set-position")
 @_station
 @_node
-@click.option("--from", "source", type=click.Choice(SOURCES), default="given", show_default=True,
+@click.option("--from", "source", type=click.Choice(list(SOURCES)), default="given", show_default=True,
               help="Take the position from the station's check point, its preplot, or "
                    "--easting/--northing.")
 @click.option("--easting", type=float, default=None, help="Grid easting (with --from given).")
@@ -66,7 +64,7 @@ def set_position(state: CliState, line: float, point: float, index: int | None,
                  node: str | None, source: str, easting: float | None,
                  northing: float | None, reason: str | None, survey_name: str | None) -> None:
     """Set the delivered position of an occupation of station LINE POINT."""
-    from archive.deliver.edits import set_position as run
+    from archive.edits.decisions import set_position as run
 
     _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
                      reason=reason, source=source, easting=easting, northing=northing,
@@ -76,7 +74,7 @@ def set_position(state: CliState, line: float, point: float, index: int | None,
 @edit.command("set-height")
 @_station
 @_node
-@click.option("--from", "source", type=click.Choice(SOURCES), default="given", show_default=True,
+@click.option("--from", "source", type=click.Choice(list(SOURCES)), default="given", show_default=True,
               help="Take the height from the check point, the preplot, or --height.")
 @click.option("--height", type=float, default=None, help="Height in the survey's vertical datum.")
 @reason_option
@@ -87,7 +85,7 @@ def set_height(state: CliState, line: float, point: float, index: int | None,
                node: str | None, source: str, height: float | None, reason: str | None,
                survey_name: str | None) -> None:
     """Set the delivered height of an occupation of station LINE POINT."""
-    from archive.deliver.edits import set_height as run
+    from archive.edits.decisions import set_height as run
 
     _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
                      reason=reason, source=source, height=height, node=node))
@@ -107,7 +105,7 @@ def exclude(state: CliState, line: float, point: float, index: int | None, node:
             start: str,
             end: str, reason: str | None, survey_name: str | None) -> None:
     """Leave a span of a node's fixes out of the next solve of station LINE POINT."""
-    from archive.deliver.edits import exclude_span
+    from archive.edits.decisions import exclude_span
 
     _done(state, exclude_span(state.archive(), state.survey_id(survey_name), line, point,
                               index, node=node, start=start, end=end, reason=reason))
@@ -123,7 +121,7 @@ def exclude(state: CliState, line: float, point: float, index: int | None, node:
 def reject(state: CliState, line: float, point: float, index: int | None, node: str | None,
            reason: str | None, survey_name: str | None) -> None:
     """Do not deliver an occupation of station LINE POINT."""
-    from archive.deliver.edits import reject_station
+    from archive.edits.decisions import reject_station
 
     _done(state, reject_station(state.archive(), state.survey_id(survey_name), line, point,
                                 index, reason=reason, node=node))
@@ -141,7 +139,7 @@ def ack(state: CliState, line: float, point: float, index: int | None, node: str
         flag: str, reason: str | None, survey_name: str | None) -> None:
     """Acknowledge a review flag of an occupation of station LINE POINT (it no longer
     blocks delivery)."""
-    from archive.deliver.edits import ack_flag
+    from archive.review.acknowledge import ack_flag
 
     _done(state, ack_flag(state.archive(), state.survey_id(survey_name), line, point, index,
                           flag=flag, reason=reason, node=node))
@@ -155,7 +153,7 @@ def ack(state: CliState, line: float, point: float, index: int | None, node: str
 @pass_state
 def undo(state: CliState, edit_id: int, reason: str | None, survey_name: str | None) -> None:
     """Take edit EDIT_ID out of force (recorded as a new edit)."""
-    from archive.deliver.edits import undo as run
+    from archive.edits.decisions import undo as run
 
     _done(state, run(state.archive(), state.survey_id(survey_name), edit_id, reason=reason))
 
@@ -170,7 +168,7 @@ def undo(state: CliState, edit_id: int, reason: str | None, survey_name: str | N
 def edits(state: CliState, all_edits: bool, line: float | None, point: float | None,
           survey_name: str | None) -> None:
     """List the edits in force (or all of them)."""
-    from archive.deliver.edits import list_edits
+    from archive.edits.log import list_edits
 
     rows = list_edits(state.archive(), state.survey_id(survey_name), all_edits=all_edits,
                       line=line, point=point)

@@ -21,8 +21,8 @@ import pyarrow.compute as pc
 from sqlalchemy import or_, select
 
 from archive.deliver.deliveries import delivery_dict, raw_files_of
-from archive.deliver.edits import list_edits
 from archive.deliver.runs import get_run, manifest_inputs, plain, run_manifest
+from archive.edits.log import edit_node, list_edits
 from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import sha256_file
@@ -128,7 +128,7 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     if index is not None:
         edits = [e for e in edits if e["index"] == int(index)]
     if node is not None:
-        edits = [e for e in edits if _edit_node(e) in (None, str(node))]
+        edits = [e for e in edits if edit_node(e) in (None, str(node))]
     if not solved and not records and not edits:
         which = "".join(f" {k} {v}" for k, v in (("index", index), ("node", node)) if v)
         raise UsageError(f"station {line:g}/{point:g}{which} is in no run, delivery or edit "
@@ -169,12 +169,6 @@ def _carried(entry: dict[str, Any]) -> dict[str, Any]:
     return {k: v for k, v in entry.items() if k != "record"} | {
         "position": _position(entry["record"]) | {"index": entry["record"]["index"],
                                                    "node": entry["record"]["node"]}}
-
-
-def _edit_node(e: dict[str, Any]) -> str | None:
-    p = e.get("payload") or {}
-    occ = p.get("occupation") or {}
-    return occ.get("node") or p.get("node")
 
 
 def _position(r: dict[str, Any]) -> dict[str, Any]:

@@ -14,9 +14,10 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.edits.spans import manifest_spans
 from archive.errors import UsageError
 from archive.solve.engine import solve_fixes
-from archive.solve.inputs import excludes_of, load_fix_tables, survey_inputs
+from archive.solve.inputs import load_fix_tables, survey_inputs
 from archive.solve.run import get_run, run_manifest, run_positions
 from archive.solve.screen import SCREEN_REASONS
 from archive.solve.windows import FOREVER, Windows, no_windows
@@ -83,7 +84,7 @@ def station_cloud(arc: Archive, run_id: str, line: float, point: float,
     fixes = fixes.filter(pc.is_in(fixes["node"], value_set=pa.array(sorted(nodes))))
     epsg = manifest["survey"]["crs_epsg"]
     out = solve_fixes(fixes, dep, inp.stations, manifest["params"], epsg,
-                      excludes=excludes_of(manifest["edits"]), detect_unlogged=False,
+                      excludes=manifest_spans(manifest["edits"]), detect_unlogged=False,
                       extra_windows=extra, want_members=True)
     m = out.members
     fx, f = m.fx, m.fix

@@ -27,6 +27,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
+from archive.edits.spans import excluded
 from archive.solve import flags as flagmod
 from archive.solve.clusters import find_clusters
 from archive.solve.fixarrays import FixArrays, fix_arrays
@@ -34,7 +35,7 @@ from archive.solve.heights import Sampler, gga_orthometric, solve_heights
 from archive.solve.moves import detect_moves
 from archive.solve.robust import robust_centre
 from archive.solve.schema import POSITION_SCHEMA
-from archive.solve.screen import apply_excludes, screen_codes
+from archive.solve.screen import mark_excluded, screen_codes
 from archive.solve.segments import from_local, seg_median, seg_starts, to_local
 from archive.solve.uncertainty import ar1_covariance, batch_covariance, ellipse95, radius95
 from archive.solve.windows import (
@@ -121,7 +122,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     cap = est["scale_sample"]
     fx = fix_arrays(fixes)
     code = screen_codes(fx.columns(), p["screen"])
-    apply_excludes(code, fx.node_code, fx.t_us, fx.node_names, excludes or [])
+    mark_excluded(code, excluded(fx.node_code, fx.t_us, fx.node_names, excludes or []))
     ok = code == 0
     st = _stations(stations)
     st_en = np.column_stack([st["easting"], st["northing"]]).astype(float)

@@ -19,11 +19,10 @@ import pyarrow as pa
 import pyarrow.compute as pc
 from sqlalchemy import select
 
+from archive.edits.log import exclude_spans_in_force
 from archive.errors import IntegrityError, UsageError
 from archive.solve.fixarrays import empty_fixes
-from archive.solve.screen import parse_excludes
 from archive.store.archive import Archive
-from archive.store.edit_log import edits_in_force
 from archive.store.models import InputVersion, RawFile, Survey
 from archive.survey.occupations import with_occupations
 
@@ -138,9 +137,7 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
                              hint="load it with 'nodekeep load deployments FILE'")
         st_hash, dep_hash = st_v.table_hash, dep_v.table_hash
         dem_hash = dem_v.source_hash if dem_v is not None else None
-        with arc.session() as s:
-            edits = [{"id": e.id, "kind": e.kind, "payload": json.loads(e.payload or "{}")}
-                     for e in edits_in_force(s, survey_id, kinds=("exclude-span",))]
+        edits = exclude_spans_in_force(arc, survey_id)
     else:
         sdict = manifest["survey"]
         ins = manifest["inputs"]
@@ -223,11 +220,6 @@ def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
         return empty_fixes()
     tables = [arc.objects.read_table(h) for h in hashes]
     return pa.concat_tables(tables, promote_options="default")
-
-
-def excludes_of(edits: list[dict[str, Any]]) -> list[tuple[str, int, int]]:
-    """(node, start µs, end µs) of the manifest's exclude-span edits."""
-    return parse_excludes([{"id": e["id"], **e["payload"]} for e in edits])
 
 
 def check_objects(arc: Archive, manifest: dict[str, Any]) -> None:

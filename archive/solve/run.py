@@ -23,6 +23,7 @@ import pyarrow.compute as pc
 from sqlalchemy import select
 
 from archive import __version__
+from archive.edits.spans import manifest_spans
 from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
 from archive.solve.engine import solve_fixes
@@ -30,7 +31,6 @@ from archive.solve.inputs import (
     Partition,
     SolveInputs,
     check_objects,
-    excludes_of,
     load_fix_tables,
     partitions,
     survey_inputs,
@@ -136,7 +136,7 @@ def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[s
     survey = manifest["survey"]
     fixes = load_fix_tables(holder, part.fix_hashes)
     out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
-                      survey["crs_epsg"], excludes=excludes_of(manifest["edits"]),
+                      survey["crs_epsg"], excludes=manifest_spans(manifest["edits"]),
                       sampler=sampler, orthometric=_orthometric(survey),
                       detect_unlogged=inp.detect_unlogged)
     pos = out.positions

@@ -4,21 +4,16 @@ A fix is kept when its GGA quality is at least ``min_quality`` and it is valid (
 and RMC status not V), it is a 3-D fix when the log says (GSA fix type; a log without GSA
 says nothing and is not held against the fix), enough satellites are in use, and PDOP and
 HDOP are within their maxima (a value the log does not carry is not held against the fix).
-Fixes of a node inside an ``exclude-span`` edit are screened too. Each screened fix keeps
+Fixes of a node inside an ``exclude-span`` edit (:mod:`archive.edits.spans`) are screened
+too. Each screened fix keeps
 the first reason that applies, in the order of :data:`SCREEN_REASONS`.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
-
-from archive.errors import UsageError
-
-_EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 
 # Reason codes: index into this tuple (0 = kept).
 SCREEN_REASONS = ("", "invalid", "not-3d", "few-satellites", "pdop", "hdop", "excluded")
@@ -60,37 +55,6 @@ def screen_codes(cols: dict[str, np.ndarray], screen: dict[str, Any]) -> np.ndar
     return code
 
 
-def parse_excludes(edits: Sequence[dict[str, Any]]) -> list[tuple[str, int, int]]:
-    """exclude-span payloads -> (node, start_us, end_us) in UTC microseconds."""
-    out = []
-    for e in edits:
-        try:
-            node = str(e["node"])
-            start = datetime.fromisoformat(str(e["start"]))
-            end = datetime.fromisoformat(str(e["end"]))
-        except (KeyError, ValueError) as exc:
-            raise UsageError(f"exclude-span edit {e.get('id', '?')} is malformed: {exc}",
-                             hint="an exclude-span needs node, start and end (ISO 8601 UTC)"
-                             ) from None
-        if start.tzinfo is None or end.tzinfo is None:
-            raise UsageError(f"exclude-span edit {e.get('id', '?')} has a time without zone",
-                             hint="times of edits are UTC, e.g. 2024-05-01T10:00:00Z")
-        out.append((node, _utc_us(start), _utc_us(end)))
-    return out
-
-
-def _utc_us(t: datetime) -> int:
-    """Microseconds since 1970-01-01 UTC, in integers (no float rounding)."""
-    return (t - _EPOCH) // timedelta(microseconds=1)
-
-
-def apply_excludes(code: np.ndarray, node_code: np.ndarray, t_us: np.ndarray,
-                   node_names: Sequence[str], spans: Sequence[tuple[str, int, int]]) -> None:
-    """Mark fixes inside excluded spans (in place). One vector pass per edit, not per fix."""
-    lookup = {name: i for i, name in enumerate(node_names)}
-    for node, start, end in spans:
-        c = lookup.get(node)
-        if c is None:
-            continue
-        hit = (node_code == c) & (t_us >= start) & (t_us <= end) & (code == 0)
-        code[hit] = SCREEN_REASONS.index("excluded")
+def mark_excluded(code: np.ndarray, excluded: np.ndarray) -> None:
+    """Screen (in place) the kept fixes inside an exclude span (see :mod:`archive.edits.spans`)."""
+    code[excluded & (code == 0)] = SCREEN_REASONS.index("excluded")

@@ -118,6 +118,21 @@ def current_input(arc: Archive, survey_id: int, kind: str,
     return row, table
 
 
+def require_input(arc: Archive, survey_id: int, kind: str, why: str = "",
+                  version: int | None = None) -> tuple[InputVersion, pa.Table | None]:
+    """The current (or given) version of ``kind`` and its table; the one refusal every
+    command gives when it is missing: ``the survey has no <kind> loaded[, so <why>]`` with
+    the load command as the hint."""
+    found = current_input(arc, survey_id, kind, version)
+    spec = input_kind(kind)
+    if found is None or (spec.has_table and found[1] is None):
+        entry = INPUT_KINDS.entry(kind)
+        raise UsageError(f"the survey has no {kind} loaded ({entry.description})"
+                         + (f", so {why}" if why else ""),
+                         hint=f"load it with 'nodekeep load {kind} FILE'")
+    return found
+
+
 def version_dict(v: InputVersion) -> dict[str, Any]:
     """An input version as plain data (warnings and meta decoded)."""
     return {

@@ -78,13 +78,13 @@ FORMAT_OPTION = LoadOption("format", "File format (default: guessed from the nam
 
 INPUT_KINDS: Registry[InputKind] = Registry("input kind")
 INPUT_KINDS.register(
-    "stations", "preplot receiver (and source) stations",
+    "stations", "the preplot: receiver and source stations",
     InputKind(parse=lambda ctx: _load("parse_stations")(ctx),
               file_help="Load a preplot: SPS rev 2.1 R/S records or CSV "
                         "line,point,easting,northing[,elevation][,index][,code].",
               options=(FORMAT_OPTION,)))
 INPUT_KINDS.register(
-    "deployments", "deployment log: which node sat at which station, when",
+    "deployments", "the deployment log: which node sat at which station, when",
     InputKind(parse=lambda ctx: _load("parse_deployments")(ctx),
               file_help="Load a deployment log: CSV node,line,point,deployed_utc,"
                         "retrieved_utc (ISO 8601).",
@@ -94,13 +94,13 @@ INPUT_KINDS.register(
                        LoadOption("strict", "Refuse the log if any problem is found.",
                                   kind="flag"))))
 INPUT_KINDS.register(
-    "control", "RTK check points (they survey the sensor)",
+    "control", "RTK check points, which survey the sensor",
     InputKind(parse=lambda ctx: _load("parse_control")(ctx),
               file_help="Load RTK check points (they survey the sensor position): CSV or "
                         "SPS records.",
               options=(FORMAT_OPTION,)))
 INPUT_KINDS.register(
-    "dem", "bare-earth elevation model (GeoTIFF)",
+    "dem", "the bare-earth elevation model, a GeoTIFF",
     InputKind(parse=lambda ctx: _load("parse_dem")(ctx),
               file_help="Load a bare-earth elevation model (single-band GeoTIFF, any CRS).",
               options=(LoadOption("vertical_datum", "Vertical datum of the model's heights, "

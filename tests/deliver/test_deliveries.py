@@ -9,9 +9,10 @@ import pyarrow as pa
 import pytest
 from sqlalchemy import select
 
-from archive.deliver import edits as ed
 from archive.deliver.deliveries import deliver, list_deliveries
+from archive.edits import decisions as ed
 from archive.errors import Refused, StorageError, UsageError
+from archive.review.acknowledge import ack_flag
 from archive.store.hashing import sha256_file
 from archive.store.models import Delivery, LedgerEvent
 from archive.store.verify import verify_archive
@@ -44,8 +45,8 @@ def test_refuses_unacknowledged_flags_with_what_to_do(flagged, tmp_path):
 def test_deliver_with_acknowledged_flags_and_lineage(flagged, tmp_path):
     arc, sid, final, run, raw = flagged
     for flag in ("far-from-plan", "moved"):
-        ed.ack_flag(arc, sid, 1001, 2002, flag=flag, reason="checked on the aerial photo")
-    ed.ack_flag(arc, sid, 1002, 2002, flag="unoccupied", reason="has a position anyway")
+        ack_flag(arc, sid, 1001, 2002, flag=flag, reason="checked on the aerial photo")
+    ack_flag(arc, sid, 1002, 2002, flag="unoccupied", reason="has a position anyway")
     out = tmp_path / "kestrel_r.sps"
     res = deliver(arc, sid, run.id[:10], "sps", out, "Harrow Basin Energy processing",
                   note="first receiver delivery")

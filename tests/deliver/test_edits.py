@@ -9,9 +9,11 @@ import pytest
 from pyproj import Transformer
 from sqlalchemy import select
 
-from archive.deliver import edits as ed
 from archive.deliver.final import final_positions, unacknowledged_flags
+from archive.edits import decisions as ed
+from archive.edits.log import list_edits
 from archive.errors import UsageError
+from archive.review.acknowledge import ack_flag
 from archive.store.models import Edit, LedgerEvent
 from archive.store.verify import verify_archive
 from tests.deliver.builders import delivery_archive
@@ -49,15 +51,21 @@ def test_refusals_have_clear_messages(setup):
     with pytest.raises(UsageError, match="no edit 999"):
         ed.undo(arc, sid, 999, reason="nothing")
     with pytest.raises(UsageError, match="unknown flag"):
-        ed.ack_flag(arc, sid, 1001, 2002, flag="wobbly", reason="x")
+        ack_flag(arc, sid, 1001, 2002, flag="wobbly", reason="x")
     with pytest.raises(UsageError, match="no check point at station 1001/2004"):
         ed.set_position(arc, sid, 1001, 2004, source="control", reason="x")
     with pytest.raises(UsageError, match="ends .* before it starts"):
         ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00Z",
                         end="2024-03-11T00:00:00Z", reason="x")
-    with pytest.raises(UsageError, match="no time zone"):
-        ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00",
+    with pytest.raises(UsageError, match="start 'noon' is not an ISO 8601 date or time"):
+        ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="noon",
                         end="2024-03-13T00:00:00Z", reason="x")
+    # one rule for times everywhere (archive.times): no zone means UTC, an offset converts
+    e = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00",
+                        end="2024-03-12T03:00:00+02:00", reason="x")
+    assert json.loads(e.payload)["start"] == "2024-03-12T00:00:00+00:00"
+    assert json.loads(e.payload)["end"] == "2024-03-12T01:00:00+00:00"
+    ed.undo(arc, sid, e.id, reason="test done")
     u = ed.undo(arc, sid, ed.reject_station(arc, sid, 1001, 2001, reason="a").id, reason="b")
     with pytest.raises(UsageError, match="itself an undo"):
         ed.undo(arc, sid, u.id, reason="c")
@@ -69,13 +77,13 @@ def test_supersede_and_undo(setup):
                         northing=3512000.25, reason="stake found by the crew")
     b = ed.set_position(arc, sid, 1001, 2001, source="preplot", reason="crew stake was wrong")
     assert b.supersedes == a.id
-    live = ed.list_edits(arc, sid)
+    live = list_edits(arc, sid)
     assert [e["id"] for e in live] == [b.id]
     with pytest.raises(UsageError, match=f"superseded it.*|edit {b.id}"):
         ed.undo(arc, sid, a.id, reason="too late")
     ed.undo(arc, sid, b.id, reason="back to the solver")
-    assert ed.list_edits(arc, sid) == []
-    assert len(ed.list_edits(arc, sid, all_edits=True)) == 3
+    assert list_edits(arc, sid) == []
+    assert len(list_edits(arc, sid, all_edits=True)) == 3
     final = final_positions(arc, sid, run)
     assert _row(final, 1001, 2001)["source"] == "solver"
 
@@ -86,7 +94,7 @@ def test_final_positions_apply_edits(setup):
     hgt = ed.set_height(arc, sid, 1001, 2001, source="given", height=401.25,
                         reason="levelled by the crew")
     ed.reject_station(arc, sid, 1001, 2003, reason="node in a cattle trough")
-    ack = ed.ack_flag(arc, sid, 1001, 2002, flag="moved", reason="moved 3 m by a cow, later "
+    ack = ack_flag(arc, sid, 1001, 2002, flag="moved", reason="moved 3 m by a cow, later "
                       "part is correct")
     final = final_positions(arc, sid, run)
     assert final.num_rows == final_in.num_rows - 1
@@ -123,7 +131,7 @@ def test_exclude_spans_accumulate(setup):
     b = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-12T00:00:00Z",
                         end="2024-03-12T01:00:00Z", reason="flooded")
     assert b.supersedes is None
-    assert {e["id"] for e in ed.list_edits(arc, sid)} == {a.id, b.id}
+    assert {e["id"] for e in list_edits(arc, sid)} == {a.id, b.id}
     with arc.session() as s:
         assert s.get(Edit, a.id).payload.startswith('{"end":"2024-03-11T02:00:00+00:00"')
 
@@ -140,13 +148,13 @@ def test_undo_of_an_undone_edit_says_what_to_do(setup):
 def test_ack_of_a_flag_the_station_does_not_carry_is_refused(setup):
     arc, sid, _final, _run = setup
     # 1001/2002 carries far-from-plan;moved in the newest run (fixture), 1001/2001 none
-    with pytest.raises(UsageError, match=r"1001/2002 does not carry flag 'short-span'.*"
+    with pytest.raises(UsageError, match=r"1001/2002 index 1 does not carry flag 'short-span'.*"
                                          r"carries: far-from-plan, moved"):
-        ed.ack_flag(arc, sid, 1001, 2002, flag="short-span", reason="x")
-    with pytest.raises(UsageError, match=r"1001/2001 does not carry flag 'moved'.*no flags"):
-        ed.ack_flag(arc, sid, 1001, 2001, flag="moved", reason="x")
-    assert ed.list_edits(arc, sid) == []
-    assert ed.ack_flag(arc, sid, 1001, 2002, flag="moved", reason="cow").kind == "ack-flag"
+        ack_flag(arc, sid, 1001, 2002, flag="short-span", reason="x")
+    with pytest.raises(UsageError, match=r"1001/2001 index 1 does not carry flag 'moved'.*no flags"):
+        ack_flag(arc, sid, 1001, 2001, flag="moved", reason="x")
+    assert list_edits(arc, sid) == []
+    assert ack_flag(arc, sid, 1001, 2002, flag="moved", reason="cow").kind == "ack-flag"
 
 
 def test_ack_before_any_run_says_solve_first(survey_arc, tmp_path):
@@ -155,7 +163,7 @@ def test_ack_before_any_run_says_solve_first(survey_arc, tmp_path):
 
     load_stations(survey_arc, tmp_path, final_table(4))
     with pytest.raises(UsageError, match="no solution run yet") as e:
-        ed.ack_flag(survey_arc, survey_id(survey_arc), 1001, 2001, flag="moved", reason="x")
+        ack_flag(survey_arc, survey_id(survey_arc), 1001, 2001, flag="moved", reason="x")
     assert "solve first" in e.value.hint
 
 
@@ -172,7 +180,7 @@ def test_exclude_that_could_have_no_effect_is_refused(setup):
                                          r"2024-03-10"):
         ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-14T12:00:00Z",
                         end="2024-03-15T00:00:00Z", reason="after retrieval")
-    assert ed.list_edits(arc, sid) == []
+    assert list_edits(arc, sid) == []
     # touching the window by one microsecond is an overlap (half-open [deployed, retrieved))
     ok = ed.exclude_span(arc, sid, 1001, 2001, node="N5000", start="2024-03-09T00:00:00Z",
                          end="2024-03-10T00:00:00.000001Z", reason="carried at deployment")
@@ -208,6 +216,6 @@ def test_an_edit_names_one_occupation_on_both_backends(any_survey_arc, tmp_path)
     assert json.loads(e.payload)["occupation"]["node"] == "N5009"
     h = ed.set_height(arc, sid, 1001, 2002, 1, height=401.0, reason="levelled")
     assert h.point_index == 1
-    assert [(x["kind"], x["index"]) for x in ed.list_edits(arc, sid)] == [
+    assert [(x["kind"], x["index"]) for x in list_edits(arc, sid)] == [
         ("reject-station", 2), ("set-height", 1)]
     assert verify_archive(arc).ok

@@ -9,10 +9,10 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from archive.deliver import edits as ed
 from archive.deliver.compare import compare_positions, diff_runs, parse_as_of, where
 from archive.deliver.deliveries import deliver
 from archive.deliver.lineage import trace_file
+from archive.edits import decisions as ed
 from archive.errors import UsageError
 from tests.deliver.builders import add_raw_file, delivery_archive, make_run, positions_table
 

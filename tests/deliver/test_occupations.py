@@ -20,10 +20,11 @@ import numpy as np
 import pyarrow.compute as pc
 import pytest
 
-from archive.deliver import edits as ed
 from archive.deliver.compare import diff_runs, reproduce, where
 from archive.deliver.deliveries import deliver
 from archive.deliver.final import final_positions
+from archive.edits import decisions as ed
+from archive.edits.log import list_edits
 from archive.errors import UsageError
 from archive.solve.run import get_run
 from tests.conftest import invoke
@@ -218,7 +219,7 @@ def test_an_edit_lands_on_one_occupation_only(survey, runner):
     row = after.filter(pc.and_(pc.equal(after["point"], point),
                                pc.equal(after["index"], 2))).to_pylist()[0]
     assert row["height"] == 401.5 and row["height_source"] == "given"
-    e = ed.list_edits(arc, sid, line=line, point=point)[-1]
+    e = list_edits(arc, sid, line=line, point=point)[-1]
     undo = ed.undo(arc, sid, e["id"], reason="test done")
     assert undo.point_index == 2
 

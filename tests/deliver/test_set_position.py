@@ -8,8 +8,8 @@ import pytest
 import rasterio
 from rasterio.transform import from_origin
 
-from archive.deliver import edits as ed
 from archive.deliver.final import final_positions
+from archive.edits import decisions as ed
 from archive.survey.inputs import load_input
 from tests.deliver.builders import delivery_archive, make_run, positions_table
 from tests.deliver.helpers import final_table

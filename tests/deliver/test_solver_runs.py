@@ -123,7 +123,7 @@ def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner)
 
 
 def test_trace_station_after_edit_and_delivery(solved, runner):
-    from archive.deliver import edits as ed
+    from archive.edits import decisions as ed
     from archive.solve.occupancy import run_occupations
     from archive.solve.run import get_run
 
@@ -183,7 +183,7 @@ def _fan(h: str) -> tuple[str, str, str]:
 
 def test_exclude_span_takes_effect_at_next_solve(solved):
     # Last in this module: it adds a newer run to the shared archive.
-    from archive.deliver import edits as ed
+    from archive.edits import decisions as ed
     from archive.solve.run import get_run, run_manifest, run_positions, solve_survey
 
     arc, sid, run_id, _ = solved

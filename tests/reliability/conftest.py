@@ -75,7 +75,7 @@ def fill_archive(root: Path, db_url: str | None, sc, *, n_logs: int = 3,
 def make_delivery(arc: Archive, survey_id: int, to: Path):
     """Solve (a look-up when already solved), reject one station with a reason, deliver CSV."""
     from archive.deliver.deliveries import deliver
-    from archive.deliver.edits import reject_station
+    from archive.edits.decisions import reject_station
     from archive.solve.run import solve_survey
     from archive.store.models import RawFile
 

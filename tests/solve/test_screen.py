@@ -7,8 +7,9 @@ from datetime import UTC, datetime
 
 import numpy as np
 
+from archive.edits.spans import parse_spans
 from archive.solve.params import default_params
-from archive.solve.screen import SCREEN_REASONS, parse_excludes, screen_codes
+from archive.solve.screen import SCREEN_REASONS, screen_codes
 
 
 def _cols(**over):
@@ -35,7 +36,7 @@ def test_unknown_quality_is_not_held_against_a_fix():
 
 def test_exclude_span_times_are_exact_microseconds():
     start = datetime(2025, 4, 8, 10, 0, 0, 123457, tzinfo=UTC)
-    [(node, s_us, e_us)] = parse_excludes([{"node": "374986", "start": start.isoformat(),
+    [(node, s_us, e_us)] = parse_spans([{"node": "374986", "start": start.isoformat(),
                                             "end": "2025-04-08T11:00:00+00:00"}])
     assert node == "374986"
     # 2025-04-08T10:00:00Z is 1744106400 s after the epoch (date arithmetic, computed)

@@ -1,0 +1,1 @@
+"""Review of a run's flags: the decisions that read a run (acknowledging a flag)."""
