@@ -188,13 +188,12 @@ def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
     stations) or ``"small"`` (thirty, for tests).
     """
     from archive.deliver.deliveries import deliver
-    from archive.deliver.runs import get_run
     from archive.ingest.load import load_fix_files
     from archive.qc.check import qc_run
     from archive.qc.report import write_report
     from archive.seeds.scenario import generate
     from archive.solve.occupancy import run_occupations
-    from archive.solve.run import solve_survey
+    from archive.solve.run import get_run, solve_survey
     from archive.store.archive import Archive
     from archive.store.verify import verify_archive
     from archive.survey.inputs import load_input

@@ -16,19 +16,7 @@ import pytest
 from click.testing import CliRunner
 
 from archive.store.archive import Archive
-
-PG_ENV = "NODEKEEP_TEST_PG_URL"
-SURVEY_NAME = "Kestrel Flats 3D"  # invented prospect
-SURVEY_EPSG = 32614  # WGS 84 / UTM zone 14N
-
-
-def _pg_base_url() -> str:
-    url = os.environ.get(PG_ENV)
-    if not url:
-        if os.environ.get("CI"):
-            pytest.fail(f"{PG_ENV} is not set in CI: PostgreSQL tests must run there")
-        pytest.skip(f"{PG_ENV} not set")
-    return url
+from tests.support.cli import SURVEY_EPSG, SURVEY_NAME, pg_base_url
 
 
 @pytest.fixture
@@ -37,7 +25,7 @@ def pg_url() -> Iterator[str]:
     from sqlalchemy import create_engine, text
     from sqlalchemy.engine import make_url
 
-    base = make_url(_pg_base_url())
+    base = make_url(pg_base_url())
     name = f"nk_{uuid.uuid4().hex[:12]}"
     admin = create_engine(base.set(database="postgres"), isolation_level="AUTOCOMMIT")
     try:
@@ -113,8 +101,3 @@ def runner() -> CliRunner:
     return CliRunner()
 
 
-def invoke(runner: CliRunner, arc_dir: Path | str, *args: str):
-    """Run ``nodekeep -A arc_dir ARGS`` in-process and return the click Result."""
-    from archive.cli.main import cli
-
-    return runner.invoke(cli, ["-A", str(arc_dir), *args], catch_exceptions=False)

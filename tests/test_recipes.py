@@ -12,8 +12,8 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from tests.conftest import invoke
-from tests.deliver.builders import delivery_archive
+from tests.support.builders import delivery_archive
+from tests.support.cli import invoke
 
 
 @pytest.fixture
@@ -84,7 +84,7 @@ def test_recipe_new_input_kind(toy_kind, survey_arc, tmp_path, runner):
     [row] = [x for x in json.loads(r.output) if x["kind"] == "obstacles"]
     assert row["rows"] == 1 and row["meta"] == {"unit": "ft"}
     from archive.survey.inputs import current_input
-    from tests.deliver.builders import survey_id
+    from tests.support.builders import survey_id
 
     _, table = current_input(survey_arc, survey_id(survey_arc), "obstacles")
     assert table["radius_m"].to_pylist() == [pytest.approx(30.48)]

@@ -120,14 +120,14 @@ def trace(state: CliState, line: float | None, point: float | None, index: int |
     if path is not None:
         if line is not None:
             raise UsageError("give either LINE POINT or --file, not both")
-        from archive.deliver.lineage import trace_file
+        from archive.lineage.trace import trace_file
 
         t = trace_file(arc, path)
         emit(state, t, lambda: _file_text(t))
         return
     if line is None or point is None:
         raise UsageError("trace needs LINE POINT or --file FILE")
-    from archive.deliver.lineage import trace_station
+    from archive.lineage.trace import trace_station
 
     t = trace_station(arc, state.survey_id(survey_name), line, point, index, node=node)
     emit(state, t, lambda: _station_text(t))
@@ -140,7 +140,7 @@ def trace(state: CliState, line: float | None, point: float | None, index: int |
 @pass_state
 def reproduce(state: CliState, run_ref: str, survey_name: str | None) -> None:
     """Recompute RUN from its archived inputs and say whether it is identical."""
-    from archive.deliver.compare import reproduce as run
+    from archive.lineage.reproduce import reproduce as run
 
     r = run(state.archive(), run_ref, state.survey_id(survey_name))
     lines = [f"run {r['run'][:12]}: " + ("identical (same positions digest "
@@ -173,8 +173,8 @@ def reproduce(state: CliState, run_ref: str, survey_name: str | None) -> None:
 def diff(state: CliState, run_a: str, run_b: str, threshold: float, station: str | None,
          index: int | None, node: str | None, survey_name: str | None) -> None:
     """Per-occupation movement from RUN_A to RUN_B (paired by line, point and point index)."""
-    from archive.deliver.compare import diff_runs
     from archive.errors import UsageError
+    from archive.lineage.diff import diff_runs
 
     where = None
     if station is not None:
@@ -280,7 +280,7 @@ def where(state: CliState, line: float, point: float, index: int | None, node: s
           at: str | None, as_of: str | None, survey_name: str | None) -> None:
     """The coordinates delivered for station LINE POINT as of a date, and in which delivery:
     every occupation, the one --index / --node choose, or the one in the ground --at a time."""
-    from archive.deliver.compare import where as run
+    from archive.lineage.where import where as run
 
     w = run(state.archive(), state.survey_id(survey_name), line, point, index, as_of,
             node=node, at=at)

@@ -45,7 +45,7 @@ def verify(state: CliState, no_rehash: bool, delivery: str | None) -> None:
 
 
 def _verify_delivery(state: CliState, path: str, *, rehash: bool) -> None:
-    from archive.deliver.check import check_delivery
+    from archive.lineage.check import check_delivery
 
     result = check_delivery(state.archive(), path, rehash=rehash)
 

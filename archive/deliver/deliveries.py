@@ -29,9 +29,9 @@ from archive import __version__
 from archive.deliver.context import CAUTION, DeliveryContext, station_label
 from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
-from archive.deliver.runs import get_run, manifest_inputs, run_manifest
 from archive.edits.log import delivery_edit_set, edit_dict
 from archive.errors import Refused, StorageError, UsageError
+from archive.solve.run import get_run, manifest_inputs, run_manifest
 from archive.store.archive import Archive
 from archive.store.hashing import table_digest
 from archive.store.ledger import row_digest

@@ -36,8 +36,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from archive.deliver.runs import run_manifest
 from archive.edits.log import edit_set
+from archive.solve.run import run_manifest
 from archive.store.archive import Archive
 from archive.store.models import Run
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer

@@ -112,16 +112,3 @@ def run_occupations(arc: Any, run: Any) -> pa.Table:
     dep_hash = (run_manifest(arc, run).get("inputs") or {}).get("deployments")
     deployments = arc.objects.read_table(dep_hash) if dep_hash else None
     return upgrade_positions(positions, deployments)
-
-
-def station_rows(table: pa.Table, line: float, point: float, index: int | None = None,
-                 node: str | None = None) -> pa.Table:
-    """Rows of (line, point) of a positions-like table, narrowed to one occupation's delivered
-    point index (``occupation`` column, else ``index``) and/or node when given."""
-    mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
-    if index is not None:
-        col = "occupation" if "occupation" in table.column_names else "index"
-        mask = pc.and_(mask, pc.fill_null(pc.equal(table[col], int(index)), False))
-    if node is not None:
-        mask = pc.and_(mask, pc.equal(table["node"], str(node)))
-    return table.filter(mask)

@@ -336,6 +336,14 @@ def recompute(arc: Archive, run_id: str) -> pa.Table:
     return table
 
 
+def manifest_inputs(manifest: dict[str, Any]) -> dict[str, Any]:
+    """The manifest's input hashes: ``fixes`` (a list of fix-table hashes) plus the named
+    input tables (``stations``, ``deployments``, ``dem``)."""
+    inputs = dict(manifest.get("inputs") or {})
+    inputs["fixes"] = list(inputs.get("fixes") or [])
+    return inputs
+
+
 def list_runs(arc: Archive, survey_id: int) -> list[dict[str, Any]]:
     """The survey's runs, oldest first, as plain data."""
     with arc.session() as s:
@@ -357,17 +365,17 @@ def station_solution(arc: Archive, survey_id: int, line: float, point: float,
                      node: str | None = None) -> dict[str, Any]:
     """A station's rows of a run (the newest by default) as plain data: every occupation
     (and every part of a moved one), or the occupation ``index``/``node`` choose."""
-    from archive.solve.occupancy import run_occupations, station_rows
+    from archive.solve.occupancy import run_occupations
+    from archive.survey.keys import rows_at, station_text
 
     run = get_run(arc, survey_id, run_ref)
     pos = run_occupations(arc, run)
-    rows = station_rows(pos, line, point, index, node).to_pylist()
+    rows = rows_at(pos, line, point, index, node, index_column="occupation").to_pylist()
     if not rows:
-        every = station_rows(pos, line, point).to_pylist()
+        every = rows_at(pos, line, point).to_pylist()
         have = ", ".join(sorted({f"index {r['occupation']} (node {r['node']})" for r in every
                                  if r["occupation"] is not None}))
-        raise UsageError(f"station {line:g}/{point:g}"
-                         + (f" index {index}" if index is not None else "")
+        raise UsageError(f"station {station_text(line, point, index)}"
                          + (f" node {node}" if node is not None else "")
                          + f" is not in run {run.id[:12]}" + (f"; it has {have}" if have else ""),
                          hint="check the line and point numbers, or choose a run with --run")

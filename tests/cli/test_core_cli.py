@@ -9,7 +9,7 @@ from sqlalchemy import text
 
 from archive.cli.main import cli
 from archive.store.archive import Archive
-from tests.conftest import invoke
+from tests.support.cli import invoke
 
 
 def test_init_survey_history_verify(tmp_path, runner):

@@ -6,9 +6,9 @@ import json
 
 import pytest
 
-from tests.conftest import invoke
-from tests.deliver.builders import delivery_archive
-from tests.deliver.helpers import read_segp1
+from tests.support.builders import delivery_archive
+from tests.support.cli import invoke
+from tests.support.delivery_tables import read_segp1
 
 FLAGS = ["", "far-from-plan", "", "", "", "", "", ""]
 

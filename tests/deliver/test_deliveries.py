@@ -16,8 +16,8 @@ from archive.review.acknowledge import ack_flag
 from archive.store.hashing import sha256_file
 from archive.store.models import Delivery, LedgerEvent
 from archive.store.verify import verify_archive
-from tests.deliver.builders import delivery_archive, make_run, positions_table
-from tests.deliver.helpers import read_sps_r
+from tests.support.builders import delivery_archive, make_run, positions_table
+from tests.support.delivery_tables import read_sps_r
 
 FLAGS = ["", "far-from-plan;moved", "", "", "", "unoccupied", "", ""]
 
@@ -98,7 +98,7 @@ def test_unfit_value_refused_before_anything_is_recorded(survey_arc, tmp_path):
 
 
 def test_station_without_position_refused(survey_arc, tmp_path):
-    from tests.deliver.builders import make_run, positions_table
+    from tests.support.builders import make_run, positions_table
 
     sid, final, _run, _ = delivery_archive(survey_arc, tmp_path, n=4)
     pos = positions_table(final)

@@ -16,7 +16,7 @@ from archive.errors import UsageError
 from archive.review.acknowledge import ack_flag
 from archive.store.models import Edit, LedgerEvent
 from archive.store.verify import verify_archive
-from tests.deliver.builders import delivery_archive
+from tests.support.builders import delivery_archive
 
 
 @pytest.fixture
@@ -158,8 +158,8 @@ def test_ack_of_a_flag_the_station_does_not_carry_is_refused(setup):
 
 
 def test_ack_before_any_run_says_solve_first(survey_arc, tmp_path):
-    from tests.deliver.builders import load_stations, survey_id
-    from tests.deliver.helpers import final_table
+    from tests.support.builders import load_stations, survey_id
+    from tests.support.delivery_tables import final_table
 
     load_stations(survey_arc, tmp_path, final_table(4))
     with pytest.raises(UsageError, match="no solution run yet") as e:
@@ -194,7 +194,7 @@ def test_an_edit_names_one_occupation_on_both_backends(any_survey_arc, tmp_path)
     """A station laid out twice: an edit without --index/--node is refused with the list of
     occupations; with one it lands on that occupation only (SQLite and PostgreSQL)."""
     from archive.survey.inputs import load_input
-    from tests.deliver.builders import survey_id
+    from tests.support.builders import survey_id
 
     arc = any_survey_arc
     sid = survey_id(arc)

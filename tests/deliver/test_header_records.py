@@ -13,7 +13,7 @@ from archive.deliver.headers import header_record, wrap_data
 from archive.deliver.segp1 import write_segp1
 from archive.deliver.sps import write_sps
 from archive.errors import Refused
-from tests.deliver.helpers import context, final_table
+from tests.support.delivery_tables import context, final_table
 
 # Long-named CRSs of several projection methods (EPSG dataset via pyproj):
 # 2193 NZTM2000 (Transverse Mercator), 2056 CH1903+ / LV95 (Hotine Oblique Mercator B),

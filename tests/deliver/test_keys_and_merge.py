@@ -19,7 +19,7 @@ from archive.deliver.segp1 import write_segp1
 from archive.deliver.sps import write_sps
 from archive.errors import Refused
 from archive.solve.uncertainty import radius95
-from tests.deliver.helpers import context, final_table
+from tests.support.delivery_tables import context, final_table
 
 
 def _with(table: pa.Table, name: str, values) -> pa.Table:
@@ -100,7 +100,7 @@ def test_occupations_apart_or_edited_are_kept_apart():
 
 
 def test_merge_end_to_end_on_a_survey_relaid_at_the_same_spot(tmp_path, runner):
-    from tests.conftest import invoke
+    from tests.support.cli import invoke
     from tests.support.scenarios import scenario_archive
 
     # re-laid within 0.2 m of the first spot: the occupations cannot be told apart
@@ -132,7 +132,7 @@ def test_merge_end_to_end_on_a_survey_relaid_at_the_same_spot(tmp_path, runner):
 @pytest.mark.parametrize("mask,mode", [(0o022, 0o644), (0o027, 0o640)])
 def test_delivered_files_get_the_users_umask(survey_arc, tmp_path, mask, mode):
     from archive.deliver.deliveries import deliver
-    from tests.deliver.builders import delivery_archive
+    from tests.support.builders import delivery_archive
 
     sid, *_ = delivery_archive(survey_arc, tmp_path)
     old = os.umask(mask)

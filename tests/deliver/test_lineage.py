@@ -9,12 +9,14 @@ import numpy as np
 import pyarrow as pa
 import pytest
 
-from archive.deliver.compare import compare_positions, diff_runs, parse_as_of, where
 from archive.deliver.deliveries import deliver
-from archive.deliver.lineage import trace_file
 from archive.edits import decisions as ed
 from archive.errors import UsageError
-from tests.deliver.builders import add_raw_file, delivery_archive, make_run, positions_table
+from archive.lineage.diff import compare_positions, diff_runs
+from archive.lineage.trace import trace_file
+from archive.lineage.where import where
+from archive.times import parse_utc
+from tests.support.builders import add_raw_file, delivery_archive, make_run, positions_table
 
 
 @pytest.fixture
@@ -94,19 +96,25 @@ def test_where_as_of_before_and_after_second_delivery(delivered, tmp_path):
     assert now["n_occupations"] == 1 and len(now["occupations"][0]["history"]) == 2
 
 
-def test_parse_as_of():
-    assert parse_as_of("2025-06-30").isoformat() == "2025-06-30T23:59:59.999999+00:00"
-    assert parse_as_of("2025-06-30T12:00:00Z").isoformat() == "2025-06-30T12:00:00+00:00"
+def test_times_follow_one_rule():
+    # archive.times: an --as-of date is the end of that day, UTC; no zone means UTC
+    def as_of(v):
+        return parse_utc(v, "--as-of", date_is_end=True)
+
+    assert as_of("2025-06-30").isoformat() == "2025-06-30T23:59:59.999999+00:00"
+    assert parse_utc("2025-06-30").isoformat() == "2025-06-30T00:00:00+00:00"
+    assert as_of("2025-06-30T12:00:00Z").isoformat() == "2025-06-30T12:00:00+00:00"
+    assert parse_utc("2025-06-30T12:00:00").isoformat() == "2025-06-30T12:00:00+00:00"
     with pytest.raises(UsageError, match="not an ISO 8601"):
-        parse_as_of("30/06/2025")
+        as_of("30/06/2025")
 
 
 def test_as_of_offsets_are_converted_to_utc():
     # ISO 8601 offsets: 14:00+02:00 is 12:00 UTC (Python datetime reference arithmetic)
-    got = parse_as_of("2025-06-30T14:00:00+02:00")
+    got = parse_utc("2025-06-30T14:00:00+02:00")
     assert got.utcoffset() == timedelta(0) and got.isoformat() == "2025-06-30T12:00:00+00:00"
-    assert parse_as_of(got.astimezone(timezone(timedelta(hours=-5)))) == got
-    assert parse_as_of(got.astimezone(timezone(timedelta(hours=-5)))).utcoffset() == timedelta(0)
+    assert parse_utc(got.astimezone(timezone(timedelta(hours=-5)))) == got
+    assert parse_utc(got.astimezone(timezone(timedelta(hours=-5)))).utcoffset() == timedelta(0)
 
 
 def test_where_refuses_an_unknown_station(delivered):

@@ -20,15 +20,17 @@ import numpy as np
 import pyarrow.compute as pc
 import pytest
 
-from archive.deliver.compare import diff_runs, reproduce, where
 from archive.deliver.deliveries import deliver
 from archive.deliver.final import final_positions
 from archive.edits import decisions as ed
 from archive.edits.log import list_edits
 from archive.errors import UsageError
+from archive.lineage.diff import diff_runs
+from archive.lineage.reproduce import reproduce
+from archive.lineage.where import where
 from archive.solve.run import get_run
-from tests.conftest import invoke
-from tests.deliver.helpers import read_segp1, read_sps_r
+from tests.support.cli import invoke
+from tests.support.delivery_tables import read_segp1, read_sps_r
 from tests.support.scenarios import scenario_archive
 
 pytestmark = pytest.mark.slow

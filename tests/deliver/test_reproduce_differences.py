@@ -12,10 +12,10 @@ import pyarrow.compute as pc
 import pytest
 
 import archive.solve.run as solve_run
-from archive.deliver.compare import reproduce, table_differences
+from archive.lineage.reproduce import reproduce, table_differences
 from archive.solve.run import run_positions
-from tests.conftest import invoke
-from tests.deliver.builders import delivery_archive
+from tests.support.builders import delivery_archive
+from tests.support.cli import invoke
 
 
 @pytest.fixture

@@ -11,8 +11,8 @@ from rasterio.transform import from_origin
 from archive.deliver.final import final_positions
 from archive.edits import decisions as ed
 from archive.survey.inputs import load_input
-from tests.deliver.builders import delivery_archive, make_run, positions_table
-from tests.deliver.helpers import final_table
+from tests.support.builders import delivery_archive, make_run, positions_table
+from tests.support.delivery_tables import final_table
 
 
 def _row(table, line, point):

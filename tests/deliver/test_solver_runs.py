@@ -15,13 +15,13 @@ import pyarrow.compute as pc
 import pytest
 from sqlalchemy import select
 
-from archive.deliver.compare import reproduce
 from archive.deliver.deliveries import deliver
-from archive.deliver.lineage import trace_file, trace_station
 from archive.errors import IntegrityError
+from archive.lineage.reproduce import reproduce
+from archive.lineage.trace import trace_file, trace_station
 from archive.store.archive import Archive
 from archive.store.models import RawFile
-from tests.conftest import invoke
+from tests.support.cli import invoke
 from tests.support.scenarios import scenario_archive
 
 pytestmark = pytest.mark.slow

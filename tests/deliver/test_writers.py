@@ -18,7 +18,7 @@ from archive.deliver.gis import write_geojson, write_gpkg
 from archive.deliver.segp1 import write_segp1
 from archive.deliver.sps import write_sps
 from archive.errors import Refused
-from tests.deliver.helpers import context, final_table, read_segp1, read_sps_r
+from tests.support.delivery_tables import context, final_table, read_segp1, read_sps_r
 
 
 def test_sps_synthetic_vector_exact():

@@ -17,7 +17,7 @@ from archive.ingest.read import list_raw_files, node_fixes
 from archive.store.ledger import payload_of
 from archive.store.models import LedgerEvent, RawFile, StoredObject
 from archive.store.verify import verify_archive
-from tests.conftest import SURVEY_NAME, invoke
+from tests.support.cli import SURVEY_NAME, invoke
 
 
 def log_bytes(n: int = 600, start: str = "2024-03-01T23:55:00", seed: int = 3) -> bytes:

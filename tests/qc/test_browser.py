@@ -21,7 +21,7 @@ import pytest
 
 from archive.qc import qc_of
 from archive.qc.report import render_report
-from tests.qc.tables import run_data, synthetic_cloud, synthetic_spread
+from tests.support.qc_tables import run_data, synthetic_cloud, synthetic_spread
 
 pytestmark = [pytest.mark.browser, pytest.mark.slow]
 

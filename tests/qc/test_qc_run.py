@@ -8,9 +8,9 @@ import pytest
 
 from archive.errors import UsageError
 from archive.qc import qc_run
-from tests.conftest import invoke
-from tests.qc.conftest import store_run, survey_id
-from tests.qc.tables import positions_table, small_fixture
+from tests.support.cli import invoke
+from tests.support.qc_archive import store_run, survey_id
+from tests.support.qc_tables import positions_table, small_fixture
 
 
 def test_qc_run_reads_the_newest_run_and_current_check_points(qc_arc):

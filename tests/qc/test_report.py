@@ -13,9 +13,9 @@ from archive.errors import Refused
 from archive.qc import qc_of
 from archive.qc.figures import decimate, exaggeration
 from archive.qc.report import render_report, write_report
-from tests.conftest import invoke
-from tests.qc.conftest import survey_id
-from tests.qc.tables import run_data, synthetic_cloud, synthetic_spread
+from tests.support.cli import invoke
+from tests.support.qc_archive import survey_id
+from tests.support.qc_tables import run_data, synthetic_cloud, synthetic_spread
 
 SECTIONS = ["cautions", "lineage", "summary", "figures", "review", "definitions"]
 

@@ -43,7 +43,7 @@ import numpy as np
 import pytest
 
 from archive.qc.stats import compare, join_checks
-from tests.qc.tables import small_fixture
+from tests.support.qc_tables import small_fixture
 
 ABS = 1e-6  # coordinates near 6e5 m carry ~1e-10 m of float rounding
 
@@ -126,7 +126,7 @@ def test_tolerance_listing(result):
 def test_latest_check_point_wins_and_stations_fill_a_missing_preplot():
     from datetime import timedelta
 
-    from tests.qc.tables import T0, control_table, positions_table, stations_table
+    from tests.support.qc_tables import T0, control_table, positions_table, stations_table
 
     pos = positions_table([{"line": 1.0, "point": 1.0, "easting": 100.0, "northing": 200.0}])
     ctl = control_table([

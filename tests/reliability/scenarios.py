@@ -109,8 +109,8 @@ def solve_setup(work: Path, db_url: str | None, *, seed: int = 7) -> tuple[Scena
     """The small demo scenario loaded into a template archive, and the solve scenario."""
     from archive.seeds.scenario import generate
 
-    from tests.reliability.conftest import fill_archive
     from tests.reliability.harness import ArchiveTemplate
+    from tests.support.reliability import fill_archive
 
     sc = generate(work / "scenario", seed=seed, size="small")
     root = fill_archive(work / "template", db_url, sc, n_logs=0)

@@ -12,9 +12,9 @@ from pathlib import Path
 
 import pytest
 
-from tests.reliability.conftest import fill_archive
 from tests.reliability.harness import ArchiveTemplate, campaign
 from tests.reliability.scenarios import solve
+from tests.support.reliability import fill_archive
 
 TRIALS = {"sqlite": 10, "postgres": 10}  # 20 in CI over both backends; bench/soak.py runs more
 

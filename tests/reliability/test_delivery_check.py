@@ -1,5 +1,5 @@
 """``nodekeep verify --delivery``: a delivered file and its lineage manifest, checked against
-the archive, with whatever differs named (archive/deliver/check.py vocabulary)."""
+the archive, with whatever differs named (archive/lineage/check.py vocabulary)."""
 
 from __future__ import annotations
 
@@ -11,12 +11,12 @@ from pathlib import Path
 import pytest
 from sqlalchemy import update
 
-from archive.deliver.check import check_delivery
+from archive.lineage.check import check_delivery
 from archive.store.archive import Archive
 from archive.store.models import Delivery, Run
-from tests.conftest import invoke
-from tests.reliability.conftest import make_delivery, make_survey_archive
 from tests.reliability.harness import ArchiveTemplate
+from tests.support.cli import invoke
+from tests.support.reliability import make_delivery, make_survey_archive
 
 
 @pytest.fixture

@@ -24,10 +24,10 @@ from archive.errors import Refused
 from archive.store.archive import Archive
 from archive.store.history import ledger_head
 from archive.store.verify import verify_archive
-from tests.conftest import SURVEY_EPSG, SURVEY_NAME
-from tests.reliability.conftest import make_survey_archive
 from tests.reliability.harness import cli_argv, run
 from tests.reliability.logs import write_logs
+from tests.support.cli import SURVEY_EPSG, SURVEY_NAME
+from tests.support.reliability import make_survey_archive
 
 STORAGE_ERROR = 5
 

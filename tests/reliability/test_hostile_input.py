@@ -19,9 +19,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from archive.store.archive import Archive
-from tests.conftest import invoke
-from tests.reliability.conftest import make_survey_archive
 from tests.reliability.logs import node_log
+from tests.support.cli import invoke
+from tests.support.reliability import make_survey_archive
 
 INTERNAL_ERROR = 70
 SAMPLE = node_log(1001, 40)

@@ -22,8 +22,8 @@ from archive.store.archive import Archive
 from archive.store.ledger import GENESIS, event_hash, row_key
 from archive.store.models import LedgerEvent, LedgerHead, RawFile, StoredObject
 from archive.store.verify import LEDGERED_TABLES, verify_archive
-from tests.conftest import invoke
 from tests.reliability.harness import ArchiveTemplate
+from tests.support.cli import invoke
 
 # One text column per ledgered table, changed by the tamper test.
 TAMPER_COLUMN = {"surveys": "client", "raw_files": "node", "input_versions": "original_name",

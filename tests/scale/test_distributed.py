@@ -7,7 +7,7 @@ import pytest
 
 from archive.errors import InputError, UsageError
 from archive.scale.distributed import map_partitions
-from tests.scale.conftest import free_port
+from tests.support.scale import free_port
 
 pytest.importorskip("distributed")
 

@@ -17,8 +17,8 @@ from archive.solve import run as solve_run
 from archive.store.archive import Archive
 from archive.store.hashing import table_digest
 from archive.store.verify import verify_archive
-from tests.conftest import invoke
-from tests.scale.conftest import populate
+from tests.support.cli import invoke
+from tests.support.scale import populate
 
 pytest.importorskip("distributed")
 pytestmark = pytest.mark.slow

@@ -20,8 +20,8 @@ from archive.scale.migrate import migrate_archive
 from archive.store.archive import CONFIG_NAME, Archive
 from archive.store.models import Base, LedgerEvent, StoredObject
 from archive.store.verify import verify_archive
-from tests.conftest import invoke
-from tests.scale.conftest import populate, s3_key
+from tests.support.cli import invoke
+from tests.support.scale import populate, s3_key
 
 pytestmark = pytest.mark.slow
 

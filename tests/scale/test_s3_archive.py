@@ -10,7 +10,7 @@ from archive.ingest.load import load_fix_files
 from archive.store.archive import Archive
 from archive.store.verify import verify_archive
 from archive.survey.dem import spot_sample
-from tests.scale.conftest import populate
+from tests.support.scale import populate
 
 pytestmark = pytest.mark.slow
 

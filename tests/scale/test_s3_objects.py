@@ -16,8 +16,8 @@ from archive.errors import IntegrityError, Refused
 from archive.store.archive import Archive
 from archive.store.objects import ObjectStore
 from archive.store.verify import verify_archive
-from tests.conftest import SURVEY_EPSG, SURVEY_NAME, invoke
-from tests.scale.conftest import s3_key
+from tests.support.cli import SURVEY_EPSG, SURVEY_NAME, invoke
+from tests.support.scale import s3_key
 
 GGA = b"$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47\r\n"
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 import tomllib
 
-from tests.conftest import invoke
+from tests.support.cli import invoke
 
 
 def test_params_prints_commented_toml(runner, survey_arc) -> None:

@@ -12,7 +12,7 @@ import pytest
 from archive.solve.engine import solve_fixes
 from archive.solve.params import resolve_params
 from archive.solve.simulate import SimConfig, simulate
-from tests.conftest import invoke
+from tests.support.cli import invoke
 
 
 @pytest.fixture(scope="module")
@@ -69,13 +69,13 @@ def test_without_the_fallback_it_stays_unoccupied(died_early):
 
 
 def test_show_says_margin_fixes_were_used(died_early, survey_arc, tmp_path, runner):
-    from tests.solve.conftest import store_simulation
+    from tests.support.simulation import store_simulation
 
     sim, fixes, dep = died_early
     sim.fixes = fixes
     store_simulation(survey_arc, sim, tmp_path, dem=False)
     from archive.solve.run import solve_survey
-    from tests.deliver.builders import survey_id
+    from tests.support.builders import survey_id
 
     solve_survey(survey_arc, survey_id(survey_arc))
     r = invoke(runner, survey_arc.root, "show", f"{dep['line']:g}", f"{dep['point']:g}")

@@ -12,15 +12,16 @@ from pathlib import Path
 
 import pytest
 
-from archive.deliver.check import check_delivery
-from archive.deliver.compare import reproduce, where
 from archive.deliver.deliveries import deliver
-from archive.deliver.lineage import trace_file, trace_station
+from archive.lineage.check import check_delivery
+from archive.lineage.reproduce import reproduce
+from archive.lineage.trace import trace_file, trace_station
+from archive.lineage.where import where
 from archive.store import migrate
 from archive.store.archive import Archive
 from archive.store.verify import verify_archive
-from tests.conftest import invoke
-from tests.deliver.helpers import read_sps_r
+from tests.support.cli import invoke
+from tests.support.delivery_tables import read_sps_r
 
 SAVED = Path(__file__).parent / "saved" / "rev0001-run"
 RUN = "29fef7454d464f37ddef675f66ba5ae613dcdccc95540c81e752ea92b682e61a"

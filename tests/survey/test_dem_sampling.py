@@ -19,7 +19,7 @@ from archive.errors import InputError
 from archive.survey import dem as dem_mod
 from archive.survey.crs import transformer
 from archive.survey.dem import DemSampler, inspect_dem
-from tests.survey.rasters import CHECK_GT, CHECK_Z, centres, write_tif
+from tests.support.rasters import CHECK_GT, CHECK_Z, centres, write_tif
 
 UTM14N = 32614
 

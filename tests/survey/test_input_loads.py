@@ -14,7 +14,7 @@ from archive.store.verify import verify_archive
 from archive.survey.dem import open_dem
 from archive.survey.inputs import current_input, list_inputs, load_input, survey_for
 from archive.survey.schema import CONTROL_SCHEMA, STATION_SCHEMA
-from tests.survey.rasters import write_tif
+from tests.support.rasters import write_tif
 
 STATIONS = """line,point,easting,northing,elevation,code
 1001,2001,612000.0,3890000.0,301.2,G1

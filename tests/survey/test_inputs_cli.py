@@ -6,8 +6,8 @@ import json
 
 from rasterio.transform import Affine
 
-from tests.conftest import invoke
-from tests.survey.rasters import CHECK_GT, CHECK_Z, write_tif
+from tests.support.cli import invoke
+from tests.support.rasters import CHECK_GT, CHECK_Z, write_tif
 
 STATIONS = "line,point,easting,northing\n1001,2001,612000,3890000\n1001,2002,612025,3890000\n"
 

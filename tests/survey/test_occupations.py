@@ -124,7 +124,7 @@ def test_choosing_one_occupation():
 
 
 def test_loader_numbers_against_the_previous_version(survey_arc, tmp_path):
-    from tests.deliver.builders import survey_id
+    from tests.support.builders import survey_id
 
     sid = survey_id(survey_arc)
     (tmp_path / "p.csv").write_text("line,point,easting,northing\n1001,5002,583207,4062450\n")

@@ -32,14 +32,13 @@ from typing import Any
 
 from sqlalchemy import select
 
+from archive.deliver.deliveries import LINEAGE_SUFFIX
 from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.store.hashing import is_hash, sha256_bytes, sha256_file
 from archive.store.ledger import row_digest, row_key
 from archive.store.models import Delivery, LedgerEvent, Run, StoredObject
 from archive.store.verify import Problem
-
-LINEAGE_SUFFIX = ".lineage.json"
 
 
 @dataclass

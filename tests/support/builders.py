@@ -19,7 +19,7 @@ from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
 from archive.store.models import RawFile, Run, Survey, utcnow
 from archive.survey.inputs import load_input
-from tests.deliver.helpers import final_table
+from tests.support.delivery_tables import final_table
 
 
 def survey_id(arc: Archive) -> int:

@@ -14,31 +14,25 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Any
 
-import pyarrow as pa
-import pyarrow.compute as pc
 from sqlalchemy import select
 
 from archive.deliver.deliveries import delivery_dict
 from archive.store.archive import Archive
 from archive.store.models import Delivery
+from archive.survey.keys import rows_at
 
 RECORD_KEYS = ("index", "station_index", "node", "deployed", "retrieved", "easting",
                "northing", "height", "height_source", "lat", "lon", "sigma_e", "sigma_n",
                "r95", "source", "flags", "flags_acknowledged", "merged", "t_start", "t_end")
 
 
-def _at_station(table: pa.Table, line: float, point: float) -> list[dict[str, Any]]:
-    mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
-    return table.filter(mask).to_pylist()
-
-
 def _legacy_lookup(arc: Archive, run_id: str, line: float, point: float
                    ) -> list[dict[str, Any]]:
     """The delivered rows of (line, point) in a run, with their occupation columns."""
-    from archive.solve.occupancy import run_occupations, station_rows
+    from archive.solve.occupancy import run_occupations
     from archive.solve.run import get_run
 
-    rows = station_rows(run_occupations(arc, get_run(arc, None, run_id)), line, point)
+    rows = rows_at(run_occupations(arc, get_run(arc, None, run_id)), line, point)
     return [r for r in rows.to_pylist() if r["delivered"]]
 
 
@@ -76,7 +70,7 @@ def station_records(arc: Archive, survey_id: int, line: float, point: float, *,
     solved: dict[str, list[dict[str, Any]]] = {}
     for d in deliveries:
         table = arc.objects.read_table(d.final_hash)
-        rows = _at_station(table, line, point)
+        rows = rows_at(table, line, point).to_pylist()
         if not rows:
             continue
         legacy = "station_index" not in table.column_names

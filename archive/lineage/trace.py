@@ -18,50 +18,17 @@ from typing import Any
 
 import pyarrow as pa
 import pyarrow.compute as pc
-from sqlalchemy import or_, select
+from sqlalchemy import select
 
 from archive.deliver.deliveries import delivery_dict, raw_files_of
-from archive.deliver.runs import get_run, manifest_inputs, plain, run_manifest
 from archive.edits.log import edit_node, list_edits
 from archive.errors import UsageError
+from archive.lineage.common import plain, run_summary
+from archive.solve.run import get_run, manifest_inputs, run_manifest
 from archive.store.archive import Archive
 from archive.store.hashing import sha256_file
-from archive.store.models import Delivery, InputVersion, RawFile, Run
-
-INPUT_KINDS = ("stations", "deployments", "control", "dem")
-
-
-def input_tables(arc: Archive, survey_id: int, inputs: dict[str, Any]) -> list[dict[str, Any]]:
-    """The input versions a run read (matched by table or source hash), with who loaded them."""
-    hashes = {k: inputs.get(k) for k in INPUT_KINDS if isinstance(inputs.get(k), str)}
-    if not hashes:
-        return []
-    with arc.session() as s:
-        rows = s.scalars(select(InputVersion).where(
-            InputVersion.survey_id == survey_id,
-            or_(InputVersion.table_hash.in_(hashes.values()),
-                InputVersion.source_hash.in_(hashes.values())))).all()
-    out = []
-    for kind, h in hashes.items():
-        match = [r for r in rows if r.kind == kind and h in (r.table_hash, r.source_hash)]
-        r = match[0] if match else None
-        out.append({"kind": kind, "hash": h, "version": r.version if r else None,
-                    "name": r.original_name if r else None,
-                    "loaded_at": r.created_at if r else None,
-                    "loaded_by": r.created_by if r else None})
-    return out
-
-
-def run_summary(arc: Archive, run: Run) -> dict[str, Any]:
-    """A run with its parameters, code version and input hashes (from its manifest)."""
-    manifest = run_manifest(arc, run)
-    return {"id": run.id, "label": run.label, "created_at": run.created_at,
-            "created_by": run.created_by, "code_version": run.code_version,
-            "params": manifest.get("params", {}), "manifest_hash": run.manifest_hash,
-            "positions_digest": run.positions_digest,
-            "inputs": input_tables(arc, run.survey_id, manifest_inputs(manifest)),
-            "n_fix_tables": len(manifest_inputs(manifest).get("fixes", []))}
-
+from archive.store.models import Delivery, RawFile
+from archive.survey.keys import rows_at, station_text
 
 STATUSES = ("used", "rejected", "screened")
 
@@ -111,9 +78,9 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     """Everything behind station (line, point): per occupation (``index``/``node`` keep one)
     its deliveries, the run behind the latest one, its solution rows, the raw files whose
     fixes were in its cloud with the fix counts, and the station's edits."""
-    from archive.deliver.records import by_occupation, station_records
+    from archive.lineage.records import by_occupation, station_records
     from archive.solve.cloud import station_cloud
-    from archive.solve.occupancy import run_occupations, station_rows
+    from archive.solve.occupancy import run_occupations
 
     records = station_records(arc, survey_id, line, point)
     if index is not None:
@@ -122,8 +89,9 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
         records = [r for r in records if str(r["record"]["node"]) == str(node)]
     delivered = by_occupation(records)
     run = get_run(arc, survey_id, records[-1]["run"] if records else None)
-    solved = [r for r in station_rows(run_occupations(arc, run), line, point, index,
-                                      node).to_pylist() if r["kind"] == "logged"]
+    solved = [r for r in rows_at(run_occupations(arc, run), line, point, index, node,
+                                 index_column="occupation").to_pylist()
+              if r["kind"] == "logged"]
     edits = list_edits(arc, survey_id, all_edits=True, line=float(line), point=float(point))
     if index is not None:
         edits = [e for e in edits if e["index"] == int(index)]
@@ -131,7 +99,7 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
         edits = [e for e in edits if edit_node(e) in (None, str(node))]
     if not solved and not records and not edits:
         which = "".join(f" {k} {v}" for k, v in (("index", index), ("node", node)) if v)
-        raise UsageError(f"station {line:g}/{point:g}{which} is in no run, delivery or edit "
+        raise UsageError(f"station {station_text(line, point)}{which} is in no run, delivery or edit "
                          "of this survey", hint="check the line and point numbers")
     cloud = None
     if solved:

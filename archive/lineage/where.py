@@ -1,0 +1,94 @@
+"""``where``: the coordinates delivered for a station as of a date, or at a moment.
+
+One entry per occupation of the station (its latest delivered record and the history of its
+records, :mod:`archive.lineage.records`); ``--at`` picks the occupation whose logged window
+contains a moment (a shot time), and names the nearest occupations when none does.
+"""
+
+from __future__ import annotations
+
+from datetime import date, datetime
+from typing import Any
+
+import pyarrow as pa
+
+from archive.errors import UsageError
+from archive.lineage.common import plain
+from archive.store.archive import Archive
+from archive.survey.keys import station_mask, station_text
+from archive.times import parse_optional
+
+
+def _nearest(occupations: list[dict[str, Any]], t: datetime) -> list[dict[str, Any]]:
+    """The occupations closest in time to ``t`` (one ending before it, one starting after)."""
+    before = [o for o in occupations if o["retrieved"] is not None and o["retrieved"] <= t]
+    after = [o for o in occupations if o["deployed"] is not None and o["deployed"] > t]
+    out = []
+    if before:
+        o = max(before, key=lambda o: o["retrieved"])
+        out.append({"index": o["index"], "node": o["node"], "ended": o["retrieved"],
+                    "seconds_before": (t - o["retrieved"]).total_seconds()})
+    if after:
+        o = min(after, key=lambda o: o["deployed"])
+        out.append({"index": o["index"], "node": o["node"], "started": o["deployed"],
+                    "seconds_after": (o["deployed"] - t).total_seconds()})
+    return out
+
+
+def where(arc: Archive, survey_id: int, line: float, point: float, index: int | None = None,
+          as_of: str | date | datetime | None = None, *, node: str | None = None,
+          at: str | datetime | None = None) -> dict[str, Any]:
+    """The coordinates delivered for station (line, point) as of ``as_of`` (default: now).
+
+    One entry per occupation in ``occupations`` (its latest delivered record and the
+    history of its records); ``index``/``node`` keep one occupation. ``at`` (a UTC moment,
+    e.g. a shot time) picks the occupation whose logged window [deployed, retrieved)
+    contains it; a moment in no window gives ``delivered`` None and the ``nearest``
+    occupations. ``delivered`` is the chosen record, or the only occupation's. ``as_of``
+    and ``at`` follow :mod:`archive.times` (a date for ``as_of`` means the end of that day).
+    A station not in the current stations input is refused
+    (:class:`UsageError`).
+    """
+    from archive.lineage.records import by_occupation, holds, station_records
+    from archive.survey.inputs import current_input
+
+    cutoff = parse_optional(as_of, "--as-of", date_is_end=True)
+    moment = parse_optional(at, "--at")
+    found = current_input(arc, survey_id, "stations")
+    if found is None or found[1] is None or _station_absent(found[1], line, point):
+        raise UsageError(f"unknown station {station_text(line, point)}: not in the preplot"
+                         + (f" (stations version {found[0].version})" if found else ""),
+                         hint="check the line and point numbers")
+    records = station_records(arc, survey_id, line, point, cutoff=cutoff)
+    if index is not None:
+        records = [r for r in records if r["record"]["index"] == int(index)]
+    if node is not None:
+        records = [r for r in records if str(r["record"]["node"]) == str(node)]
+    occupations = by_occupation(records)
+    chosen, nearest = None, []
+    if moment is not None:
+        inside = [o for o in occupations if holds(o["delivered"]["record"], moment)]
+        chosen = inside[-1] if inside else None
+        nearest = [] if inside else _nearest(occupations, moment)
+    elif len(occupations) == 1:
+        chosen = occupations[0]
+    return plain({"station": {"line": float(line), "point": float(point)},
+                  "index": index, "node": node, "as_of": cutoff, "at": moment,
+                  "n_occupations": len(occupations),
+                  "delivered": _flat(chosen["delivered"]) if chosen else None,
+                  "occupations": [o | {"delivered": _flat(o["delivered"]),
+                                       "history": [_flat(h) for h in o["history"]]}
+                                  for o in occupations],
+                  "nearest": nearest})
+
+
+def _flat(entry: dict[str, Any]) -> dict[str, Any]:
+    """A delivery entry with its record's values at the top level."""
+    out = {k: v for k, v in entry.items() if k != "record"}
+    return out | entry["record"]
+
+
+def _station_absent(stations: pa.Table, line: float, point: float) -> bool:
+    import pyarrow.compute as pc
+
+    return not bool(pc.any(station_mask(stations, line, point)).as_py())
