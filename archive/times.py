@@ -50,3 +50,12 @@ def iso_z(t: datetime | None) -> str:
     if t is None:
         return "-"
     return t.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def us_array(col, fill: int):  # noqa: ANN001, ANN201 - pa.ChunkedArray -> np.ndarray
+    """A timestamp column as integer microseconds since 1970 UTC, nulls as ``fill``."""
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    arr = pc.fill_null(pc.cast(col, pa.int64()), fill)
+    return arr.to_numpy(zero_copy_only=False).astype("int64")

@@ -15,6 +15,7 @@ from archive.cli.options import (
 )
 from archive.cli.output import emit
 from archive.deliver.formats import FORMATS
+from archive.survey.keys import station_text
 
 
 @click.command()
@@ -61,7 +62,7 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
                  "occupied more than once")
         for m in res.merges:
             if not m["merged"]:
-                text += f"\n    {m['line']:g}/{m['point']:g} kept apart: {m['reason']}"
+                text += f"\n    {station_text(m['line'], m['point'])} kept apart: {m['reason']}"
     for w in res.warnings:
         text += f"\n  warning: {w}"
     emit(state, d, text)

@@ -10,6 +10,7 @@ import click
 from archive.cli.options import CliState, output_options, pass_state, survey_option
 from archive.cli.output import emit, table
 from archive.edits.kinds import SOURCES
+from archive.survey.keys import station_text
 
 
 def _station(f: Callable[..., Any]) -> Callable[..., Any]:
@@ -34,7 +35,7 @@ def _done(state: CliState, e: Any) -> None:
 
     d = edit_dict(e)
     occ = d["payload"].get("occupation") or {}
-    where = f"{d['line']:g}/{d['point']:g} index {d['index']}"
+    where = station_text(d["line"], d["point"], d["index"])
     if occ.get("node") or d["payload"].get("node"):
         where += f" (node {occ.get('node') or d['payload'].get('node')})"
     sup = f", supersedes edit {d['supersedes']}" if d["supersedes"] else ""

@@ -14,6 +14,7 @@ from archive.cli.options import (
     survey_option,
 )
 from archive.cli.output import emit, table
+from archive.survey.keys import station_text
 
 
 def _f(v: Any, fmt: str = "{:.3f}") -> str:
@@ -78,7 +79,7 @@ def _occupation_text(o: dict[str, Any]) -> list[str]:
 def _station_text(t: dict[str, Any]) -> str:
     st = t["station"]
     occs = t["occupations"]
-    out = [f"station {st['line']:g}/{st['point']:g}: {len(occs)} occupation(s)"
+    out = [f"station {station_text(st['line'], st['point'])}: {len(occs)} occupation(s)"
            + (" (each delivered under its own point index)" if len(occs) > 1 else "")]
     out += _run_text(t["run"])
     for o in occs:
@@ -151,7 +152,7 @@ def reproduce(state: CliState, run_ref: str, survey_name: str | None) -> None:
         lines.append(f"  {r['what_differs']}")
         lines.append(f"  {r['n_differing']} row(s) differ; largest horizontal difference "
                      f"{r['max_difference']:.6g} m"
-                     + (f" at {w['line']:g}/{w['point']:g}" if w else "")
+                     + (f" at {station_text(w['line'], w['point'])}" if w else "")
                      + f", largest vertical difference {r['max_vertical']:.6g} m")
     if r["code_version_differs"]:
         lines.append(f"  note: the run was made by nodekeep {r['run_code_version']}, this is "
@@ -205,7 +206,7 @@ def diff(state: CliState, run_a: str, run_b: str, threshold: float, station: str
         for what in ("added", "removed"):
             st = d[what]
             out.append(f"{what}: {len(st)}" + (": " + ", ".join(
-                f"{x['line']:g}/{x['point']:g} index {x['index']}" for x in st[:50])
+                station_text(x["line"], x["point"], x["index"]) for x in st[:50])
                 if st else ""))
         return "\n".join(out)
 
@@ -226,11 +227,12 @@ def _record_text(d: dict[str, Any]) -> str:
 
 def _where_text(w: dict[str, Any]) -> str:
     st = w["station"]
-    name = f"station {st['line']:g}/{st['point']:g}"
+    name = f"station {station_text(st['line'], st['point'])}"
     when = f" as of {_when(w['as_of'])}" if w["as_of"] else ""
     occs = w["occupations"]
     if not occs:
-        return f"{name} had not been delivered{when}"
+        return "\n".join([f"{name} had not been delivered{when}"]
+                         + [f"  note: {n}" for n in w["notes"]])
     out = []
     if w["at"] is not None:
         d = w["delivered"]
@@ -255,6 +257,7 @@ def _where_text(w: dict[str, Any]) -> str:
             d = o["delivered"]
             out.append(f"  index {o['index']}: node {d['node']}, {_window(d)}: "
                        f"{_record_text(d)}")
+    out += [f"  note: {n}" for n in w["notes"]]
     for o in occs:
         if w["at"] is not None and (w["delivered"] or {}).get("index") != o["index"]:
             continue

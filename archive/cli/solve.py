@@ -15,6 +15,7 @@ from archive.cli.options import (
     survey_option,
 )
 from archive.cli.output import Bar, emit, table
+from archive.survey.keys import station_text
 
 
 def _survey_id(state: CliState, name: str | None) -> int:
@@ -138,7 +139,7 @@ def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int) -> s
         margins = ("  (no usable fix in the settled window: solved from the settle-margin "
                    "fixes, uncertainty widened)" if r["from_margins"] else "")
         out += [
-            f"station {r['line']:g}/{r['point']:g} {occ}  node {r['node']}  "
+            f"station {station_text(r['line'], r['point'])} {occ}  node {r['node']}  "
             f"{r['kind']} part {r['part']}{'  (delivered)' if r['delivered'] else ''}",
             *([held] if held else []),
             f"  window     {r['t_start']} .. {r['t_end']}{margins}",

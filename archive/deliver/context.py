@@ -17,6 +17,7 @@ import pyarrow.compute as pc
 
 from archive.errors import Refused
 from archive.survey.crs import crs_from_epsg
+from archive.survey.keys import station_text
 
 # Which instant the day-of-year / time fields of SPS and SEG-P1 records hold.
 TIME_BASIS = "UTC, when the node was laid out (deployment log)"
@@ -92,16 +93,9 @@ class DeliveryContext:
 
 def station_label(table: pa.Table, i: int) -> str:
     """'station 1001/2001 index 1' for row ``i`` of a positions-like table."""
-    line = table.column("line")[i].as_py()
-    point = table.column("point")[i].as_py()
-    index = table.column("index")[i].as_py()
-    return f"station {_num(line)}/{_num(point)} index {index}"
-
-
-def _num(v: float | None) -> str:
-    if v is None:
-        return "?"
-    return str(int(v)) if float(v).is_integer() else f"{v:g}"
+    return "station " + station_text(table.column("line")[i].as_py(),
+                                     table.column("point")[i].as_py(),
+                                     table.column("index")[i].as_py())
 
 
 def check_unique_keys(table: pa.Table, fmt_name: str) -> None:

@@ -37,6 +37,7 @@ from archive.store.hashing import table_digest
 from archive.store.ledger import row_digest
 from archive.store.models import Delivery, LedgerHead, RawFile, Run, Survey, utcnow
 from archive.store.outfiles import temp_beside
+from archive.survey.keys import station_text
 
 LINEAGE_SUFFIX = ".lineage.json"
 
@@ -119,7 +120,7 @@ def _json_bytes(doc: dict[str, Any]) -> bytes:
 
 
 def _station(e: Any) -> str:
-    return f"station {e.line:g}/{e.point:g} index {e.point_index}"
+    return f"station {station_text(e.line, e.point, e.point_index)}"
 
 
 def check_target(path: Path, force: bool) -> None:

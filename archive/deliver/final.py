@@ -72,6 +72,9 @@ FINAL_SCHEMA = pa.schema(
         pa.field("flags_acknowledged", pa.string(), nullable=False),
         pa.field("source", pa.string(), nullable=False),
         pa.field("merged", pa.string(), nullable=False),  # "1;2": occupations merged here
+        # the merged occupations' logged windows, "deployed/retrieved;..." (ISO 8601, an
+        # empty end while still out); "" for a single occupation (its window is above)
+        pa.field("windows", pa.string(), nullable=False),
     ],
     metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "2"},
 )
@@ -117,6 +120,7 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
     cols["flags_acknowledged"] = [""] * n
     cols["source"] = ["solver"] * n
     cols["merged"] = [""] * n
+    cols["windows"] = [""] * n
     cols["flags"] = [f or "" for f in cols["flags"]]
     rows = {_key(a, b, c): i for i, (a, b, c) in
             enumerate(zip(cols["line"], cols["point"], cols["index"], strict=True))}
@@ -134,6 +138,7 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
         cols["line"][i], cols["point"][i], cols["index"][i] = key
         cols["station_index"][i] = key[2]
         cols["flags"][i], cols["flags_acknowledged"][i], cols["merged"][i] = "", "", ""
+        cols["windows"][i] = ""
         cols["source"][i], cols["n_used"][i], cols["n_rejected"][i] = "", 0, 0
         rows[key] = i
         return i

@@ -1,11 +1,17 @@
 """Merging the occupations of a station that cannot be told apart (``deliver --merge-occupations``).
 
 By default every occupation of a station is delivered under its own point index. On request,
-a station whose occupations are statistically indistinguishable is delivered as one position:
+a station whose occupations cannot be told apart statistically is delivered as one position:
 
-- **test**: every pair of its occupations differs by less than the 95 % radius of the
-  difference (the radius holding 95 % of a 2-D normal with covariance C_i + C_j, the two
-  occupations being independent solutions). One pair apart keeps the whole station apart.
+- **test**: the occupations are one point observed k times (the hypothesis); their spread
+  about the combined position, T = Σ (pᵢ − p̄)ᵀ Cᵢ⁻¹ (pᵢ − p̄), follows χ² with 2(k − 1)
+  degrees of freedom under it (the homogeneity test of generalised least squares), so the
+  station merges when T ≤ χ²₂₍ₖ₋₁₎(0.95). For two occupations this is their difference
+  inside the 95 % ellipse of the difference (covariance C₁ + C₂). The test uses every
+  occupation at once, so the chance of wrongly keeping a station apart stays 5 % however
+  often it was occupied.
+- **one preplot station**: occupations are grouped by line, point and the preplot's point
+  index, never across two planned positions of one point.
 - **only solver positions merge**: an occupation changed by an edit (set position or height),
   or without an uncertainty, keeps the station apart; the decision says why.
 - **combined position**: the information-weighted mean p = C·Σ C_i⁻¹ p_i with
@@ -13,8 +19,9 @@ a station whose occupations are statistically indistinguishable is delivered as 
   combined uncertainty is C; ``r95`` is the radius holding 95 % of it.
 - **the merged row**: the lowest point index of the station (index 1 when the first
   occupation is among them), nodes joined with ``+``, the window from the first deployment to
-  the last retrieval, fix counts summed, flags of every occupation, ``merged`` listing the
-  indices merged (``1;2``), ``source`` ``solver;merged``. The height is the elevation model
+  the last retrieval (``windows`` keeps each occupation's own window), fix counts summed,
+  flags of every occupation, ``merged`` listing the indices merged (``1;2``), ``source``
+  ``solver;merged``. The height is the elevation model
   sampled at the combined position when every occupation's height came from the model, else
   the weighted mean of their heights (weights 1/trace C_i).
 
@@ -29,6 +36,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+from scipy.stats import chi2
 
 from archive.solve.schema import FLAGS
 from archive.solve.uncertainty import radius95
@@ -52,19 +60,26 @@ def _mergeable(rows: list[dict[str, Any]]) -> str | None:
     return None
 
 
-def _pairs(rows: list[dict[str, Any]], cov: list[np.ndarray], unit: float
-           ) -> list[dict[str, Any]]:
-    out = []
-    for i in range(len(rows)):
-        for j in range(i + 1, len(rows)):
-            c = cov[i] + cov[j]
-            d = unit * float(np.hypot(rows[i]["easting"] - rows[j]["easting"],
-                                      rows[i]["northing"] - rows[j]["northing"]))
-            r = float(radius95(np.array([c[0, 0]]), np.array([c[1, 1]]),
-                               np.array([c[0, 1]]))[0])
-            out.append({"indices": [rows[i]["index"], rows[j]["index"]],
-                        "distance_m": d, "radius95_m": r, "inside": d <= r})
-    return out
+def _pairs(rows: list[dict[str, Any]], unit: float) -> list[dict[str, Any]]:
+    """Distances between occupations (for the record; the test is :func:`_homogeneity`)."""
+    return [{"indices": [rows[i]["index"], rows[j]["index"]],
+             "distance_m": unit * float(np.hypot(rows[i]["easting"] - rows[j]["easting"],
+                                                 rows[i]["northing"] - rows[j]["northing"]))}
+            for i in range(len(rows)) for j in range(i + 1, len(rows))]
+
+
+def _homogeneity(rows: list[dict[str, Any]], cov: list[np.ndarray], unit: float
+                 ) -> dict[str, Any]:
+    """T = Σ (pᵢ − p̄)ᵀ Cᵢ⁻¹ (pᵢ − p̄) about the combined position, its degrees of freedom and
+    the 95 % quantile of χ² it is compared with."""
+    info = [np.linalg.inv(c) for c in cov]
+    c = np.linalg.inv(sum(info))
+    p = np.array([[r["easting"], r["northing"]] for r in rows]) * unit
+    mean = c @ sum(w @ x for w, x in zip(info, p, strict=True))
+    t = float(sum((x - mean) @ w @ (x - mean) for w, x in zip(info, p, strict=True)))
+    dof = 2 * (len(rows) - 1)
+    limit = float(chi2.ppf(0.95, dof))
+    return {"statistic": t, "dof": dof, "limit": limit, "inside": t <= limit}
 
 
 def _join_flags(texts: list[str]) -> str:
@@ -99,7 +114,7 @@ def _combined(rows: list[dict[str, Any]], cov: list[np.ndarray], unit: float,
         "line": rows[0]["line"], "point": rows[0]["point"],
         "index": min(r["index"] for r in rows),
         "station_index": min(r["station_index"] for r in rows),
-        "node": "+".join(str(r["node"]) for r in rows),
+        "node": "+".join(dict.fromkeys(str(r["node"]) for r in rows)),
         "deployed": min(r["deployed"] for r in rows if r["deployed"] is not None)
         if any(r["deployed"] is not None for r in rows) else None,
         "retrieved": None if any(t is None for t in retrieved) else max(retrieved),
@@ -115,6 +130,9 @@ def _combined(rows: list[dict[str, Any]], cov: list[np.ndarray], unit: float,
         "flags_acknowledged": _join_flags([r["flags_acknowledged"] for r in rows]),
         "source": "solver;merged",
         "merged": ";".join(str(r["index"]) for r in rows),
+        "windows": ";".join(
+            f"{r['deployed'].isoformat() if r['deployed'] else ''}/"
+            f"{r['retrieved'].isoformat() if r['retrieved'] else ''}" for r in rows),
     }
 
 
@@ -127,35 +145,39 @@ def merge_occupations(table: pa.Table, unit_factor: float, height_at: HeightAt |
     pairwise tests and whether it was merged (or why not).
     """
     rows = table.to_pylist()
-    groups: dict[tuple[float, float], list[int]] = {}
+    groups: dict[tuple[float, float, int], list[int]] = {}
     for i, r in enumerate(rows):  # one entry per delivered occupation, not per fix
-        groups.setdefault((r["line"], r["point"]), []).append(i)
+        groups.setdefault((r["line"], r["point"], r["station_index"]), []).append(i)
     out: list[dict[str, Any]] = []
     decisions: list[dict[str, Any]] = []
-    for (line, point), members in groups.items():
+    for (line, point, station_index), members in groups.items():
         group = sorted((rows[i] for i in members), key=lambda r: r["index"])
         if len(group) == 1:
             out.append(group[0])
             continue
         decision: dict[str, Any] = {"line": line, "point": point,
+                                    "station_index": station_index,
                                     "indices": [r["index"] for r in group],
                                     "nodes": [r["node"] for r in group], "merged": False}
         why = _mergeable(group)
         if why is None:
             cov = [_covariance(r["sigma_e"], r["sigma_n"], r.get("corr_en")) for r in group]
-            decision["pairs"] = _pairs(group, cov, unit_factor)
-            if all(p["inside"] for p in decision["pairs"]):
+            decision["pairs"] = _pairs(group, unit_factor)
+            decision["test"] = _homogeneity(group, cov, unit_factor)
+            if decision["test"]["inside"]:
                 merged = _combined(group, cov, unit_factor, height_at)
                 decision |= {"merged": True, "index": merged["index"],
                              "easting": merged["easting"], "northing": merged["northing"],
                              "r95_m": merged["r95"]}
                 out.append(merged)
             else:
-                far = [p for p in decision["pairs"] if not p["inside"]]
+                far = max(decision["pairs"], key=lambda p: p["distance_m"])
+                t = decision["test"]
                 decision["reason"] = (
-                    f"indices {far[0]['indices'][0]} and {far[0]['indices'][1]} are "
-                    f"{far[0]['distance_m']:.2f} m apart, beyond the 95 % radius "
-                    f"{far[0]['radius95_m']:.2f} m of their difference")
+                    f"the occupations differ beyond their uncertainty (chi-square "
+                    f"{t['statistic']:.1f} on {t['dof']} degrees of freedom, 95 % limit "
+                    f"{t['limit']:.1f}); indices {far['indices'][0]} and {far['indices'][1]} "
+                    f"are {far['distance_m']:.2f} m apart")
                 out += group
         else:
             decision["reason"] = why

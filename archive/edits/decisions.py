@@ -8,7 +8,7 @@ undone one had replaced.
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any
 
 from sqlalchemy import select
@@ -73,7 +73,7 @@ def set_position(arc: Archive, survey_id: int, line: float, point: float,
                    "input": {"kind": "stations", "version": pre["stations_version"],
                              "table": pre["stations_hash"]}}
     elif source == "control":
-        c = control_row(arc, survey_id, line, point, st_index)
+        c = control_row(arc, survey_id, line, point, st_index, occ)
         payload = {"source": "control", "easting": c["easting"], "northing": c["northing"],
                    "sigma_e": c.get("sigma_e"), "sigma_n": c.get("sigma_n"),
                    "height": c.get("height"),
@@ -106,7 +106,7 @@ def set_height(arc: Archive, survey_id: int, line: float, point: float,
                    "input": {"kind": "stations", "version": pre["stations_version"],
                              "table": pre["stations_hash"]}}
     elif source == "control":
-        c = control_row(arc, survey_id, line, point, st_index)
+        c = control_row(arc, survey_id, line, point, st_index, occ)
         if c.get("height") is None:
             raise UsageError(f"the check point at {where} has no height",
                              hint="use --from given --height H")
@@ -128,7 +128,9 @@ def exclude_span(arc: Archive, survey_id: int, line: float, point: float,
     overlaps (``index`` narrows the choice). Refused (UsageError naming the occupations
     there) when ``node`` was never deployed at the station in the current deployment log, or
     when the span overlaps none of its deployment windows there: such a span could have no
-    effect. Times follow :mod:`archive.times` (no zone: UTC).
+    effect. The span is cut to the occupation's logged window [deployed, retrieved) (the
+    payload keeps what was asked under ``asked``), so it never leaves out the node's fixes
+    at another station. Times follow :mod:`archive.times` (no zone: UTC).
     """
     reason = require_reason(reason)
     node = (node or "").strip()
@@ -139,7 +141,14 @@ def exclude_span(arc: Archive, survey_id: int, line: float, point: float,
         raise UsageError(f"the span ends ({t1.isoformat()}) before it starts ({t0.isoformat()})")
     occ = span_occupation(arc, survey_id, line, point, index, node, t0, t1)
     station_row(arc, survey_id, line, point, occ["station_index"])
-    payload = {"node": node, "start": t0.isoformat(), "end": t1.isoformat()}
+    # the span acts on the node's fixes by time: cut it to this occupation's logged window
+    # so it never reaches the node's deployment at another station
+    c0 = max(t0, occ["deployed"])
+    c1 = t1 if occ["retrieved"] is None else min(t1, occ["retrieved"] - timedelta(microseconds=1))
+    payload: dict[str, Any] = {"node": node, "start": c0.isoformat(), "end": c1.isoformat()}
+    if (c0, c1) != (t0, t1):
+        payload["asked"] = {"start": t0.isoformat(), "end": t1.isoformat()}
+    payload |= occupation_payload(occ)
     return record_edit(arc, survey_id, "exclude-span", line, point, occ["index"], payload,
                        reason)
 

@@ -16,7 +16,13 @@ from archive.errors import UsageError
 from archive.store.archive import Archive
 from archive.survey.inputs import require_input
 from archive.survey.keys import rows_at, station_text
-from archive.survey.occupations import choose, current_occupations, listing, pick_one
+from archive.survey.occupations import (
+    choose,
+    current_occupations,
+    listing,
+    pick_one,
+    window_text,
+)
 
 
 def station_row(arc: Archive, survey_id: int, line: float, point: float,
@@ -32,16 +38,41 @@ def station_row(arc: Archive, survey_id: int, line: float, point: float,
     return rows[0] | {"stations_version": version.version, "stations_hash": version.table_hash}
 
 
-def control_row(arc: Archive, survey_id: int, line: float, point: float,
-                index: int) -> dict[str, Any]:
-    """The RTK check point of a preplot station (the last record when surveyed again)."""
-    version, table = require_input(arc, survey_id, "control",
-                                   "use another --from source")
+def control_row(arc: Archive, survey_id: int, line: float, point: float, index: int,
+                occupation: dict[str, Any] | None = None) -> dict[str, Any]:
+    """The RTK check point of a preplot station that surveyed ``occupation``.
+
+    A check point surveys the sensor of the node then in the ground. At a station occupied
+    more than once it is the check point surveyed inside the occupation's logged window
+    (the last such record when surveyed again); a station occupied once takes the last
+    record. UsageError, listing the check points and their survey times, when none belongs
+    to the occupation.
+    """
+    version, table = require_input(arc, survey_id, "control", "use another --from source")
     rows = rows_at(table, line, point, index).to_pylist()
+    where = station_text(line, point, index)
     if not rows:
-        raise UsageError(f"no check point at station {station_text(line, point, index)} "
-                         f"(control version {version.version})",
+        raise UsageError(f"no check point at station {where} (control version "
+                         f"{version.version})",
                          hint="use --from preplot or --from given with coordinates")
+    _, occs = current_occupations(arc, survey_id, line, point)
+    if occupation is not None and len([o for o in occs
+                                        if o["station_index"] == index]) > 1:
+        inside = [r for r in rows if r.get("surveyed") is not None
+                  and r["surveyed"] >= occupation["deployed"]
+                  and (occupation["retrieved"] is None
+                       or r["surveyed"] < occupation["retrieved"])]
+        if not inside:
+            told = "; ".join(
+                "surveyed " + (r["surveyed"].strftime("%Y-%m-%dT%H:%M:%SZ")
+                               if r.get("surveyed") else "at an unknown time")
+                for r in rows)
+            raise UsageError(f"no check point at station {where} was surveyed while node "
+                             f"{occupation['node']} was there ({window_text(occupation)}); "
+                             f"the station's check points: {told}",
+                             hint="a check point surveys the sensor of the node then in the "
+                                  "ground: use --from preplot or --from given")
+        rows = inside
     return rows[-1] | {"control_version": version.version, "control_hash": version.table_hash}
 
 
@@ -54,6 +85,15 @@ def target(arc: Archive, survey_id: int, line: float, point: float, index: int |
     is refused with the list of its occupations (``what`` names the edit in the message).
     """
     _, occs = current_occupations(arc, survey_id, line, point)
+    if (index is not None and node is None and occs
+            and not any(o["index"] == index or o["station_index"] == index for o in occs)):
+        # a preplot station of this line and point that was never laid out
+        try:
+            station_row(arc, survey_id, line, point, index)
+        except UsageError:
+            pass
+        else:
+            return int(index), int(index), None
     occ = pick_one(occs, line, point, index, node, what=what)
     if occ is None:
         idx = 1 if index is None else int(index)

@@ -23,7 +23,8 @@ from archive.survey.keys import rows_at
 
 RECORD_KEYS = ("index", "station_index", "node", "deployed", "retrieved", "easting",
                "northing", "height", "height_source", "lat", "lon", "sigma_e", "sigma_n",
-               "r95", "source", "flags", "flags_acknowledged", "merged", "t_start", "t_end")
+               "r95", "source", "flags", "flags_acknowledged", "merged", "windows",
+               "t_start", "t_end", "file_index")
 
 
 def _legacy_lookup(arc: Archive, run_id: str, line: float, point: float
@@ -44,6 +45,7 @@ def _tie_legacy(record: dict[str, Any], solved: list[dict[str, Any]]) -> dict[st
     row = (exact or same or [None])[0]
     out = dict(record)
     out["station_index"] = record.get("index")
+    out["file_index"] = record.get("index")  # the key as that file holds it
     if row is not None:
         out |= {"index": row["occupation"] if row["occupation"] is not None else row["index"],
                 "deployed": row["deployed"], "retrieved": row["retrieved"]}
@@ -84,7 +86,16 @@ def station_records(arc: Archive, survey_id: int, line: float, point: float, *,
 
 
 def holds(record: dict[str, Any], t: datetime) -> bool:
-    """Whether ``t`` falls in the record's occupation window [deployed, retrieved)."""
+    """Whether ``t`` falls in the record's occupation window [deployed, retrieved), or in
+    the window of one of the occupations merged into it."""
+    if record.get("windows"):
+        for part in record["windows"].split(";"):
+            a, _, b = part.partition("/")
+            start = datetime.fromisoformat(a) if a else None
+            end = datetime.fromisoformat(b) if b else None
+            if start is not None and start <= t and (end is None or t < end):
+                return True
+        return False
     start, end = record.get("deployed"), record.get("retrieved")
     return start is not None and start <= t and (end is None or t < end)
 

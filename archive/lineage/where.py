@@ -53,17 +53,34 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int | 
     from archive.survey.inputs import current_input
 
     cutoff = parse_optional(as_of, "--as-of", date_is_end=True)
+    if isinstance(at, str) and len(at.strip()) == 10:
+        raise UsageError(f"--at {at.strip()!r} is a date; it needs a moment (a shot time)",
+                         hint="write it like 2025-04-08T14:03:00Z")
     moment = parse_optional(at, "--at")
     found = current_input(arc, survey_id, "stations")
     if found is None or found[1] is None or _station_absent(found[1], line, point):
         raise UsageError(f"unknown station {station_text(line, point)}: not in the preplot"
                          + (f" (stations version {found[0].version})" if found else ""),
                          hint="check the line and point numbers")
-    records = station_records(arc, survey_id, line, point, cutoff=cutoff)
-    if index is not None:
-        records = [r for r in records if r["record"]["index"] == int(index)]
-    if node is not None:
-        records = [r for r in records if str(r["record"]["node"]) == str(node)]
+    every = station_records(arc, survey_id, line, point, cutoff=cutoff)
+    records = [r for r in every
+               if (index is None or r["record"]["index"] == int(index))
+               and (node is None or str(r["record"]["node"]) == str(node))]
+    notes = []
+    if not records and every and index is not None:
+        into = [r for r in every
+                if str(index) in (r["record"].get("merged") or "").split(";")]
+        if into:  # delivered merged into another record
+            records = into
+            notes.append(f"index {index} was delivered merged into index "
+                         f"{into[-1]['record']['index']} (--merge-occupations)")
+    if not records and every:
+        have = sorted({(r["record"]["index"], r["record"]["node"]) for r in every})
+        notes.append("no delivered occupation of the station has "
+                     + " and ".join(x for x in (f"index {index}" if index is not None else "",
+                                                f"node {node}" if node is not None else "")
+                                    if x)
+                     + "; delivered: " + ", ".join(f"index {k} (node {n})" for k, n in have))
     occupations = by_occupation(records)
     chosen, nearest = None, []
     if moment is not None:
@@ -72,6 +89,16 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int | 
         nearest = [] if inside else _nearest(occupations, moment)
     elif len(occupations) == 1:
         chosen = occupations[0]
+    if chosen is not None:
+        rec = chosen["delivered"]["record"]
+        moved = {f for f in ((rec.get("flags") or "") + ";"
+                             + (rec.get("flags_acknowledged") or "")).split(";") if f}
+        if "moved" in moved:
+            notes.append("the node moved during this occupation: the delivered position is "
+                         "where it stood at the end ('nodekeep trace' shows each part)")
+        if rec.get("file_index") is not None and rec["file_index"] != rec["index"]:
+            notes.append(f"that file, written before occupations were numbered, holds this "
+                         f"record under index {rec['file_index']}")
     return plain({"station": {"line": float(line), "point": float(point)},
                   "index": index, "node": node, "as_of": cutoff, "at": moment,
                   "n_occupations": len(occupations),
@@ -79,7 +106,7 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int | 
                   "occupations": [o | {"delivered": _flat(o["delivered"]),
                                        "history": [_flat(h) for h in o["history"]]}
                                   for o in occupations],
-                  "nearest": nearest})
+                  "nearest": nearest, "notes": notes})
 
 
 def _flat(entry: dict[str, Any]) -> dict[str, Any]:

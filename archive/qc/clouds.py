@@ -16,6 +16,7 @@ import pyarrow.compute as pc
 from matplotlib.ticker import MaxNLocator
 
 from archive.qc import style
+from archive.survey.keys import station_text
 
 FAR = 60.0
 """A preplot or check point farther than this (metres) from the solved position is named
@@ -106,7 +107,7 @@ def cloud_figure(st: Station, cloud: pa.Table | None) -> tuple[str, str]:
     ax.set_ylabel("North of solved position (m)")
     ax.axhline(0, color="#E5E5E5", lw=0.5, zorder=0)
     ax.axvline(0, color="#E5E5E5", lw=0.5, zorder=0)
-    ax.set_title(f"{st.line:g} / {st.point:g}" + (f" (index {st.index})" if st.index != 1 else ""),
+    ax.set_title(station_text(st.line, st.point, st.index if st.index != 1 else None),
                  loc="left")
     style.legend(ax, loc="upper center", bbox_to_anchor=(0.5, -0.15), ncol=2, fontsize=7.5,
                  frameon=False, handletextpad=0.3, columnspacing=1.0)

@@ -33,6 +33,7 @@ from archive.qc.sources import RunData, cloud_reader, load_run_data
 from archive.qc.stats import delivered
 from archive.store.archive import Archive
 from archive.store.outfiles import write_file
+from archive.survey.keys import station_text
 
 MAX_CLOUDS = 40
 """Stations drawn with their fix cloud; the rest of the review list is tabled only."""
@@ -131,7 +132,7 @@ def _review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
         return "<p>No station needs review.</p>"
     rows = []
     for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
-        name = f"{r.line:g} / {r.point:g}"
+        name = station_text(r.line, r.point)
         link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
         rows.append((link, r.occupation, escape(str(r.node)),
                      escape(r.reasons.replace(";", ", ")),
@@ -164,9 +165,9 @@ def _clouds(df: pd.DataFrame, read_cloud: CloudReader | None, max_clouds: int,
                 problem = f"fixes unavailable: {exc}"
         uri, caption = cloud_figure(_station(r), cloud)
         caption = f"{r.reasons.replace(';', ', ')}. {caption}" + (f"; {problem}" if problem else "")
-        parts.append(html.figure(uri, caption, "cloud", f"fix cloud of station {r.line:g}/{r.point:g}")
+        parts.append(html.figure(uri, caption, "cloud", f"fix cloud of station {station_text(r.line, r.point, r.occupation)}")
                      .replace('id="fig-cloud"', f'id="cloud-{i}"'))
-        progress.advance(1, f"{r.line:g}/{r.point:g}")
+        progress.advance(1, station_text(r.line, r.point))
     note = ""
     if len(df) > max_clouds:
         note = (f'<p class="note">Fix clouds are drawn for the first {max_clouds} of '

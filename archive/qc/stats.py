@@ -80,17 +80,13 @@ def _us(col: pd.Series) -> np.ndarray:
         dtype=np.int64)
 
 
-def latest_checks(control: pa.Table) -> pa.Table:
-    """One check point per station: the latest surveyed (then the last in the file)."""
-    df = control.select([*KEY, "easting", "northing", "height", "surveyed", "src_line"]).to_pandas()
-    df = df.sort_values(["surveyed", "src_line"], na_position="first", kind="stable")
-    df = df.drop_duplicates(KEY, keep="last")
-    return pa.Table.from_pandas(df, preserve_index=False)
-
-
 def join_checks(positions: pa.Table, control: pa.Table,
                 stations: pa.Table | None = None) -> pa.Table:
-    """Per station with a delivered position and a check point: the differences.
+    """Per occupation with a delivered position and a check point: the differences.
+
+    Each check point is tied to the occupation in the ground when it was surveyed (else the
+    nearest in time; without a survey time, the last occupation), and an occupation
+    surveyed more than once keeps its latest check.
 
     The preplot comes from the positions table (``preplot_e``/``preplot_n``), or from
     ``stations`` when the positions carry none; the preplot height from ``stations``'
@@ -103,12 +99,16 @@ def join_checks(positions: pa.Table, control: pa.Table,
     for c in ("occupation", "deployed", "retrieved"):
         pos[c] = dl[c].to_pandas() if c in dl.column_names else None
     pos["occupation"] = pos["occupation"].fillna(pos["index"])
-    chk = latest_checks(control).to_pandas().rename(
-        columns={"easting": "check_e", "northing": "check_n", "height": "check_h"})
+    chk = control.select([*KEY, "easting", "northing", "height", "surveyed", "src_line"]) \
+        .to_pandas().rename(columns={"easting": "check_e", "northing": "check_n",
+                                     "height": "check_h"})
     chk["_chk"] = np.arange(len(chk))
-    df = pos.merge(chk[[*KEY, "check_e", "check_n", "check_h", "surveyed", "_chk"]], on=KEY,
-                   how="inner")
+    df = pos.merge(chk[[*KEY, "check_e", "check_n", "check_h", "surveyed", "src_line",
+                        "_chk"]], on=KEY, how="inner")
+    # each check point to the occupation it surveyed, then the latest check per occupation
     df = _nearest_occupation(df)
+    df = df.sort_values(["surveyed", "src_line"], na_position="first", kind="stable")
+    df = df.drop_duplicates([*KEY, "occupation"], keep="last")
     df["preplot_h"] = np.nan
     if stations is not None and stations.num_rows:
         st = stations.select([*KEY, "easting", "northing", "elevation"]).to_pandas()

@@ -23,6 +23,7 @@ from archive.solve.screen import SCREEN_REASONS
 from archive.solve.windows import FOREVER, Windows, no_windows
 from archive.store.archive import Archive
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+from archive.survey.keys import station_text
 
 CLOUD_SCHEMA = pa.schema([
     pa.field("time", pa.timestamp("us", tz="UTC"), nullable=False),
@@ -77,7 +78,7 @@ def station_cloud(arc: Archive, run_id: str, line: float, point: float,
     if not nodes:
         which = (f" occupation {occupation}" if occupation is not None
                  else f" index {index}" if index is not None else "")
-        raise UsageError(f"station {line:g}/{point:g}{which} has no deployment in run "
+        raise UsageError(f"station {station_text(line, point)}{which} has no deployment in run "
                          f"{run.id[:12]}", hint="check the line and point numbers")
     hashes = list(dict.fromkeys(h for n, h, _ in inp.fix_files if n in nodes or n == ""))
     fixes = load_fix_tables(arc, hashes)

@@ -15,10 +15,10 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from archive.solve.schema import POSITION_SCHEMA
 from archive.survey.occupations import Records, number_occupations, with_occupations
+from archive.times import us_array
 
 UPGRADE_COLUMNS = ("occupation", "deployed", "retrieved", "from_margins")
 
@@ -27,7 +27,7 @@ NULL_US = np.iinfo(np.int64).min  # a null timestamp while the columns are int64
 
 
 def _us(col: pa.ChunkedArray) -> np.ndarray:
-    return pc.fill_null(pc.cast(col, pa.int64()), NULL_US).to_numpy(zero_copy_only=False)
+    return us_array(col, NULL_US)
 
 
 def _from_deployments(positions: pa.Table, deployments: pa.Table) -> dict[str, np.ndarray]:
@@ -76,7 +76,7 @@ def _from_rows(positions: pa.Table) -> dict[str, np.ndarray]:
                   index=first["index"].to_numpy(np.int64),
                   node=first["node"].to_numpy(object), start=first["t"].to_numpy(np.int64),
                   end=first["t"].to_numpy(np.int64), order=np.arange(len(first)))
-    first["occupation"] = number_occupations(rec)
+    first["occupation"] = number_occupations(rec).occupation
     m = logged.merge(first.drop(columns="t"), on=["line", "point", "index", "node"])
     occ = np.zeros(n, dtype=np.int8)
     occ[m["row"].to_numpy()] = m["occupation"].to_numpy()

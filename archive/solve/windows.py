@@ -13,10 +13,10 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from archive.solve.fixarrays import FixArrays
 from archive.solve.segments import expand_ranges
+from archive.times import us_array
 
 FOREVER = np.iinfo(np.int64).max // 4
 
@@ -48,8 +48,7 @@ class Windows:
 
 
 def _us(col: pa.ChunkedArray) -> np.ndarray:
-    arr = pc.cast(col, pa.int64())
-    return pc.fill_null(arr, FOREVER).to_numpy(zero_copy_only=False).astype(np.int64)
+    return us_array(col, FOREVER)
 
 
 def node_codes(names: np.ndarray, fx: FixArrays) -> np.ndarray:

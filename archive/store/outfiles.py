@@ -18,12 +18,25 @@ from pathlib import Path
 _UMASK_LOCK = threading.Lock()
 
 
-def new_file_mode() -> int:
-    """The mode a new regular file gets under the process umask (``0o666 & ~umask``)."""
-    with _UMASK_LOCK:  # os.umask can only be read by setting it
+def _umask() -> int:
+    """The process umask: read from /proc where the kernel shows it (Linux 4.7 and later),
+    else by setting and restoring it under a lock (os.umask can only be read that way)."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    with _UMASK_LOCK:
         mask = os.umask(0o022)
         os.umask(mask)
-    return 0o666 & ~mask
+    return mask
+
+
+def new_file_mode() -> int:
+    """The mode a new regular file gets under the process umask (``0o666 & ~umask``)."""
+    return 0o666 & ~_umask()
 
 
 def temp_beside(target: Path, data: bytes) -> Path:

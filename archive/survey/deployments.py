@@ -19,19 +19,19 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from archive.errors import InputError
 from archive.survey.csvtable import parse_column_mapping, read_csv_columns
-from archive.survey.occupations import with_occupations
+from archive.survey.keys import station_text
+from archive.survey.occupations import OPEN_END, number_log
 from archive.survey.parsed import ParsedInput, problem
 from archive.survey.schema import DEPLOYMENT_LOG_SCHEMA
 from archive.survey.stations import unknown_stations
+from archive.times import us_array
 
 REQUIRED = ("node", "line", "point", "deployed_utc", "retrieved_utc")
 OPTIONAL = ("index",)
 FIELDS = REQUIRED + OPTIONAL
-OPEN_END = np.iinfo(np.int64).max  # a deployment without retrieval lasts "for ever"
 
 
 def read_deployments(data: bytes, path: str,
@@ -65,11 +65,15 @@ def read_deployments(data: bytes, path: str,
     return ParsedInput(table=table, meta={"format": "csv", "columns": mapping})
 
 
-def number_occupations(table: pa.Table, path: str, previous: pa.Table | None) -> pa.Table:
-    """The log with its ``occupation`` column numbered against the ``previous`` version
-    (:mod:`archive.survey.occupations`); a station occupied too often is refused."""
+def number_occupations(table: pa.Table, path: str, previous: pa.Table | None = None,
+                       retired: list[dict[str, Any]] | tuple = (),
+                       preplot: pa.Table | None = None) -> tuple[pa.Table, list[dict[str, Any]]]:
+    """The log with its ``occupation`` column numbered against the previous version, the
+    occupations retired before and the preplot's point indices
+    (:func:`archive.survey.occupations.number_log`); a station occupied too often is
+    refused. Returns the table and the retired occupations to keep with the version."""
     try:
-        return with_occupations(table, previous)
+        return number_log(table, previous, retired, preplot)
     except ValueError as exc:
         raise InputError(path, str(exc), expected="at most 127 occupations of one station "
                          "(SPS rev 2.1 writes point indices 1-9)") from None
@@ -79,7 +83,7 @@ def check_deployments(table: pa.Table, stations: pa.Table | None) -> list[dict[s
     """Every problem of a deployment table, sorted by line."""
     out = unknown_stations(table, stations, "deployment")
     start = table["deployed"].cast(pa.int64()).to_numpy()
-    end = pc.fill_null(table["retrieved"].cast(pa.int64()), OPEN_END).to_numpy()
+    end = us_array(table["retrieved"], OPEN_END)  # still out: "for ever"
     src = table["src_line"].to_numpy()
     backwards = np.flatnonzero(end < start)
     dep = table["deployed"].to_pylist()
@@ -93,7 +97,7 @@ def check_deployments(table: pa.Table, stations: pa.Table | None) -> list[dict[s
     line, point, index = (table[k].to_numpy() for k in ("line", "point", "index"))
     station = pd.DataFrame({"l": line, "p": point, "i": index}).groupby(["l", "p", "i"]).ngroup()
     out += _overlaps(station.to_numpy(), start, end, src,
-                     lambda i: f"station {line[i]:g}/{point[i]:g} index {index[i]} holds two "
+                     lambda i: f"station {station_text(line[i], point[i], index[i])} holds two "
                                "nodes at once",
                      "station-occupied")
     return sorted(out, key=lambda w: (w["line"] or 0, w["code"]))

@@ -7,10 +7,10 @@ Line and point numbers are written short (``1001``, ``1001.5``, never ``1.0015e+
 
 from __future__ import annotations
 
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import pyarrow as pa
-import pyarrow.compute as pc
+if TYPE_CHECKING:  # the formatters are used at command start: pyarrow loads when tables do
+    import pyarrow as pa
 
 
 def number(value: Any) -> str:
@@ -37,6 +37,8 @@ def station_mask(table: pa.Table, line: float, point: float, index: int | None =
                  node: str | None = None, *, index_column: str = "index") -> pa.Array:
     """Rows of (line, point), narrowed to ``index`` (in ``index_column``; a null never
     matches) and/or ``node`` when given."""
+    import pyarrow.compute as pc
+
     mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
     if index is not None:
         mask = pc.and_(mask, pc.fill_null(pc.equal(table[index_column], int(index)), False))

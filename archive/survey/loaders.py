@@ -3,6 +3,8 @@
 
 from __future__ import annotations
 
+import json
+
 from archive.errors import Refused, UsageError
 from archive.survey.kinds import LoadContext
 from archive.survey.parsed import ParsedInput, format_problem
@@ -51,11 +53,14 @@ def parse_deployments(ctx: LoadContext) -> ParsedInput:
     parsed.warnings += deployments.check_deployments(parsed.table,
                                                      _current_table(ctx, "stations"))
     previous = current_input(ctx.arc, ctx.survey.id, "deployments")
-    parsed.table = deployments.number_occupations(parsed.table, name,
-                                                  previous[1] if previous else None)
+    retired = (json.loads(previous[0].meta or "{}").get("occupations") or {}).get(
+        "retired", []) if previous else []
+    parsed.table, gone = deployments.number_occupations(
+        parsed.table, name, previous[1] if previous else None, retired,
+        _current_table(ctx, "stations"))
     parsed.warnings += occupation_warnings(parsed.table)
     parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
-    parsed.meta["occupations"] = occupation_summary(parsed.table)
+    parsed.meta["occupations"] = occupation_summary(parsed.table) | {"retired": gone}
     if previous is not None:
         parsed.meta["occupations"]["numbered_after_version"] = previous[0].version
     parsed.meta["strict"] = bool(ctx.options.get("strict", False))

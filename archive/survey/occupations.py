@@ -11,27 +11,35 @@ Numbering (the ``occupation`` column of the deployments table, see
 :data:`archive.survey.schema.DEPLOYMENT_SCHEMA`), per (line, point), in order of deployment
 time (ties by the record's line in the log):
 
-1. an occupation that continues one of the previous deployments version keeps the index it
-   had there (matched at the same station by, in turn: same node with overlapping windows,
-   overlapping windows, same node);
+1. an occupation that continues an earlier one keeps the index it had: the earlier ones are
+   the previous deployments version's records, then those retired before (see 4), matched
+   at the same station by, in turn: same node with overlapping windows, overlapping
+   windows, same node;
 2. any other occupation takes its station's own point index when no occupation at that line
-   and point holds it yet (the first occupation of a station is delivered under the preplot's
-   index);
-3. otherwise it takes the next index above every index already used at that line and point
-   (by this version, by the previous version, and by the station indices of the log there).
+   and point holds it and none ever held it (the first occupation of a station is delivered
+   under the preplot's index);
+3. otherwise it takes the next index above every index used at that line and point: by this
+   version, by any earlier occupation, by the station indices of the log there, and by the
+   point indices the current preplot has there (so a second occupation of 1001/5002 index 1
+   never takes index 2 when the preplot holds a 1001/5002 index 2);
+4. an earlier occupation the new log no longer holds (a record removed as a mistake) is
+   *retired*: kept with the version's meta with the index it had, which is never given to
+   another occupation; should the record come back, it gets its index back.
 
 So numbers follow deployment time, a later occupation never renumbers an earlier one, and a
-corrected log (a serial or a time fixed, a forgotten deployment added) keeps every index
-already given. The index is stored with the deployments version when it is loaded, so runs
-and deliveries read it from the deployment data, never from the order of a run. A
-deployments table written before occupations were numbered has no such column:
-:func:`with_occupations` numbers it by the same rule without a previous version.
+corrected log (a serial or a time fixed, a forgotten deployment added, a record removed and
+restored) keeps every index already given and never reuses one. The index is stored with
+the deployments version when it is loaded, so runs and deliveries read it from the
+deployment data, never from the order of a run. A deployments table written before
+occupations were numbered has no such column: :func:`with_occupations` numbers it by the
+same rule without any earlier version.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
@@ -39,7 +47,11 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.survey.keys import station_text
+from archive.times import us_array
+
 OPEN_END = np.iinfo(np.int64).max  # retrieved unknown: still in the ground
+EPOCH = datetime(1970, 1, 1, tzinfo=UTC)
 MAX_INDEX = 127  # int8; SPS rev 2.1 can write 1-9 (column 24, I1)
 SPS_MAX_INDEX = 9
 
@@ -63,16 +75,14 @@ class Records:
     def of(cls, table: pa.Table) -> Records:
         """The records of a deployments table (:data:`DEPLOYMENT_SCHEMA`)."""
         n = table.num_rows
-        start = pc.cast(table["deployed"], pa.int64()).to_numpy(zero_copy_only=False)
-        end = pc.fill_null(pc.cast(table["retrieved"], pa.int64()), OPEN_END)
         order = (table["src_line"].to_numpy() if "src_line" in table.column_names
                  else np.arange(n))
         return cls(line=table["line"].to_numpy().astype(np.float64),
                    point=table["point"].to_numpy().astype(np.float64),
                    index=table["index"].to_numpy().astype(np.int64),
                    node=np.array(table["node"].to_pylist(), dtype=object),
-                   start=np.asarray(start, dtype=np.int64),
-                   end=end.to_numpy(zero_copy_only=False).astype(np.int64),
+                   start=us_array(table["deployed"], OPEN_END),
+                   end=us_array(table["retrieved"], OPEN_END),
                    order=np.asarray(order, dtype=np.int64))
 
 
@@ -80,114 +90,202 @@ def _overlap(a0: int, a1: int, b0: int, b1: int) -> int:
     return max(0, min(a1, b1) - max(a0, b0))
 
 
-def _number_group(new: list[int], rec: Records, prev: list[int], prec: Records | None,
-                  prev_occ: np.ndarray | None, out: np.ndarray) -> None:
-    """Number the records ``new`` (indices into ``rec``, in time order) of one line/point."""
-    taken: set[int] = set()  # previous records already matched
+def _records_of(rows: Sequence[dict[str, Any]]) -> Records:
+    """Records from retired-occupation dicts (as the version meta keeps them)."""
+    def us(v: Any) -> int:
+        if v is None:
+            return OPEN_END
+        t = datetime.fromisoformat(str(v)) if not isinstance(v, datetime) else v
+        return (t - EPOCH) // timedelta(microseconds=1)
+
+    return Records(line=np.array([float(r["line"]) for r in rows], dtype=np.float64),
+                   point=np.array([float(r["point"]) for r in rows], dtype=np.float64),
+                   index=np.array([int(r["station_index"]) for r in rows], dtype=np.int64),
+                   node=np.array([str(r["node"]) for r in rows], dtype=object),
+                   start=np.array([us(r["deployed"]) for r in rows], dtype=np.int64),
+                   end=np.array([us(r["retrieved"]) for r in rows], dtype=np.int64),
+                   order=np.arange(len(rows), dtype=np.int64))
+
+
+def _concat(a: Records, b: Records) -> Records:
+    return Records(*(np.concatenate([getattr(a, f), getattr(b, f)])
+                     for f in Records.__dataclass_fields__))
+
+
+def _number_group(new: list[int], rec: Records, earlier: list[int], erec: Records | None,
+                  eocc: np.ndarray | None, is_retired: np.ndarray | None, reserved: set[int],
+                  out: np.ndarray, matched: np.ndarray) -> None:
+    """Number the records ``new`` (indices into ``rec``, in time order) of one line/point
+    against the ``earlier`` occupations there (indices into ``erec``)."""
+    taken: set[int] = set()
     kept: dict[int, int] = {}
-    if prec is not None and prev:
+    if erec is not None and earlier:
         tests = (
-            lambda i, j: rec.node[i] == prec.node[j] and _overlap(
-                rec.start[i], rec.end[i], prec.start[j], prec.end[j]) > 0,
-            lambda i, j: _overlap(rec.start[i], rec.end[i], prec.start[j], prec.end[j]) > 0,
-            lambda i, j: rec.node[i] == prec.node[j],
+            lambda i, j: rec.node[i] == erec.node[j] and _overlap(
+                rec.start[i], rec.end[i], erec.start[j], erec.end[j]) > 0,
+            lambda i, j: _overlap(rec.start[i], rec.end[i], erec.start[j], erec.end[j]) > 0,
+            lambda i, j: rec.node[i] == erec.node[j],
         )
         for test in tests:
             for i in new:
                 if i in kept:
                     continue
-                cands = [j for j in prev if j not in taken and prec.index[j] == rec.index[i]
-                         and test(i, j)]
+                cands = [j for j in earlier if j not in taken
+                         and erec.index[j] == rec.index[i] and test(i, j)]
                 if not cands:
                     continue
-                best = max(cands, key=lambda j: (_overlap(rec.start[i], rec.end[i],
-                                                          prec.start[j], prec.end[j]),
-                                                 -abs(int(prec.start[j]) - int(rec.start[i]))))
-                kept[i] = int(prev_occ[best])
+                best = max(cands, key=lambda j: (
+                    not is_retired[j],  # the previous version first, then retired ones
+                    _overlap(rec.start[i], rec.end[i], erec.start[j], erec.end[j]),
+                    -abs(int(erec.start[j]) - int(rec.start[i]))))
+                kept[i] = int(eocc[best])
                 taken.add(best)
+                matched[best] = True
     used = set(kept.values())
-    before = {int(prev_occ[j]) for j in prev} if prev_occ is not None else set()
-    reserved = {int(rec.index[i]) for i in new}
+    before = {int(eocc[j]) for j in earlier} if eocc is not None else set()
+    taken_idx = used | before | reserved | {int(rec.index[i]) for i in new}
     for i in new:
         if i in kept:
             out[i] = kept[i]
             continue
         own = int(rec.index[i])
-        if own not in used and own not in before:
-            k = own
-        else:
-            k = max(used | before | reserved) + 1
+        k = own if own not in used and own not in before else max(taken_idx) + 1
         used.add(k)
+        taken_idx.add(k)
         out[i] = k
 
 
-def number_occupations(rec: Records, prev: Records | None = None,
-                       prev_occ: np.ndarray | None = None) -> np.ndarray:
-    """The delivered point index of every record (see the module doc), as int64.
+@dataclass
+class Numbering:
+    """The point index of every record, and which earlier occupations it continued."""
 
-    ``prev``/``prev_occ`` are the previous deployments version and its indices (None for a
-    first version). Only lines/points with more than one record, or whose previous numbering
-    differs from the station index, are numbered one by one; the rest keep their station's
-    index.
+    occupation: np.ndarray  # int64, one per record
+    continued: np.ndarray  # bool, one per earlier occupation: matched by a record
+
+
+def number_occupations(rec: Records, earlier: Records | None = None,
+                       earlier_occ: np.ndarray | None = None, *,
+                       retired: np.ndarray | None = None,
+                       reserved: dict[tuple[float, float], set[int]] | None = None
+                       ) -> Numbering:
+    """The delivered point index of every record (see the module doc).
+
+    ``earlier``/``earlier_occ`` are the occupations numbered before (the previous version's
+    records, then the retired ones, ``retired`` marking those) with their indices; an index
+    any of them held is never given to a new occupation. ``reserved`` holds the point
+    indices the preplot uses at each (line, point), which a later occupation never takes.
+    Only lines/points with more than one record, or with an earlier numbering other than
+    the station index, are numbered one by one; the rest keep their station's index.
     """
     n = len(rec)
     out = rec.index.astype(np.int64).copy()
+    n_earlier = len(earlier) if earlier is not None else 0
+    continued = np.zeros(n_earlier, dtype=bool)
     if n == 0:
-        return out
+        return Numbering(out, continued)
     key = pd.MultiIndex.from_arrays([rec.line, rec.point])
     codes = pd.factorize(key)[0]
-    count = np.bincount(codes)
-    busy = count[codes] > 1
-    prev_groups: dict[tuple[float, float], list[int]] = {}
-    if prev is not None and len(prev):
-        assert prev_occ is not None
-        pkey = list(zip(prev.line.tolist(), prev.point.tolist(), strict=True))
-        for j, k in enumerate(pkey):
-            prev_groups.setdefault(k, []).append(j)
-        odd = {k for k, js in prev_groups.items()
-               if len(js) > 1 or any(int(prev_occ[j]) != int(prev.index[j]) for j in js)}
+    busy = np.bincount(codes)[codes] > 1
+    groups_earlier: dict[tuple[float, float], list[int]] = {}
+    if n_earlier:
+        assert earlier is not None and earlier_occ is not None
+        for j, k in enumerate(zip(earlier.line.tolist(), earlier.point.tolist(), strict=True)):
+            groups_earlier.setdefault(k, []).append(j)
+        odd = {k for k, js in groups_earlier.items()
+               if len(js) > 1 or any(int(earlier_occ[j]) != int(earlier.index[j]) for j in js)}
         if odd:
             busy |= np.array([(a, b) in odd for a, b in zip(rec.line.tolist(),
                                                              rec.point.tolist(),
                                                              strict=True)], dtype=bool)
     todo = np.flatnonzero(busy)
-    if len(todo) == 0:
-        return out
-    todo = todo[np.lexsort((rec.order[todo], rec.start[todo], rec.point[todo], rec.line[todo]))]
-    groups: dict[tuple[float, float], list[int]] = {}
-    for i in todo.tolist():  # one entry per re-occupied line/point, not per fix
-        groups.setdefault((float(rec.line[i]), float(rec.point[i])), []).append(i)
-    for k, members in groups.items():
-        _number_group(members, rec, prev_groups.get(k, []), prev, prev_occ, out)
-    return out
+    if len(todo):
+        todo = todo[np.lexsort((rec.order[todo], rec.start[todo], rec.point[todo],
+                                rec.line[todo]))]
+        groups: dict[tuple[float, float], list[int]] = {}
+        for i in todo.tolist():  # one entry per re-occupied line/point, not per fix
+            groups.setdefault((float(rec.line[i]), float(rec.point[i])), []).append(i)
+        is_ret = retired if retired is not None else np.zeros(n_earlier, dtype=bool)
+        for k, members in groups.items():
+            _number_group(members, rec, groups_earlier.get(k, []), earlier, earlier_occ,
+                          is_ret, (reserved or {}).get(k, set()), out, continued)
+    if n_earlier:  # a single record that keeps its station index continues its match
+        lone = np.flatnonzero(~busy)
+        if len(lone):
+            for i in lone.tolist():
+                for j in groups_earlier.get((float(rec.line[i]), float(rec.point[i])), []):
+                    if int(earlier_occ[j]) == int(out[i]):
+                        continued[j] = True
+    return Numbering(out, continued)
 
 
 def occupation_array(table: pa.Table) -> np.ndarray:
     """The ``occupation`` column of a deployments table, or its numbering when it has none."""
     if "occupation" in table.column_names:
         return table["occupation"].to_numpy().astype(np.int64)
-    return number_occupations(Records.of(table))
+    return number_occupations(Records.of(table)).occupation
 
 
-def with_occupations(table: pa.Table, previous: pa.Table | None = None) -> pa.Table:
-    """``table`` (deployments) with its ``occupation`` column, numbered against ``previous``.
-
-    A table that already carries the column is returned as it is. ``previous`` is the
-    deployments version this one follows (None for the first).
-    """
+def _table_with(table: pa.Table, occ: np.ndarray) -> pa.Table:
     from archive.survey.schema import DEPLOYMENT_SCHEMA
 
-    if "occupation" in table.column_names:
-        return table
-    prev = prev_occ = None
-    if previous is not None and previous.num_rows:
-        prev, prev_occ = Records.of(previous), occupation_array(previous)
-    occ = number_occupations(Records.of(table), prev, prev_occ)
     if len(occ) and int(occ.max()) > MAX_INDEX:
         raise ValueError(f"more than {MAX_INDEX} occupations at one line and point")
     cols = [table[f.name] if f.name != "occupation" else pa.array(occ, pa.int8())
             for f in DEPLOYMENT_SCHEMA]
     return pa.Table.from_arrays(cols, schema=DEPLOYMENT_SCHEMA)
+
+
+def with_occupations(table: pa.Table) -> pa.Table:
+    """``table`` (deployments) with its ``occupation`` column: as stored, or numbered by the
+    rule without any earlier version (a table stored before occupations were numbered)."""
+    if "occupation" in table.column_names:
+        return table
+    return _table_with(table, number_occupations(Records.of(table)).occupation)
+
+
+def number_log(table: pa.Table, previous: pa.Table | None = None,
+               retired: Sequence[dict[str, Any]] = (),
+               preplot: pa.Table | None = None) -> tuple[pa.Table, list[dict[str, Any]]]:
+    """A newly read deployment log with its ``occupation`` column numbered against the
+    previous version (``previous``) and the occupations retired before (``retired``, as the
+    previous version's meta keeps them), keeping clear of the point indices the ``preplot``
+    uses. Returns the table and the retired occupations to keep with it: every earlier
+    occupation this log no longer holds, with the index it had (never given out again)."""
+    rec = Records.of(table)
+    parts, occs, flags = [], [], []
+    if previous is not None and previous.num_rows:
+        parts.append(Records.of(previous))
+        occs.append(occupation_array(previous))
+        flags.append(np.zeros(previous.num_rows, dtype=bool))
+    if retired:
+        parts.append(_records_of(retired))
+        occs.append(np.array([int(r["index"]) for r in retired], dtype=np.int64))
+        flags.append(np.ones(len(retired), dtype=bool))
+    earlier = earlier_occ = is_retired = None
+    if parts:
+        earlier = parts[0] if len(parts) == 1 else _concat(parts[0], parts[1])
+        earlier_occ, is_retired = np.concatenate(occs), np.concatenate(flags)
+    reserved: dict[tuple[float, float], set[int]] = {}
+    if preplot is not None and preplot.num_rows:
+        for a, b, k in zip(preplot["line"].to_pylist(), preplot["point"].to_pylist(),
+                           preplot["index"].to_pylist(), strict=True):
+            reserved.setdefault((float(a), float(b)), set()).add(int(k))
+    numbered = number_occupations(rec, earlier, earlier_occ, retired=is_retired,
+                                  reserved=reserved)
+    gone: list[dict[str, Any]] = []
+    if earlier is not None:
+        for j in np.flatnonzero(~numbered.continued).tolist():
+            gone.append({"line": float(earlier.line[j]), "point": float(earlier.point[j]),
+                         "station_index": int(earlier.index[j]), "index": int(earlier_occ[j]),
+                         "node": str(earlier.node[j]), "deployed": _iso(earlier.start[j]),
+                         "retrieved": _iso(earlier.end[j])})
+    return _table_with(table, numbered.occupation), gone
+
+
+def _iso(us: int) -> str | None:
+    if int(us) >= OPEN_END:
+        return None
+    return (EPOCH + timedelta(microseconds=int(us))).isoformat()
 
 
 def occupation_warnings(table: pa.Table) -> list[dict[str, Any]]:
@@ -198,9 +296,10 @@ def occupation_warnings(table: pa.Table) -> list[dict[str, Any]]:
     over = np.flatnonzero(occ > SPS_MAX_INDEX)
     line, point = table["line"].to_numpy(), table["point"].to_numpy()
     src = table["src_line"].to_numpy()
-    return [problem("index-beyond-sps", f"station {line[i]:g}/{point[i]:g} is occupied so often "
-                    f"that this occupation gets point index {occ[i]}; SPS rev 2.1 writes 1-9, "
-                    "so deliver it as CSV or GIS", int(src[i])) for i in over]
+    return [problem("index-beyond-sps", f"station {station_text(line[i], point[i])} is "
+                    f"occupied so often that this occupation gets point index {occ[i]}; SPS "
+                    "rev 2.1 writes 1-9, so deliver it as CSV or GIS", int(src[i]))
+            for i in over]
 
 
 def occupation_summary(table: pa.Table) -> dict[str, int]:
@@ -273,7 +372,7 @@ def pick_one(occupations: Sequence[dict[str, Any]], line: float, point: float,
     """
     from archive.errors import UsageError
 
-    where = f"station {line:g}/{point:g}"
+    where = f"station {station_text(line, point)}"
     if not occupations:
         if node is not None:
             raise UsageError(f"no node was deployed at {where}, so --node {node} names no "

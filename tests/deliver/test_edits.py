@@ -198,7 +198,9 @@ def test_an_edit_names_one_occupation_on_both_backends(any_survey_arc, tmp_path)
 
     arc = any_survey_arc
     sid = survey_id(arc)
-    (tmp_path / "p.csv").write_text("line,point,easting,northing\n1001,2002,612370,3512345\n")
+    (tmp_path / "p.csv").write_text("line,point,easting,northing,index\n"
+                                    "1001,2002,612370,3512345,1\n"
+                                    "1001,2002,612380,3512345,2\n")  # index 2 never laid
     load_input(arc, sid, "stations", tmp_path / "p.csv")
     (tmp_path / "d.csv").write_text(
         "node,line,point,deployed_utc,retrieved_utc\n"
@@ -208,14 +210,18 @@ def test_an_edit_names_one_occupation_on_both_backends(any_survey_arc, tmp_path)
     with pytest.raises(UsageError, match=r"station 1001/2002 was occupied 2 times and reject "
                                          r"must name one occupation: index 1: node N5001, "
                                          r"2024-03-10T00:00:00Z to 2024-03-12T00:00:00Z; "
-                                         r"index 2: node N5009, 2024-03-12T03:00:00Z to "
+                                         r"index 3: node N5009, 2024-03-12T03:00:00Z to "
                                          r"still deployed"):
         ed.reject_station(arc, sid, 1001, 2002, reason="flooded")
     e = ed.reject_station(arc, sid, 1001, 2002, node="N5009", reason="flooded")
-    assert e.point_index == 2
     assert json.loads(e.payload)["occupation"]["node"] == "N5009"
     h = ed.set_height(arc, sid, 1001, 2002, 1, height=401.0, reason="levelled")
     assert h.point_index == 1
+    # the second occupation of index 1 kept clear of the preplot's index 2 (it is 3), so the
+    # never-deployed station 1001/2002 index 2 can still be edited under its own index
+    assert e.point_index == 3
+    p = ed.set_position(arc, sid, 1001, 2002, 2, source="preplot", reason="not laid out")
+    assert p.point_index == 2 and json.loads(p.payload)["easting"] == 612380.0
     assert [(x["kind"], x["index"]) for x in list_edits(arc, sid)] == [
-        ("reject-station", 2), ("set-height", 1)]
+        ("reject-station", 3), ("set-height", 1), ("set-position", 2)]
     assert verify_archive(arc).ok

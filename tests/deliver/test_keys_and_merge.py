@@ -86,13 +86,30 @@ def test_merge_is_the_generalised_least_squares_of_the_occupations():
     assert m["n_used"] == 2000
 
 
+def test_twelve_occupations_of_one_spot_merge_and_two_preplot_stations_never_do():
+    rng = np.random.default_rng(12)
+    rows = [{"line": 1001.0, "point": 2001.0, "index": k, "node": "N1",
+             "easting": 612345.0 + rng.normal(0, 0.5), "northing": 3512345.0 + rng.normal(0, 0.5),
+             "sigma_e": 0.5, "sigma_n": 0.5} for k in range(1, 13)]
+    out, d = merge_occupations(_final_rows(rows), 1.0)
+    assert d[0]["merged"] and out.num_rows == 1 and d[0]["test"]["dof"] == 22
+    assert out["node"].to_pylist() == ["N1"]  # one node re-laid twelve times: named once
+    # two planned positions of one point (preplot indices 1 and 2) stay two positions
+    two = [dict(rows[0], station_index=1), dict(rows[1], index=2, station_index=2)]
+    out, d = merge_occupations(_final_rows(two), 1.0)
+    assert out.num_rows == 2 and d == []
+
+
 def test_occupations_apart_or_edited_are_kept_apart():
     far = [{"line": 1001.0, "point": 2001.0, "index": k, "node": f"N{k}",
             "easting": 612345.0 + 3.0 * k, "northing": 3512345.0, "sigma_e": 0.3,
             "sigma_n": 0.3} for k in (1, 2)]
     out, d = merge_occupations(_final_rows(far), 1.0)
     assert out.num_rows == 2 and not d[0]["merged"]
-    assert "3.00 m apart, beyond the 95 % radius" in d[0]["reason"]
+    # 3 m apart with 0.3 m sigmas: chi-square 50 on 2 degrees of freedom, far beyond 5.99
+    assert d[0]["test"]["statistic"] == pytest.approx(9.0 / 0.18, rel=1e-9)
+    assert d[0]["test"]["limit"] == pytest.approx(5.991464547107979)  # chi2(2) 95 % (scipy)
+    assert "indices 1 and 2 are 3.00 m apart" in d[0]["reason"]
     edited = [dict(r, easting=612345.0) for r in far]
     edited[1]["source"] = "edit:7"
     out, d = merge_occupations(_final_rows(edited), 1.0)
@@ -115,7 +132,7 @@ def test_merge_end_to_end_on_a_survey_relaid_at_the_same_spot(tmp_path, runner):
     lineage = json.loads(Path(str(out) + ".lineage.json").read_text())
     assert lineage["delivery"]["merge_occupations"] is True
     merged = [m for m in lineage["merges"] if m["merged"]]
-    assert len(merged) == 2 and all(p["inside"] for m in merged for p in m["pairs"])
+    assert len(merged) == 2 and all(m["test"]["inside"] for m in merged)
     import csv as _csv
 
     rows = list(_csv.DictReader(out.read_text().splitlines()))
@@ -124,9 +141,30 @@ def test_merge_end_to_end_on_a_survey_relaid_at_the_same_spot(tmp_path, runner):
         n = again.get((float(x["line"]), float(x["point"])))
         if n:
             assert x["index"] == "1" and x["merged"] == ";".join(str(k) for k in range(1, n + 1))
-            assert x["node"].count("+") == n - 1 and x["height_source"] == "model"
+            nodes = x["node"].split("+")  # each node named once (one may be re-laid)
+            assert len(nodes) == len(set(nodes)) <= n and x["height_source"] == "model"
     n_log = len(sc.deployments.read_text().splitlines()) - 1
     assert len(rows) == n_log - sum(n - 1 for n in again.values())
+    # where --at on a merged record answers only inside one of the merged windows
+    from archive.lineage.where import where
+    from archive.store.archive import Archive
+
+    (line, point), _ = next(iter(again.items()))
+    log = sorted((x for x in _csv.DictReader(sc.deployments.read_text().splitlines())
+                  if (float(x["line"]), float(x["point"])) == (line, point)),
+                 key=lambda x: x["deployed_utc"])
+    gap = log[0]["retrieved_utc"].replace("Z", "+00:00")
+    from datetime import datetime, timedelta
+
+    t_gap = datetime.fromisoformat(gap) + timedelta(minutes=5)
+    t_in = datetime.fromisoformat(log[1]["deployed_utc"].replace("Z", "+00:00")) + \
+        timedelta(hours=2)
+    with Archive.open(tmp_path / "archive") as arc:
+        assert where(arc, 1, line, point, at=t_gap)["delivered"] is None
+        assert where(arc, 1, line, point, at=t_in)["delivered"]["merged"].startswith("1;2")
+        w = where(arc, 1, line, point, index=2)
+        assert w["delivered"]["index"] == 1
+        assert "index 2 was delivered merged into index 1" in w["notes"][0]
 
 
 @pytest.mark.parametrize("mask,mode", [(0o022, 0o644), (0o027, 0o640)])

@@ -257,9 +257,9 @@ def test_merge_occupations_only_when_indistinguishable(survey):
     arc, sid, run_id, sc, base = survey
     res = deliver(arc, sid, run_id, "csv", base / "merged.csv", RECIPIENT, allow_flags=True,
                   force=True, merge_occupations=True)
-    # re-laid 2-6 m apart: the difference is far beyond its 95 % radius, nothing merges
+    # re-laid 2-6 m apart: far beyond the occupations' uncertainty, nothing merges
     assert len(res.merges) == 4 and not any(m["merged"] for m in res.merges)
-    assert all("beyond the 95 % radius" in m["reason"] for m in res.merges)
+    assert all("differ beyond their uncertainty" in m["reason"] for m in res.merges)
     assert res.n_records == len(_csv(sc.deployments))
 
 
@@ -297,3 +297,59 @@ def test_refusing_a_station_that_does_not_exist(survey):
     with pytest.raises(UsageError, match="unknown station 999/1"):
         where(arc, sid, 999, 1)
     assert datetime.now(UTC) > datetime(2024, 1, 1, tzinfo=UTC)
+
+
+def test_an_exclude_span_never_reaches_the_nodes_other_station(survey):
+    """A spare node laid out at a second station: an exclude span at its first station that
+    runs past its pickup is cut to that occupation's window."""
+    from archive.solve.run import solve_survey
+
+    arc, sid, run_id, sc, base = survey
+    log = _log_occupations(sc)
+    by_node: dict[str, list] = {}
+    for k, dep in log.items():
+        by_node.setdefault(dep["node"], []).append((k, dep))
+    node, stays = next((n, v) for n, v in by_node.items()
+                       if len({k[:2] for k, _ in v}) > 1)
+    (first, d1), (second, d2) = sorted(stays, key=lambda x: _t(x[1]["deployed_utc"]))
+    start = _t(d1["deployed_utc"]) + timedelta(hours=6)
+    end = _t(d2["retrieved_utc"]) + timedelta(hours=1)  # asks to reach past both stays
+    e = ed.exclude_span(arc, sid, first[0], first[1], node=node, start=start, end=end,
+                        reason="node knocked over")
+    p = json.loads(e.payload)
+    assert _t(p["end"]) < _t(d1["retrieved_utc"]) and p["asked"]["end"].startswith(
+        end.isoformat()[:19])
+    run_b = solve_survey(arc, sid, label="span cut").run_id
+    d = diff_runs(arc, run_id, run_b, threshold=0.0, station=second[:2])
+    assert d["summary"]["max"] == 0.0  # the second station is untouched
+    ed.undo(arc, sid, e.id, reason="test done")
+
+
+def test_a_check_point_sets_only_the_occupation_it_surveyed(survey):
+    arc, sid, run_id, sc, base = survey
+    control = _csv(sc.control)
+    again = {(r["line"], r["point"]): r["occupations"] for r in sc.reoccupied}
+    c = next(c for c in control if (float(c["line"]), float(c["point"])) in again)
+    line, point = float(c["line"]), float(c["point"])
+    last = again[(line, point)]
+    with pytest.raises(UsageError, match=r"no check point at station .* was surveyed while "
+                                         r"node .* was there"):
+        ed.set_position(arc, sid, line, point, 1, source="control", reason="RTK")
+    e = ed.set_position(arc, sid, line, point, last, source="control", reason="RTK")
+    assert json.loads(e.payload)["easting"] == pytest.approx(float(c["easting"]))
+    ed.undo(arc, sid, e.id, reason="test done")
+
+
+def test_where_refuses_a_date_for_at_and_names_what_was_delivered(survey):
+    arc, sid, run_id, sc, base = survey
+    deliver(arc, sid, run_id, "csv", base / "where2.csv", RECIPIENT, allow_flags=True,
+            force=True)
+    station = next(r for r in sc.reoccupied if r["occupations"] == 2)
+    with pytest.raises(UsageError, match="is a date; it needs a moment"):
+        where(arc, sid, station["line"], station["point"], at="2025-04-10")
+    w = where(arc, sid, station["line"], station["point"], index=7)
+    assert w["delivered"] is None and "no delivered occupation of the station has index 7; " \
+        "delivered: index 1 (node" in w["notes"][0]
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
+    w = where(arc, sid, moved["line"], moved["point"])
+    assert any("the node moved during this occupation" in n for n in w["notes"])

@@ -119,7 +119,7 @@ def test_write_report_and_refuse_overwrite(qc_arc, tmp_path):
     text = out.read_text(encoding="utf-8")
     assert written.size_bytes == len(text.encode("utf-8"))
     assert written.n_review == 3  # 2005 and 2004 beyond 1.5 m, 2003 flagged "moved"
-    assert "1001 / 2005" in text
+    assert "1001/2005" in text
     assert written.n_clouds == 3 and text.count('data-figure="cloud"') == 3
     assert "200 fixes used" not in text  # every 12th synthetic fix is rejected
     assert "183 fixes used, 17 rejected or screened" in text

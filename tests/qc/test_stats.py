@@ -138,3 +138,32 @@ def test_latest_check_point_wins_and_stations_fill_a_missing_preplot():
     pts = join_checks(pos, ctl, sta)
     assert pts["de"].to_pylist() == [1.0]  # re-surveyed point: the later survey is used
     assert pts["pre_de"].to_pylist() == [2.0]
+
+
+def test_each_check_point_checks_the_occupation_it_surveyed():
+    """A station occupied twice (the second node re-laid 4 m east), each occupation surveyed
+    once by RTK: each check point is compared with the node then in the ground."""
+    from datetime import timedelta
+
+    from tests.support.qc_tables import T0, control_table, positions_table
+
+    day = timedelta(days=1)
+    pos = positions_table([
+        {"line": 1001.0, "point": 2001.0, "occupation": 1, "node": "N1", "easting": 612000.0,
+         "northing": 3512000.0, "deployed": T0, "retrieved": T0 + 2 * day},
+        {"line": 1001.0, "point": 2001.0, "occupation": 2, "node": "N2", "easting": 612004.0,
+         "northing": 3512000.0, "deployed": T0 + 3 * day, "retrieved": T0 + 5 * day},
+    ])
+    ctl = control_table([
+        {"line": 1001.0, "point": 2001.0, "easting": 612004.3, "northing": 3512000.4,
+         "surveyed": T0 + 4 * day},
+        {"line": 1001.0, "point": 2001.0, "easting": 612000.3, "northing": 3512000.4,
+         "surveyed": T0 + day},
+        # the first occupation surveyed again later the same day: the later survey counts
+        {"line": 1001.0, "point": 2001.0, "easting": 612000.6, "northing": 3512000.8,
+         "surveyed": T0 + day + timedelta(hours=2)},
+    ])
+    pts = join_checks(pos, ctl).to_pylist()
+    assert [(p["occupation"], p["node"]) for p in pts] == [(1, "N1"), (2, "N2")]
+    # 0.6, 0.8 east and north of the first node: 1.0 m (3-4-5 triangle); 0.3, 0.4: 0.5 m
+    assert [round(p["dist"], 9) for p in pts] == [1.0, 0.5]

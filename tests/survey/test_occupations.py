@@ -20,6 +20,7 @@ from archive.survey.deployments import number_occupations, read_deployments
 from archive.survey.inputs import current_input, load_input
 from archive.survey.occupations import (
     choose,
+    number_log,
     occupation_summary,
     occupations_at,
     pick_one,
@@ -58,8 +59,9 @@ def test_numbered_in_order_of_deployment_time():
 
 def test_a_later_occupation_never_renumbers_earlier_ones():
     v1 = with_occupations(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0)]))
-    v2 = with_occupations(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0),
+    v2, gone = number_log(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0),
                                 ("N5", 1001, 5002, 60.0, 80.0)]), v1)
+    assert gone == []
     assert _numbers(v2)[("N5", 1001.0, 5002.0)] == 3
     assert {k: v for k, v in _numbers(v2).items() if k[0] != "N5"} == _numbers(v1)
 
@@ -67,8 +69,8 @@ def test_a_later_occupation_never_renumbers_earlier_ones():
 def test_a_corrected_log_keeps_every_index_already_given():
     v1 = with_occupations(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0)]))
     # the crew corrects a serial (N2 was N7), a time, and adds a forgotten earlier occupation
-    v2 = with_occupations(_log([("N1", 1001, 5002, 0.5, 20.0), ("N7", 1001, 5002, 30.0, 51.0),
-                                ("N9", 1001, 5002, -30.0, -5.0)]), v1)
+    v2, _ = number_log(_log([("N1", 1001, 5002, 0.5, 20.0), ("N7", 1001, 5002, 30.0, 51.0),
+                             ("N9", 1001, 5002, -30.0, -5.0)]), v1)
     n = _numbers(v2)
     assert n[("N1", 1001.0, 5002.0)] == 1 and n[("N7", 1001.0, 5002.0)] == 2
     assert n[("N9", 1001.0, 5002.0)] == 3  # new, so it takes the next free index
@@ -77,6 +79,44 @@ def test_a_corrected_log_keeps_every_index_already_given():
                                            ("N7", 1001, 5002, 30.0, 51.0),
                                            ("N9", 1001, 5002, -30.0, -5.0)]))) == {
         ("N9", 1001.0, 5002.0): 1, ("N1", 1001.0, 5002.0): 2, ("N7", 1001.0, 5002.0): 3}
+
+
+def test_an_index_once_given_is_never_given_again():
+    v1 = with_occupations(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0),
+                                ("N3", 1001, 5002, 60.0, 80.0)]))
+    # N3 (index 3) was a mistake and leaves the log; a later occupation must not take its 3
+    v2, gone = number_log(_log([("N1", 1001, 5002, 0.0, 20.0),
+                                ("N2", 1001, 5002, 30.0, 50.0)]), v1)
+    assert [(g["node"], g["index"]) for g in gone] == [("N3", 3)]
+    v3, gone3 = number_log(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0),
+                                 ("N4", 1001, 5002, 90.0, 99.0)]), v2, gone)
+    assert _numbers(v3)[("N4", 1001.0, 5002.0)] == 4 and gone3 == gone
+    # N2 is removed, then restored in the next version: it gets its index 2 back
+    v4, gone4 = number_log(_log([("N1", 1001, 5002, 0.0, 20.0),
+                                 ("N4", 1001, 5002, 90.0, 99.0)]), v3, gone3)
+    assert sorted((g["node"], g["index"]) for g in gone4) == [("N2", 2), ("N3", 3)]
+    v5, gone5 = number_log(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0),
+                                 ("N4", 1001, 5002, 90.0, 99.0),
+                                 ("N5", 1001, 5002, 120.0, 130.0)]), v4, gone4)
+    assert _numbers(v5) == {("N1", 1001.0, 5002.0): 1, ("N2", 1001.0, 5002.0): 2,
+                            ("N4", 1001.0, 5002.0): 4, ("N5", 1001.0, 5002.0): 5}
+    assert [(g["node"], g["index"]) for g in gone5] == [("N3", 3)]
+
+
+def test_a_later_occupation_keeps_clear_of_the_preplot_indices():
+    from archive.survey.stations import read_stations
+
+    preplot = read_stations(b"line,point,easting,northing,index\n1001,5002,583207,4062450,1\n"
+                            b"1001,5002,583217,4062450,2\n", "p.csv", None).table
+    # station index 1 occupied twice, station index 2 never laid out yet
+    t, _ = number_log(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0)]),
+                      preplot=preplot)
+    assert _numbers(t) == {("N1", 1001.0, 5002.0): 1, ("N2", 1001.0, 5002.0): 3}
+    # later, index 2 is laid out: its first occupation keeps the preplot's index 2
+    t2, _ = number_log(_log([("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0),
+                             ("N3", 1001, 5002, 60.0, 80.0)], index=[1, 1, 2]), t,
+                       preplot=preplot)
+    assert _numbers(t2)[("N3", 1001.0, 5002.0)] == 2
 
 
 def test_preplot_point_indices_combine_with_occupations():
@@ -104,8 +144,9 @@ def test_keys_are_unique_whatever_the_log(records):
                     t["occupation"].to_pylist(), strict=True))
     assert len(set(keys)) == len(keys)
     # a later version (same log plus one record) keeps every index
-    more = with_occupations(_log(rows + [("NX", 1001, 5000, 900.0, 950.0)],
+    more, gone = number_log(_log(rows + [("NX", 1001, 5000, 900.0, 950.0)],
                                  index=[k for _, _, k in records] + [1]), t)
+    assert gone == []
     assert more["occupation"].to_pylist()[:-1] == t["occupation"].to_pylist()
 
 
@@ -134,7 +175,8 @@ def test_loader_numbers_against_the_previous_version(survey_arc, tmp_path):
           "N2,1001,5002,2025-04-08T10:00:00Z,\n")
     (tmp_path / "d1.csv").write_text(v1)
     first = load_input(survey_arc, sid, "deployments", tmp_path / "d1.csv")
-    assert first.meta["occupations"] == {"occupations": 2, "reoccupied": 1, "max_index": 2}
+    assert first.meta["occupations"] == {"occupations": 2, "reoccupied": 1, "max_index": 2,
+                                         "retired": []}
     # the next evening's log: the earlier occupation was forgotten until now
     (tmp_path / "d2.csv").write_text(v1.replace("N2,1001,5002,2025-04-08T10:00:00Z,",
                                                 "N2,1001,5002,2025-04-08T10:00:00Z,"
@@ -146,6 +188,12 @@ def test_loader_numbers_against_the_previous_version(survey_arc, tmp_path):
     _, table = current_input(survey_arc, sid, "deployments")
     assert _numbers(table) == {("N1", 1001.0, 5002.0): 1, ("N2", 1001.0, 5002.0): 2,
                                ("N0", 1001.0, 5002.0): 3}
+    # a record removed from the log is kept as retired with the version, index and all
+    (tmp_path / "d3.csv").write_text("node,line,point,deployed_utc,retrieved_utc\n"
+                                     "N1,1001,5002,2025-04-07T12:00:00Z,2025-04-08T08:00:00Z\n")
+    third = load_input(survey_arc, sid, "deployments", tmp_path / "d3.csv")
+    assert sorted((g["node"], g["index"]) for g in third.meta["occupations"]["retired"]) == [
+        ("N0", 3), ("N2", 2)]
 
 
 def test_a_station_occupied_beyond_the_sps_digit_is_a_warning_and_beyond_int8_refused():
@@ -157,5 +205,5 @@ def test_a_station_occupied_beyond_the_sps_digit_is_a_warning_and_beyond_int8_re
     assert [x["code"] for x in w] == ["index-beyond-sps"] and "point index 10" in w[0]["message"]
     many = _log([(f"N{i}", 1001, 5002, 30.0 * i, 30.0 * i + 20.0) for i in range(130)])
     with pytest.raises(InputError, match="more than 127 occupations"):
-        number_occupations(many, "deployments.csv", None)
+        number_occupations(many, "deployments.csv")
     assert np.all(np.diff(with_occupations(_log(rows))["occupation"].to_numpy()) == 1)
