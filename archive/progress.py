@@ -26,7 +26,7 @@ class Progress(Protocol):
 class NoProgress:
     """Progress that goes nowhere (the library default)."""
 
-    def start(self, total: int, unit: str, label: str = "") -> None:  # noqa: D401
+    def start(self, total: int, unit: str, label: str = "") -> None:
         return None
 
     def advance(self, n: int = 1, item: str = "") -> None:

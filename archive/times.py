@@ -52,7 +52,7 @@ def iso_z(t: datetime | None) -> str:
     return t.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
 
-def us_array(col, fill: int):  # noqa: ANN001, ANN201 - pa.ChunkedArray -> np.ndarray
+def us_array(col, fill: int):
     """A timestamp column as integer microseconds since 1970 UTC, nulls as ``fill``."""
     import pyarrow as pa
     import pyarrow.compute as pc

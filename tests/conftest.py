@@ -31,7 +31,7 @@ def pg_url() -> Iterator[str]:
     try:
         with admin.connect() as c:
             c.execute(text(f'CREATE DATABASE "{name}"'))
-    except Exception as exc:  # noqa: BLE001
+    except Exception as exc:
         if os.environ.get("CI"):
             raise
         pytest.skip(f"PostgreSQL not reachable: {exc}")

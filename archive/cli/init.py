@@ -40,10 +40,7 @@ def upgrade(state: CliState) -> None:
     from archive.store import migrate
 
     arc = state.archive(check_schema=False)
-    before, after = migrate.upgrade(arc.engine)
-    if before != after:
-        with arc.transaction() as tx:
-            arc.log(tx, "archive.upgrade", {"from": before, "to": after})
+    before, after = migrate.upgrade(arc.engine, actor=arc.actor)
     info = {"from": before, "to": after, "changed": before != after}
     emit(state, info, f"catalog schema {before} -> {after}" if before != after
          else f"catalog schema already at {after}")

@@ -86,7 +86,7 @@ class RootGroup(LazyGroup):
         except KeyboardInterrupt:
             click.echo("interrupted", err=True)
             ctx.exit(130)
-        except Exception as exc:  # noqa: BLE001 - last resort: one line, traceback on --debug
+        except Exception as exc:
             if _debug(ctx):
                 raise
             from archive.store.db import mask_url

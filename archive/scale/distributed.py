@@ -15,7 +15,6 @@ objects on S3, or a folder every worker mounts at the same path.
 
 from __future__ import annotations
 
-import os
 import uuid
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
@@ -128,8 +127,3 @@ def _run_on(client: Any, func: Callable[[P, Any], R], partitions: Sequence[P], s
         for fut in futures:
             fut.cancel()
     return results
-
-
-def default_scheduler() -> str | None:
-    """The scheduler address from ``NODEKEEP_SCHEDULER``, if set."""
-    return os.environ.get(ENV_SCHEDULER) or None

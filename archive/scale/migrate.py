@@ -74,7 +74,7 @@ def normalise_db_url(url: str) -> str:
     """A database URL that means the same place from any folder (SQLite paths made absolute)."""
     try:
         u = make_url(url)
-    except Exception as exc:  # noqa: BLE001 - any parse failure is a usage problem
+    except Exception as exc:
         raise UsageError(f"not a database URL: {mask_url(url)}",
                          hint="e.g. postgresql+psycopg://user@host/dbname") from exc
     if u.get_backend_name() == "sqlite" and u.database and u.database != ":memory:":

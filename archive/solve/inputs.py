@@ -70,7 +70,7 @@ class SolveInputs:
         mask = [(a, b) in self.station_keys for a, b in zip(lines, points, strict=True)]
         return pos.filter(pa.array(mask, pa.bool_()))
 
-    def open_dem(self, arc: Archive):  # noqa: ANN201 - DemSampler | None
+    def open_dem(self, arc: Archive):
         """A sampler over the elevation model named by hash, or None."""
         if self.dem_hash is None:
             return None

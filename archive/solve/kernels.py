@@ -307,11 +307,11 @@ def _weights(e, n, invh, keep, ce, cn, isc, est, k, c, wbuf):  # pragma: no cove
 
 
 @njit(**_JIT)
-def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
+def _update(e, n, wbuf, cen):  # pragma: no cover - compiled
     """Weighted centre of one segment (its slices) from ``wbuf``: sums in ``LANES`` fixed
     interleaved lanes (a fixed order, so the same result on any thread), then the lanes in
     order. The lanes are local scalars (registers, so the loop compiles to vector
-    instructions); ``lanes`` is kept for the signature."""
+    instructions)."""
     cnt = e.shape[0]
     full = cnt - cnt % LANES
     w0 = w1 = w2 = w3 = w4 = w5 = w6 = w7 = 0.0
@@ -364,10 +364,10 @@ def _update(e, n, wbuf, cen, lanes):  # pragma: no cover - compiled
 
 
 @njit(**_JIT)
-def _step(e, n, invh, keep, cen, isc, est, k, c, wbuf, lanes):  # pragma: no cover - compiled
+def _step(e, n, invh, keep, cen, isc, est, k, c, wbuf):  # pragma: no cover - compiled
     """One IRLS step of a segment: new weights around ``cen``, then the weighted centre."""
     _weights(e, n, invh, keep, cen[0], cen[1], isc, est, k, c, wbuf)
-    _update(e, n, wbuf, cen, lanes)
+    _update(e, n, wbuf, cen)
 
 
 @njit(**_JIT)
@@ -392,7 +392,6 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
     sub_e = np.empty(size)
     sub_n = np.empty(size)
     sub_h = np.empty(size)
-    lanes = np.zeros((3, LANES))
     cen = np.empty(2)
     for s in range(s_lo, s_hi):
         a = starts[s]
@@ -429,7 +428,7 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
                     sc = min_scale
             sc = max(sc, min_scale)
             for _ in range(steps):
-                _step(es, ns, hs, kp, cen, 1.0 / sc, est, k, c, wb, lanes)
+                _step(es, ns, hs, kp, cen, 1.0 / sc, est, k, c, wb)
         isc = 1.0 / sc
         n_rej = 0
         rj = rejected[a:b]
@@ -442,7 +441,7 @@ def robust_segments(s_lo, s_hi, e, n, hdop, starts, counts, est, k, c, limit, ro
             n_rej += out
         if n_rej > 0:  # only a cloud that lost fixes runs the steps without them
             for _ in range(steps):
-                _step(es, ns, hs, kp, cen, isc, est, k, c, wb, lanes)
+                _step(es, ns, hs, kp, cen, isc, est, k, c, wb)
         _weights(es, ns, hs, kp, cen[0], cen[1], isc, est, k, c, weight[a:b])
         rs = r[a:b]
         for j in range(cnt):

@@ -119,12 +119,12 @@ def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     return _combine(tables, manifest), stats
 
 
-def _height_sampler(dem: Any, epsg: int):  # noqa: ANN202 - returns a callable or None
+def _height_sampler(dem: Any, epsg: int):
     """The elevation model sampled at survey-CRS coordinates (None without a model)."""
     if dem is None:
         return None
 
-    def sampler(x, y):  # noqa: ANN001, ANN202 - a closure over the open model
+    def sampler(x, y):
         return dem.sample(x, y, epsg)
 
     return sampler
@@ -198,7 +198,7 @@ def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     return _combine([pos for pos, _ in results], manifest), stats
 
 
-def _orthometric(survey: dict[str, Any]):  # noqa: ANN202 - returns a callable or None
+def _orthometric(survey: dict[str, Any]):
     try:
         from archive.survey.heights import gnss_orthometric
     except ImportError:
@@ -206,7 +206,7 @@ def _orthometric(survey: dict[str, Any]):  # noqa: ANN202 - returns a callable o
     conv = SimpleNamespace(height_mode=survey.get("height_mode", "gga"),
                            height_param=survey.get("height_param", ""))
 
-    def orth(lon, lat, h_ell, h_msl, sep):  # noqa: ANN001, ANN202
+    def orth(lon, lat, h_ell, h_msl, sep):
         return gnss_orthometric(lon, lat, h_ell, h_msl, sep, conv)
 
     return orth
@@ -259,7 +259,7 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
     m_hash, m_size = arc.objects.put_bytes(m_bytes)
     p_hash, p_size = arc.objects.put_table(table)
     run = Run(id=run_id, survey_id=survey_id, label=label, manifest_hash=m_hash,
-              positions_hash=p_hash, positions_digest=table_digest(table), extra_hash=None,
+              positions_hash=p_hash, positions_digest=table_digest(table),
               code_version=__version__, n_positions=table.num_rows, n_flagged=n_flagged,
               summary=json.dumps(summary, sort_keys=True), created_at=utcnow(),
               created_by=arc.actor)

@@ -11,7 +11,6 @@ import hashlib
 import json
 import math
 import re
-from collections.abc import Iterable
 from datetime import date, datetime
 from pathlib import Path
 from typing import Any, BinaryIO
@@ -140,8 +139,3 @@ def table_digest(table: pa.Table) -> str:
     h = hashlib.sha256(schema_bytes)
     h.update(sink.getvalue().to_pybytes())
     return h.hexdigest()
-
-
-def chain_hash(parts: Iterable[str]) -> str:
-    """SHA-256 of the strings joined by newlines (used for ordered sets of hashes)."""
-    return sha256_bytes("\n".join(parts).encode("utf-8"))

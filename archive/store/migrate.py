@@ -51,11 +51,28 @@ def current_revision(engine: Engine) -> str | None:
         return MigrationContext.configure(conn).get_current_revision()
 
 
-def upgrade(engine: Engine, revision: str = "head") -> tuple[str | None, str]:
-    """Migrate the catalog to ``revision``; returns (before, after)."""
+def upgrade(engine: Engine, revision: str = "head", *, actor: str | None = None
+            ) -> tuple[str | None, str]:
+    """Migrate the catalog to ``revision``; returns (before, after).
+
+    An upgrade of a catalog that has a ledger is itself a state change: one
+    ``archive.upgrade`` event (from, to) is appended by ``actor`` (default: NODEKEEP_ACTOR,
+    else the OS user), whoever calls this, the command line or a library user. A new, empty
+    database gets its tables and no event (the archive's creation records itself).
+    """
     before = current_revision(engine)
     command.upgrade(alembic_config(engine), revision)
-    return before, current_revision(engine) or ""
+    after = current_revision(engine) or ""
+    if before is not None and before != after:
+        from sqlalchemy.orm import Session
+
+        from archive.store import ledger
+        from archive.store.archive import default_actor
+
+        with Session(engine) as session, session.begin():
+            ledger.append(session, actor=actor or default_actor(), action="archive.upgrade",
+                          payload={"from": before, "to": after})
+    return before, after
 
 
 def check_schema(engine: Engine) -> None:

@@ -182,7 +182,6 @@ class Run(Base):
     manifest_hash: Mapped[str] = mapped_column(ForeignKey("objects.hash"))
     positions_hash: Mapped[str] = mapped_column(ForeignKey("objects.hash"))
     positions_digest: Mapped[str] = mapped_column(HASH)
-    extra_hash: Mapped[str | None] = mapped_column(ForeignKey("objects.hash"), nullable=True)
     code_version: Mapped[str] = mapped_column(String(80))
     n_positions: Mapped[int] = mapped_column(Integer)
     n_flagged: Mapped[int] = mapped_column(Integer)

@@ -132,7 +132,7 @@ class ObjectStore:
         """Open an object for reading (binary). Raises IntegrityError when it is missing."""
         try:
             if self.root is not None:
-                return open(self.root / fanout(h), "rb")  # noqa: SIM115
+                return open(self.root / fanout(h), "rb")
             return self._fs.open_input_stream(self.location(h))
         except (FileNotFoundError, OSError) as exc:
             raise IntegrityError(f"object {h} is missing from the object store") from exc
@@ -246,18 +246,6 @@ class ObjectStore:
         finally:
             self._fs.delete_file(tmp)
         return h, size
-
-    def remove_temporaries(self) -> int:
-        """Delete leftover temporary files of interrupted writes; returns how many."""
-        self._refuse_if_read_only()
-        count = 0
-        if self.root is not None:
-            tmpdir = self.root / "tmp"
-            if tmpdir.is_dir():
-                for f in tmpdir.iterdir():
-                    f.unlink()
-                    count += 1
-        return count
 
 
 def _fsync_dir(path: Path) -> None:

@@ -10,7 +10,7 @@ from archive.survey.kinds import LoadContext
 from archive.survey.parsed import ParsedInput, format_problem
 
 
-def _current_table(ctx: LoadContext, kind: str):  # noqa: ANN202 - pa.Table | None
+def _current_table(ctx: LoadContext, kind: str):
     from archive.survey.inputs import current_input
 
     found = current_input(ctx.arc, ctx.survey.id, kind)

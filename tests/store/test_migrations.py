@@ -71,3 +71,28 @@ def test_plain_engine_sees_head(tmp_path):
     engine = create_engine(f"sqlite:///{tmp_path / 'a' / 'catalog.sqlite'}")
     assert migrate.current_revision(engine) == migrate.head_revision()
     engine.dispose()
+
+
+def test_a_library_upgrade_is_ledgered(tmp_path):
+    """Upgrading through the library (not only through 'nodekeep upgrade') appends the
+    archive.upgrade event, so the custody record does not depend on who called it."""
+    from sqlalchemy import select
+
+    from archive.store.models import LedgerEvent
+
+    root = tmp_path / "rev0001"
+    shutil.copytree(SAVED / "rev0001", root)
+    arc = Archive.open(root, check_schema=False)
+    try:
+        before, after = migrate.upgrade(arc.engine, actor="library caller")
+        assert (before, after) == ("0001", migrate.head_revision())
+        with arc.session() as s:
+            ev = s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq.desc())).first()
+        assert (ev.action, ev.actor) == ("archive.upgrade", "library caller")
+        assert '"from":"0001"' in ev.payload and verify_archive(arc).ok
+        assert migrate.upgrade(arc.engine) == (after, after)  # nothing to do, nothing ledgered
+        with arc.session() as s:
+            assert s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq.desc())).first() \
+                .seq == ev.seq
+    finally:
+        arc.close()

@@ -125,7 +125,7 @@ def make_run(arc: Archive, positions: pa.Table, fixes: list[str], *, label: str 
         arc.register_object(tx, mh, ms, "manifest")
         arc.register_object(tx, ph, ps, "table")
         run = Run(id=canonical_hash(manifest), survey_id=sid, label=label, manifest_hash=mh,
-                  positions_hash=ph, positions_digest=table_digest(positions), extra_hash=None,
+                  positions_hash=ph, positions_digest=table_digest(positions),
                   code_version="0.1.0", n_positions=positions.num_rows, n_flagged=flagged,
                   summary="{}", created_at=utcnow(), created_by=arc.actor)
         tx.add(run)

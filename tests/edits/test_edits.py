@@ -79,8 +79,10 @@ def test_supersede_and_undo(setup):
     assert b.supersedes == a.id
     live = list_edits(arc, sid)
     assert [e["id"] for e in live] == [b.id]
-    with pytest.raises(UsageError, match=f"superseded it.*|edit {b.id}"):
+    with pytest.raises(UsageError, match=rf"edit {a.id} is no longer in force: edit {b.id} "
+                                         r"\(set-position\) superseded it") as exc:
         ed.undo(arc, sid, a.id, reason="too late")
+    assert exc.value.hint == "undo that edit instead"
     ed.undo(arc, sid, b.id, reason="back to the solver")
     assert list_edits(arc, sid) == []
     assert len(list_edits(arc, sid, all_edits=True)) == 3
