@@ -2,20 +2,20 @@
 
 A pure function of tables and parameters (no archive, no I/O), so a run can be recomputed
 from its manifest and a partition of nodes can be solved in another process. The steps,
-each vectorised over every cloud at once:
+each vectorised over every cloud at once (the stages of :mod:`stages`, named below):
 
-1. sort the fixes and screen them (:mod:`screen`);
-2. windows from the log minus settle margins (the whole logged window when the settled one
+1. ``screen``: sort the fixes and screen them (:mod:`screen`);
+2. ``find_windows``, ``gather_clouds``: windows from the log minus settle margins (the whole logged window when the settled one
    holds no usable fix: a node that died just after lay-out), plus unlogged stationary
    clusters (:mod:`windows`, :mod:`clusters`); gather each window's fixes;
-3. a local east/north plane per window around the median fix (:mod:`segments`);
-4. move detection; a moved window becomes two parts (:mod:`moves`);
-5. robust centre per part (:mod:`robust`), uncertainty (:mod:`uncertainty`);
-6. centre -> latitude/longitude -> survey grid with pyproj, covariance rotated by the grid
+   a local east/north plane per window around the median fix (:mod:`segments`);
+3. ``split_moves``: move detection; a moved window becomes two parts (:mod:`moves`);
+4. ``estimate``: robust centre per part (:mod:`robust`), uncertainty (:mod:`uncertainty`);
+5. ``to_grid``: centre -> latitude/longitude -> survey grid with pyproj, covariance rotated by the grid
    convergence and scaled by the point scale factor;
    easting/northing are in the CRS unit (feet for a foot grid), while sigmas, ellipses,
    r95 and the preplot distances are in metres (CRS distances times the unit factor);
-7. heights (:mod:`heights`) and review flags (:mod:`flags`).
+6. heights (:mod:`heights`), review flags (:mod:`flags`) and the positions table.
 """
 
 from __future__ import annotations
@@ -27,27 +27,16 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from archive.edits.spans import excluded
+from archive.edits.spans import Span
 from archive.solve import flags as flagmod
-from archive.solve.clusters import find_clusters
-from archive.solve.fixarrays import FixArrays, fix_arrays
-from archive.solve.heights import Sampler, gga_orthometric, solve_heights
-from archive.solve.moves import detect_moves
-from archive.solve.robust import robust_centre
+from archive.solve import stages
+from archive.solve.fixarrays import FixArrays
+from archive.solve.heights import Heights, Sampler, gga_orthometric, solve_heights
 from archive.solve.schema import POSITION_SCHEMA
-from archive.solve.screen import mark_excluded, screen_codes
-from archive.solve.segments import from_local, seg_median, seg_starts, to_local
-from archive.solve.uncertainty import ar1_covariance, batch_covariance, ellipse95, radius95
-from archive.solve.windows import (
-    FOREVER,
-    Windows,
-    gather,
-    inside_any,
-    logged_windows,
-    node_codes,
-    usable_counts,
-)
-from archive.survey.crs import WGS84_GEOGRAPHIC, survey_crs, transformer
+from archive.solve.segments import seg_median
+from archive.solve.uncertainty import batch_covariance
+from archive.solve.windows import FOREVER, Windows
+from archive.survey.crs import survey_crs
 
 Orthometric = Callable[[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray], np.ndarray]
 
@@ -81,229 +70,128 @@ def _stations(stations: pa.Table) -> dict[str, np.ndarray]:
                                                      "northing")}
 
 
-def _grid_covariance(lat: np.ndarray, lon: np.ndarray, e: np.ndarray, n: np.ndarray,
-                     vee: np.ndarray, vnn: np.ndarray, ven: np.ndarray, epsg: int,
-                     unit_factor: float = 1.0) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Rotate an east/north covariance into the grid (convergence) and scale it (k²).
-
-    The covariance stays in metres whatever the CRS unit: the step north is measured in
-    CRS units and turned into metres (``unit_factor``, metres per CRS unit) before it is
-    divided by the ground distance, so k is the dimensionless point scale factor.
-    """
-    d = 1e-5
-    xn, yn = transformer(WGS84_GEOGRAPHIC, epsg).transform(lon, lat + d)
-    dx, dy = np.asarray(xn) - e, np.asarray(yn) - n
-    m = 6335439.327 / (1 - 0.00669437999014 * np.sin(np.radians(lat)) ** 2) ** 1.5
-    k = np.hypot(dx, dy) * unit_factor / (m * np.radians(d))
-    beta = np.arctan2(dx, dy)
-    c, s = np.cos(beta), np.sin(beta)
-    # C' = k² R C Rᵀ with R = [[c, s], [-s, c]] acting on (east, north)
-    gee = c * c * vee + 2 * c * s * ven + s * s * vnn
-    gnn = s * s * vee - 2 * c * s * ven + c * c * vnn
-    gen = -c * s * vee + (c * c - s * s) * ven + c * s * vnn
-    k2 = np.where(np.isfinite(k), k * k, 1.0)
-    return gee * k2, gnn * k2, gen * k2
-
-
 def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
                 params: dict[str, Any], crs_epsg: int, *,
-                excludes: list[tuple[str, int, int]] | None = None,
+                excludes: list[Span] | None = None,
                 sampler: Sampler | None = None, orthometric: Orthometric | None = None,
                 detect_unlogged: bool = True, extra_windows: Windows | None = None,
                 want_members: bool = False) -> SolveOutput:
     """Solve every deployment of ``deployments`` from ``fixes`` (see module doc).
 
+    ``excludes`` are the exclude spans in force (:mod:`archive.edits.spans`);
     ``extra_windows`` adds windows given directly (an unlogged cluster's window, when one
     station's cloud is recomputed without searching the node tracks again).
     """
-    p = params
     unit = survey_crs(crs_epsg).unit_factor  # metres per CRS unit (1 for metric grids)
-    est = p["estimate"]
-    cap = est["scale_sample"]
-    fx = fix_arrays(fixes)
-    code = screen_codes(fx.columns(), p["screen"])
-    mark_excluded(code, excluded(fx.node_code, fx.t_us, fx.node_names, excludes or []))
-    ok = code == 0
     st = _stations(stations)
-    st_en = np.column_stack([st["easting"], st["northing"]]).astype(float)
+    screened = stages.screen(fixes, params, excludes or [])
+    found = stages.find_windows(screened, deployments, st, params, crs_epsg, unit,
+                                detect_unlogged=detect_unlogged, extra=extra_windows)
+    clouds = stages.gather_clouds(screened, found, params["estimate"]["scale_sample"])
+    parts = stages.split_moves(clouds, params["flags"])
+    est = stages.estimate(screened, clouds, parts, found.from_margins, params)
+    grid = stages.to_grid(clouds, parts, est, crs_epsg, unit)
+    span, spread = stages.span_and_spread(est, parts.n_rows)
+    hts = _heights(screened, clouds, parts, est, grid, params, sampler, orthometric)
+    rows = _rows(found, parts, st, grid, est, hts, span, spread, params, unit)
+    order = np.lexsort((rows["part"], rows["t_start"], rows["node"].astype(str),
+                        rows["index"], rows["point"], rows["line"],
+                        (rows["kind"] == "unlogged").astype(np.int8)))
+    positions = _table({k: v[order] for k, v in rows.items()})
+    w = found.windows
+    stats = {"n_fixes": len(screened.fx), "n_duplicates": screened.fx.n_duplicates,
+             "n_windows": len(w), "n_unlogged": int((w.kind == "unlogged").sum()),
+             "n_kept": int(screened.kept.sum()), "n_in_windows": len(clouds.fix)}
+    members = _members(screened, clouds, parts, est, order) if want_members else None
+    return SolveOutput(positions=positions, members=members, stats=stats)
 
-    logged, raw_s, raw_e = logged_windows(deployments, fx, p["window"]["settle_start_min"] * 60,
-                                          p["window"]["settle_end_min"] * 60)
-    # A run made before the fallback existed has no such parameter: it never used margins.
-    margins = np.zeros(len(logged), dtype=bool)
-    if p["window"].get("margin_fallback", False) and len(logged):
-        settled = usable_counts(fx, ok, logged.code, logged.start, logged.end)
-        whole = usable_counts(fx, ok, logged.code, raw_s, raw_e)
-        margins = (settled == 0) & (whole > 0)
-        logged.start = np.where(margins, raw_s, logged.start)
-        logged.end = np.where(margins, raw_e, logged.end)
-    wins = logged
-    if detect_unlogged and len(fx):
-        inside = inside_any(fx, logged.code, raw_s, raw_e)
-        unl = find_clusters(fx, ok & ~inside, st_en, (st["line"], st["point"], st["index"]),
-                            crs_epsg, p["clusters"], unit_factor=unit)
-        wins = Windows.concat([logged, unl])
-    if extra_windows is not None and len(extra_windows):
-        extra = extra_windows
-        extra.code = node_codes(extra.node, fx)
-        wins = Windows.concat([wins, extra])
-    n_win = len(wins)
-    win_margins = np.concatenate([margins, np.zeros(n_win - len(margins), dtype=bool)])
-    idx, wseg = gather(fx, wins)
-    m_ok = ok[idx]
-    oi, os_ = idx[m_ok], wseg[m_ok]
-    lat0 = seg_median(fx.lat[oi], os_, n_win, cap)
-    lon0 = seg_median(fx.lon[oi], os_, n_win, cap)
-    if len(idx):  # windows without a kept fix: centre on all their fixes (for the cloud)
-        lat0 = np.where(np.isfinite(lat0), lat0, seg_median(fx.lat[idx], wseg, n_win, cap))
-        lon0 = np.where(np.isfinite(lon0), lon0, seg_median(fx.lon[idx], wseg, n_win, cap))
-    lat0, lon0 = np.nan_to_num(lat0), np.nan_to_num(lon0)
-    e_all, n_all = to_local(fx.lat[idx], fx.lon[idx], lat0[wseg], lon0[wseg])
-    t_all = fx.t_us[idx]
 
-    # 4. moves -> parts -> position rows
-    mv = detect_moves(e_all[m_ok], n_all[m_ok], t_all[m_ok], os_, n_win, p["flags"])
-    moved_w = mv.split_us >= 0
-    n_parts = np.where(moved_w, 2, 1)
-    first_row = np.concatenate([[0], np.cumsum(n_parts)[:-1]]).astype(np.int64)
-    n_rows = int(n_parts.sum())
-    row_win = np.repeat(np.arange(n_win), n_parts)
-    row_part = np.where(moved_w[row_win], np.arange(n_rows) - first_row[row_win] + 1, 0)
-    later = moved_w[wseg] & (t_all >= mv.split_us[wseg])
-    part = np.where(moved_w[wseg], np.where(later, 2, 1), 0).astype(np.int8)
-    mrow = first_row[wseg] + later.astype(np.int64)
-
-    # 5. robust centre and uncertainty per row, on the kept fixes
-    rseg = mrow[m_ok]
-    eo, no = e_all[m_ok], n_all[m_ok]
-    rr = robust_centre([eo, no], fx.hdop[oi], rseg, n_rows, estimator=est["estimator"],
-                       huber_k=est["huber_k"], tukey_c=est["tukey_c"],
-                       reject_quantile=est["reject_quantile"], iterations=est["iterations"],
-                       scale_updates=est["scale_updates"], scale_sample=cap)
-    ce, cn = rr.centre
-    de, dn = eo - ce[rseg], no - cn[rseg]
-    # Times in seconds from each row's own first kept fix (integer microseconds first), so
-    # batch boundaries and spans do not depend on which other nodes share the partition.
-    t_ok = t_all[m_ok]
-    row_t0 = np.full(n_rows, np.iinfo(np.int64).max, dtype=np.int64)
-    np.minimum.at(row_t0, rseg, t_ok)
-    t_s = (t_ok - row_t0[rseg]) / 1e6
-    unc = p["uncertainty"]
-    if unc["method"] == "ar1":
-        cov = ar1_covariance(de, dn, rr.weight, rseg, n_rows)
-    else:
-        cov = batch_covariance(de, dn, rr.weight, t_s, rseg, n_rows,
-                               batch_s=unc["batch_hours"] * 3600,
-                               min_batches=unc["min_batches"])
-    used = ~rr.rejected
-    n_used = np.bincount(rseg[used], minlength=n_rows)
-    n_total = np.bincount(mrow, minlength=n_rows)
-    occupied = n_used > 0
-    floor2 = unc["floor"] ** 2
-    vee, vnn, ven = cov.vee + floor2, cov.vnn + floor2, cov.ven
-    us_seg = rseg[used]
-    med_hdop = seg_median(np.nan_to_num(fx.hdop[oi][used], nan=1.0), us_seg, n_rows, cap)
-    row_margins = win_margins[row_win]
-    if row_margins.any():
-        # Margin fixes span minutes, far less than the error correlation time: their mean is
-        # no better than one fix, whose per-axis error is sigma0 * HDOP (the weight model).
-        single = (est["sigma0"] * np.where(np.isfinite(med_hdop), med_hdop, 1.0)) ** 2
-        vee = np.where(row_margins, np.maximum(vee, single + floor2), vee)
-        vnn = np.where(row_margins, np.maximum(vnn, single + floor2), vnn)
-
-    # 6. to geographic and grid
-    lat_c, lon_c = from_local(ce, cn, lat0[row_win], lon0[row_win])
-    lat_c, lon_c = np.where(occupied, lat_c, np.nan), np.where(occupied, lon_c, np.nan)
-    east, north = (np.asarray(a) for a in
-                   transformer(WGS84_GEOGRAPHIC, crs_epsg).transform(lon_c, lat_c))
-    vee, vnn, ven = _grid_covariance(lat_c, lon_c, east, north, vee, vnn, ven, crs_epsg,
-                                     unit)
-    sig_e, sig_n = np.sqrt(vee), np.sqrt(vnn)
-    corr = ven / (sig_e * sig_n)
-    major, minor, bearing = ellipse95(vee, vnn, ven)
-    r95 = radius95(vee, vnn, ven)
-
-    # span and spread of the used fixes
-    us_t = t_s[used]
-    starts, counts = seg_starts(us_seg, n_rows)
-    span = np.zeros(n_rows)
-    span[occupied] = us_t[starts[occupied] + counts[occupied] - 1] - us_t[starts[occupied]]
-    spread = rr.scale * med_hdop
-
-    # 7. heights
-    hu = oi[used]
+def _heights(s: stages.Screened, c: stages.Clouds, parts: stages.Parts,
+             est: stages.Estimate, grid: stages.GridPositions, params: dict[str, Any],
+             sampler: Sampler | None, orthometric: Orthometric | None) -> Heights:
+    """The GNSS orthometric height of each row (medians of the used fixes) with its batch
+    uncertainty, then the delivered height from the elevation model (:mod:`heights`)."""
+    fx, n_rows, used_row = s.fx, parts.n_rows, est.used_row
+    cap = params["estimate"]["scale_sample"]
+    unc = params["uncertainty"]
+    hu = c.kept_fix[est.used]
     h_fix = gga_orthometric(fx.h_ell[hu], fx.h_msl[hu], fx.geoid_sep[hu])
 
     def med(values: np.ndarray) -> np.ndarray:
         fin = np.isfinite(values)
-        return seg_median(values[fin], us_seg[fin], n_rows, cap)
+        return seg_median(values[fin], used_row[fin], n_rows, cap)
 
     h_ell_m, h_msl_m, sep_m = med(fx.h_ell[hu]), med(fx.h_msl[hu]), med(fx.geoid_sep[hu])
     if orthometric is not None:
-        h_gnss = np.asarray(orthometric(lon_c, lat_c, h_ell_m, h_msl_m, sep_m), dtype=float)
+        h_gnss = np.asarray(orthometric(grid.lon, grid.lat, h_ell_m, h_msl_m, sep_m),
+                            dtype=float)
     else:
         h_gnss = gga_orthometric(h_ell_m, h_msl_m, sep_m)
-    fin_h = np.isfinite(h_fix)
-    h_res = h_fix[fin_h] - med(h_fix)[us_seg[fin_h]]
-    hcov = batch_covariance(h_res, np.zeros(len(h_res)), np.ones(len(h_res)), us_t[fin_h],
-                            us_seg[fin_h], n_rows, batch_s=unc["batch_hours"] * 3600,
-                            min_batches=unc["min_batches"])
-    hts = solve_heights(east, north, sig_e, sig_n, h_gnss, np.sqrt(hcov.vee), sampler,
-                        p["height"])
+    fin = np.isfinite(h_fix)
+    residual = h_fix[fin] - med(h_fix)[used_row[fin]]
+    hcov = batch_covariance(residual, np.zeros(len(residual)), np.ones(len(residual)),
+                            est.t_s[est.used][fin], used_row[fin], n_rows,
+                            batch_s=unc["batch_hours"] * 3600, min_batches=unc["min_batches"])
+    return solve_heights(grid.east, grid.north, grid.sigma_e, grid.sigma_n, h_gnss,
+                         np.sqrt(hcov.vee), sampler, params["height"])
 
-    # flags
-    rl, rp, ri = wins.line[row_win], wins.point[row_win], wins.index[row_win]
-    own_key, st_key = flagmod.station_keys((rl, rp, ri), (st["line"], st["point"], st["index"]))
-    pre = flagmod.preplot_checks(east, north, own_key, st_key, st["easting"], st["northing"],
-                                 st["line"], st["point"], unit_factor=unit)
-    kind = wins.kind[row_win]
-    cols = {"n_used": n_used, "span_s": span, "unit_scale": np.where(occupied, rr.scale, 0.0),
-            "moved": moved_w[row_win], "dist_preplot": pre["dist_preplot"],
-            "dist_nearest": pre["dist_nearest"], "dh": hts.dh, "off_model": hts.off_model,
-            "kind": kind}
-    flag_col = flagmod.flag_strings(cols, p)
 
-    t_start = wins.start[row_win].copy()
-    t_end = wins.end[row_win].copy()
-    split = mv.split_us[row_win]
-    t_end = np.where(row_part == 1, split - 1, t_end)
-    t_start = np.where(row_part == 2, split, t_start)
-    nan_if_empty = {"easting": east, "northing": north}
-    data = {
-        "line": rl, "point": rp, "index": ri, "node": wins.node[row_win], "kind": kind,
-        "part": row_part.astype(np.int8),
-        "delivered": (kind == "logged") & (row_part == np.where(moved_w[row_win], 2, 0)),
+def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray],
+          grid: stages.GridPositions, est: stages.Estimate, hts: Heights, span: np.ndarray,
+          spread: np.ndarray, params: dict[str, Any], unit: float) -> dict[str, np.ndarray]:
+    """The columns of the positions table, one element per row (before sorting): station
+    and occupation, window of the part, position and uncertainty, heights, counts, preplot
+    checks and review flags."""
+    w, rw, part = found.windows, parts.row_window, parts.row_part
+    line, point, index = w.line[rw], w.point[rw], w.index[rw]
+    own_key, st_key = flagmod.station_keys((line, point, index),
+                                           (st["line"], st["point"], st["index"]))
+    pre = flagmod.preplot_checks(grid.east, grid.north, own_key, st_key, st["easting"],
+                                 st["northing"], st["line"], st["point"], unit_factor=unit)
+    kind = w.kind[rw]
+    occupied = est.occupied
+    flags = flagmod.flag_strings(
+        {"n_used": est.n_used, "span_s": span,
+         "unit_scale": np.where(occupied, est.robust.scale, 0.0), "moved": parts.moved[rw],
+         "dist_preplot": pre["dist_preplot"], "dist_nearest": pre["dist_nearest"],
+         "dh": hts.dh, "off_model": hts.off_model, "kind": kind}, params)
+    split = parts.moves.split_us[rw]
+    t_start = np.where(part == 2, split, w.start[rw])
+    t_end = np.where(part == 1, split - 1, w.end[rw])
+    cols = {
+        "line": line, "point": point, "index": index, "node": w.node[rw], "kind": kind,
+        "part": part.astype(np.int8),
+        "delivered": (kind == "logged") & (part == np.where(parts.moved[rw], 2, 0)),
         "t_start": t_start, "t_end": t_end,
-        **nan_if_empty, "lat": lat_c, "lon": lon_c,
+        "easting": grid.east, "northing": grid.north, "lat": grid.lat, "lon": grid.lon,
         "height": hts.height, "height_source": hts.source, "h_gnss": hts.h_gnss,
         "h_model": hts.h_model, "dh": hts.dh,
-        "sigma_e": sig_e, "sigma_n": sig_n, "corr_en": corr, "ell_major": major,
-        "ell_minor": minor, "ell_bearing": bearing, "r95": r95, "sigma_h": hts.sigma,
-        "n_total": n_total, "n_used": n_used, "n_rejected": n_total - n_used,
-        "n_eff": cov.n_eff, "span_s": span, "spread": spread, **pre,
-        "estimator": np.full(n_rows, est["estimator"], dtype=object), "flags": flag_col,
-        "occupation": np.where(kind == "logged", wins.occupation[row_win], 0),
-        "deployed": wins.deployed[row_win], "retrieved": wins.retrieved[row_win],
-        "from_margins": row_margins,
+        "sigma_e": grid.sigma_e, "sigma_n": grid.sigma_n, "corr_en": grid.corr,
+        "ell_major": grid.ell_major, "ell_minor": grid.ell_minor,
+        "ell_bearing": grid.ell_bearing, "r95": grid.r95, "sigma_h": hts.sigma,
+        "n_total": est.n_total, "n_used": est.n_used, "n_rejected": est.n_total - est.n_used,
+        "n_eff": est.covariance.n_eff, "span_s": span, "spread": spread, **pre,
+        "estimator": np.full(parts.n_rows, params["estimate"]["estimator"], dtype=object),
+        "flags": flags,
+        "occupation": np.where(kind == "logged", w.occupation[rw], 0),
+        "deployed": w.deployed[rw], "retrieved": w.retrieved[rw],
+        "from_margins": found.from_margins[rw],
     }
     for key in ("sigma_e", "sigma_n", "corr_en", "ell_major", "ell_minor", "ell_bearing",
                 "r95", "n_eff", "spread", "span_s", "h_gnss", "dh"):
-        data[key] = np.where(occupied, data[key], np.nan)
-    order = np.lexsort((row_part, t_start, data["node"].astype(str), ri, rp, rl,
-                        (kind == "unlogged").astype(np.int8)))
-    positions = _table({k: v[order] for k, v in data.items()})
-    stats = {"n_fixes": len(fx), "n_duplicates": fx.n_duplicates, "n_windows": n_win,
-             "n_unlogged": int((wins.kind == "unlogged").sum()),
-             "n_kept": int(ok.sum()), "n_in_windows": len(idx)}
-    members = None
-    if want_members:
-        rank = np.empty(n_rows, dtype=np.int64)
-        rank[order] = np.arange(n_rows)
-        rej = np.zeros(len(idx), dtype=bool)
-        rej[np.flatnonzero(m_ok)] = rr.rejected
-        members = Members(fix=idx, row=rank[mrow], part=part, screen=code[idx], rejected=rej,
-                          fx=fx)
-    return SolveOutput(positions=positions, members=members, stats=stats)
+        cols[key] = np.where(occupied, cols[key], np.nan)
+    return cols
+
+
+def _members(s: stages.Screened, c: stages.Clouds, parts: stages.Parts,
+             est: stages.Estimate, order: np.ndarray) -> Members:
+    """What became of every member, with rows numbered as in the sorted table."""
+    rank = np.empty(parts.n_rows, dtype=np.int64)
+    rank[order] = np.arange(parts.n_rows)
+    rejected = np.zeros(len(c.fix), dtype=bool)
+    rejected[np.flatnonzero(c.kept)] = est.robust.rejected
+    return Members(fix=c.fix, row=rank[parts.member_row], part=parts.member_part,
+                   screen=s.code[c.fix], rejected=rejected, fx=s.fx)
 
 
 def _table(data: dict[str, np.ndarray]) -> pa.Table:
