@@ -26,17 +26,16 @@ import pyarrow as pa
 from sqlalchemy import func, select
 
 from archive import __version__
-from archive.deliver.context import CAUTION, DeliveryContext, station_label
+from archive.deliver.context import DeliveryContext, station_label
 from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
-from archive.edits.log import delivery_edit_set, edit_dict
+from archive.deliver.manifest import DeliveryFacts, lineage_manifest, manifest_bytes
+from archive.edits.log import delivery_edit_set
 from archive.errors import Refused, StorageError, UsageError
 from archive.solve.run import get_run, manifest_inputs, run_manifest
 from archive.store.archive import Archive
-from archive.store.hashing import table_digest
-from archive.store.ledger import row_digest
 from archive.store.models import Delivery, LedgerHead, RawFile, Run, Survey, utcnow
-from archive.store.outfiles import temp_beside
+from archive.store.outfiles import check_target, temp_beside
 from archive.survey.keys import station_text
 
 LINEAGE_SUFFIX = ".lineage.json"
@@ -109,37 +108,8 @@ def raw_files_of(arc: Archive, survey_id: int, fix_hashes: list[str]) -> list[di
              "received_at": r.received_at, "received_by": r.received_by} for r in rows]
 
 
-def _json_bytes(doc: dict[str, Any]) -> bytes:
-    def default(v: Any) -> Any:
-        if hasattr(v, "isoformat"):
-            return v.isoformat()
-        raise TypeError(type(v).__name__)
-
-    return (json.dumps(doc, indent=2, sort_keys=True, ensure_ascii=False, default=default,
-                       allow_nan=False) + "\n").encode("utf-8")
-
-
 def _station(e: Any) -> str:
     return f"station {station_text(e.line, e.point, e.point_index)}"
-
-
-def check_target(path: Path, force: bool) -> None:
-    """Refuse a delivery path that cannot be written: a folder, an existing file without
-    ``force``, a missing or unwritable parent folder. Called before anything is stored."""
-    if path.is_dir():
-        raise UsageError(f"{path} is a folder, not a file name",
-                         hint="give --to a file name, e.g. --to FOLDER/receivers.sps")
-    if path.exists() and not force:
-        raise Refused(f"{path} already exists",
-                      hint="pass --force to overwrite it (earlier deliveries stay in the "
-                           "archive by hash), or choose another --to")
-    parent = path.parent
-    if not parent.is_dir():
-        raise UsageError(f"the folder {parent} does not exist",
-                         hint="create it first or choose another --to")
-    if not os.access(parent, os.W_OK | os.X_OK):
-        raise UsageError(f"the folder {parent} is not writable",
-                         hint="choose a folder you may write to with --to")
 
 
 def _move_into_place(arc: Archive, survey_id: int, delivery_id: int,
@@ -164,18 +134,6 @@ def _move_into_place(arc: Archive, survey_id: int, delivery_id: int,
             f"({exc}); the ledger says so (deliver.failed)",
             hint="the delivered bytes are in the archive by hash: fix the folder and deliver "
                  "again (with --force if a partial file is left)") from exc
-
-
-def occupations_of(final: pa.Table) -> list[dict[str, Any]]:
-    """The delivered occupations of every station (line, point): for the lineage manifest."""
-    cols = ["line", "point", "index", "station_index", "node", "deployed", "retrieved",
-            "merged"]
-    stations: dict[tuple[float, float], list[dict[str, Any]]] = {}
-    for r in final.select(cols).to_pylist():  # one entry per delivered record
-        occ = {k: r[k] for k in cols[2:]}
-        occ["merged"] = [int(i) for i in r["merged"].split(";")] if r["merged"] else []
-        stations.setdefault((r["line"], r["point"]), []).append(occ)
-    return [{"line": k[0], "point": k[1], "occupations": v} for k, v in stations.items()]
 
 
 def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str | Path,
@@ -207,8 +165,6 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         raise Refused(f"run {run.id[:12]} with the edits in force leaves no station to deliver",
                       hint="check the run ('nodekeep show') and the reject edits "
                            "('nodekeep edits')")
-    n_stations = len(set(zip(final["line"].to_pylist(), final["point"].to_pylist(),
-                             strict=True)))
     flags = unacknowledged_flags(final)
     if flags and not allow_flags:
         raise _flag_refusal(final, flags, run)
@@ -224,9 +180,35 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         code_version=__version__, produced_at=produced)
     data = write(final, ctx)
 
-    inputs = manifest_inputs(manifest)
     file_hash, file_size = arc.objects.put_bytes(data)
     final_hash, final_size = arc.objects.put_table(final)
+    inputs = manifest_inputs(manifest)
+    facts = DeliveryFacts(
+        fmt=fmt, file_name=target.name, file_hash=file_hash, file_size=file_size,
+        recipient=recipient, note=note, actor=arc.actor, produced=produced,
+        allow_flags=allow_flags, flags=flags, survey=survey, heights_datum=heights_datum,
+        run=run, run_manifest=manifest, edits=edits, edit_set_hash=edit_hash,
+        unapplied=unapplied, inputs=inputs,
+        raw_files=raw_files_of(arc, survey_id, inputs.get("fixes", [])), final=final,
+        final_hash=final_hash, merge=merge_occupations, merges=built.merges)
+    delivery_id, manifest_hash, (tmp_file, tmp_lineage) = _record(
+        arc, survey_id, facts, data, final_size, target, lineage_path)
+    _move_into_place(arc, survey_id, delivery_id,
+                     [(tmp_file, target), (tmp_lineage, lineage_path)])
+    return DeliveryResult(
+        delivery_id=delivery_id, path=str(target), lineage_path=str(lineage_path),
+        format=fmt, file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash,
+        run_id=run.id, n_stations=facts.n_stations, n_records=final.num_rows,
+        edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
+        unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
+        merges=built.merges)
+
+
+def _record(arc: Archive, survey_id: int, f: DeliveryFacts, data: bytes, final_size: int,
+            target: Path, lineage_path: Path) -> tuple[int, str, tuple[Path, Path]]:
+    """Record the delivery in one transaction (its id is taken under the ledger's write
+    lock) with the file and manifest written to temporary files beside their targets;
+    returns (id, manifest hash, temporary files). On any failure the temporary files go."""
     tmp_file = temp_beside(target, data)
     tmp_lineage = None
     try:
@@ -234,59 +216,28 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
             # Serialise deliveries so the next id is ours (the ledger head is the write lock).
             tx.execute(select(LedgerHead).where(LedgerHead.id == 1).with_for_update())
             next_id = (tx.execute(select(func.max(Delivery.id))).scalar_one_or_none() or 0) + 1
-            lineage = {
-                "nodekeep_lineage": 1,
-                "delivery": {"id": next_id, "format": fmt, "file_name": target.name,
-                             "file_hash": file_hash, "size": file_size,
-                             "recipient": recipient, "note": note, "actor": arc.actor,
-                             "at": produced, "allowed_flags": bool(allow_flags),
-                             "unacknowledged_flags": flags, "n_stations": n_stations,
-                             "n_records": final.num_rows,
-                             "merge_occupations": bool(merge_occupations)},
-                "survey": {"name": survey.name, "crs": f"EPSG:{survey.crs_epsg}",
-                           "crs_name": survey.crs_name, "unit": survey.linear_unit,
-                           "vertical_datum": survey.vertical_datum,
-                           "heights_datum": heights_datum, "client": survey.client,
-                           "contractor": survey.contractor},
-                "run": {"id": run.id, "manifest_hash": run.manifest_hash,
-                        "positions_hash": run.positions_hash,
-                        "positions_digest": run.positions_digest,
-                        "code_version": run.code_version, "created_at": run.created_at,
-                        "created_by": run.created_by, "manifest": manifest},
-                "edit_set_hash": edit_hash,
-                "edits": [edit_dict(e) | {"digest": row_digest(e)} for e in edits],
-                "edits_not_applied": [e.id for e in unapplied],
-                "inputs": inputs,
-                "raw_files": raw_files_of(arc, survey_id, inputs.get("fixes", [])),
-                "final_positions": {"hash": final_hash, "digest": table_digest(final),
-                                    "rows": final.num_rows},
-                "occupations": occupations_of(final),
-                "merges": built.merges,
-                "code_version": __version__,
-                "caution": CAUTION,
-            }
-            lineage_bytes = _json_bytes(lineage)
+            lineage_bytes = manifest_bytes(lineage_manifest(f, next_id))
             manifest_hash, manifest_size = arc.objects.put_bytes(lineage_bytes)
             tmp_lineage = temp_beside(lineage_path, lineage_bytes)
-            arc.register_object(tx, file_hash, file_size, "delivery")
-            arc.register_object(tx, final_hash, final_size, "table")
+            arc.register_object(tx, f.file_hash, f.file_size, "delivery")
+            arc.register_object(tx, f.final_hash, final_size, "table")
             arc.register_object(tx, manifest_hash, manifest_size, "lineage")
             row = Delivery(
-                id=next_id, survey_id=survey_id, run_id=run.id, edit_set_hash=edit_hash,
-                edit_ids=json.dumps([e.id for e in edits]), format=fmt, file_hash=file_hash,
-                manifest_hash=manifest_hash, final_hash=final_hash, file_name=target.name,
-                recipient=recipient, note=note, allowed_flags=bool(allow_flags),
-                created_at=produced, created_by=arc.actor)
+                id=next_id, survey_id=survey_id, run_id=f.run.id, edit_set_hash=f.edit_set_hash,
+                edit_ids=json.dumps([e.id for e in f.edits]), format=f.fmt,
+                file_hash=f.file_hash, manifest_hash=manifest_hash, final_hash=f.final_hash,
+                file_name=f.file_name, recipient=f.recipient, note=f.note,
+                allowed_flags=bool(f.allow_flags), created_at=f.produced, created_by=arc.actor)
             tx.add(row)
             tx.flush()
             arc.log(tx, "deliver",
-                    {"delivery": next_id, "run": run.id, "format": fmt, "file": file_hash,
-                     "name": target.name, "final": final_hash, "lineage": manifest_hash,
-                     "recipient": recipient, "edit_set": edit_hash,
-                     "edits": [e.id for e in edits], "allowed_flags": bool(allow_flags),
-                     "unacknowledged_flags": flags,
-                     "merge_occupations": bool(merge_occupations),
-                     "merged_stations": sum(1 for m in built.merges if m["merged"])},
+                    {"delivery": next_id, "run": f.run.id, "format": f.fmt,
+                     "file": f.file_hash, "name": f.file_name, "final": f.final_hash,
+                     "lineage": manifest_hash, "recipient": f.recipient,
+                     "edit_set": f.edit_set_hash, "edits": [e.id for e in f.edits],
+                     "allowed_flags": bool(f.allow_flags), "unacknowledged_flags": f.flags,
+                     "merge_occupations": bool(f.merge),
+                     "merged_stations": sum(1 for m in f.merges if m["merged"])},
                     survey_id=survey_id, rows=[row])
     except BaseException:
         for tmp in (tmp_file, tmp_lineage):
@@ -294,13 +245,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                 with contextlib.suppress(FileNotFoundError):
                     tmp.unlink()
         raise
-    _move_into_place(arc, survey_id, next_id, [(tmp_file, target), (tmp_lineage, lineage_path)])
-    return DeliveryResult(
-        delivery_id=next_id, path=str(target), lineage_path=str(lineage_path), format=fmt,
-        file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash, run_id=run.id,
-        n_stations=n_stations, n_records=final.num_rows, edit_ids=[e.id for e in edits], edit_set_hash=edit_hash,
-        recipient=recipient, unacknowledged_flags=flags, allowed_flags=bool(allow_flags),
-        warnings=warnings, merges=built.merges)
+    return next_id, manifest_hash, (tmp_file, tmp_lineage)
 
 
 def delivery_dict(d: Delivery) -> dict[str, Any]:

@@ -24,7 +24,7 @@ import pandas as pd
 import pyarrow as pa
 
 from archive import __version__
-from archive.errors import NodekeepError, Refused, UsageError
+from archive.errors import NodekeepError, UsageError
 from archive.progress import NoProgress, Progress
 from archive.qc import figures, html, notes
 from archive.qc.check import QcResult, qc_of, summary_rows
@@ -32,7 +32,7 @@ from archive.qc.clouds import Station, cloud_figure
 from archive.qc.sources import RunData, cloud_reader, load_run_data
 from archive.qc.stats import delivered
 from archive.store.archive import Archive
-from archive.store.outfiles import write_file
+from archive.store.outfiles import check_target, write_file
 from archive.survey.keys import station_text
 
 MAX_CLOUDS = 40
@@ -302,11 +302,7 @@ def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | 
     renamed, so a failure never leaves half a report.
     """
     path = Path(path)
-    if path.exists() and not force:
-        raise Refused(f"{path} already exists", hint="pass --force to overwrite it")
-    if not path.parent.is_dir():
-        raise UsageError(f"the folder {path.parent} does not exist",
-                         hint="create it first or choose another --to")
+    check_target(path, force)
     t0 = time.perf_counter()
     data = load_run_data(arc, survey_id, run_ref)
     result = qc_of(data, tolerance)

@@ -15,6 +15,8 @@ import tempfile
 import threading
 from pathlib import Path
 
+from archive.errors import Refused, UsageError
+
 _UMASK_LOCK = threading.Lock()
 
 
@@ -65,3 +67,22 @@ def write_file(target: Path, data: bytes) -> None:
         with contextlib.suppress(FileNotFoundError):
             tmp.unlink()
         raise
+
+
+def check_target(path: Path, force: bool) -> None:
+    """Refuse an output path that cannot be written: a folder, an existing file without
+    ``force``, a missing or unwritable parent folder. Called before any work is stored."""
+    if path.is_dir():
+        raise UsageError(f"{path} is a folder, not a file name",
+                         hint="give --to a file name, e.g. --to FOLDER/receivers.sps")
+    if path.exists() and not force:
+        raise Refused(f"{path} already exists",
+                      hint="pass --force to overwrite it (earlier deliveries stay in the "
+                           "archive by hash), or choose another --to")
+    parent = path.parent
+    if not parent.is_dir():
+        raise UsageError(f"the folder {parent} does not exist",
+                         hint="create it first or choose another --to")
+    if not os.access(parent, os.W_OK | os.X_OK):
+        raise UsageError(f"the folder {parent} is not writable",
+                         hint="choose a folder you may write to with --to")

@@ -1,0 +1,115 @@
+"""The lineage manifest of a delivery: what the recipient holds beside the delivered file.
+
+:class:`DeliveryFacts` gathers everything a delivery rests on before it is recorded;
+:func:`lineage_manifest` lays it out as the JSON document written as ``FILE.lineage.json``
+and stored by hash (its layout: docs/delivery.md, "What a delivery writes and records").
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+import pyarrow as pa
+
+from archive import __version__
+from archive.deliver.context import CAUTION
+from archive.edits.log import edit_dict
+from archive.store.hashing import table_digest
+from archive.store.ledger import row_digest
+from archive.store.models import Edit, Run, Survey
+
+LINEAGE_FORMAT = 1
+
+
+@dataclass
+class DeliveryFacts:
+    """Everything a delivery states about itself, known before it is recorded."""
+
+    fmt: str
+    file_name: str
+    file_hash: str
+    file_size: int
+    recipient: str
+    note: str
+    actor: str
+    produced: datetime
+    allow_flags: bool
+    flags: dict[str, int]  # unacknowledged flags delivered anyway
+    survey: Survey
+    heights_datum: str
+    run: Run
+    run_manifest: dict[str, Any]
+    edits: list[Edit]
+    edit_set_hash: str
+    unapplied: list[Edit]  # exclude spans in force the run did not apply
+    inputs: dict[str, Any]
+    raw_files: list[dict[str, Any]]
+    final: pa.Table
+    final_hash: str
+    merge: bool
+    merges: list[dict[str, Any]]
+
+    @property
+    def n_stations(self) -> int:
+        """Stations (line, point) delivered."""
+        return len(set(zip(self.final["line"].to_pylist(), self.final["point"].to_pylist(),
+                           strict=True)))
+
+
+def occupations_of(final: pa.Table) -> list[dict[str, Any]]:
+    """The delivered occupations of every station (line, point)."""
+    cols = ["line", "point", "index", "station_index", "node", "deployed", "retrieved",
+            "merged"]
+    stations: dict[tuple[float, float], list[dict[str, Any]]] = {}
+    for r in final.select(cols).to_pylist():  # one entry per delivered record
+        occ = {k: r[k] for k in cols[2:]}
+        occ["merged"] = [int(i) for i in r["merged"].split(";")] if r["merged"] else []
+        stations.setdefault((r["line"], r["point"]), []).append(occ)
+    return [{"line": k[0], "point": k[1], "occupations": v} for k, v in stations.items()]
+
+
+def lineage_manifest(f: DeliveryFacts, delivery_id: int) -> dict[str, Any]:
+    """The lineage manifest of delivery ``delivery_id`` (see module doc)."""
+    survey, run = f.survey, f.run
+    return {
+        "nodekeep_lineage": LINEAGE_FORMAT,
+        "delivery": {"id": delivery_id, "format": f.fmt, "file_name": f.file_name,
+                     "file_hash": f.file_hash, "size": f.file_size, "recipient": f.recipient,
+                     "note": f.note, "actor": f.actor, "at": f.produced,
+                     "allowed_flags": bool(f.allow_flags), "unacknowledged_flags": f.flags,
+                     "n_stations": f.n_stations, "n_records": f.final.num_rows,
+                     "merge_occupations": bool(f.merge)},
+        "survey": {"name": survey.name, "crs": f"EPSG:{survey.crs_epsg}",
+                   "crs_name": survey.crs_name, "unit": survey.linear_unit,
+                   "vertical_datum": survey.vertical_datum, "heights_datum": f.heights_datum,
+                   "client": survey.client, "contractor": survey.contractor},
+        "run": {"id": run.id, "manifest_hash": run.manifest_hash,
+                "positions_hash": run.positions_hash, "positions_digest": run.positions_digest,
+                "code_version": run.code_version, "created_at": run.created_at,
+                "created_by": run.created_by, "manifest": f.run_manifest},
+        "edit_set_hash": f.edit_set_hash,
+        "edits": [edit_dict(e) | {"digest": row_digest(e)} for e in f.edits],
+        "edits_not_applied": [e.id for e in f.unapplied],
+        "inputs": f.inputs,
+        "raw_files": f.raw_files,
+        "final_positions": {"hash": f.final_hash, "digest": table_digest(f.final),
+                            "rows": f.final.num_rows},
+        "occupations": occupations_of(f.final),
+        "merges": f.merges,
+        "code_version": __version__,
+        "caution": CAUTION,
+    }
+
+
+def manifest_bytes(doc: dict[str, Any]) -> bytes:
+    """The manifest as stored and written: indented, sorted keys, UTF-8, times ISO 8601."""
+    def default(v: Any) -> Any:
+        if hasattr(v, "isoformat"):
+            return v.isoformat()
+        raise TypeError(type(v).__name__)
+
+    return (json.dumps(doc, indent=2, sort_keys=True, ensure_ascii=False, default=default,
+                       allow_nan=False) + "\n").encode("utf-8")
