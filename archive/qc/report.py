@@ -12,7 +12,6 @@ The report only reads the archive.
 from __future__ import annotations
 
 import time
-from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from html import escape
@@ -20,27 +19,28 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import pandas as pd
-import pyarrow as pa
 
 from archive import __version__
-from archive.errors import NodekeepError, UsageError
+from archive.errors import UsageError
 from archive.progress import NoProgress, Progress
 from archive.qc import figures, html, notes
 from archive.qc.check import QcResult, qc_of, summary_rows
-from archive.qc.clouds import Station, cloud_figure
+from archive.qc.review_list import (
+    BEYOND,
+    OCC_KEY,
+    CloudReader,
+    cloud_section,
+    review_list,
+    review_table,
+    with_occupation,
+)
 from archive.qc.sources import RunData, cloud_reader, load_run_data
 from archive.qc.stats import delivered
 from archive.store.archive import Archive
 from archive.store.outfiles import check_target, write_file
-from archive.survey.keys import station_text
 
 MAX_CLOUDS = 40
 """Stations drawn with their fix cloud; the rest of the review list is tabled only."""
-MAX_TABLE_ROWS = 1000
-BEYOND = "beyond-check"  # review reason added by qc: farther than the tolerance from its check point
-
-CloudReader = Callable[[float, float, int], "pa.Table | None"]
 
 
 @dataclass
@@ -60,36 +60,6 @@ class ReportWritten:
         return {"path": str(self.path), "size_bytes": self.size_bytes,
                 "n_figures": self.n_figures, "n_clouds": self.n_clouds,
                 "n_review": self.n_review, "run": self.run, "seconds": round(self.seconds, 2)}
-
-
-def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
-    """Stations to review: beyond the tolerance first (largest first), then solver flags."""
-    pos = _with_occupation(delivered(data.positions).to_pandas())
-    pts = result.comparison.points.select(
-        [*OCC_KEY, "dist", "check_e", "check_n"]).to_pandas()
-    df = pos.merge(pts, on=OCC_KEY, how="left")
-    df["dist_preplot"] = df["dist_preplot"].fillna(
-        np.hypot(df["easting"] - df["preplot_e"], df["northing"] - df["preplot_n"]))
-    df["beyond"] = df["dist"] > result.tolerance
-    df = df[(df["flags"] != "") | df["beyond"]].copy()
-    df["reasons"] = np.where(df["beyond"], np.where(df["flags"] != "", BEYOND + ";" + df["flags"],
-                                                    BEYOND), df["flags"])
-    df["_d"] = df["dist"].where(df["beyond"], -1.0)
-    return df.sort_values(["_d", "line", "point", "occupation"],
-                          ascending=[False, True, True, True],
-                          kind="stable").reset_index(drop=True)
-
-
-OCC_KEY = ["line", "point", "index", "occupation"]
-"""A delivered record: the preplot station (line, point, index) and the occupation's index."""
-
-
-def _with_occupation(df: pd.DataFrame) -> pd.DataFrame:
-    """``occupation`` filled with the station index where a table has none (older runs)."""
-    if "occupation" not in df.columns:
-        df["occupation"] = df["index"]
-    df["occupation"] = df["occupation"].fillna(df["index"]).astype("int64")
-    return df
 
 
 def _summary_section(result: QcResult) -> str:
@@ -127,55 +97,6 @@ def _lineage_section(data: RunData) -> str:
     return html.section("lineage", "Lineage", body)
 
 
-def _review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
-    if df.empty:
-        return "<p>No station needs review.</p>"
-    rows = []
-    for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
-        name = station_text(r.line, r.point)
-        link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
-        rows.append((link, r.occupation, escape(str(r.node)),
-                     escape(r.reasons.replace(";", ", ")),
-                     html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
-                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}"))
-    more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more stations are not listed; '
-            "'nodekeep qc --json' lists every one.</p>" if len(df) > MAX_TABLE_ROWS else "")
-    return ('<div class="scroll">' + html.table(
-        ["station (line / point)", "index", "node", "reasons", "to check point (m)",
-         "to preplot (m)", "own R95 (m)", "fixes used", "rejected"], rows,
-        numeric=(1, 4, 5, 6, 7, 8), raw=(0, 2, 3)) + "</div>" + more)
-
-
-def _station(r: Any) -> Station:
-    return Station(line=r.line, point=r.point, index=int(r.occupation), easting=r.easting,
-                   northing=r.northing, ell_major=r.ell_major, ell_minor=r.ell_minor,
-                   ell_bearing=r.ell_bearing, preplot_e=r.preplot_e, preplot_n=r.preplot_n,
-                   check_e=r.check_e, check_n=r.check_n, flags=r.reasons)
-
-
-def _clouds(df: pd.DataFrame, read_cloud: CloudReader | None, max_clouds: int,
-            progress: Progress) -> tuple[str, int]:
-    parts = []
-    for i, r in enumerate(df.head(max_clouds).itertuples()):
-        cloud, problem = None, ""
-        if read_cloud is not None:
-            try:
-                cloud = read_cloud(float(r.line), float(r.point), int(r.occupation))
-            except NodekeepError as exc:
-                problem = f"fixes unavailable: {exc}"
-        uri, caption = cloud_figure(_station(r), cloud)
-        caption = f"{r.reasons.replace(';', ', ')}. {caption}" + (f"; {problem}" if problem else "")
-        parts.append(html.figure(uri, caption, "cloud", f"fix cloud of station {station_text(r.line, r.point, r.occupation)}")
-                     .replace('id="fig-cloud"', f'id="cloud-{i}"'))
-        progress.advance(1, station_text(r.line, r.point))
-    note = ""
-    if len(df) > max_clouds:
-        note = (f'<p class="note">Fix clouds are drawn for the first {max_clouds} of '
-                f"{len(df):,} stations needing review (those beyond the tolerance first); the "
-                "table above lists them all.</p>")
-    return note + '<div class="clouds">' + "".join(parts) + "</div>", len(parts)
-
-
 def _definitions() -> str:
     from archive.solve.schema import FLAGS
 
@@ -195,21 +116,8 @@ def _definitions() -> str:
                         + html.table(["reason", "meaning"], sorted(flags.items())))
 
 
-def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | None, *,
-                  progress: Progress | None = None, max_clouds: int = MAX_CLOUDS,
-                  generated_at: datetime | None = None) -> tuple[str, dict[str, int]]:
-    """The report page as text, with counts of figures and clouds drawn.
-
-    ``max_clouds`` limits the cloud plots to the first stations to review; 0 draws all.
-    """
-    if max_clouds < 0:
-        raise UsageError(f"the number of cloud plots cannot be negative ({max_clouds})",
-                         hint="give 0 for all, or a positive limit")
-    progress = progress or NoProgress()
-    review = review_list(data, result)
-    max_clouds = max_clouds or len(review)
-    n_clouds = min(len(review), max_clouds)
-    progress.start(3 + n_clouds, "figures", "report")
+def _figures(data: RunData, result: QcResult, review: Any, progress: Progress) -> list[str]:
+    """The overview map, error vectors and distributions, as HTML figures."""
     pts = result.comparison.points
     col = {c: pts[c].to_numpy(zero_copy_only=False).astype(float) for c in
            ("check_e", "check_n", "de", "dn", "dh", "dist", "pre_de", "pre_dn", "pre_dh",
@@ -219,7 +127,7 @@ def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | Non
            ("line", "point", "easting", "northing", "preplot_e", "preplot_n")}
     flagged = np.zeros(dl.num_rows, dtype=bool)
     if len(review):
-        keys = _with_occupation(dl.select(
+        keys = with_occupation(dl.select(
             [c for c in OCC_KEY if c in dl.column_names]).to_pandas())
         marked = keys.merge(review[OCC_KEY].drop_duplicates(), on=OCC_KEY, how="left",
                             indicator=True)
@@ -244,32 +152,43 @@ def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | Non
     else:
         figs.append('<p class="note">No check point matches a delivered station: no vector or '
                     "distribution figures.</p>")
-    beyond_n = int(review["beyond"].sum()) if len(review) else 0
-    clouds_html, drawn = _clouds(review, read_cloud, max_clouds, progress)
-    progress.close()
+    return figs
 
+
+def _verdict(result: QcResult, beyond_n: int) -> str:
+    """The tiles at the top: delivered, checked, accuracy, beyond tolerance, flagged."""
     s = result.comparison.solved.horizontal
     p = result.comparison.preplot.horizontal
     tiles = [(f"{result.n_delivered:,}", "stations delivered"),
              (f"{result.n_checked:,}", "with an RTK check point"),
-             (f"{html.num(s.mean, '{:.2f}')} m", f"mean to check, solved (preplot {html.num(p.mean, '{:.2f}')} m)"),
-             (f"{html.num(s.p95, '{:.2f}')} m", f"95th percentile, solved (preplot {html.num(p.p95, '{:.2f}')} m)"),
+             (f"{html.num(s.mean, '{:.2f}')} m",
+              f"mean to check, solved (preplot {html.num(p.mean, '{:.2f}')} m)"),
+             (f"{html.num(s.p95, '{:.2f}')} m",
+              f"95th percentile, solved (preplot {html.num(p.p95, '{:.2f}')} m)"),
              (f"{beyond_n:,}", f"beyond {result.tolerance:g} m of their check point"),
              (f"{result.n_flagged:,}", "flagged by the solver")]
-    verdict = '<div class="verdict">' + "".join(
+    return '<div class="verdict">' + "".join(
         f'<div class="tile"><div class="v">{escape(v)}</div><div class="k">{escape(k)}</div></div>'
         for v, k in tiles) + "</div>"
+
+
+LEGEND = ("<p>Symbols in every figure: fixes used, small grey dots; rejected fixes, small "
+          "hollow grey rings; solved position, filled vermillion diamond with its 95 % "
+          "ellipse as a thin vermillion line; preplot, thin black plus; RTK check point, "
+          "hollow reddish-purple circle; flagged station, large dashed orange ring.</p>")
+
+
+def _page(data: RunData, result: QcResult, figs: list[str], review: Any, clouds_html: str,
+          drawn: int, generated_at: datetime | None) -> str:
+    """The whole page: verdict, cautions, lineage, summary, figures, review, definitions."""
+    beyond_n = int(review["beyond"].sum()) if len(review) else 0
     cautions = html.section("cautions", "Read this first", "<ul>" + "".join(
         f"<li>{escape(c)}</li>" for c in notes.CAUTIONS) + "</ul>", cls="caution")
-    legend = ("<p>Symbols in every figure: fixes used, small grey dots; rejected fixes, small "
-              "hollow grey rings; solved position, filled vermillion diamond with its 95 % "
-              "ellipse as a thin vermillion line; preplot, thin black plus; RTK check point, "
-              "hollow reddish-purple circle; flagged station, large dashed orange ring.</p>")
     body = "".join([
-        verdict, cautions, _lineage_section(data), _summary_section(result),
-        html.section("figures", "Maps and distributions", legend + "".join(figs)),
+        _verdict(result, beyond_n), cautions, _lineage_section(data), _summary_section(result),
+        html.section("figures", "Maps and distributions", LEGEND + "".join(figs)),
         html.section("review", f"Stations to review ({len(review):,})",
-                     _review_table(review, set(range(drawn))) + clouds_html),
+                     review_table(review, set(range(drawn))) + clouds_html),
         _definitions(),
     ])
     when = (generated_at or datetime.now(UTC)).strftime("%Y-%m-%d %H:%M UTC")
@@ -283,7 +202,27 @@ def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | Non
            ("figures", "Figures"), ("review", "Review"), ("definitions", "Definitions")]
     footer = (f"nodekeep {__version__} · generated {when} · read-only view of run "
               f"{data.run['id']}")
-    page = html.page(title, subtitle, nav, body, footer)
+    return html.page(title, subtitle, nav, body, footer)
+
+
+def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | None, *,
+                  progress: Progress | None = None, max_clouds: int = MAX_CLOUDS,
+                  generated_at: datetime | None = None) -> tuple[str, dict[str, int]]:
+    """The report page as text, with counts of figures and clouds drawn.
+
+    ``max_clouds`` limits the cloud plots to the first stations to review; 0 draws all.
+    """
+    if max_clouds < 0:
+        raise UsageError(f"the number of cloud plots cannot be negative ({max_clouds})",
+                         hint="give 0 for all, or a positive limit")
+    progress = progress or NoProgress()
+    review = review_list(data, result)
+    max_clouds = max_clouds or len(review)
+    progress.start(3 + min(len(review), max_clouds), "figures", "report")
+    figs = _figures(data, result, review, progress)
+    clouds_html, drawn = cloud_section(review, read_cloud, max_clouds, progress)
+    progress.close()
+    page = _page(data, result, figs, review, clouds_html, drawn, generated_at)
     n_figures = sum(f.startswith("<figure") for f in figs) + drawn
     return page, {"n_figures": n_figures, "n_clouds": drawn, "n_review": len(review)}
 

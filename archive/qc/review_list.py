@@ -1,0 +1,113 @@
+"""The stations a reviewer should look at, as the report lists them and draws their clouds.
+
+A delivered occupation needs review when the solver flagged it or it lies farther than the qc
+tolerance from its RTK check point (reason ``beyond-check``); those beyond the tolerance come
+first, largest first, then the flagged ones by station.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from html import escape
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+
+from archive.errors import NodekeepError
+from archive.progress import Progress
+from archive.qc import html
+from archive.qc.check import QcResult
+from archive.qc.clouds import Station, cloud_figure
+from archive.qc.sources import RunData
+from archive.qc.stats import delivered
+from archive.survey.keys import station_text
+
+MAX_TABLE_ROWS = 1000
+BEYOND = "beyond-check"  # review reason added by qc: farther than the tolerance from its check point
+
+CloudReader = Callable[[float, float, int], "pa.Table | None"]
+
+
+def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
+    """Stations to review: beyond the tolerance first (largest first), then solver flags."""
+    pos = with_occupation(delivered(data.positions).to_pandas())
+    pts = result.comparison.points.select(
+        [*OCC_KEY, "dist", "check_e", "check_n"]).to_pandas()
+    df = pos.merge(pts, on=OCC_KEY, how="left")
+    df["dist_preplot"] = df["dist_preplot"].fillna(
+        np.hypot(df["easting"] - df["preplot_e"], df["northing"] - df["preplot_n"]))
+    df["beyond"] = df["dist"] > result.tolerance
+    df = df[(df["flags"] != "") | df["beyond"]].copy()
+    df["reasons"] = np.where(df["beyond"], np.where(df["flags"] != "", BEYOND + ";" + df["flags"],
+                                                    BEYOND), df["flags"])
+    df["_d"] = df["dist"].where(df["beyond"], -1.0)
+    return df.sort_values(["_d", "line", "point", "occupation"],
+                          ascending=[False, True, True, True],
+                          kind="stable").reset_index(drop=True)
+
+
+OCC_KEY = ["line", "point", "index", "occupation"]
+"""A delivered record: the preplot station (line, point, index) and the occupation's index."""
+
+
+def with_occupation(df: pd.DataFrame) -> pd.DataFrame:
+    """``occupation`` filled with the station index where a table has none (older runs)."""
+    if "occupation" not in df.columns:
+        df["occupation"] = df["index"]
+    df["occupation"] = df["occupation"].fillna(df["index"]).astype("int64")
+    return df
+
+
+def review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
+    """The review list as an HTML table (stations drawn with a cloud link to it)."""
+    if df.empty:
+        return "<p>No station needs review.</p>"
+    rows = []
+    for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
+        name = station_text(r.line, r.point)
+        link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
+        rows.append((link, r.occupation, escape(str(r.node)),
+                     escape(r.reasons.replace(";", ", ")),
+                     html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
+                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}"))
+    more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more stations are not listed; '
+            "'nodekeep qc --json' lists every one.</p>" if len(df) > MAX_TABLE_ROWS else "")
+    return ('<div class="scroll">' + html.table(
+        ["station (line / point)", "index", "node", "reasons", "to check point (m)",
+         "to preplot (m)", "own R95 (m)", "fixes used", "rejected"], rows,
+        numeric=(1, 4, 5, 6, 7, 8), raw=(0, 2, 3)) + "</div>" + more)
+
+
+def _station(r: Any) -> Station:
+    return Station(line=r.line, point=r.point, index=int(r.occupation), easting=r.easting,
+                   northing=r.northing, ell_major=r.ell_major, ell_minor=r.ell_minor,
+                   ell_bearing=r.ell_bearing, preplot_e=r.preplot_e, preplot_n=r.preplot_n,
+                   check_e=r.check_e, check_n=r.check_n, flags=r.reasons)
+
+
+def cloud_section(df: pd.DataFrame, read_cloud: CloudReader | None, max_clouds: int,
+                  progress: Progress) -> tuple[str, int]:
+    """Cloud plots of the first ``max_clouds`` stations to review; (HTML, plots drawn)."""
+    parts = []
+    for i, r in enumerate(df.head(max_clouds).itertuples()):
+        cloud, problem = None, ""
+        if read_cloud is not None:
+            try:
+                cloud = read_cloud(float(r.line), float(r.point), int(r.occupation))
+            except NodekeepError as exc:
+                problem = f"fixes unavailable: {exc}"
+        uri, caption = cloud_figure(_station(r), cloud)
+        caption = f"{r.reasons.replace(';', ', ')}. {caption}" + (f"; {problem}" if problem else "")
+        parts.append(html.figure(uri, caption, "cloud", f"fix cloud of station {station_text(r.line, r.point, r.occupation)}")
+                     .replace('id="fig-cloud"', f'id="cloud-{i}"'))
+        progress.advance(1, station_text(r.line, r.point))
+    note = ""
+    if len(df) > max_clouds:
+        note = (f'<p class="note">Fix clouds are drawn for the first {max_clouds} of '
+                f"{len(df):,} stations needing review (those beyond the tolerance first); the "
+                "table above lists them all.</p>")
+    return note + '<div class="clouds">' + "".join(parts) + "</div>", len(parts)
+
+
