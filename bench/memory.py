@@ -58,18 +58,15 @@ def _stations(n: int) -> tuple[np.ndarray, ...]:
 
 def _chunk_fixes(first: int, count: int, e0: np.ndarray, n0: np.ndarray, seed: int):
     """Fix columns of ``count`` nodes starting at node ``first`` (vectorised over nodes)."""
-    from scipy.signal import lfilter
+    from archive.seeds.gnss_errors import gauss_markov
 
     from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 
     rng = np.random.default_rng([seed, first])
     m = FIXES_PER_NODE
     shape = (count, m)
-    rho = np.exp(-INTERVAL_S / 1800.0)
-
-    def gm(sigma: float) -> np.ndarray:
-        return lfilter([sigma * np.sqrt(1 - rho * rho)], [1, -rho], rng.standard_normal(shape),
-                       axis=1, zi=(sigma * rho * rng.standard_normal(count))[:, None])[0]
+    def gm(sigma: float) -> np.ndarray:  # the seeds' error model: slow part, 30 min
+        return gauss_markov(rng, m, INTERVAL_S, sigma, 1800.0, size=count)
 
     hdop = rng.uniform(0.7, 2.2, shape)
     de = gm(2.0) + rng.normal(0, 0.5, shape) * hdop

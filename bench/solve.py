@@ -34,7 +34,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
-from scipy.signal import lfilter
+from archive.seeds.gnss_errors import gauss_markov
 from scipy.stats import chi2
 
 from archive.ingest.schema import FIX_SCHEMA
@@ -55,12 +55,10 @@ def clouds(n_dep: int, n_epochs: int, seed: int = 0, dt: float = 30.0
            ) -> tuple[np.ndarray, ...]:
     """Local east/north errors (Gauss–Markov 2 m, 30 min, bursts), HDOP, time, segment."""
     rng = np.random.default_rng(seed)
-    rho = np.exp(-dt / 1800.0)
     shape = (n_dep, n_epochs)
 
-    def gm() -> np.ndarray:
-        return lfilter([2.0 * np.sqrt(1 - rho * rho)], [1, -rho], rng.standard_normal(shape),
-                       axis=1, zi=(2.0 * rho * rng.standard_normal(n_dep))[:, None])[0]
+    def gm() -> np.ndarray:  # the seeds' error model: one slow part, 2 m / 30 min
+        return gauss_markov(rng, n_epochs, dt, 2.0, 1800.0, size=n_dep)
 
     hdop = rng.uniform(0.7, 2.5, shape)
     e, n = gm() + rng.normal(0, 0.5, shape), gm() + rng.normal(0, 0.5, shape)

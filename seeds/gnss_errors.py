@@ -74,6 +74,7 @@ class ErrorModel:
     vert_common_factor: float = 1.7
     hdop_mean: float = 0.9
     outliers_per_day: float = 1.5
+    outlier_seconds: tuple[float, float] | None = None  # burst length; None: 2-10 epochs
     void_fraction: float = 0.005
     void_gaps_per_day: float = 1.0
 
@@ -149,7 +150,9 @@ def node_errors(rng: np.random.Generator, t_s: np.ndarray, dt: float, common: np
     du += common[2]
 
     # outlier bursts: a large offset in a random direction, poor geometry
-    outlier = _burst_mask(rng, n, int(rng.poisson(model.outliers_per_day * days)), 2, 10)
+    lo, hi = (2, 10) if model.outlier_seconds is None else (
+        max(1, int(model.outlier_seconds[0] / dt)), max(1, int(model.outlier_seconds[1] / dt)))
+    outlier = _burst_mask(rng, n, int(rng.poisson(model.outliers_per_day * days)), lo, hi)
     k = int(outlier.sum())
     if k:
         r = rng.uniform(15.0, 80.0, size=k)

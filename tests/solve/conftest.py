@@ -11,10 +11,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+from archive.seeds.simulate import SimConfig, Simulation, simulate
 
 from archive.solve.engine import solve_fixes
 from archive.solve.params import default_params
-from archive.solve.simulate import SimConfig, Simulation, simulate
 from archive.store.archive import Archive
 from tests.support.simulation import store_simulation
 

@@ -1,4 +1,4 @@
-"""The solver on simulated truth (error model: archive.solve.simulate, sources cited there).
+"""The solver on simulated truth (error model: archive.seeds.simulate, sources cited there).
 
 48 stations, 3.2 days each at 30 s, first-order Gauss–Markov errors (σ = 2 m per axis,
 τ = 30 min: tens of minutes; Howind et al. 1999 report 5–20 min for double-difference
@@ -12,11 +12,11 @@ from __future__ import annotations
 import numpy as np
 import pyarrow.compute as pc
 import pytest
+from archive.seeds.simulate import Simulation
 
 from archive.solve.engine import solve_fixes
 from archive.solve.params import default_params
 from archive.solve.segments import from_local, to_local
-from archive.solve.simulate import Simulation
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 
 pytestmark = pytest.mark.slow

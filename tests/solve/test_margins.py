@@ -8,10 +8,10 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 import pytest
+from archive.seeds.simulate import SimConfig, simulate
 
 from archive.solve.engine import solve_fixes
 from archive.solve.params import resolve_params
-from archive.solve.simulate import SimConfig, simulate
 from tests.support.cli import invoke
 
 

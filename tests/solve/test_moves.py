@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.signal import lfilter
+from archive.seeds.gnss_errors import gauss_markov
 
 from archive.solve.moves import detect_moves
 from archive.solve.params import default_params
@@ -13,11 +13,9 @@ P = default_params()["flags"]
 
 def _clouds(k: int, n: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     rng = np.random.default_rng(seed)
-    rho = np.exp(-30 / 1800)  # 30 s fixes, τ = 30 min (cf. Howind et al. 1999: 5–20 min)
 
-    def gm() -> np.ndarray:
-        return lfilter([2 * np.sqrt(1 - rho**2)], [1, -rho], rng.standard_normal((k, n)),
-                       axis=1, zi=(2 * rho * rng.standard_normal(k))[:, None])[0]
+    def gm() -> np.ndarray:  # 30 s fixes, τ = 30 min (cf. Howind et al. 1999: 5–20 min)
+        return gauss_markov(rng, n, 30.0, 2.0, 1800.0, size=k)
 
     t = np.broadcast_to(np.arange(n) * 30_000_000, (k, n)).ravel().copy()
     return gm().ravel(), gm().ravel(), t, np.repeat(np.arange(k), n)

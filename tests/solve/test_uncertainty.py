@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from archive.seeds.gnss_errors import gauss_markov
 from pyproj import Transformer
-from scipy.signal import lfilter
 from scipy.stats import chi2
 
 from archive.solve.segments import from_local, seg_median, to_local
@@ -85,10 +85,7 @@ def test_batch_means_are_honest_for_gauss_markov_errors() -> None:
     """
     rng = np.random.default_rng(1)
     dt, tau, sigma, n, k = 30.0, 1800.0, 2.0, 8640, 200
-    rho = np.exp(-dt / tau)
-    w = rng.standard_normal((k, n))
-    x = lfilter([sigma * np.sqrt(1 - rho**2)], [1, -rho], w, axis=1,
-                zi=(rho * sigma * rng.standard_normal(k))[:, None])[0]
+    x = gauss_markov(rng, n, dt, sigma, tau, size=k)
     de = (x - x.mean(axis=1, keepdims=True)).ravel()
     seg = np.repeat(np.arange(k), n)
     t = np.tile(np.arange(n) * dt, k)

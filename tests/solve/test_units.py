@@ -14,11 +14,11 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 import pytest
+from archive.seeds.simulate import Simulation
 from pyproj import Proj
 
 from archive.solve.engine import solve_fixes
 from archive.solve.params import default_params
-from archive.solve.simulate import Simulation
 from archive.survey.crs import survey_crs, transformer
 
 US_FOOT = 1200 / 3937  # metres per US survey foot (NIST, definition of the survey foot)

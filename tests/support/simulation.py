@@ -8,9 +8,9 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+from archive.seeds.simulate import Simulation
 from rasterio.transform import Affine
 
-from archive.solve.simulate import Simulation
 from archive.store.archive import Archive
 from archive.store.models import RawFile, utcnow
 from archive.survey.inputs import load_input

@@ -1,22 +1,14 @@
 """Simulated node surveys with known truth, for tests, benchmarks and calibration checks.
 
-The error model of a single-frequency node receiver logging every ``interval`` seconds:
-
-- a first-order Gauss–Markov horizontal error per axis, σ = ``gm_sigma`` (2 m) with
-  correlation time ``gm_tau`` (30 min), scaled by HDOP/mean HDOP (σᵢ = σ₀·HDOPᵢ). Published
-  correlation times of GNSS position errors are minutes to tens of minutes (Howind et al.
-  1999: 5–20 min; ~20 min for double differences), with long-term components over tens of
-  minutes to hours for consumer receivers (D. L. Wilson's static tests);
-- white noise of ``white_sigma`` (0.5 m) × HDOP per fix;
-- a constant multipath bias per deployment, N(0, ``bias_sigma`` = 0.3 m) per axis (static
-  multipath repeats with the sidereal day and does not average out; magnitude from memory);
-- outlier bursts (reflections): on average ``bursts_per_day`` per deployment, 2–10 minutes
-  each, 15–60 m off in one direction;
-- void fixes (quality 0, RMC V) and 2-D fixes at random, far off.
-A horizontal 95 % error of a few metres per fix results, well inside the GPS SPS
-performance envelope (≤ 9 m 95 % horizontal, SPS PS 2008/2020). Each node also sits in a
-camp far from the stations before and after its deployment, and is carried in and out.
-Injected faults: moves during deployment, swapped serials in the log, unlogged deployments.
+Each node stands in a camp, is carried out to its station, stays there for its deployment
+(optionally moved part way through), and is carried back; it logs every ``interval``
+seconds. Its errors come from the demo's receiver error model (:mod:`archive.seeds.gnss_errors`:
+fast and slow Gauss–Markov parts scaled by HDOP, a common-mode part shared by every node,
+a multipath bias per stay, outlier bursts and void epochs), so the demo, the tests and the
+benchmarks share one error model. On top of it, the faults the solver must catch: 2-D fixes
+far off, the first minutes of a stay still being handled, moves during a deployment,
+swapped serials in the log and unlogged deployments. The result is the inputs as the archive
+would hold them (stations, deployment log, fix table) and the truth behind them.
 """
 
 from __future__ import annotations
@@ -26,7 +18,7 @@ from datetime import UTC, datetime
 
 import numpy as np
 import pyarrow as pa
-from scipy.signal import lfilter
+from archive.seeds.gnss_errors import ErrorModel, common_mode, node_errors
 
 from archive.ingest.schema import FIX_SCHEMA
 from archive.solve.segments import from_local
@@ -34,6 +26,16 @@ from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 from archive.survey.schema import DEPLOYMENT_LOG_SCHEMA, STATION_SCHEMA
 
 EPOCH = datetime(2024, 5, 1, tzinfo=UTC)
+
+SOLVER_TEST_MODEL = ErrorModel(fast_sigma=0.5, fast_tau=1.0, slow_sigma=2.0, slow_tau=1800.0,
+                               common_sigma=0.0, multipath_sigma=0.3, hdop_mean=1.1,
+                               outliers_per_day=1.0, outlier_seconds=(120.0, 600.0),
+                               void_fraction=0.02, void_gaps_per_day=0.0)
+"""The demo's error model with heavier settings for the solver's own tests: one slow part of
+2 m at 30 minutes (the long end of published correlation times, Howind et al. 1999: 5-20
+min), a near-white 0.5 m part, a 0.3 m multipath bias per stay, reflections lasting 2-10
+minutes and more void fixes, so that averaging is hard and the uncertainty has to be
+honest."""
 
 
 @dataclass
@@ -49,13 +51,8 @@ class SimConfig:
     days: float = 3.2
     interval: float = 30.0
     camp_hours: float = 6.0
-    gm_sigma: float = 2.0
-    gm_tau: float = 1800.0
-    white_sigma: float = 0.5
-    bias_sigma: float = 0.3
+    model: ErrorModel = field(default_factory=lambda: SOLVER_TEST_MODEL)  # receiver errors
     placement_sigma: float = 1.0
-    bursts_per_day: float = 1.0
-    void_rate: float = 0.02
     twod_rate: float = 0.01
     n_moves: int = 2
     n_swaps: int = 1
@@ -74,14 +71,6 @@ class Simulation:
     truth: dict[str, np.ndarray]  # per node: true final E/N, station, moved, swapped, logged
     camp: tuple[float, float]
     meta: dict = field(default_factory=dict)
-
-
-def _gm(rng: np.random.Generator, n: int, sigma: float, tau: float, dt: float) -> np.ndarray:
-    rho = np.exp(-dt / tau)
-    w = rng.standard_normal(n)
-    x = lfilter([sigma * np.sqrt(1 - rho * rho)], [1.0, -rho], w,
-                zi=[rho * sigma * rng.standard_normal()])[0]
-    return x
 
 
 def simulate(cfg: SimConfig | None = None) -> Simulation:
@@ -130,6 +119,10 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
     move_t = np.full(n_st, np.nan)
     tables = []
     to_geo = transformer(cfg.epsg, WGS84_GEOGRAPHIC)
+    # the common-mode error every node shares at the same instant, on one time grid
+    k0 = int(np.floor((dep_start.min() - transit - cfg.camp_hours * 3600) / dt)) - 1
+    k1 = int(np.ceil((dep_start.max() + dep_len + transit + cfg.camp_hours * 3600) / dt)) + 1
+    common = common_mode(rng, k1 - k0 + 1, dt, cfg.model)
     for i in range(n_st):
         t0 = dep_start[i] - transit - cfg.camp_hours * 3600
         t_end = dep_start[i] + dep_len + transit + cfg.camp_hours * 3600
@@ -156,32 +149,24 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
         f = (t[back] - (dep_start[i] + dep_len)) / transit
         pe[back] = fin_e[i] + f * (camp[0] - fin_e[i])
         pn[back] = fin_n[i] + f * (camp[1] - fin_n[i])
-        hdop = np.clip(1.1 + 0.35 * np.sin(2 * np.pi * t / 43082 + rng.uniform(0, 6.3))
-                       + 0.3 * _gm(rng, n, 1.0, 600.0, dt), 0.6, 3.9)
-        scale = hdop / 1.1
-        ee = (_gm(rng, n, cfg.gm_sigma, cfg.gm_tau, dt) * scale
-              + rng.normal(0, cfg.white_sigma, n) * hdop + rng.normal(0, cfg.bias_sigma))
-        en = (_gm(rng, n, cfg.gm_sigma, cfg.gm_tau, dt) * scale
-              + rng.normal(0, cfg.white_sigma, n) * hdop + rng.normal(0, cfg.bias_sigma))
-        n_burst = rng.poisson(cfg.bursts_per_day * cfg.days)
-        for _ in range(n_burst):
-            b0 = rng.uniform(dep_start[i], dep_start[i] + dep_len)
-            hit = (t >= b0) & (t < b0 + rng.uniform(120, 600))
-            ang, size = rng.uniform(0, 2 * np.pi), rng.uniform(15, 60)
-            ee[hit] += size * np.sin(ang) + rng.normal(0, 3, hit.sum())
-            en[hit] += size * np.cos(ang) + rng.normal(0, 3, hit.sum())
-            hdop[hit] = np.clip(hdop[hit] + 1.0, 0.6, 3.9)
-        void = rng.random(n) < cfg.void_rate
+        k = np.round(t / dt).astype(np.int64) - k0
+        err = node_errors(rng, t, dt, common[:, k], cfg.model)
+        standing = on & ~handled
+        bias = rng.normal(0.0, cfg.model.multipath_sigma, (2, 2))  # multipath of each place
+        place = (moved[i] & (t >= move_t[i])).astype(np.int64) if moved[i] else 0
+        ee = err.de + np.where(standing, bias[0][place], 0.0)
+        en = err.dn + np.where(standing, bias[1][place], 0.0)
+        hdop = err.hdop
+        void = err.quality == 0
         twod = ~void & (rng.random(n) < cfg.twod_rate)
-        junk = void | twod
-        ee[junk] += rng.uniform(-300, 300, junk.sum())
-        en[junk] += rng.uniform(-300, 300, junk.sum())
+        ee[twod] += rng.uniform(-300, 300, twod.sum())  # 2-D fixes land far off
+        en[twod] += rng.uniform(-300, 300, twod.sum())
         lon_t, lat_t = to_geo.transform(pe, pn)
         lat, lon = from_local(ee, en, np.asarray(lat_t), np.asarray(lon_t))
         h_true = 240.0
         sep = -24.5
-        h_msl = h_true + _gm(rng, n, 4.0, cfg.gm_tau, dt) + rng.normal(0, 1.0, n)
-        n_sats = rng.integers(6, 13, n).astype(np.int16)
+        h_msl = h_true + err.du
+        n_sats = err.n_sats
         tables.append(pa.table({
             "node": [nodes[i]] * n,
             "time": pa.array((t * 1e6).astype(np.int64), pa.int64()).cast(FIX_SCHEMA.field("time").type),
@@ -189,9 +174,9 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
             "geoid_sep": np.full(n, sep), "quality": pa.array(np.where(void, 0, 1), pa.int8()),
             "fix_type": pa.array(np.where(void, 1, np.where(twod, 2, 3)), pa.int8()),
             "valid": ~void, "n_sats": n_sats,
-            "pdop": pa.array((hdop * 1.7).astype(np.float32)),
+            "pdop": pa.array(err.pdop.astype(np.float32)),
             "hdop": pa.array(hdop.astype(np.float32)),
-            "vdop": pa.array((hdop * 1.4).astype(np.float32)),
+            "vdop": pa.array(err.vdop.astype(np.float32)),
             "raw_hash": [f"{i:064x}"] * n, "raw_line": np.arange(1, n + 1, dtype=np.int64),
         }, schema=FIX_SCHEMA))
     fixes = pa.concat_tables(tables)
