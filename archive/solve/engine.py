@@ -31,12 +31,13 @@ from archive.edits.spans import Span
 from archive.solve import flags as flagmod
 from archive.solve import stages
 from archive.solve.fixarrays import FixArrays
-from archive.solve.heights import Heights, Sampler, gga_orthometric, solve_heights
+from archive.solve.heights import Heights, Sampler, solve_heights
 from archive.solve.schema import POSITION_SCHEMA
 from archive.solve.segments import seg_median
 from archive.solve.uncertainty import batch_covariance
 from archive.solve.windows import FOREVER, Windows
 from archive.survey.crs import survey_crs
+from archive.survey.heights import gga_orthometric
 
 Orthometric = Callable[[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray], np.ndarray]
 

@@ -20,12 +20,6 @@ import numpy as np
 Sampler = Callable[[np.ndarray, np.ndarray], np.ndarray]
 
 
-def gga_orthometric(h_ell: np.ndarray, h_msl: np.ndarray, geoid_sep: np.ndarray) -> np.ndarray:
-    """Orthometric height as the receiver reports it: GGA altitude above MSL, else
-    ellipsoidal height minus the geoid separation (NMEA 0183 GGA fields 9 and 11)."""
-    return np.where(np.isfinite(h_msl), h_msl, h_ell - geoid_sep)
-
-
 @dataclass
 class Heights:
     """Per position: delivered height, its source and sigma, the model and GNSS values."""

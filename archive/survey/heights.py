@@ -68,6 +68,12 @@ def check_height_mode(mode: str, param: str) -> None:
         geoid_transformer(param)
 
 
+def gga_orthometric(h_ell: Any, h_msl: Any, geoid_sep: Any) -> np.ndarray:
+    """Orthometric height as the receiver reports it: GGA altitude above MSL, else
+    ellipsoidal height minus the geoid separation (NMEA 0183 GGA fields 9 and 11)."""
+    return np.where(np.isfinite(h_msl), h_msl, np.asarray(h_ell) - geoid_sep)
+
+
 def gnss_orthometric(lon: Any, lat: Any, h_ell: Any, h_msl: Any, geoid_sep: Any,
                      survey: Any) -> np.ndarray:
     """Orthometric GNSS heights (m) per the survey's height mode; NaN where not computable.
@@ -85,7 +91,7 @@ def gnss_orthometric(lon: Any, lat: Any, h_ell: Any, h_msl: Any, geoid_sep: Any,
     sep = _arr(geoid_sep, shape)
     h_full = np.where(np.isfinite(h), h, msl + sep)  # ellipsoidal height from GGA if needed
     if mode == "gga":
-        return np.where(np.isfinite(msl), msl, h - sep).astype(np.float64)
+        return gga_orthometric(h, msl, sep).astype(np.float64)
     check_height_mode(mode, param)
     if mode == "constant":
         return (h_full - float(param)).astype(np.float64)

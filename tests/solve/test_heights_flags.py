@@ -6,9 +6,10 @@ import numpy as np
 import pytest
 
 from archive.solve.flags import flag_strings, preplot_checks, station_keys
-from archive.solve.heights import gga_orthometric, solve_heights
+from archive.solve.heights import solve_heights
 from archive.solve.params import default_params
 from archive.solve.schema import FLAGS
+from archive.survey.heights import gga_orthometric
 
 HP = default_params()["height"]
 
