@@ -23,7 +23,7 @@ from archive.solve.screen import SCREEN_REASONS
 from archive.solve.windows import FOREVER, Windows, no_windows
 from archive.store.archive import Archive
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
-from archive.survey.keys import station_text
+from archive.survey.keys import station_mask, station_text
 
 CLOUD_SCHEMA = pa.schema([
     pa.field("time", pa.timestamp("us", tz="UTC"), nullable=False),
@@ -36,14 +36,9 @@ CLOUD_SCHEMA = pa.schema([
 ], metadata={"nodekeep.table": "cloud"})
 
 
-def _station_mask(table: pa.Table, line: float, point: float, index: int | None) -> pa.Array:
-    mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
-    return mask if index is None else pc.and_(mask, pc.equal(table["index"], int(index)))
-
-
 def _unlogged_windows(positions: pa.Table, line: float, point: float,
                       index: int | None) -> Windows:
-    rows = positions.filter(pc.and_(_station_mask(positions, line, point, index),
+    rows = positions.filter(pc.and_(station_mask(positions, line, point, index),
                                     pc.equal(positions["kind"], "unlogged")))
     n = rows.num_rows
     return Windows(
@@ -69,7 +64,7 @@ def station_cloud(arc: Archive, run_id: str, line: float, point: float,
     run = get_run(arc, None, run_id)
     manifest = run_manifest(arc, run)
     inp = survey_inputs(arc, run.survey_id, manifest["selection"], manifest=manifest)
-    dep = inp.deployments.filter(_station_mask(inp.deployments, line, point, index))
+    dep = inp.deployments.filter(station_mask(inp.deployments, line, point, index))
     if occupation is not None:
         dep = dep.filter(pc.equal(dep["occupation"], int(occupation)))
     extra = (_unlogged_windows(run_positions(arc, run), line, point, index)

@@ -24,6 +24,7 @@ from archive.errors import IntegrityError, UsageError
 from archive.solve.fixarrays import empty_fixes
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
+from archive.survey.inputs import require_input
 from archive.survey.occupations import with_occupations
 
 PARTITION_FIXES = 4_000_000
@@ -127,14 +128,9 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
             raise UsageError(f"no survey with id {survey_id}")
         sdict = _survey_dict(survey)
     if manifest is None:
-        st_v, dep_v = _current(arc, survey_id, "stations"), _current(arc, survey_id, "deployments")
+        st_v = require_input(arc, survey_id, "stations", "there is nothing to solve for")[0]
+        dep_v = require_input(arc, survey_id, "deployments", "no fix belongs to a station")[0]
         dem_v = _current(arc, survey_id, "dem")
-        if st_v is None or not st_v.table_hash:
-            raise UsageError("the survey has no preplot stations yet",
-                             hint="load them with 'nodekeep load stations FILE'")
-        if dep_v is None or not dep_v.table_hash:
-            raise UsageError("the survey has no deployment log yet",
-                             hint="load it with 'nodekeep load deployments FILE'")
         st_hash, dep_hash = st_v.table_hash, dep_v.table_hash
         dem_hash = dem_v.source_hash if dem_v is not None else None
         edits = exclude_spans_in_force(arc, survey_id)

@@ -199,7 +199,6 @@ def open_dem(arc: Any, survey_id: int, version: int | None = None) -> DemSampler
 def spot_sample(arc: Any, survey_id: int, easting: float, northing: float,
                 epsg: int | None = None, version: int | None = None) -> dict[str, Any]:
     """The model's elevation at one point (default CRS: the survey's), for spot checks."""
-    from archive.errors import UsageError
     from archive.store.models import Survey
 
     with arc.session() as s:
@@ -207,8 +206,9 @@ def spot_sample(arc: Any, survey_id: int, easting: float, northing: float,
     epsg = int(epsg or survey.crs_epsg)
     sampler = open_dem(arc, survey_id, version)
     if sampler is None:
-        raise UsageError("the survey has no elevation model yet",
-                         hint="load one with 'nodekeep load dem FILE --vertical-datum TEXT'")
+        from archive.survey.inputs import require_input
+
+        require_input(arc, survey_id, "dem", "there is nothing to sample", version)
     with sampler:
         z = float(sampler.sample(np.array([easting]), np.array([northing]), epsg)[0])
         return {"easting": easting, "northing": northing, "crs": f"EPSG:{epsg}",

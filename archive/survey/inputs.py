@@ -127,9 +127,11 @@ def require_input(arc: Archive, survey_id: int, kind: str, why: str = "",
     spec = input_kind(kind)
     if found is None or (spec.has_table and found[1] is None):
         entry = INPUT_KINDS.entry(kind)
+        needed = "".join(f" --{o.name.replace('_', '-')} {o.metavar}" for o in spec.options
+                         if o.required)
         raise UsageError(f"the survey has no {kind} loaded ({entry.description})"
                          + (f", so {why}" if why else ""),
-                         hint=f"load it with 'nodekeep load {kind} FILE'")
+                         hint=f"load it with 'nodekeep load {kind} FILE{needed}'")
     return found
 
 

@@ -45,9 +45,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyarrow.compute as pc
 
-from archive.survey.keys import station_text
+from archive.survey.keys import station_mask, station_text
 from archive.times import us_array
 
 OPEN_END = np.iinfo(np.int64).max  # retrieved unknown: still in the ground
@@ -316,7 +315,7 @@ def occupations_at(table: pa.Table, line: float, point: float) -> list[dict[str,
     """Every occupation at (line, point) of a deployments table, oldest first, as dicts with
     ``index`` (delivered point index), ``station_index``, ``node``, ``deployed``,
     ``retrieved`` (None while still out) and ``src_line``."""
-    mask = pc.and_(pc.equal(table["line"], float(line)), pc.equal(table["point"], float(point)))
+    mask = station_mask(table, line, point)
     sub = table.filter(mask)
     occ = occupation_array(table)[np.asarray(mask.to_numpy(zero_copy_only=False), dtype=bool)]
     rows = sub.to_pylist()

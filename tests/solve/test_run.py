@@ -150,7 +150,7 @@ def test_station_cloud_explains_every_fix_of_the_window(sim_arc) -> None:
 def test_errors_say_what_to_do(survey_arc) -> None:
     with survey_arc.session() as s:
         sid = survey_arc.survey(s).id
-    with pytest.raises(UsageError, match="no preplot stations") as exc:
+    with pytest.raises(UsageError, match="the survey has no stations loaded") as exc:
         solve_survey(survey_arc, sid)
     assert "nodekeep load stations" in str(exc.value)
     with pytest.raises(UsageError, match="no solution run yet"):

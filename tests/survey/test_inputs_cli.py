@@ -40,7 +40,8 @@ def test_load_list_and_sample(survey_arc, runner, tmp_path):
     # elevation model: the 3x3 check grid of tests/survey/rasters.py (GDAL geotransform
     # convention), moved into the survey area
     r = invoke(runner, root, "dem", "sample", "612000", "3890000")
-    assert r.exit_code == 2 and "no elevation model yet" in r.stderr
+    assert r.exit_code == 2 and "the survey has no dem loaded" in r.stderr
+    assert "nodekeep load dem FILE --vertical-datum TEXT" in r.stderr
     gt = Affine(2, 0, 612000, 0, -2, 3890006)
     tif = write_tif(tmp_path / "m.tif", CHECK_Z, gt)
     r = invoke(runner, root, "load", "dem", str(tif), "--vertical-datum", "NAVD88 (GEOID18)")
