@@ -6,6 +6,7 @@ import click
 
 from archive.cli.options import CliState, output_options, pass_state
 from archive.cli.output import Bar, emit, human_bytes
+from archive.errors import CatalogDamaged, EnvironmentProblem, StorageError
 
 
 @click.command()
@@ -24,7 +25,12 @@ def verify(state: CliState, no_rehash: bool, delivery: str | None) -> None:
         _verify_delivery(state, delivery, rehash=not no_rehash)
         return
 
-    report = verify_archive(state.archive(), rehash=not no_rehash, progress=Bar(state))
+    try:
+        arc = state.archive()
+    except (CatalogDamaged, EnvironmentProblem, StorageError) as exc:
+        _unopenable(state, exc)
+        return
+    report = verify_archive(arc, rehash=not no_rehash, progress=Bar(state))
 
     def text() -> str:
         lines = [f"checked {report.objects_checked} objects ({human_bytes(report.bytes_checked)}), "
@@ -42,6 +48,20 @@ def verify(state: CliState, no_rehash: bool, delivery: str | None) -> None:
     emit(state, report.as_dict(), text)
     if not report.ok:
         click.get_current_context().exit(3)
+
+
+def _unopenable(state: CliState, exc: Exception) -> None:
+    """The catalog cannot be opened at all: one finding, with what to do; exit 3 when it is
+    damaged, 5 when it is out of reach (server down, disk full)."""
+    todo = ("restore the catalog file from a backup (the objects folder is not affected)"
+            if isinstance(exc, CatalogDamaged) else getattr(exc, "hint", None))
+    detail = f"{exc.args[0]}; {todo}" if todo else str(exc.args[0])
+    problem = {"kind": "unreadable-catalog", "subject": "catalog", "detail": detail}
+    data = {"ok": False, "problems": [problem], "dangling": [], "objects_checked": 0,
+            "bytes_checked": 0, "events_checked": 0, "rows_checked": 0, "head": None}
+    emit(state, data, lambda: f"PROBLEM unreadable-catalog: {detail}\n"
+                              "archive NOT OK: the catalog could not be opened")
+    click.get_current_context().exit(exc.exit_code)  # 3 damaged, 5 out of reach or space
 
 
 def _verify_delivery(state: CliState, path: str, *, rehash: bool) -> None:

@@ -10,6 +10,10 @@ Checks, with a fixed vocabulary of problem kinds:
 - ``altered-row``: a catalog row whose content differs from what its ledger event recorded.
 - ``unledgered-row``: a catalog row that no ledger event recorded.
 - ``deleted-row``: a row a ledger event recorded that is no longer in the catalog.
+- ``damaged-catalog``: the catalog database file itself is damaged (a page, an index entry,
+  text that is not UTF-8), or could not be read at all (:mod:`archive.store.catalog_check`).
+- ``broken-constraint``: a catalog row whose foreign key does not resolve, or rows that
+  share a key that must be unique.
 - ``dangling`` (not corruption): a stored file nothing in the catalog references, typically
   left by an interrupted write. Reported apart; ``verify`` still passes.
 """
@@ -21,9 +25,12 @@ from dataclasses import dataclass, field
 from typing import Any
 
 from sqlalchemy import inspect, select
+from sqlalchemy.exc import DBAPIError
+from sqlalchemy.orm import Session
 
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
+from archive.store.catalog_check import check_catalog
 from archive.store.ledger import GENESIS, event_hash, row_digest, row_key
 from archive.store.models import (
     Base,
@@ -96,84 +103,119 @@ def verify_archive(arc: Archive, *, rehash: bool = True,
     """Check objects, references, the ledger chain and ledgered rows. Never writes."""
     progress = progress or NoProgress()
     report = VerifyReport()
-    with arc.session() as s:
-        known = {o.hash: o for o in s.scalars(select(StoredObject))}
-        # 1. objects: present and intact
-        total = sum(o.size for o in known.values())
-        progress.start(total, "bytes", "verify")
-        for h, obj in sorted(known.items()):
-            if not arc.objects.exists(h):
-                report.problems.append(Problem("missing", f"object {h}",
-                                               f"{obj.kind} object is not in the object store"))
-                continue
-            if rehash and not arc.objects.check(h):
-                report.problems.append(Problem("hash-mismatch", f"object {h}",
-                                               f"{obj.kind} object bytes no longer match the hash"))
-            report.objects_checked += 1
-            report.bytes_checked += obj.size
-            progress.advance(obj.size, h[:12])
+    for kind, subject, detail in check_catalog(arc.engine):
+        report.problems.append(Problem(kind, subject, detail))
+    try:
+        _verify_content(arc, report, rehash=rehash, progress=progress)
+    except DBAPIError as exc:
         progress.close()
-        for h in arc.objects.iter_hashes():
-            if h not in known:
-                report.dangling.append(h)
-        # 2. references from rows to objects
-        for model in LEDGERED_TABLES:
-            cols = _object_columns(model)
-            if not cols:
-                continue
-            for row in s.scalars(select(model)):
-                for c in cols:
-                    value = getattr(row, c)
-                    if value is not None and value not in known:
-                        report.problems.append(Problem(
-                            "bad-reference", f"{model.__tablename__} row {row_key(row)}",
-                            f"column {c} names object {value}, unknown to the catalog"))
-        # 3. the ledger chain
-        prev_hash, prev_seq = GENESIS, 0
-        recorded: dict[tuple[str, str], tuple[str, list[str] | None]] = {}
-        last = None
-        for ev in s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq)):
-            report.events_checked += 1
-            subject = f"ledger event {ev.seq} ({ev.action})"
-            if ev.seq != prev_seq + 1:
-                report.problems.append(Problem("broken-chain", subject,
-                                               f"sequence jumps from {prev_seq} to {ev.seq}"))
-            if ev.prev_hash != prev_hash:
-                report.problems.append(Problem("broken-chain", subject,
-                                               "previous-hash link does not match the event before"))
-            expect = event_hash(ev.seq, ev.at, ev.actor, ev.action, ev.survey_id, ev.payload,
-                                ev.prev_hash)
-            if expect != ev.hash:
-                report.problems.append(Problem("broken-chain", subject,
-                                               "event content does not match its hash"))
-            try:
-                payload = json.loads(ev.payload)
-            except ValueError:
-                payload = {}
-                report.problems.append(Problem("broken-chain", subject, "payload is not JSON"))
-            for r in payload.get("rows", []) if isinstance(payload, dict) else []:
-                recorded[(r["table"], r["key"])] = (r["digest"], r.get("columns"))
-            prev_hash, prev_seq, last = ev.hash, ev.seq, ev
-        head = s.get(LedgerHead, 1)
-        report.head = head.hash if head else None
-        if last is not None and (head is None or head.hash != last.hash or head.seq != last.seq):
-            report.problems.append(Problem("broken-chain", "ledger head",
-                                           f"head does not name the last event ({last.seq})"))
-        # 4. ledgered rows unchanged, and none gone
-        present: set[tuple[str, str]] = set()
-        for model in LEDGERED_TABLES:
-            for row in s.scalars(select(model)):
-                report.rows_checked += 1
-                key = (model.__tablename__, row_key(row))
-                present.add(key)
-                subject = f"{key[0]} row {key[1]}"
-                if key not in recorded:
-                    report.problems.append(Problem("unledgered-row", subject,
-                                                   "no ledger event recorded this row"))
-                elif recorded[key][0] != row_digest(row, recorded[key][1]):
-                    report.problems.append(Problem("altered-row", subject,
-                                                   "row content differs from its ledger record"))
-        for table, key in sorted(set(recorded) - present):
-            report.problems.append(Problem("deleted-row", f"{table} row {key}",
-                                           "a ledger event recorded this row; it is gone"))
+        orig = exc.orig if exc.orig is not None else exc
+        words = str(orig).strip().splitlines()
+        report.problems.append(Problem(
+            "damaged-catalog", "catalog", "reading the catalog stopped part way: "
+            f"{words[0] if words else type(orig).__name__}; the checks after that point were "
+            "not made (restore the catalog from a backup and verify again)"))
     return report
+
+
+def _lenient_text(data: bytes) -> str:
+    """SQLite text as str even when it is not UTF-8 (reported by the catalog checks), so the
+    remaining checks still run; such a row then also differs from its ledger record."""
+    return data.decode("utf-8", "backslashreplace")
+
+
+def _verify_content(arc: Archive, report: VerifyReport, *, rehash: bool,
+                    progress: Progress) -> None:
+    with arc.session() as s:
+        if arc.engine.dialect.name == "sqlite":
+            raw = s.connection().connection.driver_connection
+            raw.text_factory = _lenient_text
+            try:
+                _verify_rows(arc, s, report, rehash=rehash, progress=progress)
+            finally:
+                raw.text_factory = str
+        else:
+            _verify_rows(arc, s, report, rehash=rehash, progress=progress)
+
+
+def _verify_rows(arc: Archive, s: Session, report: VerifyReport, *, rehash: bool,
+                 progress: Progress) -> None:
+    known = {o.hash: o for o in s.scalars(select(StoredObject))}
+    # 1. objects: present and intact
+    total = sum(o.size for o in known.values())
+    progress.start(total, "bytes", "verify")
+    for h, obj in sorted(known.items()):
+        if not arc.objects.exists(h):
+            report.problems.append(Problem("missing", f"object {h}",
+                                           f"{obj.kind} object is not in the object store"))
+            continue
+        if rehash and not arc.objects.check(h):
+            report.problems.append(Problem("hash-mismatch", f"object {h}",
+                                           f"{obj.kind} object bytes no longer match the hash"))
+        report.objects_checked += 1
+        report.bytes_checked += obj.size
+        progress.advance(obj.size, h[:12])
+    progress.close()
+    for h in arc.objects.iter_hashes():
+        if h not in known:
+            report.dangling.append(h)
+    # 2. references from rows to objects
+    for model in LEDGERED_TABLES:
+        cols = _object_columns(model)
+        if not cols:
+            continue
+        for row in s.scalars(select(model)):
+            for c in cols:
+                value = getattr(row, c)
+                if value is not None and value not in known:
+                    report.problems.append(Problem(
+                        "bad-reference", f"{model.__tablename__} row {row_key(row)}",
+                        f"column {c} names object {value}, unknown to the catalog"))
+    # 3. the ledger chain
+    prev_hash, prev_seq = GENESIS, 0
+    recorded: dict[tuple[str, str], tuple[str, list[str] | None]] = {}
+    last = None
+    for ev in s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq)):
+        report.events_checked += 1
+        subject = f"ledger event {ev.seq} ({ev.action})"
+        if ev.seq != prev_seq + 1:
+            report.problems.append(Problem("broken-chain", subject,
+                                           f"sequence jumps from {prev_seq} to {ev.seq}"))
+        if ev.prev_hash != prev_hash:
+            report.problems.append(Problem("broken-chain", subject,
+                                           "previous-hash link does not match the event before"))
+        expect = event_hash(ev.seq, ev.at, ev.actor, ev.action, ev.survey_id, ev.payload,
+                            ev.prev_hash)
+        if expect != ev.hash:
+            report.problems.append(Problem("broken-chain", subject,
+                                           "event content does not match its hash"))
+        try:
+            payload = json.loads(ev.payload)
+        except ValueError:
+            payload = {}
+            report.problems.append(Problem("broken-chain", subject, "payload is not JSON"))
+        for r in payload.get("rows", []) if isinstance(payload, dict) else []:
+            recorded[(r["table"], r["key"])] = (r["digest"], r.get("columns"))
+        prev_hash, prev_seq, last = ev.hash, ev.seq, ev
+    head = s.get(LedgerHead, 1)
+    report.head = head.hash if head else None
+    if last is not None and (head is None or head.hash != last.hash or head.seq != last.seq):
+        report.problems.append(Problem("broken-chain", "ledger head",
+                                       f"head does not name the last event ({last.seq})"))
+    # 4. ledgered rows unchanged, and none gone
+    present: set[tuple[str, str]] = set()
+    for model in LEDGERED_TABLES:
+        for row in s.scalars(select(model)):
+            report.rows_checked += 1
+            key = (model.__tablename__, row_key(row))
+            present.add(key)
+            subject = f"{key[0]} row {key[1]}"
+            if key not in recorded:
+                report.problems.append(Problem("unledgered-row", subject,
+                                               "no ledger event recorded this row"))
+            elif recorded[key][0] != row_digest(row, recorded[key][1]):
+                report.problems.append(Problem("altered-row", subject,
+                                               "row content differs from its ledger record"))
+    for table, key in sorted(set(recorded) - present):
+        report.problems.append(Problem("deleted-row", f"{table} row {key}",
+                                       "a ledger event recorded this row; it is gone"))
