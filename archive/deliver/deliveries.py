@@ -32,6 +32,7 @@ from archive.deliver.formats import writer
 from archive.deliver.manifest import DeliveryFacts, lineage_manifest, manifest_bytes
 from archive.edits.log import delivery_edit_set
 from archive.errors import Refused, StorageError, UsageError
+from archive.solve.inputs import check_objects
 from archive.solve.run import get_run, manifest_inputs, run_manifest
 from archive.store.archive import Archive
 from archive.store.models import Delivery, LedgerHead, RawFile, Run, Survey, utcnow
@@ -156,6 +157,9 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
 
     run = get_run(arc, survey_id, run_ref)
     manifest = run_manifest(arc, run)
+    inputs = manifest_inputs(manifest)
+    raw_files = raw_files_of(arc, survey_id, inputs.get("fixes", []))
+    _require_inputs(arc, manifest, raw_files)
     edits, edit_hash, unapplied = delivery_edit_set(arc, survey_id, manifest)
     warnings = [f"exclude-span edit {e.id} ({_station(e)}) is in force but run {run.id[:12]} "
                 "did not apply it: solve again to apply it" for e in unapplied]
@@ -182,14 +186,13 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
 
     file_hash, file_size = arc.objects.put_bytes(data)
     final_hash, final_size = arc.objects.put_table(final)
-    inputs = manifest_inputs(manifest)
     facts = DeliveryFacts(
         fmt=fmt, file_name=target.name, file_hash=file_hash, file_size=file_size,
         recipient=recipient, note=note, actor=arc.actor, produced=produced,
         allow_flags=allow_flags, flags=flags, survey=survey, heights_datum=heights_datum,
         run=run, run_manifest=manifest, edits=edits, edit_set_hash=edit_hash,
         unapplied=unapplied, inputs=inputs,
-        raw_files=raw_files_of(arc, survey_id, inputs.get("fixes", [])), final=final,
+        raw_files=raw_files, final=final,
         final_hash=final_hash, merge=merge_occupations, merges=built.merges)
     delivery_id, manifest_hash, (tmp_file, tmp_lineage) = _record(
         arc, survey_id, facts, data, final_size, target, lineage_path)
@@ -202,6 +205,16 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
         unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
         merges=built.merges)
+
+
+def _require_inputs(arc: Archive, manifest: dict[str, Any],
+                    raw_files: list[dict[str, Any]]) -> None:
+    """Every object the delivery's lineage will name is in the object store (the run's input
+    tables and the raw logs behind its fixes), so a delivery is never made that its own
+    manifest cannot be checked against: :class:`ObjectDamaged` names the first one missing."""
+    check_objects(arc, manifest, rehash=False)
+    for raw in raw_files:
+        arc.objects.require(raw["hash"], rehash=False)
 
 
 def _record(arc: Archive, survey_id: int, f: DeliveryFacts, data: bytes, final_size: int,

@@ -20,7 +20,7 @@ import pyarrow.compute as pc
 from sqlalchemy import select
 
 from archive.edits.log import exclude_spans_in_force
-from archive.errors import IntegrityError, UsageError
+from archive.errors import UsageError
 from archive.solve.fixarrays import empty_fixes
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
@@ -75,13 +75,9 @@ class SolveInputs:
         """A sampler over the elevation model named by hash, or None."""
         if self.dem_hash is None:
             return None
-        from archive.survey.dem import DemSampler
+        from archive.survey.dem import sampler_for
 
-        local = arc.objects.local_path(self.dem_hash)
-        if local is not None:
-            return DemSampler(local, self.dem_datum, source_hash=self.dem_hash)
-        with arc.objects.open(self.dem_hash) as fh:
-            return DemSampler(fh, self.dem_datum, source_hash=self.dem_hash)
+        return sampler_for(arc, self.dem_hash, self.dem_datum)
 
 
 def _current(arc: Archive, survey_id: int, kind: str) -> InputVersion | None:
@@ -218,19 +214,13 @@ def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
     return pa.concat_tables(tables, promote_options="default")
 
 
-def check_objects(arc: Archive, manifest: dict[str, Any]) -> None:
-    """Every input object of a manifest exists and its bytes still match its hash."""
+def check_objects(arc: Archive, manifest: dict[str, Any], *, rehash: bool = True) -> None:
+    """Every input object of a manifest exists (and, with ``rehash``, its bytes still match
+    its hash); :class:`~archive.errors.ObjectDamaged` names the first that does not and what
+    it belongs to (node and file, or survey input and version)."""
     ins = manifest["inputs"]
-    named = [("stations table", ins["stations"]), ("deployments table", ins["deployments"])]
-    if ins.get("dem"):
-        named.append(("elevation model", ins["dem"]))
-    named += [("fix table", h) for h in ins["fixes"]]
-    for what, h in named:
-        if not arc.objects.exists(h):
-            raise IntegrityError(f"the {what} {h} of this run is missing from the object store",
-                                 hint="restore it from a backup; 'nodekeep verify' lists "
-                                      "every missing object")
-        if not arc.objects.check(h):
-            raise IntegrityError(f"the {what} {h} no longer matches its hash (altered bytes)",
-                                 hint="restore it from a backup; 'nodekeep verify' lists "
-                                      "every altered object")
+    hashes = [ins.get("stations"), ins.get("deployments"), ins.get("dem"),
+              *(ins.get("fixes") or [])]
+    for h in hashes:
+        if h:
+            arc.objects.require(h, rehash=rehash)

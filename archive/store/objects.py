@@ -17,7 +17,7 @@ import os
 import stat
 import tempfile
 import uuid
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import BinaryIO
 from urllib.parse import urlsplit
@@ -26,7 +26,7 @@ import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
-from archive.errors import IntegrityError, Refused, StorageError
+from archive.errors import ObjectDamaged, Refused, StorageError
 from archive.store.hashing import CHUNK, is_hash
 
 # errno values of a storage that refuses writes: disk full, quota, read-only, permission.
@@ -79,6 +79,9 @@ class ObjectStore:
             self._fs = None
             self.root = Path(self.url.removeprefix("file://"))
             self._base = str(self.root)
+        self.describe: Callable[[str], str | None] | None = None
+        """Names what an object belongs to, for error messages (set by the archive)."""
+        self._verified: dict[str, tuple[int, int, int]] = {}
 
     # -- naming -------------------------------------------------------------------------
     @property
@@ -128,32 +131,86 @@ class ObjectStore:
                 yield name
 
     # -- reading ------------------------------------------------------------------------
+    # Every read that hands content to a caller checks the bytes against the object's name
+    # first (streamed for files that are parsed in place, on the bytes for whole reads), so
+    # a changed or cut object stops the command instead of feeding a computation. A local
+    # object verified once is not hashed again in the same process while its size, inode
+    # and modification time stay the same (objects are written once and made read-only).
+    def _damaged(self, h: str, detail: str) -> ObjectDamaged:
+        owner = None
+        if self.describe is not None:
+            try:
+                owner = self.describe(h)
+            except Exception:  # noqa: BLE001 - the catalog may be damaged too; the hash suffices
+                owner = None
+        return ObjectDamaged(h, detail, owner)
+
+    def _stamp(self, h: str) -> tuple[int, int, int] | None:
+        if self.root is None:
+            return None
+        try:
+            st = (self.root / fanout(h)).stat()
+        except OSError:
+            return None
+        return (st.st_size, st.st_mtime_ns, st.st_ino)
+
     def open(self, h: str) -> BinaryIO:
-        """Open an object for reading (binary). Raises IntegrityError when it is missing."""
+        """Open an object for reading (binary), unchecked: for callers that hash as they
+        read (:meth:`check`). Raises :class:`ObjectDamaged` when it is missing."""
         try:
             if self.root is not None:
                 return open(self.root / fanout(h), "rb")
             return self._fs.open_input_stream(self.location(h))
         except (FileNotFoundError, OSError) as exc:
-            raise IntegrityError(f"object {h} is missing from the object store") from exc
+            raise self._damaged(h, "is missing from the object store") from exc
+
+    def ensure_intact(self, h: str) -> None:
+        """Re-hash an object (streamed) unless verified earlier in this process; raises
+        :class:`ObjectDamaged` naming the object and its owner when it is missing or changed."""
+        stamp = self._stamp(h)
+        if stamp is not None and self._verified.get(h) == stamp:
+            return
+        if not self.check(h):
+            raise self._damaged(h, "no longer matches its hash (its bytes were changed)")
+        if stamp is not None:
+            self._verified[h] = stamp
+
+    def require(self, h: str, *, rehash: bool = True) -> None:
+        """Raise :class:`ObjectDamaged` unless the object is stored (and, with ``rehash``,
+        still matches its hash)."""
+        if not self.exists(h):
+            raise self._damaged(h, "is missing from the object store")
+        if rehash:
+            self.ensure_intact(h)
 
     def read_bytes(self, h: str) -> bytes:
-        """Whole content of an object."""
+        """Whole content of an object, checked against its hash."""
         with self.open(h) as fh:
-            return fh.read()
+            data = fh.read()
+        if hashlib.sha256(data).hexdigest() != h:
+            raise self._damaged(h, "no longer matches its hash (its bytes were changed)")
+        stamp = self._stamp(h)
+        if stamp is not None:
+            self._verified[h] = stamp
+        return data
 
     def parquet_file(self, h: str) -> pq.ParquetFile:
-        """A ParquetFile over a stored Parquet object (for streaming by row group)."""
-        if self.root is not None:
-            path = self.root / fanout(h)
-            if not path.is_file():
-                raise IntegrityError(f"object {h} is missing from the object store")
-            return pq.ParquetFile(str(path), memory_map=True)
-        return pq.ParquetFile(self._fs.open_input_file(self.location(h)))
+        """A ParquetFile over a stored, checked Parquet object (for streaming by row group)."""
+        self.ensure_intact(h)
+        try:
+            if self.root is not None:
+                return pq.ParquetFile(str(self.root / fanout(h)), memory_map=True)
+            return pq.ParquetFile(self._fs.open_input_file(self.location(h)))
+        except (pa.ArrowException, OSError) as exc:
+            raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
 
     def read_table(self, h: str, columns: list[str] | None = None) -> pa.Table:
-        """Read a stored Parquet object as an Arrow table."""
-        return self.parquet_file(h).read(columns=columns)
+        """Read a stored Parquet object, checked against its hash, as an Arrow table."""
+        data = self.read_bytes(h)
+        try:
+            return pq.ParquetFile(pa.BufferReader(data)).read(columns=columns)
+        except (pa.ArrowException, OSError) as exc:
+            raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
 
     def check(self, h: str) -> bool:
         """Re-hash a stored object; True when its bytes still match its name."""

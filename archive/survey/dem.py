@@ -27,7 +27,7 @@ from typing import Any, BinaryIO
 import numpy as np
 import rasterio
 from pyproj import CRS
-from rasterio.errors import RasterioIOError
+from rasterio.errors import RasterioError, RasterioIOError
 from rasterio.windows import Window
 
 from archive.errors import InputError
@@ -38,35 +38,70 @@ MAX_WINDOW_PIXELS = 4_000_000  # read one window when the points' window is at m
 _ENV = {"GTIFF_POINT_GEO_IGNORE": "FALSE"}  # keep GDAL's pixel-is-point half-pixel shift
 
 
-def inspect_dem(path: str | Path) -> dict[str, Any]:
-    """Check that a file is a readable single-band GeoTIFF with a CRS; return its details."""
+def inspect_dem(path: str | Path, *, read_pixels: bool = False) -> dict[str, Any]:
+    """Check that a file is a readable single-band GeoTIFF with a CRS; return its details.
+
+    With ``read_pixels`` (when a model is loaded) every block of pixels is read too, so a
+    file whose header reads but whose pixels are cut or damaged is refused before it becomes
+    the current model; the details then include the range of valid heights."""
     name = str(path)
     try:
         with rasterio.Env(**_ENV), rasterio.open(name) as ds:
-            if ds.driver != "GTiff":
-                raise InputError(name, f"the file is a {ds.driver} raster",
-                                 expected="a GeoTIFF elevation model")
-            if ds.count != 1:
-                raise InputError(name, f"the GeoTIFF has {ds.count} bands",
-                                 expected="a single band of elevations")
-            if ds.crs is None:
-                raise InputError(name, "the GeoTIFF has no coordinate reference system",
-                                 expected="a georeferenced GeoTIFF (CRS in its GeoKeys)",
-                                 hint="assign the CRS, e.g. gdal_edit.py -a_srs EPSG:NNNN")
-            if ds.width < 1 or ds.height < 1 or ds.transform.determinant == 0:
-                raise InputError(name, "the GeoTIFF has no usable geotransform",
-                                 expected="a georeferenced grid")
-            return {
-                "driver": ds.driver, "width": ds.width, "height": ds.height,
-                "dtype": ds.dtypes[0], "crs_epsg": ds.crs.to_epsg(), "crs_wkt": ds.crs.to_wkt(),
-                "transform": list(ds.transform)[:6],
-                "nodata": None if ds.nodata is None or np.isnan(ds.nodata) else float(ds.nodata),
-                "area_or_point": ds.tags().get("AREA_OR_POINT", "Area"),
-                "bounds": list(ds.bounds),
-            }
+            facts = _facts(ds, name)
+            if read_pixels:
+                facts.update(_read_blocks(ds, name))
+            return facts
     except RasterioIOError as exc:
         raise InputError(name, f"not readable as a GeoTIFF: {exc}",
                          expected="a single-band GeoTIFF elevation model") from None
+
+
+def _read_blocks(ds: Any, name: str) -> dict[str, Any]:
+    """Read every pixel block (one block in memory at a time); the valid heights' range."""
+    lo, hi, valid = np.inf, -np.inf, 0
+    for _, window in ds.block_windows(1):
+        try:
+            block = ds.read(1, window=window, masked=True)
+        except (RasterioIOError, RasterioError) as exc:
+            raise InputError(name, f"the pixels of rows {window.row_off}-"
+                             f"{window.row_off + window.height - 1}, columns {window.col_off}-"
+                             f"{window.col_off + window.width - 1} cannot be read ({exc})",
+                             expected="a complete GeoTIFF (was the file cut short in a copy?)"
+                             ) from None
+        values = block.compressed().astype(np.float64)
+        values = values[np.isfinite(values)]
+        if values.size:
+            lo, hi, valid = min(lo, values.min()), max(hi, values.max()), valid + values.size
+    if valid == 0:
+        raise InputError(name, "the model holds no valid height (every pixel is nodata)",
+                         expected="a bare-earth elevation model")
+    return {"height_range": [float(lo), float(hi)],
+            "valid_share": round(valid / (ds.width * ds.height), 6)}
+
+
+def _facts(ds: Any, name: str) -> dict[str, Any]:
+    """The raster's facts, refusing what cannot be an elevation model."""
+    if ds.driver != "GTiff":
+        raise InputError(name, f"the file is a {ds.driver} raster",
+                         expected="a GeoTIFF elevation model")
+    if ds.count != 1:
+        raise InputError(name, f"the GeoTIFF has {ds.count} bands",
+                         expected="a single band of elevations")
+    if ds.crs is None:
+        raise InputError(name, "the GeoTIFF has no coordinate reference system",
+                         expected="a georeferenced GeoTIFF (CRS in its GeoKeys)",
+                         hint="assign the CRS, e.g. gdal_edit.py -a_srs EPSG:NNNN")
+    if ds.width < 1 or ds.height < 1 or ds.transform.determinant == 0:
+        raise InputError(name, "the GeoTIFF has no usable geotransform",
+                         expected="a georeferenced grid")
+    return {
+        "driver": ds.driver, "width": ds.width, "height": ds.height,
+        "dtype": ds.dtypes[0], "crs_epsg": ds.crs.to_epsg(), "crs_wkt": ds.crs.to_wkt(),
+        "transform": list(ds.transform)[:6],
+        "nodata": None if ds.nodata is None or np.isnan(ds.nodata) else float(ds.nodata),
+        "area_or_point": ds.tags().get("AREA_OR_POINT", "Area"),
+        "bounds": list(ds.bounds),
+    }
 
 
 class DemSampler:
@@ -189,11 +224,18 @@ def open_dem(arc: Any, survey_id: int, version: int | None = None) -> DemSampler
     if row is None:
         return None
     datum = json.loads(row.meta or "{}").get("vertical_datum", "")
-    local = arc.objects.local_path(row.source_hash)
+    return sampler_for(arc, row.source_hash, datum)
+
+
+def sampler_for(arc: Any, h: str, datum: str) -> DemSampler:
+    """A sampler over the stored elevation model ``h``, its bytes checked against the hash
+    first (a changed model stops the command naming the survey input it belongs to)."""
+    arc.objects.ensure_intact(h)
+    local = arc.objects.local_path(h)
     if local is not None:
-        return DemSampler(local, datum, source_hash=row.source_hash)
-    with arc.objects.open(row.source_hash) as fh:
-        return DemSampler(fh, datum, source_hash=row.source_hash)
+        return DemSampler(local, datum, source_hash=h)
+    with arc.objects.open(h) as fh:
+        return DemSampler(fh, datum, source_hash=h)
 
 
 def spot_sample(arc: Any, survey_id: int, easting: float, northing: float,
