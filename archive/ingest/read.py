@@ -21,6 +21,7 @@ from archive.ingest.schema import FIX_SCHEMA
 from archive.store.archive import Archive
 from archive.store.models import RawFile
 from archive.store.objects import PARQUET_OPTIONS
+from archive.store.outfiles import write_file
 
 
 def _utc(t: dt.datetime | None) -> dt.datetime | None:
@@ -87,14 +88,14 @@ def write_fixes(table: pa.Table, path: str | Path, *, force: bool = False) -> Pa
                          hint="name the output FILE.csv or FILE.parquet")
     if path.exists() and not force:
         raise Refused(f"{path} already exists", hint="use --force to overwrite it")
-    tmp = path.with_name(path.name + ".part")
+    sink = pa.BufferOutputStream()
     if suffix == ".parquet":
-        pq.write_table(table, tmp, **PARQUET_OPTIONS)
+        pq.write_table(table, sink, **PARQUET_OPTIONS)
     else:
         iso = pc.strftime(table.column("time"), format="%Y-%m-%dT%H:%M:%SZ")
         out = table.set_column(table.schema.get_field_index("time"), "time", iso)
-        pacsv.write_csv(out, tmp)
-    tmp.replace(path)
+        pacsv.write_csv(out, sink)
+    write_file(path, sink.getvalue().to_pybytes())
     return path
 
 

@@ -10,12 +10,19 @@ file, so no half-written file is ever left under the target's name.
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
+import re
 import tempfile
 import threading
+import time
 from pathlib import Path
 
-from archive.errors import Refused, UsageError
+from archive.errors import Refused, StorageError, UsageError
+from archive.store.space import free_bytes
+
+# errno values of a file system that refuses a write: no space, quota, read-only.
+STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS}
 
 _UMASK_LOCK = threading.Lock()
 
@@ -41,19 +48,75 @@ def new_file_mode() -> int:
     return 0o666 & ~_umask()
 
 
+STALE_SECONDS = 600
+"""A temporary file of this program older than this is left over from a failed or killed
+write (a write holds its temporary file for seconds) and is swept from the folder."""
+
+_TEMP_NAME = re.compile(r"^\..+\.[A-Za-z0-9_]{8}\.tmp$")  # .{target name}.{mkstemp}.tmp
+
+
+def sweep_stale(folder: Path, *, now: float | None = None) -> list[Path]:
+    """Remove this program's temporary files in ``folder`` older than :data:`STALE_SECONDS`
+    (left by a write that was killed or failed before it could clean up); returns them."""
+    now = time.time() if now is None else now
+    gone: list[Path] = []
+    try:
+        entries = list(os.scandir(folder))
+    except OSError:
+        return gone
+    for entry in entries:
+        if not _TEMP_NAME.match(entry.name):
+            continue
+        try:
+            if entry.is_file(follow_symlinks=False) and \
+                    now - entry.stat(follow_symlinks=False).st_mtime > STALE_SECONDS:
+                os.unlink(entry.path)
+                gone.append(Path(entry.path))
+        except OSError:
+            continue
+    return gone
+
+
+def storage_refusal(exc: OSError, target: Path, needed: int) -> StorageError | None:
+    """A one-line :class:`StorageError` for a write the file system refused (no space, quota,
+    read-only), naming the file and the bytes it needed; None for any other OSError."""
+    if exc.errno not in STORAGE_ERRNOS:
+        return None
+    free = free_bytes(target.parent)
+    room = f", {free:,} free" if free is not None else ""
+    return StorageError(
+        f"cannot write {target}: {exc.strerror or 'refused by the file system'} "
+        f"({needed:,} bytes needed{room})",
+        hint="nothing was left behind under that name; free space or choose another folder "
+             "and run the command again")
+
+
 def temp_beside(target: Path, data: bytes) -> Path:
     """Write ``data`` to a fsynced temporary file in ``target``'s folder, with the umask's
-    permissions; returns its path (rename it onto ``target`` with :func:`os.replace`)."""
-    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
+    permissions; returns its path (rename it onto ``target`` with :func:`os.replace`).
+
+    Stale temporaries of earlier failed writes in that folder are swept first; a write the
+    file system refuses removes its own temporary file and raises :class:`StorageError`."""
+    sweep_stale(target.parent)
+    try:
+        fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
+    except OSError as exc:
+        refusal = storage_refusal(exc, target, len(data))
+        if refusal is None:
+            raise
+        raise refusal from exc
     try:
         with os.fdopen(fd, "wb") as fh:
             fh.write(data)
             fh.flush()
             os.fchmod(fh.fileno(), new_file_mode())
             os.fsync(fh.fileno())
-    except BaseException:
+    except BaseException as exc:
         with contextlib.suppress(FileNotFoundError):
             os.unlink(tmp)
+        refusal = storage_refusal(exc, target, len(data)) if isinstance(exc, OSError) else None
+        if refusal is not None:
+            raise refusal from exc
         raise
     return Path(tmp)
 
@@ -63,9 +126,12 @@ def write_file(target: Path, data: bytes) -> None:
     tmp = temp_beside(target, data)
     try:
         os.replace(tmp, target)
-    except BaseException:
+    except BaseException as exc:
         with contextlib.suppress(FileNotFoundError):
             tmp.unlink()
+        refusal = storage_refusal(exc, target, len(data)) if isinstance(exc, OSError) else None
+        if refusal is not None:
+            raise refusal from exc
         raise
 
 
