@@ -99,10 +99,57 @@ class Refused(NodekeepError):
     exit_code = 4
 
 
-class StorageError(NodekeepError):
+class StorageError(NodekeepError):  # an EnvironmentProblem of storage (same exit code)
     """The archive's storage refused a write (disk full, read-only media, no permission).
 
     Raised before anything is recorded: the archive stays whole (at most an unreferenced
     object is left, which ``verify`` reports as dangling)."""
 
     exit_code = 5
+
+
+class EnvironmentProblem(NodekeepError):
+    """The world around the archive failed, not the request and not nodekeep: a full disk,
+    a lost database connection, a missing optional module, storage that refuses writes.
+
+    Exit code 5, as for storage: nothing was recorded by the step that failed; fix the
+    environment (free space, restart the server, install the extra) and run it again."""
+
+    exit_code = 5
+
+
+class CatalogDamaged(IntegrityError):
+    """The catalog database itself is damaged (a corrupt page, undecodable text, a cut file)."""
+
+    def __init__(self, where: str, detail: str) -> None:
+        super().__init__(
+            f"the catalog {where} is damaged: {detail}",
+            hint="restore the catalog from a backup (the objects folder is not affected); "
+                 "'nodekeep verify' names what is damaged")
+
+
+class ObjectDamaged(IntegrityError):
+    """A stored object is missing, no longer hashes to its name, or cannot be parsed.
+
+    ``owner`` names what the object belongs to (a node's log, a survey input version, a
+    run), filled by the archive that read it; the command stops before recording anything."""
+
+    def __init__(self, h: str, detail: str, owner: str | None = None) -> None:
+        self.h, self.detail, self.owner = h, detail, owner
+        super().__init__(self._text(),
+                         hint="restore it from a backup of the objects folder; "
+                              "'nodekeep verify' lists every damaged object")
+
+    def _text(self) -> str:
+        about = f" ({self.owner})" if self.owner else ""
+        return f"stored object {self.h[:16]}{about} {self.detail}"
+
+    def __reduce__(self) -> tuple[object, ...]:  # survives the trip back from a worker process
+        return (ObjectDamaged, (self.h, self.detail, self.owner))
+
+    def with_owner(self, owner: str | None) -> ObjectDamaged:
+        """The same error naming what the object belongs to."""
+        if owner:
+            self.owner = owner
+            self.args = (self._text(),)
+        return self

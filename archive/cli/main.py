@@ -90,7 +90,12 @@ class RootGroup(LazyGroup):
             if _debug(ctx):
                 raise
             from archive.store.db import mask_url
+            from archive.store.faults import world_fault
 
+            fault = world_fault(exc, getattr(ctx.obj, "catalog", None))
+            if fault is not None:
+                click.echo(f"error: {mask_url(str(fault))}", err=True)
+                ctx.exit(fault.exit_code)
             click.echo(f"internal error: {type(exc).__name__}: {mask_url(str(exc))} "
                        "(run with --debug for the traceback)", err=True)
             ctx.exit(70)

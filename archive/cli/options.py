@@ -105,6 +105,8 @@ class CliState:
         self.as_json = False
         self.quiet = False
         self._archive = None
+        self.catalog: str | None = None
+        """The open archive's catalog (path or masked URL), for messages about it."""
 
     def archive(self, *, check_schema: bool = True):
         """Open the archive once per invocation; it is closed when the command ends."""
@@ -113,6 +115,7 @@ class CliState:
 
             self._archive = Archive.open(self.archive_dir, actor=self.actor,
                                          check_schema=check_schema)
+            self.catalog = self._archive.catalog_name
             click.get_current_context().call_on_close(self._archive.close)
         return self._archive
 

@@ -31,7 +31,7 @@ from sqlalchemy.orm import Session
 
 from archive.errors import ArchiveNotFound, UsageError
 from archive.store import ledger
-from archive.store.db import make_engine, mask_url, sqlite_url
+from archive.store.db import make_engine, mask_url, sqlite_disk_full, sqlite_url
 from archive.store.models import LedgerEvent, StoredObject, Survey, utcnow
 from archive.store.objects import ObjectStore
 
@@ -86,8 +86,11 @@ class Archive:
         self.read_only = read_only
         self.db_url = self._resolve_db(config["db"])
         self.objects_url = self._resolve_objects(config["objects"])
+        self.full_disk = sqlite_disk_full(self.db_url)
+        """Why the catalog cannot be written (its disk is full), or None; reads still work."""
         self.engine: Engine = make_engine(self.db_url, read_only=read_only)
         self.objects = ObjectStore(self.objects_url, read_only=read_only)
+        self.objects.describe = self._object_owner
 
     # -- creation and opening -----------------------------------------------------------
     def _resolve_db(self, db: str) -> str:
@@ -155,10 +158,24 @@ class Archive:
         if check_schema:
             try:
                 migrate.check_schema(arc.engine)
-            except Exception:
+            except Exception as exc:
                 arc.close()
-                raise
+                from archive.store.faults import world_fault
+
+                fault = world_fault(exc, arc.catalog_name)
+                if fault is None or fault is exc:
+                    raise
+                raise fault from exc
         return arc
+
+    @property
+    def catalog_name(self) -> str:
+        """The catalog as a user knows it: its file for SQLite, else the password-masked URL."""
+        if self.engine.dialect.name == "sqlite":
+            from sqlalchemy.engine import make_url
+
+            return make_url(self.db_url).database or mask_url(self.db_url)
+        return mask_url(self.db_url)
 
     def close(self) -> None:
         """Release database connections."""
@@ -170,6 +187,11 @@ class Archive:
     def __exit__(self, *exc: object) -> None:
         self.close()
 
+    def _object_owner(self, h: str) -> str | None:
+        from archive.store.owners import object_owner
+
+        return object_owner(self, h)
+
     # -- sessions -----------------------------------------------------------------------
     @contextmanager
     def transaction(self) -> Iterator[Session]:
@@ -178,6 +200,12 @@ class Archive:
             from archive.errors import Refused
 
             raise Refused(f"the archive {self.root} is open read-only")
+        if self.full_disk:
+            from archive.errors import StorageError
+
+            raise StorageError(f"cannot change the archive: {self.full_disk}",
+                               hint="nothing was recorded; free space and run the command "
+                                    "again (reading commands still work)")
         with (
             self.engine.connect().execution_options(nodekeep_write=True) as conn,
             Session(bind=conn, expire_on_commit=False) as session,
