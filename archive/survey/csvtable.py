@@ -122,7 +122,8 @@ def read_csv_columns(
 
     ``mapping`` maps a field to the header that holds it (default: the field's own name);
     headers match case-insensitively and ignoring surrounding blanks. Blank records are
-    skipped; line numbers count the header as line 1.
+    skipped; line numbers are physical lines of the file (the header's first line is 1, and a
+    quoted field that holds line breaks moves every later record down by as many lines).
     """
     mapping = mapping or {}
     try:
@@ -150,7 +151,7 @@ def read_csv_columns(
                          expected=f"a header row with {','.join(required)}"
                                   + (f" and optionally {','.join(optional)}" if optional else ""),
                          hint="name the columns with --columns field=Header if they differ")
-    lines = np.arange(2, len(df) + 2, dtype=np.int64)
+    lines = _physical_lines(df)
     if picked:
         filled = np.zeros(len(df), dtype=bool)
         for col in df.columns:
@@ -158,3 +159,15 @@ def read_csv_columns(
         picked = {k: v[filled] for k, v in picked.items()}
         lines = lines[filled]
     return CsvColumns(path, picked, lines)
+
+
+def _physical_lines(df: pd.DataFrame) -> np.ndarray:
+    """The physical line each record starts on: 2 plus the records before it plus the line
+    breaks inside quoted fields of the header and of the records before it."""
+    n = len(df)
+    breaks = np.zeros(n, dtype=np.int64)
+    for col in df.columns:
+        breaks += df[col].str.count("\n").fillna(0).to_numpy(dtype=np.int64)
+    header = sum(str(h).count("\n") for h in df.columns)
+    before = np.concatenate([[0], np.cumsum(breaks)[:-1]]) if n else breaks
+    return (2 + header + np.arange(n, dtype=np.int64) + before).astype(np.int64)

@@ -84,7 +84,9 @@ def load_input(arc: Archive, survey_id: int, kind: str, path: str | Path,
         arc.log(tx, f"load.{kind}",
                 {"kind": kind, "version": row.version, "source": source_hash,
                  "table": table_hash, "name": path.name, "rows": n_rows,
-                 "warnings": len(parsed.warnings)},
+                 "warnings": len(parsed.warnings),
+                 **({"overrides": parsed.meta["overrides"]}
+                    if parsed.meta.get("overrides") else {})},
                 survey_id=survey_id, rows=[row])
     return LoadedInput(version=row, table=parsed.table, warnings=parsed.warnings,
                        meta=parsed.meta)

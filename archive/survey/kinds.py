@@ -76,13 +76,20 @@ def _dem_summary(meta: dict[str, Any], _rows: int) -> str:
 FORMAT_OPTION = LoadOption("format", "File format (default: guessed from the name and "
                            "content).", kind="choice", choices=("sps", "csv"))
 
+CRS_OPTION = LoadOption("crs_from_survey", "The file's header names another CRS than the "
+                        "survey's, but its coordinates are in the survey's CRS: load it "
+                        "anyway, for this reason (kept in the ledger).", metavar="REASON")
+REPLACE_OPTION = LoadOption("replace", "Accept a preplot that lacks more than 5 % of the "
+                            "current preplot's stations (a version replaces the whole "
+                            "preplot).", kind="flag")
+
 INPUT_KINDS: Registry[InputKind] = Registry("input kind")
 INPUT_KINDS.register(
     "stations", "the preplot: receiver and source stations",
     InputKind(parse=lambda ctx: _load("parse_stations")(ctx),
               file_help="Load a preplot: SPS rev 2.1 R/S records or CSV "
                         "line,point,easting,northing[,elevation][,index][,code].",
-              options=(FORMAT_OPTION,)))
+              options=(FORMAT_OPTION, CRS_OPTION, REPLACE_OPTION)))
 INPUT_KINDS.register(
     "deployments", "the deployment log: which node sat at which station, when",
     InputKind(parse=lambda ctx: _load("parse_deployments")(ctx),
@@ -98,7 +105,7 @@ INPUT_KINDS.register(
     InputKind(parse=lambda ctx: _load("parse_control")(ctx),
               file_help="Load RTK check points (they survey the sensor position): CSV or "
                         "SPS records.",
-              options=(FORMAT_OPTION,)))
+              options=(FORMAT_OPTION, CRS_OPTION)))
 INPUT_KINDS.register(
     "dem", "the bare-earth elevation model, a GeoTIFF",
     InputKind(parse=lambda ctx: _load("parse_dem")(ctx),

@@ -20,19 +20,30 @@ def _current_table(ctx: LoadContext, kind: str):
 def parse_stations(ctx: LoadContext) -> ParsedInput:
     """A preplot (SPS or CSV), inside the survey CRS's area of use."""
     from archive.survey import stations
+    from archive.survey.guards import check_dropped, check_header_crs
+    from archive.survey.inputs import current_input
 
     margin = float(ctx.options.get("area_margin_deg", 0.0))
     parsed = stations.read_stations(ctx.read(), str(ctx.path), ctx.options.get("format"))
+    check_header_crs(parsed.meta, ctx.survey.crs_epsg, str(ctx.path),
+                     ctx.options.get("crs_from_survey"))
     stations.check_area(parsed.table, ctx.survey.crs_epsg, str(ctx.path), margin_deg=margin)
+    current = current_input(ctx.arc, ctx.survey.id, "stations")
+    check_dropped(parsed.table, current[1] if current else None,
+                  current[0].version if current else None, str(ctx.path),
+                  bool(ctx.options.get("replace")), parsed.meta)
     return parsed
 
 
 def parse_control(ctx: LoadContext) -> ParsedInput:
     """RTK check points (CSV or SPS), inside the area, warned when not at a preplot station."""
     from archive.survey import stations
+    from archive.survey.guards import check_header_crs
 
     margin = float(ctx.options.get("area_margin_deg", 0.0))
     parsed = stations.read_control(ctx.read(), str(ctx.path), ctx.options.get("format"))
+    check_header_crs(parsed.meta, ctx.survey.crs_epsg, str(ctx.path),
+                     ctx.options.get("crs_from_survey"))
     stations.check_area(parsed.table, ctx.survey.crs_epsg, str(ctx.path), margin_deg=margin)
     parsed.warnings += stations.unknown_stations(parsed.table, _current_table(ctx, "stations"),
                                                  "check point")
@@ -82,6 +93,6 @@ def parse_dem(ctx: LoadContext) -> ParsedInput:
     if not datum:
         raise UsageError("an elevation model needs its vertical datum",
                          hint="pass --vertical-datum, e.g. 'NAVD88 (GEOID18)'")
-    meta = inspect_dem(ctx.path)
+    meta = inspect_dem(ctx.path, read_pixels=True)
     meta["vertical_datum"] = datum
     return ParsedInput(table=None, meta=meta)
