@@ -9,7 +9,8 @@ edit and a delivery, so every ledgered table has rows.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+import subprocess
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -58,3 +59,23 @@ def full_template(tmp_path_factory: pytest.TempPathFactory, module_db: str | Non
     tpl = ArchiveTemplate(root, module_db)
     yield tpl
     tpl.cleanup()
+
+
+@pytest.fixture
+def tmpfs(tmp_path: Path) -> Iterator[Callable[[str, str], Path]]:
+    """Mount small tmpfs file systems (skips where mounting is not allowed)."""
+    mounted: list[Path] = []
+
+    def mount(name: str, size: str) -> Path:
+        where = tmp_path / name
+        where.mkdir()
+        done = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs",
+                               str(where)], capture_output=True, check=False)
+        if done.returncode != 0:
+            pytest.skip(f"cannot mount a tmpfs here: {done.stderr.decode().strip()}")
+        mounted.append(where)
+        return where
+
+    yield mount
+    for where in reversed(mounted):
+        subprocess.run(["umount", "-l", str(where)], check=False)

@@ -15,7 +15,6 @@ import shutil
 import stat
 import subprocess
 import sys
-from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -30,26 +29,6 @@ from tests.support.cli import SURVEY_EPSG, SURVEY_NAME
 from tests.support.reliability import make_survey_archive
 
 STORAGE_ERROR = 5
-
-
-@pytest.fixture
-def tmpfs(tmp_path: Path) -> Iterator[Callable[[str, str], Path]]:
-    """Mount small tmpfs file systems (skips where mounting is not allowed)."""
-    mounted: list[Path] = []
-
-    def mount(name: str, size: str) -> Path:
-        where = tmp_path / name
-        where.mkdir()
-        done = subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs",
-                               str(where)], capture_output=True, check=False)
-        if done.returncode != 0:
-            pytest.skip(f"cannot mount a tmpfs here: {done.stderr.decode().strip()}")
-        mounted.append(where)
-        return where
-
-    yield mount
-    for where in reversed(mounted):
-        subprocess.run(["umount", "-l", str(where)], check=False)
 
 
 def remount(where: Path, options: str) -> None:
