@@ -10,7 +10,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.ingest.arrow_build import coded_strings, constant_strings, from_numpy
 from archive.ingest.schema import FIX_SCHEMA, REJECT_REASONS, REJECT_SCHEMA
+
+__all__ = ["ParseResult", "constant_strings", "line_texts", "rejects_table", "empty_fixes",
+           "empty_rejects", "sort_fixes"]
 
 REJECT_TEXT_MAX = 120
 
@@ -30,7 +34,8 @@ class ParseResult:
     n_accepted: int
     n_rejected: int
     n_ignored: int
-    notes: list[str] = field(default_factory=list)
+    ignored: dict[str, int] = field(default_factory=dict)  # ignored lines by sentence type
+    notes: list[dict[str, Any]] = field(default_factory=list)  # e.g. week rollover
 
     def reject_counts(self) -> dict[str, int]:
         """Number of rejected lines by reason class (only classes that occur)."""
@@ -59,15 +64,8 @@ class ParseResult:
         return {"n_lines": self.n_lines, "n_accepted": self.n_accepted,
                 "n_rejected": self.n_rejected, "n_ignored": self.n_ignored,
                 "n_fixes": self.n_fixes, "n_valid": self.n_valid, "t_first": t0,
-                "t_last": t1, "rejects": self.reject_counts()}
-
-
-def constant_strings(value: str, n: int) -> pa.Array:
-    """A string array of ``n`` copies of ``value``, built from buffers (no Python loop)."""
-    raw = value.encode("utf-8")
-    offsets = (np.arange(n + 1, dtype=np.int64) * len(raw)).astype(np.int32)
-    return pa.StringArray.from_buffers(n, pa.py_buffer(offsets.tobytes()),
-                                       pa.py_buffer(raw * n))
+                "t_last": t1, "rejects": self.reject_counts(),
+                "ignored": dict(sorted(self.ignored.items())), "notes": self.notes}
 
 
 def line_texts(buf: np.ndarray, starts: np.ndarray, ends: np.ndarray,
@@ -92,11 +90,12 @@ def line_texts(buf: np.ndarray, starts: np.ndarray, ends: np.ndarray,
 
 def rejects_table(lines: np.ndarray, reasons: np.ndarray, texts: pa.Array) -> pa.Table:
     """A REJECT_SCHEMA table from 1-based line numbers, reason names and texts."""
-    bad = set(np.unique(reasons).tolist()) - set(REJECT_REASONS)
+    names, codes = np.unique(np.asarray(reasons, dtype=object).astype(str), return_inverse=True)
+    bad = set(names.tolist()) - set(REJECT_REASONS)
     if bad:
         raise ValueError(f"unknown reject reasons {sorted(bad)}")
-    return pa.table({"raw_line": pa.array(lines, pa.int64()),
-                     "reason": pa.array(reasons, pa.string()),
+    return pa.table({"raw_line": from_numpy(np.asarray(lines), pa.int64()),
+                     "reason": coded_strings(codes.reshape(-1), names.tolist()),
                      "text": texts}, schema=REJECT_SCHEMA)
 
 
