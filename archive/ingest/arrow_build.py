@@ -70,3 +70,25 @@ def coded_strings(codes: np.ndarray, names: list[str], valid: np.ndarray | None 
     validity = _validity(valid)
     return pa.StringArray.from_buffers(codes.shape[0], pa.py_buffer(offsets.astype(np.int32)),
                                        pa.py_buffer(data.tobytes()), validity)
+
+
+def _string_values(names: list[str]) -> pa.Array:
+    words = [s.encode("utf-8") for s in names]
+    offsets = np.zeros(len(words) + 1, dtype=np.int32)
+    np.cumsum([len(w) for w in words], out=offsets[1:])
+    return pa.StringArray.from_buffers(len(words), pa.py_buffer(offsets),
+                                       pa.py_buffer(b"".join(words)))
+
+
+def dictionary_codes(codes: np.ndarray, names: list[str], valid: np.ndarray | None = None
+                     ) -> pa.Array:
+    """A dictionary-encoded string array (int32 indices into ``names``): written to
+    Parquet as it is, with no hashing of its values."""
+    codes = np.ascontiguousarray(codes, dtype=np.int32)
+    indices = from_numpy(codes, pa.int32(), valid)
+    return pa.DictionaryArray.from_arrays(indices, _string_values(names))
+
+
+def constant_dictionary(value: str, n: int) -> pa.Array:
+    """``n`` copies of ``value``, dictionary-encoded."""
+    return dictionary_codes(np.zeros(n, np.int32), [value])

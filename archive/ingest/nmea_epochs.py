@@ -67,8 +67,8 @@ def new_carry(date0: int | None) -> np.ndarray:
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def assemble(iv, tod, fv, n, carry):  # pragma: no cover - compiled
-    """Epochs of records ``0 .. n-1`` (see the module docstring); ``carry`` is updated.
+def assemble(iv, tod, fv, a, b, carry):  # pragma: no cover - compiled
+    """Epochs of records ``a .. b-1`` (see the module docstring); ``carry`` is updated.
 
     Returns ``(pos, qual, day, etod, void, ftype, pdop, vdop, ghdop, keep)``, one row per
     epoch: the record giving the position, the record giving the quality (-1 none), the
@@ -87,16 +87,15 @@ def assemble(iv, tod, fv, n, carry):  # pragma: no cover - compiled
     f2 = fv[F_2]
     f3 = fv[F_3]
     # 1. epochs: runs of equal time of day among the timed sentences
-    ep_of = np.full(n, -1, np.int64)
+    ep_of = np.full(b - a, -1, np.int64)
     m = 0
-    for i in range(n):
+    for i in range(a, b):
         k = kind[i]
         if status[i] == ST_ACCEPTED and k != K_GSA and k != 0 and tod[i] >= 0:
             m += 1
-    first = np.empty(m, np.int64)
     etod = np.empty(m, np.int64)
     e = -1
-    for i in range(n):
+    for i in range(a, b):
         if status[i] != ST_ACCEPTED:
             continue
         k = kind[i]
@@ -104,10 +103,9 @@ def assemble(iv, tod, fv, n, carry):  # pragma: no cover - compiled
             if e < 0 or tod[i] != etod[e]:
                 e += 1
                 etod[e] = tod[i]
-                first[e] = i
-            ep_of[i] = e
+            ep_of[i - a] = e
         elif k == K_GSA and e >= 0:
-            ep_of[i] = e
+            ep_of[i - a] = e
     ne = e + 1
     # 2. what each epoch says
     pos = np.full(ne, -1, np.int64)
@@ -122,8 +120,8 @@ def assemble(iv, tod, fv, n, carry):  # pragma: no cover - compiled
     pdop = np.full(ne, np.nan)
     vdop = np.full(ne, np.nan)
     ghdop = np.full(ne, np.nan)
-    for i in range(n):
-        e = ep_of[i]
+    for i in range(a, b):
+        e = ep_of[i - a]
         if e < 0:
             continue
         k = kind[i]
@@ -152,12 +150,12 @@ def assemble(iv, tod, fv, n, carry):  # pragma: no cover - compiled
             qual[e] = i  # the quality of the GGA, else of the GNS
         r = 0 if k == K_GGA else (1 if k == K_GNS else (2 if k == K_RMC else 3))
         if not np.isnan(lat[i]):
-            a = anchor[e]
-            if a < 0:
+            an = anchor[e]
+            if an < 0:
                 anchor[e] = i
             else:  # one unit of the last digit of the coarser field, in degrees
-                tol = 10.0 ** (-min(res[a], res[i])) / 60.0 + 1e-12
-                if abs(lat[i] - lat[a]) > tol or abs(lon[i] - lon[a]) > tol:
+                tol = 10.0 ** (-min(res[an], res[i])) / 60.0 + 1e-12
+                if abs(lat[i] - lat[an]) > tol or abs(lon[i] - lon[an]) > tol:
                     conflict[e] = True
             if r < rank[e]:
                 rank[e] = r
@@ -192,8 +190,8 @@ def assemble(iv, tod, fv, n, carry):  # pragma: no cover - compiled
     carry[3] = track_day
     # 4. rejected lines, and which epochs give a fix
     keep = has_pos & (day >= 0) & ~conflict
-    for i in range(n):
-        e = ep_of[i]
+    for i in range(a, b):
+        e = ep_of[i - a]
         if e < 0:
             continue
         k = kind[i]

@@ -42,12 +42,19 @@ def borrowed(data):  # pragma: no cover - compiled
 @njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def num(buf, a, b):  # pragma: no cover - compiled
     """(value, code) of a decimal number with optional sign; spaces around it are allowed."""
+    v, code, _ = number(buf, a, b)
+    return v, code
+
+
+@njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def number(buf, a, b):  # pragma: no cover - compiled
+    """(value, code, digits after the decimal point) of a decimal number (see :func:`num`)."""
     while a < b and buf[a] == 32:
         a += 1
     while b > a and buf[b - 1] == 32:
         b -= 1
     if a >= b:
-        return np.nan, 1
+        return np.nan, 1, 0
     neg = False
     if buf[a] == 45 or buf[a] == 43:
         neg = buf[a] == 45
@@ -60,7 +67,7 @@ def num(buf, a, b):  # pragma: no cover - compiled
         c = buf[j]
         if 48 <= c <= 57:
             if ndig >= 18:
-                return np.nan, 2
+                return np.nan, 2, 0
             mant = mant * 10 + (c - 48)
             ndig += 1
             if dot:
@@ -68,49 +75,37 @@ def num(buf, a, b):  # pragma: no cover - compiled
         elif c == 46 and not dot:
             dot = True
         else:
-            return np.nan, 2
+            return np.nan, 2, 0
     if ndig == 0:
-        return np.nan, 2
+        return np.nan, 2, 0
     v = mant / POW10[frac]
-    return (-v if neg else v), 0
-
-
-@njit(cache=True, nogil=True, error_model="numpy", inline="always")
-def decimals(buf, a, b):  # pragma: no cover - compiled
-    """Digits after the decimal point of a field (0 without a point)."""
-    for j in range(a, b):
-        if buf[j] == 46:
-            k = 0
-            for m in range(j + 1, b):
-                if 48 <= buf[m] <= 57:
-                    k += 1
-            return k
-    return 0
+    return (-v if neg else v), 0, frac
 
 
 @njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def angle(buf, a, b, hemi_a, hemi_b, pos, negc, maxdeg):  # pragma: no cover - compiled
-    """(degrees, code) of ``d..dmm.mmm`` and its hemisphere field (``pos``/``negc`` letters).
+    """(degrees, code, digits after the decimal point of the minutes) of ``d..dmm.mmm`` and
+    its hemisphere field (``pos``/``negc`` letters).
 
     The two digits left of the decimal point are whole minutes, the digits before them
     degrees ("NMEA Revealed", encoding conventions). West and south are negative.
     """
-    v, code = num(buf, a, b)
+    v, code, frac = number(buf, a, b)
     hemi = buf[hemi_a] if hemi_b - hemi_a == 1 else 0
     if code == 1:
-        return np.nan, (1 if hemi_b == hemi_a else 2)
+        return np.nan, (1 if hemi_b == hemi_a else 2), 0
     if code == 2 or v < 0:
-        return np.nan, 2
+        return np.nan, 2, 0
     if hemi != pos and hemi != negc:
-        return np.nan, 2
+        return np.nan, 2, 0
     deg = np.floor(v / 100.0)
     minutes = v - deg * 100.0
     if minutes >= 60.0 or deg > maxdeg:
-        return np.nan, 3
+        return np.nan, 3, 0
     d = deg + minutes / 60.0
     if d > maxdeg:
-        return np.nan, 3
-    return (-d if hemi == negc else d), 0
+        return np.nan, 3, 0
+    return (-d if hemi == negc else d), 0, frac
 
 
 @njit(cache=True, nogil=True, error_model="numpy", inline="always")

@@ -27,7 +27,6 @@ from archive.ingest.nmea_fields import (
     borrowed,
     civil_date,
     ddmmyy,
-    decimals,
     hexval,
     mode_quality,
     num,
@@ -173,36 +172,36 @@ def _defaults(iv, tod, fv, a, b):  # pragma: no cover - compiled
     return b - 1
 
 
-def record_arrays(buf: np.ndarray, arrays: tuple | None = None) -> tuple:
-    """Arrays ``(iv, tod, fv)`` with room for the records of ``buf``: ``arrays`` when given
-    and large enough for lines of 32 bytes on average (they are reused from buffer to
-    buffer, so their memory is touched once), else new ones sized for ``buf``."""
-    need = buf.shape[0] // 32 + 64
+def record_arrays(buf: np.ndarray, arrays: tuple | None = None, first: int = 0) -> tuple:
+    """Arrays ``(iv, tod, fv)`` with room for ``first`` records and those of ``buf``:
+    ``arrays`` when given and large enough for lines of 32 bytes on average (they are
+    reused from buffer to buffer, so their memory is touched once), else new ones."""
+    need = first + buf.shape[0] // 32 + 64
     if arrays is not None and arrays[1].shape[0] >= need:
         return arrays
     return (np.empty((N_INT, need), np.int32), np.empty(need, np.int64),
             np.empty((N_FLOAT, need), np.float64))
 
 
-def _exact_record_arrays(buf: np.ndarray) -> tuple:
+def _exact_record_arrays(buf: np.ndarray, first: int) -> tuple:
     """Arrays sized for the records ``buf`` can hold at most (logs of very short lines)."""
-    need = int(_max_records(buf)) + 8
+    need = first + int(_max_records(buf)) + 8
     return (np.empty((N_INT, need), np.int32), np.empty(need, np.int64),
             np.empty((N_FLOAT, need), np.float64))
 
 
-def _read_split(buf: np.ndarray, arrays: tuple, nrec: int, checksummed: bool) -> None:
+def _read_split(buf: np.ndarray, arrays: tuple, a: int, b: int, checksummed: bool) -> None:
     """Read the sentences the scan found broken over two lines (status ``ST_SPLIT``): each
     first part (its '$' noted in ``S_ADDR``) is put together with the line completing it
     (the next record) and read as one sentence; the second line takes the same status."""
     iv, tod, fv = arrays
-    for i in np.flatnonzero(iv[S_STATUS, :nrec] == ST_SPLIT)[::2]:
+    for i in a + np.flatnonzero(iv[S_STATUS, a:b] == ST_SPLIT)[::2]:
         d = int(iv[S_ADDR, i]) - 16
         e = int(iv[S_END, i])
         b0, b1 = int(iv[S_START, i + 1]), int(iv[S_END, i + 1])
         text = buf[d:e].tobytes() + buf[b0:b1].tobytes().rstrip(b" \t") + b"\n"
         one = record_arrays(np.frombuffer(text, np.uint8))
-        n1, _, _ = scan_buffer(np.frombuffer(text, np.uint8), True, checksummed, *one)
+        n1, _, _ = scan_buffer(np.frombuffer(text, np.uint8), True, checksummed, *one, 0)
         assert n1 == 1, "a sentence put together is one record"
         keep = iv[S_START, i], iv[S_END, i], iv[S_LINE, i]
         iv[:, i] = one[0][:, 0]
@@ -215,29 +214,33 @@ def _read_split(buf: np.ndarray, arrays: tuple, nrec: int, checksummed: bool) ->
         iv[S_ADDR, i + 1] = 0
 
 
-def scan(buf: np.ndarray, final: bool, checksummed: bool, arrays: tuple | None = None):
-    """Read the records of ``buf`` (see :func:`scan_buffer`) into arrays that fit.
+def scan(buf: np.ndarray, final: bool, checksummed: bool, arrays: tuple | None = None,
+         first: int = 0):
+    """Read the records of ``buf`` (see :func:`scan_buffer`) into arrays that fit, from
+    index ``first`` on (room before it is left for records carried from elsewhere).
 
-    Returns ``(arrays, n_records, n_lines, consumed)``; pass ``arrays`` back in to reuse
-    them for the next buffer.
+    Returns ``(arrays, end, n_lines, consumed)``: the records are ``first .. end - 1``;
+    pass ``arrays`` back in to reuse them for the next buffer.
     """
-    arrays = record_arrays(buf, arrays)
-    nrec, nline, consumed = scan_buffer(buf, final, checksummed, *arrays)
-    if nrec < 0:
-        arrays = _exact_record_arrays(buf)
-        nrec, nline, consumed = scan_buffer(buf, final, checksummed, *arrays)
-    if nrec and (arrays[0][S_STATUS, :nrec] == ST_SPLIT).any():
-        _read_split(buf, arrays, nrec, checksummed)
-    return arrays, nrec, nline, consumed
+    arrays = record_arrays(buf, arrays, first)
+    end, nline, consumed = scan_buffer(buf, final, checksummed, *arrays, first)
+    if end < 0:
+        arrays = _exact_record_arrays(buf, first)
+        end, nline, consumed = scan_buffer(buf, final, checksummed, *arrays, first)
+    if end > first and (arrays[0][S_STATUS, first:end] == ST_SPLIT).any():
+        _read_split(buf, arrays, first, end, checksummed)
+    return arrays, end, nline, consumed
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def scan_buffer(data, final, checksummed, iv, tod, fv):  # pragma: no cover - compiled
-    """Split ``buf`` into records and read each one into ``iv``, ``tod`` and ``fv``.
+def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cover - compiled
+    """Split ``data`` into records and read each one into ``iv``, ``tod`` and ``fv``, from
+    record index ``first`` on.
 
-    Returns ``(n_records, n_lines, consumed)``: the records of complete lines written, the
-    number of complete lines and the byte offset after the last of them; ``n_records`` is
-    -1 when the arrays are too small (:func:`scan` then gives larger ones). When ``final``
+    Returns ``(end, n_lines, consumed)``: one past the last record written (records of
+    complete lines only), the number of complete lines and the byte offset after the last
+    of them; ``end`` is -1 when the arrays are too small (:func:`scan` then gives larger
+    ones). When ``final``
     is false, a line without a line end at the end of the buffer (or one ending in a CR
     that is the buffer's last byte, which could be half a CR LF) is left for the caller to
     carry into the next buffer, and so is a line whose sentence could go on in the next
@@ -253,15 +256,15 @@ def scan_buffer(data, final, checksummed, iv, tod, fv):  # pragma: no cover - co
     n = data.shape[0]
     buf = borrowed(data)
     cap = tod.shape[0] - 2
-    filled = 0
+    filled = first
     cm = np.empty(MAX_FIELDS + 1, np.int64)
     fs = np.empty(MAX_FIELDS, np.int64)
     fe = np.empty(MAX_FIELDS, np.int64)
-    nrec = 0
+    nrec = first
     nline = 0
     pos = 0
     consumed = 0
-    line_rec0 = 0
+    line_rec0 = first
     in_line = False  # the next record continues a line (after a joined sentence)
     while pos < n:
         if nrec >= filled:  # default values for the next block of records
@@ -468,8 +471,8 @@ def scan_buffer(data, final, checksummed, iv, tod, fv):  # pragma: no cover - co
                 ft, fla, flo = 0, 1, 3
             q, cq = -1, 1
             t, ct = time_of_day(buf, fs[ft], fe[ft])
-            la, c1 = angle(buf, fs[fla], fe[fla], fs[fla + 1], fe[fla + 1], 78, 83, 90.0)
-            lg, c2 = angle(buf, fs[flo], fe[flo], fs[flo + 1], fe[flo + 1], 69, 87, 180.0)
+            la, c1, rla = angle(buf, fs[fla], fe[fla], fs[fla + 1], fe[fla + 1], 78, 83, 90.0)
+            lg, c2, rlo = angle(buf, fs[flo], fe[flo], fs[flo + 1], fe[flo + 1], 69, 87, 180.0)
             if k == K_GNS:
                 q, cq = mode_quality(buf, fs[5], fe[5])
                 if cq == 1 and c1 == 1 and c2 == 1:
@@ -526,8 +529,7 @@ def scan_buffer(data, final, checksummed, iv, tod, fv):  # pragma: no cover - co
                 tod[i] = t
                 fv[F_LAT, i] = la
                 fv[F_LON, i] = lg
-                iv[S_RES, i] = min(decimals(buf, fs[fla], fe[fla]),
-                                   decimals(buf, fs[flo], fe[flo]))
+                iv[S_RES, i] = min(rla, rlo)
             break
         if checksummed and p < 0 and iv[S_KIND, i] != K_OTHER and \
                 iv[S_STATUS, i] == ST_ACCEPTED:

@@ -17,7 +17,7 @@ from sqlalchemy import select
 from archive.errors import Refused, UsageError
 from archive.ingest.overlap import first_epochs
 from archive.ingest.result import sort_fixes
-from archive.ingest.schema import FIX_SCHEMA
+from archive.ingest.schema import FIX_SCHEMA, conform_fixes
 from archive.store.archive import Archive
 from archive.store.models import RawFile
 from archive.store.objects import PARQUET_OPTIONS
@@ -56,7 +56,7 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
                          else "load its logs with 'nodekeep load fixes FILES'")
     parts, ranks = [], []
     for order, h in enumerate(rows):
-        t = arc.objects.read_table(h)
+        t = conform_fixes(arc.objects.read_table(h))
         mask = None
         if start is not None:
             mask = pc.greater_equal(t.column("time"), pa.scalar(start, FIX_SCHEMA.field("time").type))

@@ -177,10 +177,11 @@ def refused_rejects(lines: np.ndarray, data: bytes | np.ndarray) -> pa.Table:
 
 def apply_rollover(result: ParseResult, days: dict[int, list[int]],
                    reference: tuple[dt.datetime, dt.datetime] | None,
-                   data: bytes | np.ndarray) -> ParseResult:
+                   data: bytes | np.ndarray, reference_text: str = "the survey"
+                   ) -> ParseResult:
     """``result`` of the log ``data`` after the rollover check (a new result when it
     changes anything; the notes say what)."""
-    plan = plan_rollover(days, reference_days(reference))
+    plan = plan_rollover(days, reference_days(reference), reference_text)
     if not plan.changes:
         return result
     fixes, lines = apply_plan(result.fixes, plan)

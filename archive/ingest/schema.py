@@ -42,6 +42,14 @@ FIX_SCHEMA = pa.schema(
 # reader of that time required it (every such fix had a GGA or a delimited record), no
 # correction of the date.
 ADDED_FIX_COLUMNS = {"sentence": None, "no_quality": False, "weeks_added": 0}
+# How readers write fix tables to Parquet: the string columns that hold few distinct values
+# (the node, the raw file's hash, the sentence) dictionary-encoded, which Parquet stores as
+# it is instead of hashing every value. Read back, they are cast to FIX_SCHEMA by
+# conform_fixes.
+_DICT = pa.dictionary(pa.int32(), pa.string())
+FIX_STORAGE_SCHEMA = pa.schema(
+    [f.with_type(_DICT) if f.name in ("node", "raw_hash", "sentence") else f
+     for f in FIX_SCHEMA], metadata=FIX_SCHEMA.metadata)
 # the layout of version 1, for code building tables of the columns every reader gives
 FIX_SCHEMA_V1 = pa.schema([f for f in FIX_SCHEMA if f.name not in ADDED_FIX_COLUMNS],
                           metadata={"nodekeep.table": "fixes", "nodekeep.schema_version": "1"})

@@ -20,6 +20,7 @@ import pyarrow.compute as pc
 from sqlalchemy import select
 
 from archive.errors import IntegrityError, UsageError
+from archive.ingest.schema import conform_fixes
 from archive.solve.fixarrays import empty_fixes
 from archive.solve.screen import parse_excludes
 from archive.store.archive import Archive
@@ -216,11 +217,12 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
 
 def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
     """The fix tables of these objects, concatenated in the order given (schema of the
-    ingest contract). Give them in load order: repeated epochs keep the earlier file's fix."""
+    ingest contract, :func:`archive.ingest.schema.conform_fixes`: tables of every version
+    read alike). Give them in load order: repeated epochs keep the earlier file's fix."""
     if not hashes:
         return empty_fixes()
-    tables = [arc.objects.read_table(h) for h in hashes]
-    return pa.concat_tables(tables, promote_options="default")
+    tables = [conform_fixes(arc.objects.read_table(h)) for h in hashes]
+    return pa.concat_tables(tables)
 
 
 def excludes_of(edits: list[dict[str, Any]]) -> list[tuple[str, int, int]]:
