@@ -33,7 +33,7 @@ from archive.solve.heights import Sampler, gga_orthometric, solve_heights
 from archive.solve.moves import detect_moves
 from archive.solve.robust import robust_centre
 from archive.solve.schema import POSITION_SCHEMA
-from archive.solve.screen import apply_excludes, screen_codes
+from archive.solve.screen import apply_excludes, cloud_hdop, screen_codes
 from archive.solve.segments import from_local, seg_median, seg_starts, to_local
 from archive.solve.uncertainty import ar1_covariance, batch_covariance, ellipse95, radius95
 from archive.solve.windows import (
@@ -164,7 +164,9 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     # 5. robust centre and uncertainty per row, on the kept fixes
     rseg = mrow[m_ok]
     eo, no = e_all[m_ok], n_all[m_ok]
-    rr = robust_centre([eo, no], fx.hdop[oi], rseg, n_rows, estimator=est["estimator"],
+    unrated = fx.no_quality[oi] if fx.no_quality is not None else None
+    hd_w = cloud_hdop(fx.hdop[oi], unrated, rseg, n_rows, cap)
+    rr = robust_centre([eo, no], hd_w, rseg, n_rows, estimator=est["estimator"],
                        huber_k=est["huber_k"], tukey_c=est["tukey_c"],
                        reject_quantile=est["reject_quantile"], iterations=est["iterations"],
                        scale_updates=est["scale_updates"], scale_sample=cap)
@@ -207,7 +209,9 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     starts, counts = seg_starts(us_seg, n_rows)
     span = np.zeros(n_rows)
     span[occupied] = us_t[starts[occupied] + counts[occupied] - 1] - us_t[starts[occupied]]
-    med_hdop = seg_median(np.nan_to_num(fx.hdop[oi][used], nan=1.0), us_seg, n_rows, cap)
+    med_hdop = seg_median(np.nan_to_num(hd_w[used], nan=1.0), us_seg, n_rows, cap)
+    n_unrated = np.bincount(us_seg, weights=unrated[used], minlength=n_rows).astype(np.int64) \
+        if unrated is not None else np.zeros(n_rows, dtype=np.int64)
     spread = rr.scale * med_hdop
 
     # 7. heights
@@ -240,7 +244,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     cols = {"n_used": n_used, "span_s": span, "unit_scale": np.where(occupied, rr.scale, 0.0),
             "moved": moved_w[row_win], "dist_preplot": pre["dist_preplot"],
             "dist_nearest": pre["dist_nearest"], "dh": hts.dh, "off_model": hts.off_model,
-            "kind": kind}
+            "kind": kind, "n_no_quality": n_unrated}
     flag_col = flagmod.flag_strings(cols, p)
 
     t_start = wins.start[row_win].copy()
@@ -262,6 +266,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
         "n_total": n_total, "n_used": n_used, "n_rejected": n_total - n_used,
         "n_eff": cov.n_eff, "span_s": span, "spread": spread, **pre,
         "estimator": np.full(n_rows, est["estimator"], dtype=object), "flags": flag_col,
+        "n_no_quality": n_unrated,
     }
     for key in ("sigma_e", "sigma_n", "corr_en", "ell_major", "ell_minor", "ell_bearing",
                 "r95", "n_eff", "spread", "span_s", "h_gnss", "dh"):

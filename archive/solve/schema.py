@@ -56,6 +56,9 @@ POSITION_SCHEMA = pa.schema(
         pa.field("dist_nearest", pa.float64()),  # m, whatever the CRS unit
         pa.field("estimator", pa.string(), nullable=False),
         pa.field("flags", pa.string(), nullable=False),  # ";"-joined FLAGS keys, "" if none
+        # used fixes without quality information (RMC/GLL only); absent from tables of runs
+        # made before it existed
+        pa.field("n_no_quality", pa.int64(), nullable=False),
     ],
     metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "1"},
 )
@@ -72,4 +75,6 @@ FLAGS = {
     "off-model": "the position is outside the elevation model or on nodata",
     "unlogged": "stationary cluster with no logged deployment",
     "unoccupied": "a deployed station with no usable fixes",
+    "quality-unknown": "most used fixes carry no quality information (RMC/GLL only): "
+                       "weighted by the cloud's own spread",
 }

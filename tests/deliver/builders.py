@@ -100,6 +100,7 @@ def positions_table(final: pa.Table, flags: list[str] | None = None,
         "nearest_line": nan, "nearest_point": nan, "dist_nearest": nan,
         "estimator": ["huber"] * n, "flags": flags or [""] * n,
     }
+    cols["n_no_quality"] = [0] * n
     return pa.table(cols, schema=POSITION_SCHEMA)
 
 

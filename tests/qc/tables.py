@@ -33,6 +33,7 @@ def positions_table(rows: Sequence[dict]) -> pa.Table:
         "nearest_point": None, "dist_nearest": None, "estimator": "huber", "flags": "",
         "index": 1,
     }
+    defaults["n_no_quality"] = 0
     cols = {}
     for f in POSITION_SCHEMA:
         vals = [r.get(f.name, defaults.get(f.name)) for r in rows]
