@@ -123,7 +123,14 @@ def _fmt(v: Any, digits: int = 2) -> str:
     return str(v)
 
 
-def _show_text(run_id: str, rows: list[dict[str, Any]]) -> str:
+def _no_quality_text(r: dict[str, Any], setting: str) -> str:
+    """How many used fixes had no quality information (runs before the count: unknown)."""
+    n = r.get("n_no_quality")
+    count = "not counted in this run" if n is None else f"{n} of the used fixes"
+    return f"  no quality {count} (RMC/GLL only; screen.no_quality = {setting})"
+
+
+def _show_text(run_id: str, rows: list[dict[str, Any]], no_quality: str = "accept") -> str:
     out = [f"run {run_id}"]
     for r in rows:
         out += [
@@ -141,6 +148,7 @@ def _show_text(run_id: str, rows: list[dict[str, Any]]) -> str:
             f"  fixes      {r['n_used']} used, {r['n_rejected']} not used of {r['n_total']}; "
             f"n_eff {_fmt(r['n_eff'], 0)}; span {_fmt((r['span_s'] or 0) / 3600, 1)} h; "
             f"spread {_fmt(r['spread'])} m ({r['estimator']})",
+            _no_quality_text(r, no_quality),
             f"  preplot    {_fmt(r['dist_preplot'])} m away; nearest other station "
             f"{_fmt(r['nearest_line'], 0)}/{_fmt(r['nearest_point'], 0)} at "
             f"{_fmt(r['dist_nearest'])} m",
@@ -164,4 +172,4 @@ def show(state: CliState, line: float, point: float, index: int, run_ref: str | 
 
     res = station_solution(state.archive(), _survey_id(state, survey_name), line, point,
                            index, run_ref)
-    emit(state, res, lambda: _show_text(res["run"], res["rows"]))
+    emit(state, res, lambda: _show_text(res["run"], res["rows"], res["no_quality"]))

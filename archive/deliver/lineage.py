@@ -24,6 +24,7 @@ from archive.deliver.deliveries import delivery_dict, raw_files_of
 from archive.deliver.edits import list_edits
 from archive.deliver.runs import get_run, manifest_inputs, plain, run_manifest, run_positions
 from archive.errors import UsageError
+from archive.ingest.read import raw_notes, with_notes
 from archive.store.archive import Archive
 from archive.store.hashing import sha256_file
 from archive.store.models import Delivery, InputVersion, RawFile, Run
@@ -107,7 +108,8 @@ def _cloud_fixes(arc: Archive, survey_id: int, run: Run,
                                                RawFile.object_hash.in_(raw_hashes))
                          .order_by(RawFile.id)).all()
     raw = [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
-            "received_at": r.received_at, "received_by": r.received_by} for r in rows]
+            "received_at": r.received_at, "received_by": r.received_by,
+            "notes": raw_notes(r)} for r in rows]
     return {"fixes": counts, "fixes_by_part": _counts_by_part(cloud, solution), "raw_files": raw}
 
 
@@ -177,7 +179,7 @@ def trace_file(arc: Archive, path: str | Path) -> dict[str, Any]:
         "delivery": delivery_dict(d),
         "same_bytes_delivered": [x.id for x in found],
         "run": run_summary(arc, run),
-        "raw_files": raw_files_of(arc, d.survey_id, fix_hashes),
+        "raw_files": with_notes(arc, d.survey_id, raw_files_of(arc, d.survey_id, fix_hashes)),
         "edits": edits,
         "n_stations": lineage.get("delivery", {}).get("n_stations"),
         "survey": lineage.get("survey"),

@@ -353,7 +353,8 @@ class _Recorder:
         fixes, rejects = res["fixes"], res.get("rejects_obj")
         details = {"rejects": res["rejects"], "date": self.date.isoformat() if self.date
                    else None, "node_pattern": self.node_pattern,
-                   "ignored": res.get("ignored") or {}, "notes": res.get("notes") or []}
+                   "ignored": res.get("ignored") or {}, "notes": res.get("notes") or [],
+                   "no_quality": int(res.get("n_no_quality") or 0)}
         arc.register_object(tx, o.raw_hash, o.size, "raw")
         arc.register_object(tx, fixes["hash"], fixes["size"], "fixes")
         if rejects:

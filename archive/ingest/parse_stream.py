@@ -163,6 +163,7 @@ def _stream(task: dict[str, Any], store, seen: dict[str, Any], written: list[str
     sync = task.get("sync", True)
     counts = {"n_lines": 0, "n_accepted": 0, "n_rejected": 0, "n_ignored": 0, "n_fixes": 0,
               "n_valid": 0}
+    n_no_quality = 0
     reasons: dict[str, int] = {}
     ignored: dict[str, int] = {}
     days: dict[int, list[int]] = {}
@@ -189,6 +190,7 @@ def _stream(task: dict[str, Any], store, seen: dict[str, Any], written: list[str
             if ch.fixes.num_rows:
                 counts["n_fixes"] += ch.fixes.num_rows
                 counts["n_valid"] += int(pc.sum(ch.fixes.column("valid")).as_py() or 0)
+                n_no_quality += _true_count(ch.fixes.column("no_quality"))
                 mm = pc.min_max(pc.cast(ch.fixes.column("time"), pa.int64())).as_py()
                 if t_last_us is not None and mm["min"] < t_last_us:
                     in_order = False
@@ -240,6 +242,7 @@ def _stream(task: dict[str, Any], store, seen: dict[str, Any], written: list[str
             counts["n_accepted"] -= n
             counts["n_rejected"] += n
             counts["n_valid"] = int(pc.sum(table.column("valid")).as_py() or 0)
+            n_no_quality = _true_count(table.column("no_quality"))
             notes = plan.notes
             mm = pc.min_max(pc.cast(table.column("time"), pa.int64())).as_py()
             t_first_us, t_last_us = mm["min"], mm["max"]
@@ -263,4 +266,11 @@ def _stream(task: dict[str, Any], store, seen: dict[str, Any], written: list[str
             "t_first": epoch + dt.timedelta(microseconds=t_first_us),
             "t_last": epoch + dt.timedelta(microseconds=t_last_us),
             "rejects": dict(sorted(reasons.items())), "ignored": dict(sorted(ignored.items())),
-            "notes": notes}
+            "notes": notes, "n_no_quality": n_no_quality}
+
+
+def _true_count(column) -> int:
+    import pyarrow as pa
+    import pyarrow.compute as pc
+
+    return int(pc.sum(column.cast(pa.int64())).as_py() or 0)

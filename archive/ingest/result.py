@@ -52,6 +52,13 @@ class ParseResult:
     def n_valid(self) -> int:
         return int(pc.sum(self.fixes.column("valid").cast(pa.int64())).as_py() or 0)
 
+    @property
+    def n_no_quality(self) -> int:
+        """Fixes without quality information (an epoch of RMC/GLL sentences only)."""
+        if "no_quality" not in self.fixes.column_names:
+            return 0
+        return int(pc.sum(self.fixes.column("no_quality").cast(pa.int64())).as_py() or 0)
+
     def time_range(self) -> tuple[datetime | None, datetime | None]:
         """First and last fix time (UTC), or (None, None) without fixes."""
         if self.fixes.num_rows == 0:
@@ -63,7 +70,8 @@ class ParseResult:
         t0, t1 = self.time_range()
         return {"n_lines": self.n_lines, "n_accepted": self.n_accepted,
                 "n_rejected": self.n_rejected, "n_ignored": self.n_ignored,
-                "n_fixes": self.n_fixes, "n_valid": self.n_valid, "t_first": t0,
+                "n_fixes": self.n_fixes, "n_valid": self.n_valid,
+                "n_no_quality": self.n_no_quality, "t_first": t0,
                 "t_last": t1, "rejects": self.reject_counts(),
                 "ignored": dict(sorted(self.ignored.items())), "notes": self.notes}
 

@@ -96,6 +96,37 @@ def _summary_section(result: QcResult) -> str:
     return html.section("summary", "Summary against the check points", body)
 
 
+def _no_quality_section(data: RunData) -> str:
+    """Delivered stations that used fixes without quality information, and how many each."""
+    dl = delivered(data.positions)
+    if "n_no_quality" not in dl.column_names:
+        return ""  # a run made before the count was kept
+    n = dl["n_no_quality"].to_numpy(zero_copy_only=False)
+    used = dl["n_used"].to_numpy(zero_copy_only=False)
+    some = np.flatnonzero(n > 0)
+    if some.size == 0:
+        return ""
+    params = (data.manifest or {}).get("params", {})
+    setting = params.get("screen", {}).get("no_quality", "accept")
+    limit = params.get("flags", {}).get("max_no_quality_share", 0.5)
+    share = n[some] / np.maximum(used[some], 1)
+    order = some[np.argsort(-share, kind="stable")][:MAX_TABLE_ROWS]
+    cols = {c: dl[c].to_pylist() for c in ("line", "point", "index", "node")}
+    rows = [(f"{cols['line'][i]:g} / {cols['point'][i]:g}", cols["index"][i],
+             cols["node"][i], f"{int(n[i]):,}", f"{int(used[i]):,}",
+             html.pct(n[i] / max(used[i], 1))) for i in order.tolist()]
+    body = (f"<p>{some.size:,} of {len(n):,} delivered stations used fixes without quality "
+            "information (epochs of RMC or GLL sentences only: no fix quality, satellite "
+            f"count or HDOP), {int(n.sum()):,} fixes in all. The run's screen.no_quality is "
+            f"{escape(str(setting))}: such fixes are weighted as a typical fix of their own "
+            f"cloud. Where they are more than {html.pct(limit)} of the fixes used, the "
+            "station carries the flag quality-unknown.</p>"
+            + '<div class="scroll">' + html.table(
+                ["station (line / point)", "index", "node", "without quality", "fixes used",
+                 "share"], rows, numeric=(1, 3, 4, 5)) + "</div>")
+    return html.section("no-quality", "Fixes without quality information", body)
+
+
 def _lineage_section(data: RunData) -> str:
     run, m = data.run, data.manifest or {}
     facts = [("run id", run["id"]), ("label", run.get("label") or "–"),
@@ -122,13 +153,14 @@ def _review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
         link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
         rows.append((link, r.index, escape(str(r.node)), escape(r.reasons.replace(";", ", ")),
                      html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
-                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}"))
+                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}",
+                     html.num(getattr(r, "n_no_quality", None), "{:,.0f}")))
     more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more stations are not listed; '
             "'nodekeep qc --json' lists every one.</p>" if len(df) > MAX_TABLE_ROWS else "")
     return ('<div class="scroll">' + html.table(
         ["station (line / point)", "index", "node", "reasons", "to check point (m)",
-         "to preplot (m)", "own R95 (m)", "fixes used", "rejected"], rows,
-        numeric=(1, 4, 5, 6, 7, 8), raw=(0, 2, 3)) + "</div>" + more)
+         "to preplot (m)", "own R95 (m)", "fixes used", "rejected", "without quality"], rows,
+        numeric=(1, 4, 5, 6, 7, 8, 9), raw=(0, 2, 3)) + "</div>" + more)
 
 
 def _station(r: Any) -> Station:
@@ -251,6 +283,7 @@ def render_report(data: RunData, result: QcResult, read_cloud: CloudReader | Non
               "hollow reddish-purple circle; flagged station, large dashed orange ring.</p>")
     body = "".join([
         verdict, cautions, _lineage_section(data), _summary_section(result),
+        _no_quality_section(data),
         html.section("figures", "Maps and distributions", legend + "".join(figs)),
         html.section("review", f"Stations to review ({len(review):,})",
                      _review_table(review, set(range(drawn))) + clouds_html),

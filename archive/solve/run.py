@@ -356,4 +356,6 @@ def station_solution(arc: Archive, survey_id: int, line: float, point: float, in
     if not rows:
         raise UsageError(f"station {line:g}/{point:g} index {index} is not in run {run.id[:12]}",
                          hint="check the line and point numbers, or choose a run with --run")
-    return {"run": run.id, "rows": rows}
+    screen = run_manifest(arc, run)["params"].get("screen", {})
+    # runs made before the parameter existed accepted every fix that passed the screen
+    return {"run": run.id, "rows": rows, "no_quality": screen.get("no_quality", "accept")}
