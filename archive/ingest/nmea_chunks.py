@@ -220,12 +220,29 @@ def _type_matrix(buf: np.ndarray, at: np.ndarray) -> np.ndarray:
     return np.where((chars[:, 0] == ord("P"))[:, None], chars, std)
 
 
-def _count_types(buf: np.ndarray, addr: np.ndarray, out: dict[str, int]) -> None:
-    for code, name in ((ns.A_TEXT, "text"), (ns.A_BLANK, "blank")):
-        k = int((addr == code).sum())
+def _count_types(buf: np.ndarray, addr: np.ndarray, starts: np.ndarray,
+                 out: dict[str, int]) -> None:
+    """Add the ignored records (their ``S_ADDR`` and start) to ``out`` by type: the type
+    of a sentence, ``text`` for a line that is not one, ``blank`` for an empty line. A line
+    starting with '!' and a five-character address (an encapsulation sentence of NMEA 0183,
+    such as AIS VDM/VDO) counts as its type too: nodekeep reads none of them."""
+    text = addr == ns.A_TEXT
+    encapsulated = np.zeros(addr.shape[0], dtype=bool)
+    if text.any():
+        st = starts[text].astype(np.int64)
+        idx = st[:, None] + np.arange(7)[None, :]
+        ok = (idx < buf.shape[0]).all(axis=1)
+        chars = buf[np.minimum(idx, max(buf.shape[0] - 1, 0))]
+        alnum = ((chars[:, 1:6] >= 48) & (chars[:, 1:6] <= 57)) | \
+            ((chars[:, 1:6] >= 65) & (chars[:, 1:6] <= 90))
+        hit = ok & (chars[:, 0] == ord("!")) & alnum.all(axis=1) & (chars[:, 6] == ord(","))
+        encapsulated[np.flatnonzero(text)[hit]] = True
+    for code, name, extra in ((ns.A_TEXT, "text", encapsulated), (ns.A_BLANK, "blank", None)):
+        k = int(((addr == code) & ~extra).sum()) if extra is not None else int((addr == code).sum())
         if k:
             out[name] = out.get(name, 0) + k
-    at = addr[addr >= 16].astype(np.int64) - 16
+    at = np.concatenate([addr[addr >= 16].astype(np.int64) - 16,
+                         starts[encapsulated].astype(np.int64)])
     if at.size:
         packed = np.frombuffer(np.ascontiguousarray(_type_matrix(buf, at)).tobytes(), "<u8")
         codes, counts = np.unique(packed, return_counts=True)
@@ -323,9 +340,12 @@ class Assembler:
         ignored: dict[str, int] = {}
         if n_ign:
             addr = iv[ns.S_ADDR, a:cut]
+            starts = iv[ns.S_START, a:cut]
             split = first - a
-            _count_types(tbytes, addr[:split][ignored_at[:split]], ignored)
-            _count_types(buf, addr[split:][ignored_at[split:]], ignored)
+            _count_types(tbytes, addr[:split][ignored_at[:split]],
+                         starts[:split][ignored_at[:split]], ignored)
+            _count_types(buf, addr[split:][ignored_at[split:]],
+                         starts[split:][ignored_at[split:]], ignored)
         return Chunk(fixes, rejects, n, n_acc, n - n_acc - n_ign, n_ign, ignored, days)
 
     def _fixes(self, iv, fv, ep) -> tuple[pa.Table, dict[int, list[int]]]:
