@@ -72,6 +72,12 @@ def _not_a_log(path: str, n_lines: int, counts: dict[str, int], fmt: str) -> Inp
     if counts.get("binary", 0) * 2 >= n_lines:
         return InputError(path, "binary data, not a text fix log",
                           hint="check that this is the node's GPS log")
+    if counts.get("rollover", 0):
+        return InputError(path, "every position's date was refused: it lies outside the "
+                          "node's deployments and no whole number of 1024 GPS weeks (a week "
+                          "number rollover) places it there",
+                          hint="check this node's rows of the deployment log, or the "
+                               "receiver's clock")
     if counts.get("no-date", 0):
         return InputError(path, "position sentences but no date (no RMC or ZDA sentence)",
                           hint="give the log's first UTC date with --date YYYY-MM-DD")
@@ -172,10 +178,10 @@ def _reference(task: dict[str, Any]) -> tuple[dt.datetime, dt.datetime] | None:
     return dt.datetime.fromisoformat(ref[0]), dt.datetime.fromisoformat(ref[1])
 
 
-def _guard(fn, *args):
+def _guard(fn, *args, **kwargs):
     """Run a write; a storage that refuses it stops the whole load."""
     try:
-        return fn(*args)
+        return fn(*args, **kwargs)
     except OSError as exc:
         if exc.errno in STORAGE_ERRNOS:
             raise _Storage(f"cannot write to the object store: {exc.strerror}") from exc

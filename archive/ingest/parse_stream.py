@@ -244,6 +244,8 @@ def _stream(task: dict[str, Any], store, seen: dict[str, Any], written: list[str
             counts["n_valid"] = int(pc.sum(table.column("valid")).as_py() or 0)
             n_no_quality = _true_count(table.column("no_quality"))
             notes = plan.notes
+            if counts["n_fixes"] == 0:
+                raise _not_a_log(path, counts["n_lines"], reasons, task["format"])
             mm = pc.min_max(pc.cast(table.column("time"), pa.int64())).as_py()
             t_first_us, t_last_us = mm["min"], mm["max"]
         else:
