@@ -32,7 +32,7 @@ from archive.solve.fixarrays import FixArrays, fix_arrays
 from archive.solve.heights import Sampler, gga_orthometric, solve_heights
 from archive.solve.moves import detect_moves
 from archive.solve.robust import robust_centre
-from archive.solve.schema import POSITION_SCHEMA
+from archive.solve.schema import POSITION_SCHEMA, conform_positions
 from archive.solve.screen import apply_excludes, cloud_hdop, screen_codes
 from archive.solve.segments import from_local, seg_median, seg_starts, to_local
 from archive.solve.uncertainty import ar1_covariance, batch_covariance, ellipse95, radius95
@@ -273,7 +273,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
         data[key] = np.where(occupied, data[key], np.nan)
     order = np.lexsort((row_part, t_start, data["node"].astype(str), ri, rp, rl,
                         (kind == "unlogged").astype(np.int8)))
-    positions = _table({k: v[order] for k, v in data.items()})
+    positions = conform_positions(_table({k: v[order] for k, v in data.items()}), p)
     stats = {"n_fixes": len(fx), "n_duplicates": fx.n_duplicates, "n_windows": n_win,
              "n_unlogged": int((wins.kind == "unlogged").sum()),
              "n_kept": int(ok.sum()), "n_in_windows": len(idx)}

@@ -112,7 +112,7 @@ def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
         progress.close()
         if dem is not None:
             dem.close()
-    return _combine(tables), stats
+    return _combine(tables, manifest["params"]), stats
 
 
 def _height_sampler(dem: Any, epsg: int):  # noqa: ANN202 - returns a callable or None
@@ -146,11 +146,12 @@ def _add_stats(total: dict[str, Any], more: dict[str, Any]) -> None:
         total[k] = total.get(k, 0) + v
 
 
-def _combine(tables: list[pa.Table]) -> pa.Table:
+def _combine(tables: list[pa.Table], params: dict[str, Any]) -> pa.Table:
     """The partitions' positions as one table in the run's sort order."""
-    from archive.solve.schema import POSITION_SCHEMA
+    from archive.solve.schema import POSITION_SCHEMA, conform_positions
 
-    table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
+    table = pa.concat_tables(tables) if tables \
+        else conform_positions(POSITION_SCHEMA.empty_table(), params)
     return table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
 
 
@@ -187,7 +188,7 @@ def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     stats: dict[str, Any] = {}
     for _, st in results:
         _add_stats(stats, st)
-    return _combine([pos for pos, _ in results]), stats
+    return _combine([pos for pos, _ in results], manifest["params"]), stats
 
 
 def _orthometric(survey: dict[str, Any]):  # noqa: ANN202 - returns a callable or None

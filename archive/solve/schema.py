@@ -63,6 +63,21 @@ POSITION_SCHEMA = pa.schema(
     metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "1"},
 )
 
+# Columns added to the table after runs were first recorded, with the parameter whose
+# presence in a run's resolved parameters says the run knew of them ([section, key]).
+# A run whose manifest predates one leaves it out, so that 'reproduce' gives its table
+# bit for bit.
+ADDED_COLUMNS = {"n_no_quality": ("screen", "no_quality")}
+
+
+def conform_positions(table: pa.Table, params: dict) -> pa.Table:
+    """``table`` (of POSITION_SCHEMA) as a run with these resolved parameters writes it:
+    without the :data:`ADDED_COLUMNS` its parameters predate."""
+    drop = [c for c, (sec, key) in ADDED_COLUMNS.items()
+            if key not in params.get(sec, {}) and c in table.column_names]
+    return table.drop_columns(drop) if drop else table
+
+
 # Review flags: key -> what a reviewer should understand.
 FLAGS = {
     "few-fixes": "fewer usable fixes than the minimum",
