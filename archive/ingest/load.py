@@ -275,6 +275,7 @@ class _Recorder:
         self.in_call: set[str] = set()
         self.started = time.monotonic()
         self.limit = 1  # files of the next transaction: doubles up to BATCH_FILES
+        self.profile_size: int | None = None
 
     def add(self, o: FileOutcome, res: dict[str, Any]) -> None:
         """Take the result of one file (in the order the files were given)."""
@@ -333,6 +334,8 @@ class _Recorder:
             hashes = [o.raw_hash for o, _ in batch]
             prior = dict(tx.execute(select(RawFile.object_hash, RawFile.id).where(
                 RawFile.survey_id == self.survey_id, RawFile.object_hash.in_(hashes))).all())
+            arc.register_objects(tx, [item for o, res in batch if o.raw_hash not in prior
+                                      and res["ok"] for item in self._objects_of(res)])
             for o, res in batch:
                 if o.raw_hash in prior:
                     done.append((o, "already", prior[o.raw_hash]))
@@ -343,6 +346,21 @@ class _Recorder:
                     done.append((o, "failed", None))
         for o, status, row_id in done:
             o.status, o.raw_file_id = status, row_id
+
+    def _objects_of(self, res: dict[str, Any]) -> list[tuple[str, int, str]]:
+        """The objects a parsed file's row refers to: (hash, size, kind)."""
+        out = [(res["raw"]["hash"], res["raw"]["size"], "raw"),
+               (res["fixes"]["hash"], res["fixes"]["size"], "fixes")]
+        if res.get("rejects_obj"):
+            out.append((res["rejects_obj"]["hash"], res["rejects_obj"]["size"], "rejects"))
+        if self.profile_hash:
+            out.append((self.profile_hash, self._profile_size(), "profile"))
+        return out
+
+    def _profile_size(self) -> int:
+        if self.profile_size is None:
+            self.profile_size = self.arc.objects.size(self.profile_hash)
+        return self.profile_size
 
     def _record(self, tx, o: FileOutcome, res: dict[str, Any]) -> int:
         arc = self.arc
@@ -355,13 +373,6 @@ class _Recorder:
                    else None, "node_pattern": self.node_pattern,
                    "ignored": res.get("ignored") or {}, "notes": res.get("notes") or [],
                    "no_quality": int(res.get("n_no_quality") or 0)}
-        arc.register_object(tx, o.raw_hash, o.size, "raw")
-        arc.register_object(tx, fixes["hash"], fixes["size"], "fixes")
-        if rejects:
-            arc.register_object(tx, rejects["hash"], rejects["size"], "rejects")
-        if self.profile_hash:
-            arc.register_object(tx, self.profile_hash, arc.objects.size(self.profile_hash),
-                                "profile")
         row = RawFile(
             survey_id=self.survey_id, object_hash=o.raw_hash, original_name=o.path,
             node=o.node, format=self.fmt, profile_hash=self.profile_hash, size=o.size,
