@@ -3,7 +3,7 @@ floor and a pynmea2 reader measured in the same run.
 
     python -m bench.ingest [--mb 200] [--repeat 3] [--scan-mb 64] [--baseline-mb 8]
                            [--small 2000] [--small-kb 100] [--harvest 7500]
-                           [--harvest-kb 20] [--dir DIR]
+                           [--harvest-kb 240] [--dir DIR]
 
 Figures printed (best of ``--repeat`` unless said otherwise):
 
@@ -19,10 +19,10 @@ Figures printed (best of ``--repeat`` unless said otherwise):
    ``--scan-mb`` of that log (goal: >= 300 MB/s), and a per-line pynmea2 reader that
    extracts the same fields (time, position, quality, satellites, DOPs, heights, date,
    RMC status) on the first ``--baseline-mb``; their ratio.
-4. many small files: ``--small`` logs of ``--small-kb`` each, then a harvest of
-   ``--harvest`` logs of ``--harvest-kb``: the custody floor for those files (SHA-256 and
-   a durable copy of each) and ``nodekeep load fixes`` of the folder (goal: >= 0.2x the
-   floor).
+4. many small files: ``--small`` logs of ``--small-kb`` each (2,000 of 100 kB), then a
+   day's harvest of a 10,000-station survey, ``--harvest`` logs of ``--harvest-kb``
+   (7,500 of 240 kB, 1.8 GB): the custody floor for those files (SHA-256 and a durable copy
+   of each) and ``nodekeep load fixes`` of the folder (goal: >= 0.2x the floor).
 
 The machine's load average is printed first: other work on the machine slows every figure.
 """
@@ -325,7 +325,7 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--small", type=int, default=2000, help="number of small logs")
     ap.add_argument("--small-kb", type=float, default=100, help="size of each small log")
     ap.add_argument("--harvest", type=int, default=7500, help="number of logs of a harvest")
-    ap.add_argument("--harvest-kb", type=float, default=20, help="size of each harvest log")
+    ap.add_argument("--harvest-kb", type=float, default=240, help="size of each harvest log")
     ap.add_argument("--dir", default=None, help="work folder (default: a temporary one)")
     a = ap.parse_args(argv)
     load = os.getloadavg() if hasattr(os, "getloadavg") else (float("nan"),) * 3

@@ -196,3 +196,18 @@ def test_week_rollover_capture_refused_when_no_shift_fits():
     assert res.reject_counts() == {"malformed": 1, "rollover": 1}
     (note,) = res.notes
     assert note["kind"] == "week-rollover-refused" and note["lines"] == [16, 16]
+
+
+def test_no_capture_is_refused_whole(survey_arc, tmp_path):
+    import shutil
+
+    from archive.ingest.load import load_fix_files
+    from tests.ingest.test_load import survey_id
+
+    d = tmp_path / "captures"
+    d.mkdir()
+    for name in NAMES:
+        shutil.copy(CAPTURES / f"{name}.log", d / f"{name}.log")
+    rep = load_fix_files(survey_arc, survey_id(survey_arc), [d], workers=1)
+    assert [(f.node, f.status) for f in rep.files] == [(n, "loaded") for n in sorted(NAMES)]
+    assert all(f.n_fixes > 0 for f in rep.files)

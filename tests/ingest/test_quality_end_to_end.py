@@ -1,8 +1,9 @@
 """Fixes without quality information and GPS week rollovers, from the logs to the report.
 
-Two nodes deployed on two stations in April 2019 (Kestrel Flats 3D, invented): KF-0001
+Four nodes deployed on four stations in April 2019 (Kestrel Flats 3D, invented): KF-0001
 logs GGA+GSA+RMC but with the dates of a receiver caught by the GPS week rollover (1024
-weeks early, 1999); KF-0002 logs RMC only. Everything goes through the command line.
+weeks early, 1999); KF-0002 logs RMC only; KF-0003 GNS only; KF-0004 GLL only (the last two
+carry no date: loaded with --date). Everything goes through the command line.
 """
 
 from __future__ import annotations
@@ -21,7 +22,34 @@ from tests.conftest import SURVEY_EPSG, invoke
 T0 = np.datetime64("2019-04-07T00:00:00", "us")
 N = 1800  # 30 minutes at 1 Hz
 ROLL = np.timedelta64(1024 * 7 * 86400, "s")  # 1024 GPS weeks (IS-GPS-200 week number range)
-STATIONS = {("1001", "2001"): (612000.0, 3890000.0), ("1001", "2002"): (612025.0, 3890000.0)}
+STATIONS = {("1001", "2001"): (612000.0, 3890000.0), ("1001", "2002"): (612025.0, 3890000.0),
+            ("1001", "2003"): (612050.0, 3890000.0), ("1001", "2004"): (612075.0, 3890000.0)}
+
+
+def _checksummed(body: str) -> bytes:
+    cs = 0
+    for c in body.encode():
+        cs ^= c
+    return f"${body}*{cs:02X}\r\n".encode()
+
+
+def _as(kind: str, log: bytes) -> bytes:
+    """The log's GGA sentences rewritten as GNS or GLL sentences of the same epochs (NMEA
+    0183 field order: GNS time, lat, N/S, lon, E/W, mode, satellites, HDOP, altitude,
+    separation; GLL lat, N/S, lon, E/W, time, status, mode)."""
+    out = []
+    for line in log.splitlines():
+        if not line.startswith(b"$GPGGA"):
+            continue
+        f = line[1:line.index(b"*")].decode().split(",")
+        t, lat, ns, lon, ew, sats, hdop, alt, sep = f[1], f[2], f[3], f[4], f[5], f[7], \
+            f[8], f[9], f[11]
+        if kind == "GNS":
+            out.append(_checksummed(f"GNGNS,{t},{lat},{ns},{lon},{ew},AA,{sats},{hdop},{alt},"
+                                    f"{sep},,"))
+        else:
+            out.append(_checksummed(f"GPGLL,{lat},{ns},{lon},{ew},{t},A,A"))
+    return b"".join(out)
 
 
 def _log(e: float, n: float, seed: int, *, shift: np.timedelta64 | None = None) -> bytes:
@@ -46,9 +74,9 @@ def loaded(survey_arc, runner, tmp_path):
         f"{ln},{pt},{e},{n}\n" for (ln, pt), (e, n) in STATIONS.items()))
     assert invoke(runner, root, "load", "stations", str(pre)).exit_code == 0
     dep = tmp_path / "deployments.csv"
-    dep.write_text("node,line,point,deployed_utc,retrieved_utc\n"
-                   "KF-0001,1001,2001,2019-04-06T18:00:00Z,2019-04-07T06:00:00Z\n"
-                   "KF-0002,1001,2002,2019-04-06T18:00:00Z,2019-04-07T06:00:00Z\n")
+    dep.write_text("node,line,point,deployed_utc,retrieved_utc\n" + "".join(
+        f"KF-000{k},1001,200{k},2019-04-06T18:00:00Z,2019-04-07T06:00:00Z\n"
+        for k in range(1, 5)))
     assert invoke(runner, root, "load", "deployments", str(dep)).exit_code == 0
     logs = tmp_path / "harvest"
     logs.mkdir()
@@ -58,6 +86,12 @@ def loaded(survey_arc, runner, tmp_path):
     (logs / "KF-0002.nmea").write_bytes(rmc)
     r = invoke(runner, root, "load", "fixes", str(logs))
     assert r.exit_code == 0, r.output + r.stderr
+    undated = tmp_path / "undated"
+    undated.mkdir()
+    (undated / "KF-0003.nmea").write_bytes(_as("GNS", _log(*STATIONS["1001", "2003"], 3)))
+    (undated / "KF-0004.nmea").write_bytes(_as("GLL", _log(*STATIONS["1001", "2004"], 4)))
+    r = invoke(runner, root, "load", "fixes", str(undated), "--date", "2019-04-07")
+    assert r.exit_code == 0, r.output + r.stderr
     return root
 
 
@@ -66,6 +100,8 @@ def test_logs_show_the_rollover_note_and_the_fixes_without_quality(loaded, runne
     rows = {x["node"]: x for x in json.loads(r.output)}
     a, b = rows["KF-0001"], rows["KF-0002"]
     assert a["n_no_quality"] == 0 and b["n_no_quality"] == N
+    assert rows["KF-0003"]["n_no_quality"] == 0 and rows["KF-0003"]["n_fixes"] == N
+    assert rows["KF-0004"]["n_no_quality"] == N and rows["KF-0004"]["n_fixes"] == N
     (note,) = a["notes"]
     assert note["kind"] == "week-rollover" and note["weeks"] == 1024
     assert note["logged"][0] == "1999-08-22" and note["dated"][0] == "2019-04-07"
@@ -91,13 +127,17 @@ def test_solve_accepts_rmc_only_fixes_and_flags_the_station(loaded, runner, tmp_
     assert r.exit_code == 0, r.output + r.stderr
     a = _show(runner, loaded, "1001", "2001")
     b = _show(runner, loaded, "1001", "2002")
-    ra, rb = a["rows"][0], b["rows"][0]
-    assert ra["n_no_quality"] == 0 and "quality-unknown" not in ra["flags"]
-    assert rb["n_no_quality"] == rb["n_used"] > 0.9 * N
-    assert "quality-unknown" in rb["flags"].split(";")
+    c = _show(runner, loaded, "1001", "2003")
+    d = _show(runner, loaded, "1001", "2004")
+    ra, rb, rc, rd = a["rows"][0], b["rows"][0], c["rows"][0], d["rows"][0]
+    for row in (ra, rc):  # GGA and GNS epochs carry their quality
+        assert row["n_no_quality"] == 0 and "quality-unknown" not in row["flags"]
+    for row in (rb, rd):  # RMC-only and GLL-only epochs do not
+        assert row["n_no_quality"] == row["n_used"] > 0.9 * N
+        assert "quality-unknown" in row["flags"].split(";")
     assert b["no_quality"] == "accept"
-    # both stations within a metre of their preplot: the synthetic scatter is 1.5 m
-    for row, key in ((ra, ("1001", "2001")), (rb, ("1001", "2002"))):
+    # every station within half a metre of its preplot: the synthetic scatter is 1.5 m
+    for row, key in zip((ra, rb, rc, rd), STATIONS, strict=True):
         e, n = STATIONS[key]
         assert np.hypot(row["easting"] - e, row["northing"] - n) < 0.5
     text = invoke(runner, loaded, "show", "1001", "2002").output
@@ -111,7 +151,7 @@ def test_solve_accepts_rmc_only_fixes_and_flags_the_station(loaded, runner, tmp_
     assert r.exit_code == 0, r.output + r.stderr
     html = rep.read_text()
     assert "Fixes without quality information" in html
-    assert "1 of 2 delivered stations used fixes without quality information" in html
+    assert "2 of 4 delivered stations used fixes without quality information" in html
 
 
 def test_screen_rejects_them_when_asked_and_leaves_the_others_alone(loaded, runner, tmp_path):
@@ -126,6 +166,8 @@ def test_screen_rejects_them_when_asked_and_leaves_the_others_alone(loaded, runn
     assert b["no_quality"] == "reject"
     rb = b["rows"][0]
     assert rb["n_used"] == 0 and "unoccupied" in rb["flags"]
+    assert _show(runner, loaded, "1001", "2004")["rows"][0]["n_used"] == 0  # GLL only
+    assert _show(runner, loaded, "1001", "2003")["rows"][0]["n_used"] > 0.9 * N  # GNS
     ra = a["rows"][0]
     assert (ra["easting"], ra["northing"], ra["n_used"]) == \
         (before["easting"], before["northing"], before["n_used"])
