@@ -30,12 +30,11 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--keep", type=Path, default=None, help="also copy the report here")
     args = ap.parse_args(argv)
 
-    from tests.qc.tables import synthetic_cloud, synthetic_spread
-
     from archive.qc.report import write_report
     from archive.store.archive import Archive
     from archive.survey.surveys import create_survey
     from tests.qc.conftest import store_input, store_run
+    from tests.support.qc_tables import synthetic_cloud, synthetic_spread
 
     n = args.lines * args.points
     positions, control, stations = synthetic_spread(args.lines, args.points)

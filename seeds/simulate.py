@@ -20,7 +20,7 @@ import numpy as np
 import pyarrow as pa
 from archive.seeds.gnss_errors import ErrorModel, common_mode, node_errors
 
-from archive.ingest.schema import FIX_SCHEMA
+from archive.ingest.schema import FIX_SCHEMA, FIX_SCHEMA_V1, conform_fixes
 from archive.solve.segments import from_local
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
 from archive.survey.schema import DEPLOYMENT_LOG_SCHEMA, STATION_SCHEMA
@@ -167,7 +167,7 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
         sep = -24.5
         h_msl = h_true + err.du
         n_sats = err.n_sats
-        tables.append(pa.table({
+        tables.append(conform_fixes(pa.table({
             "node": [nodes[i]] * n,
             "time": pa.array((t * 1e6).astype(np.int64), pa.int64()).cast(FIX_SCHEMA.field("time").type),
             "lat": lat, "lon": lon, "h_ell": h_msl + sep, "h_msl": h_msl,
@@ -178,7 +178,7 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
             "hdop": pa.array(hdop.astype(np.float32)),
             "vdop": pa.array(err.vdop.astype(np.float32)),
             "raw_hash": [f"{i:064x}"] * n, "raw_line": np.arange(1, n + 1, dtype=np.int64),
-        }, schema=FIX_SCHEMA))
+        }, schema=FIX_SCHEMA_V1)))
     fixes = pa.concat_tables(tables)
     logged = ~unlogged
     # the log: deployment recorded within 5 min of placement, retrieval within 5 min

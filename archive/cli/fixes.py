@@ -58,7 +58,9 @@ def fixes(state: CliState, serial: str, start: str | None, end: str | None, to: 
 @output_options
 @pass_state
 def logs(state: CliState, node: str | None, survey_name: str | None) -> None:
-    """List the raw fix logs loaded into the survey, with their line counts and rejects."""
+    """List the raw fix logs loaded into the survey: line counts, fixes (and those without
+    quality information), rejects by reason, lines not used by sentence type, and notes
+    such as a GPS week rollover corrected or refused."""
     from archive.ingest.read import list_raw_files
 
     arc = state.archive()
@@ -66,15 +68,28 @@ def logs(state: CliState, node: str | None, survey_name: str | None) -> None:
     rows = list_raw_files(arc, survey_id, node)
 
     def text() -> str:
+        from archive.ingest.rollover import note_text
+
         if not rows:
             return "no raw fix logs loaded yet"
         body = [(r["node"], r["name"], human_bytes(r["size"]), r["n_lines"], r["n_fixes"],
-                 r["n_valid"], r["n_rejected"],
+                 r["n_valid"], r["n_no_quality"], r["n_rejected"],
                  ", ".join(f"{k} {v}" for k, v in r["rejects"].items()),
                  r["t_first"].strftime("%Y-%m-%d %H:%M") if r["t_first"] else "",
                  r["t_last"].strftime("%Y-%m-%d %H:%M") if r["t_last"] else "",
                  r["raw_hash"][:12]) for r in rows]
-        return table(body, ["node", "file", "size", "lines", "fixes", "valid", "rejected",
-                            "rejects by reason", "first (UTC)", "last (UTC)", "raw"])
+        out = [table(body, ["node", "file", "size", "lines", "fixes", "valid", "no quality",
+                            "rejected", "rejects by reason", "first (UTC)", "last (UTC)",
+                            "raw"])]
+        ignored = [(r["node"], r["name"], r["n_ignored"],
+                    ", ".join(f"{k} {v}" for k, v in r["ignored"].items()))
+                   for r in rows if r["ignored"]]
+        if ignored:
+            out.append("\nlines not used, by sentence type:\n"
+                       + table(ignored, ["node", "file", "ignored", "by type"]))
+        notes = [f"  {r['node']} {r['name']}: {note_text(n)}" for r in rows for n in r["notes"]]
+        if notes:
+            out.append("\nnotes:\n" + "\n".join(notes))
+        return "\n".join(out)
 
     emit(state, rows, text)

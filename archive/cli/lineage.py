@@ -35,8 +35,14 @@ def _run_text(r: dict[str, Any]) -> list[str]:
 
 
 def _raw_text(raw: list[dict[str, Any]]) -> list[str]:
-    return [f"  {r['name']}  node {r['node']}  sha256 {r['hash']}  received "
-            f"{_when(r['received_at'])} by {r['received_by']}" for r in raw]
+    from archive.ingest.rollover import note_text
+
+    out = []
+    for r in raw:
+        out.append(f"  {r['name']}  node {r['node']}  sha256 {r['hash']}  received "
+                   f"{_when(r['received_at'])} by {r['received_by']}")
+        out += [f"    note: {note_text(n)}" for n in r.get("notes", [])]
+    return out
 
 
 def _edits_text(edits: list[dict[str, Any]]) -> list[str]:

@@ -24,6 +24,22 @@ def _summary(report) -> str:
     return "\n".join([text, *errors, tail])
 
 
+def _prestart(paths: list[str], workers: int | None) -> None:
+    """Start the parsing processes before the catalog is opened, so that the loading of
+    their compiled reader overlaps it (see :mod:`archive.ingest.workers`)."""
+    import os
+
+    from archive.errors import UsageError
+    from archive.ingest import workers as parsing
+    from archive.ingest.paths import expand_paths
+
+    try:
+        n_files = len(expand_paths(paths))
+    except UsageError:
+        return  # the load reports it
+    parsing.prestart(min(workers or os.cpu_count() or 1, n_files))
+
+
 @click.command("fixes")
 @click.argument("paths", nargs=-1, required=True, metavar="PATH...")
 @click.option("--format", "fmt", type=click.Choice(["nmea", "delimited"]), default=None,
@@ -51,7 +67,7 @@ def load_fixes(state: CliState, paths: tuple[str, ...], fmt: str | None,
     ignored. A file already loaded (same bytes) is reported and skipped.
     """
     from archive.errors import UsageError
-    from archive.ingest.load import load_fix_files
+    from archive.ingest import workers as parsing
 
     day = None
     if date_:
@@ -59,12 +75,21 @@ def load_fixes(state: CliState, paths: tuple[str, ...], fmt: str | None,
             day = dt.date.fromisoformat(date_)
         except ValueError:
             raise UsageError(f"--date {date_!r} is not a date", hint="use YYYY-MM-DD") from None
-    arc = state.archive()
-    survey_id = state.survey_id(survey_name)
-    bar = Bar(state)
-    report = load_fix_files(arc, survey_id, list(paths), fmt=fmt, profile_path=profile_path,
-                            node=node, node_pattern=node_pattern, date=day, workers=workers,
-                            progress=bar)
+    _prestart(list(paths), workers)
+    try:
+        from archive.ingest.load import load_fix_files
+
+        arc = state.archive()
+        survey_id = state.survey_id(survey_name)
+        bar = Bar(state)
+        report = load_fix_files(arc, survey_id, list(paths), fmt=fmt,
+                                profile_path=profile_path, node=node,
+                                node_pattern=node_pattern, date=day, workers=workers,
+                                progress=bar)
+    finally:
+        pool, _ = parsing.take()  # not taken when the load stopped before parsing
+        if pool is not None:
+            pool.shutdown(wait=False, cancel_futures=True)
     emit(state, report.as_dict(), lambda: _summary(report))
     if not report.ok:
         raise click.exceptions.Exit(1)

@@ -125,7 +125,15 @@ def _fmt(v: Any, digits: int = 2) -> str:
     return str(v)
 
 
-def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int) -> str:
+def _no_quality_text(r: dict[str, Any], setting: str) -> str:
+    """How many used fixes had no quality information (runs before the count: unknown)."""
+    n = r.get("n_no_quality")
+    count = "not counted in this run" if n is None else f"{n} of the used fixes"
+    return f"  no quality {count} (RMC/GLL only; screen.no_quality = {setting})"
+
+
+def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int,
+               no_quality: str = "accept") -> str:
     out = [f"run {run_id}"]
     if n_occupations > 1:
         out.append(f"{n_occupations} occupations (one delivered record each, under its own "
@@ -154,6 +162,7 @@ def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int) -> s
             f"  fixes      {r['n_used']} used, {r['n_rejected']} not used of {r['n_total']}; "
             f"n_eff {_fmt(r['n_eff'], 0)}; span {_fmt((r['span_s'] or 0) / 3600, 1)} h; "
             f"spread {_fmt(r['spread'])} m ({r['estimator']})",
+            _no_quality_text(r, no_quality),
             f"  preplot    {_fmt(r['dist_preplot'])} m away; nearest other station "
             f"{_fmt(r['nearest_line'], 0)}/{_fmt(r['nearest_point'], 0)} at "
             f"{_fmt(r['dist_nearest'])} m",
@@ -178,4 +187,5 @@ def show(state: CliState, line: float, point: float, index: int | None, node: st
 
     res = station_solution(state.archive(), _survey_id(state, survey_name), line, point,
                            index, run_ref, node=node)
-    emit(state, res, lambda: _show_text(res["run"], res["rows"], res["n_occupations"]))
+    emit(state, res, lambda: _show_text(res["run"], res["rows"], res["n_occupations"],
+                                        res["no_quality"]))

@@ -210,5 +210,10 @@ def _table(lines, t, lat, lon, nums, profile: Profile, node: str, raw_hash: str)
         "vdop": f32(nums.get("vdop", nan)),
         "raw_hash": constant_strings(raw_hash, m),
         "raw_line": pa.array(lines + 1, pa.int64()),
+        "sentence": pa.nulls(m, pa.string()),
+        # a record saying nothing of its quality: no quality, satellites or HDOP column
+        "no_quality": pa.array((q < 0) & ~np.isfinite(nums.get("n_sats", nan))
+                               & ~np.isfinite(nums.get("hdop", nan))),
+        "weeks_added": pa.array(np.zeros(m, np.int16), pa.int16()),
     }
     return sort_fixes(pa.table(cols, schema=FIX_SCHEMA))

@@ -1,39 +1,51 @@
-"""Loading raw fix logs into the archive: raw bytes first, then parse, then one transaction.
+"""Loading raw fix logs into the archive: parse, name the objects, record in batches.
 
-For every file: the raw bytes are stored as an object (so they are kept even when nothing
-else works); a raw file already loaded into the survey (same hash) is reported and skipped;
-the file is parsed (several files in parallel, one process each) into a fixes and a rejects
-Parquet object; then one transaction registers the objects, inserts the ``raw_files`` row and
-appends the ``load.fixes`` ledger event. A file that is not a fix log fails on its own with
-a message naming it; the other files still load. Its raw bytes stay accounted for: one
-transaction registers them (kind ``raw-failed``) and appends a ``load.fixes.failed`` event
-with the file name, node, hash, error and the line counts read, so ``verify`` does not take
-them for the leftovers of an interrupted write.
+Every file is read once: its bytes are hashed and copied beside the parse
+(:mod:`archive.ingest.parse_file`, several files in parallel, one process each), which
+leaves finished temporary objects (the raw copy, the fixes and rejects Parquet tables).
+The loader then names them (a rename into the object store) and records each file in a
+transaction that registers its objects, inserts its ``raw_files`` row and appends its
+``load.fixes`` ledger event. Many files share one transaction (1, 2, 4, ... up to
+:data:`BATCH_FILES`, or what came in :data:`BATCH_SECONDS`): the evidence stays per file (a
+row and a ledger event each) and an interruption leaves every file either fully recorded
+or not at all (its objects, at most, unreferenced, which ``verify`` lists as dangling).
+
+A file whose bytes the survey already holds is reported as ``already`` (without being
+parsed when its hash is known first). A file that is not a fix log fails on its own with a
+message naming it; the other files still load. Its raw bytes stay accounted for: they are
+registered (kind ``raw-failed``) with a ``load.fixes.failed`` event giving the file name,
+node, hash, error and the line counts read, so ``verify`` does not take them for the
+leftovers of an interrupted write. An object store that refuses a write (disk full,
+read-only) stops the load: what was recorded stays, the rest is removed.
+
+Dates are checked for the GPS week rollover against the deployment window of each file's
+node in the current deployment log (else the survey's), see :mod:`archive.ingest.rollover`.
 """
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
-import glob
 import json
-import multiprocessing as mp
 import os
 import re
-from concurrent.futures import ProcessPoolExecutor
+import time
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
 from sqlalchemy import select
 
-from archive.errors import UsageError
-from archive.ingest.parse_file import parse_file
+from archive.errors import Refused, StorageError, UsageError
+from archive.ingest.paths import expand_paths, node_for
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
-from archive.store.models import LedgerHead, RawFile, utcnow
+from archive.store.models import InputVersion, LedgerHead, RawFile, utcnow
 
 FORMATS = ("nmea", "delimited")
-PARSERS = {"nmea": "nmea-1", "delimited": "delimited-1"}
+PARSERS = {"nmea": "nmea-2", "delimited": "delimited-2"}
+BATCH_FILES = 64  # most files per transaction; the first batches are 1, 2, 4, ... files
+BATCH_SECONDS = 2.0
 
 
 @dataclass
@@ -57,6 +69,8 @@ class FileOutcome:
     t_first: dt.datetime | None = None
     t_last: dt.datetime | None = None
     rejects: dict[str, int] = field(default_factory=dict)
+    ignored: dict[str, int] = field(default_factory=dict)
+    notes: list[dict[str, Any]] = field(default_factory=list)
 
 
 @dataclass
@@ -86,52 +100,37 @@ class LoadReport:
                 "failed": len(self.failed), "files": [asdict(f) for f in self.files]}
 
 
-def expand_paths(paths: list[str | Path]) -> list[Path]:
-    """Files named, files under folders (recursively, hidden ones skipped) and glob matches,
-    in a stable order without repeats. A name that matches nothing is a usage error."""
-    out: list[Path] = []
-    for p in paths:
-        p = Path(p)
-        if p.is_dir():
-            found = sorted(x for x in p.rglob("*") if x.is_file()
-                           and not any(part.startswith(".") for part in x.relative_to(p).parts))
-        elif p.is_file():
-            found = [p]
-        else:
-            found = sorted(Path(x) for x in glob.glob(str(p), recursive=True) if Path(x).is_file())
-        if not found:
-            raise UsageError(f"{p}: no such file, folder or matching file",
-                             hint="check the path or quote the glob pattern")
-        out.extend(found)
-    seen: set[Path] = set()
-    unique = []
-    for f in out:
-        key = f.resolve()
-        if key not in seen:
-            seen.add(key)
-            unique.append(f)
-    return unique
+def _known_hashes(arc: Archive, survey_id: int) -> frozenset[str]:
+    with arc.session() as s:
+        return frozenset(s.scalars(select(RawFile.object_hash).where(
+            RawFile.survey_id == survey_id)))
 
 
-def node_for(path: Path, node: str | None, pattern: re.Pattern[str] | None) -> str:
-    """The node serial of a file: ``node``, else the pattern's ``node`` group (or first group,
-    or whole match) searched in the file name, else the file stem."""
-    if node:
-        return node
-    if pattern is None:
-        return path.stem
-    m = pattern.search(path.name)
-    if not m:
-        raise UsageError(f"{path}: the node pattern {pattern.pattern!r} does not match the "
-                         "file name", hint="fix --node-pattern or give --node")
-    if "node" in pattern.groupindex:
-        return m.group("node")
-    return m.group(1) if pattern.groups else m.group(0)
-
-
-def _pool_context() -> mp.context.BaseContext:
-    methods = mp.get_all_start_methods()
-    return mp.get_context("fork" if "fork" in methods else "spawn")
+def reference_windows(arc: Archive, survey_id: int
+                      ) -> tuple[dict[str, tuple[dt.datetime, dt.datetime]],
+                                 tuple[dt.datetime, dt.datetime] | None]:
+    """Time windows logs are expected in, from the current deployment log: per node
+    (first deployment to last retrieval, or last deployment when not retrieved) and for the
+    whole survey. Empty without a deployment log."""
+    with arc.session() as s:
+        v = s.scalars(select(InputVersion).where(
+            InputVersion.survey_id == survey_id, InputVersion.kind == "deployments")
+            .order_by(InputVersion.version.desc()).limit(1)).first()
+    if v is None or v.table_hash is None:
+        return {}, None
+    t = arc.objects.read_table(v.table_hash, columns=["node", "deployed", "retrieved"])
+    if t.num_rows == 0:
+        return {}, None
+    nodes = t.column("node").to_pylist()
+    dep = t.column("deployed").to_pylist()
+    ret = t.column("retrieved").to_pylist()
+    per: dict[str, list[dt.datetime]] = {}
+    for n, a, b in zip(nodes, dep, ret, strict=True):
+        lo, hi = per.get(n, [a, b or a])
+        per[n] = [min(lo, a), max(hi, b or a)]
+    windows = {n: (w[0], w[1]) for n, w in per.items()}
+    survey = (min(w[0] for w in windows.values()), max(w[1] for w in windows.values()))
+    return windows, survey
 
 
 def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
@@ -139,14 +138,25 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
                    node: str | None = None, node_pattern: str | None = None,
                    date: dt.date | None = None, workers: int | None = None,
                    progress: Progress | None = None) -> LoadReport:
-    """Load raw fix logs into survey ``survey_id`` (see the module docstring)."""
+    """Load raw fix logs into survey ``survey_id`` (see the module docstring).
+
+    ``workers`` parsing processes (default one per core; with one, files are parsed in this
+    process); processes started beforehand by :func:`archive.ingest.workers.prestart` are
+    used instead.
+    """
+    from archive.ingest import workers as _workers
+    from archive.ingest.parse_file import parse_file, set_known
+
+    workers_wanted, workers = workers, _workers
+
     progress = progress or NoProgress()
     fmt = fmt or ("delimited" if profile_path else "nmea")
     if fmt not in FORMATS:
         raise UsageError(f"unknown log format {fmt!r}", hint=f"use one of {', '.join(FORMATS)}")
     if node and node_pattern:
         raise UsageError("give either a node serial or a node pattern, not both")
-    profile_hash = None
+    if arc.read_only or arc.objects.read_only:
+        raise Refused(f"the archive {arc.root} is open read-only")
     if fmt == "delimited":
         if not profile_path:
             raise UsageError("delimited logs need a profile",
@@ -161,110 +171,242 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
                          ) from None
     files = expand_paths(paths)
     outcomes = [FileOutcome(str(p), "pending") for p in files]
-    progress.start(sum(p.stat().st_size for p in files), "bytes", "load fixes")
-    if fmt == "delimited":
-        profile_hash, _ = arc.objects.put_file(profile_path)
+    sizes = [p.stat().st_size for p in files]
+    progress.start(sum(sizes), "bytes", "load fixes")
+    profile_hash = arc.objects.put_file(profile_path)[0] if fmt == "delimited" else None
+    windows, survey_window = reference_windows(arc, survey_id)
+    known = _known_hashes(arc, survey_id)
+    set_known(known)
     tasks: list[tuple[int, dict[str, Any]]] = []
-    in_call: set[str] = set()
-    with arc.session() as s:
-        for i, p in enumerate(files):
-            o = outcomes[i]
-            try:
-                o.node = node_for(p, node, pattern)
-            except UsageError as exc:
-                o.status, o.error = "failed", str(exc)
-                progress.advance(p.stat().st_size, p.name)
-                continue
-            o.raw_hash, o.size = arc.objects.put_file(p)  # the raw bytes first
-            prior = s.execute(select(RawFile.id).where(RawFile.survey_id == survey_id,
-                                                       RawFile.object_hash == o.raw_hash)
-                              ).scalar_one_or_none()
-            if prior is not None or o.raw_hash in in_call:
-                o.status, o.raw_file_id = "already", prior
-                progress.advance(o.size, p.name)
-                continue
-            in_call.add(o.raw_hash)
-            tasks.append((i, {"objects_url": arc.objects_url, "path": str(p), "format": fmt,
-                              "node": o.node, "raw_hash": o.raw_hash,
-                              "date": date.isoformat() if date else None,
-                              "profile_path": str(profile_path) if profile_path else None}))
-    n_workers = max(1, min(workers or os.cpu_count() or 1, len(tasks)))
-    if n_workers == 1:
-        results = ((i, parse_file(t)) for i, t in tasks)
-        for i, res in results:
-            _record(arc, survey_id, outcomes[i], res, fmt, profile_hash, date, node_pattern)
-            progress.advance(outcomes[i].size, Path(outcomes[i].path).name)
-    else:
-        with ProcessPoolExecutor(n_workers, mp_context=_pool_context()) as pool:
-            futures = [(i, pool.submit(parse_file, t)) for i, t in tasks]
-            for i, fut in futures:
-                _record(arc, survey_id, outcomes[i], fut.result(), fmt, profile_hash, date,
-                        node_pattern)
+    for i, p in enumerate(files):
+        o = outcomes[i]
+        o.size = sizes[i]
+        try:
+            o.node = node_for(p, node, pattern)
+        except UsageError as exc:
+            o.status, o.error = "failed", str(exc)
+            progress.advance(o.size, p.name)
+            continue
+        ref, ref_text = None, None
+        if o.node in windows:
+            ref, ref_text = windows[o.node], f"the deployments of node {o.node}"
+        elif survey_window is not None:
+            ref, ref_text = survey_window, "the survey's deployments"
+        tasks.append((i, {"objects_url": arc.objects_url, "path": str(p), "format": fmt,
+                          "node": o.node, "date": date.isoformat() if date else None,
+                          "profile_path": str(profile_path) if profile_path else None,
+                          "reference": [t.isoformat() for t in ref] if ref else None,
+                          "reference_text": ref_text}))
+    recorder = _Recorder(arc, survey_id, fmt, profile_hash, date, node_pattern)
+    pool, n_workers = workers.take()
+    if pool is None:
+        n_workers = max(1, min(workers_wanted or os.cpu_count() or 1, len(tasks)))
+    try:
+        if pool is None and n_workers == 1:
+            for i, task in tasks:
+                recorder.add(outcomes[i], parse_file(task))
                 progress.advance(outcomes[i].size, Path(outcomes[i].path).name)
+        else:
+            known_path = _known_file(known)
+            for _, task in tasks:
+                task["known_path"] = known_path
+            if pool is None:
+                from concurrent.futures import ProcessPoolExecutor
+
+                pool = ProcessPoolExecutor(n_workers, mp_context=workers.context())
+            try:
+                futures = [(i, pool.submit(parse_file, t)) for i, t in tasks]
+                try:
+                    for i, fut in futures:
+                        recorder.add(outcomes[i], fut.result())
+                        progress.advance(outcomes[i].size, Path(outcomes[i].path).name)
+                except BaseException:
+                    pool.shutdown(wait=True, cancel_futures=True)
+                    for _, fut in futures:  # what the others left behind
+                        if fut.done() and not fut.cancelled() and fut.exception() is None:
+                            _discard(fut.result())
+                    raise
+            finally:
+                pool.shutdown(wait=True)
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(known_path)
+        recorder.flush()
+    except BaseException:
+        recorder.discard()
+        raise
+    finally:
+        set_known(frozenset())
     progress.close()
     return LoadReport(outcomes)
 
 
-def _record(arc: Archive, survey_id: int, o: FileOutcome, res: dict[str, Any], fmt: str,
-            profile_hash: str | None, date: dt.date | None, node_pattern: str | None) -> None:
-    """One transaction for one parsed file: objects, the raw_files row, the ledger event."""
-    if not res["ok"]:
-        _record_failure(arc, survey_id, o, res, fmt, profile_hash)
-        return
-    for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid",
-              "t_first", "t_last", "rejects"):
-        setattr(o, k, res[k])
-    details = {"rejects": res["rejects"], "date": date.isoformat() if date else None,
-               "node_pattern": node_pattern}
-    with arc.transaction() as tx:
-        # Another process may have loaded the same bytes since the look-up before parsing:
-        # take the writers' lock (the ledger head row) and look again inside the transaction.
-        tx.execute(select(LedgerHead).where(LedgerHead.id == 1).with_for_update())
-        prior = tx.execute(select(RawFile.id).where(RawFile.survey_id == survey_id,
-                                                    RawFile.object_hash == o.raw_hash)
-                           ).scalar_one_or_none()
-        if prior is not None:
-            o.status, o.raw_file_id = "already", prior
+def _known_file(known: frozenset[str]) -> str:
+    """The raw hashes already loaded, one per line, for the parsing processes (a file of
+    the system's temporary folder, removed after the load)."""
+    import tempfile
+
+    fd, name = tempfile.mkstemp(prefix="nodekeep-known-")
+    with os.fdopen(fd, "w", encoding="ascii") as fh:
+        fh.write("".join(h + "\n" for h in sorted(known)))
+    return name
+
+
+def _objects(res: dict[str, Any]) -> list[dict[str, Any]]:
+    return [o for o in (res.get("raw"), res.get("fixes"), res.get("rejects_obj")) if o]
+
+
+def _discard(res: dict[str, Any]) -> None:
+    """Remove the temporary files of a result that will not be recorded."""
+    for o in _objects(res):
+        if o.get("tmp"):
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(o["tmp"])
+
+
+class _Recorder:
+    """Names the objects of parsed files and records the files in batched transactions."""
+
+    def __init__(self, arc: Archive, survey_id: int, fmt: str, profile_hash: str | None,
+                 date: dt.date | None, node_pattern: str | None) -> None:
+        self.arc, self.survey_id, self.fmt = arc, survey_id, fmt
+        self.profile_hash, self.date, self.node_pattern = profile_hash, date, node_pattern
+        self.batch: list[tuple[FileOutcome, dict[str, Any]]] = []
+        self.adopted: list[str] = []
+        self.in_call: set[str] = set()
+        self.started = time.monotonic()
+        self.limit = 1  # files of the next transaction: doubles up to BATCH_FILES
+        self.profile_size: int | None = None
+
+    def add(self, o: FileOutcome, res: dict[str, Any]) -> None:
+        """Take the result of one file (in the order the files were given)."""
+        if res.get("fatal"):
+            _discard(res)
+            reason = res["error"].split(": ")[-1].split(" (")[0]
+            raise StorageError(f"cannot write to the object store {self.arc.objects_url}: "
+                               f"{reason}",
+                               hint="this write was not recorded; free space or make the "
+                                    "folder writable and run the command again")
+        raw = res.get("raw") or {}
+        o.raw_hash = raw.get("hash")
+        o.size = raw.get("size", o.size)
+        if res.get("status") == "already" or (o.raw_hash and o.raw_hash in self.in_call):
+            _discard(res)
+            o.status = "already"
             return
-        arc.register_object(tx, o.raw_hash, o.size, "raw")
-        arc.register_object(tx, res["fixes_hash"], res["fixes_size"], "fixes")
-        if res["rejects_hash"]:
-            arc.register_object(tx, res["rejects_hash"], res["rejects_size"], "rejects")
-        if profile_hash:
-            arc.register_object(tx, profile_hash, arc.objects.size(profile_hash), "profile")
+        if o.raw_hash:
+            self.in_call.add(o.raw_hash)
+        if not res["ok"] and not raw:
+            _discard(res)
+            o.status, o.error = "failed", res["error"]
+            return
+        try:
+            for obj in _objects(res):
+                if obj.get("tmp"):
+                    tmp, obj["tmp"] = obj["tmp"], None
+                    self.arc.objects.adopt(tmp, obj["hash"], obj["size"], sync_dir=False)
+                    self.adopted.append(obj["hash"])
+        except BaseException:
+            _discard(res)
+            raise
+        self.batch.append((o, res))
+        if len(self.batch) >= self.limit or time.monotonic() - self.started > BATCH_SECONDS:
+            self.flush()
+            self.limit = min(2 * self.limit, BATCH_FILES)
+
+    def discard(self) -> None:
+        """Forget the files not recorded yet (their named objects stay unreferenced)."""
+        self.batch = []
+
+    def flush(self) -> None:
+        """Record the files taken so far, in one transaction."""
+        self.started = time.monotonic()
+        if not self.batch:
+            return
+        arc = self.arc
+        arc.objects.sync_folders(self.adopted)
+        self.adopted = []
+        batch, self.batch = self.batch, []
+        done: list[tuple[FileOutcome, str, int | None]] = []
+        with arc.transaction() as tx:
+            # Another process may have loaded the same bytes since this one looked: take the
+            # writers' lock (the ledger head row) and look again inside the transaction.
+            tx.execute(select(LedgerHead).where(LedgerHead.id == 1).with_for_update())
+            hashes = [o.raw_hash for o, _ in batch]
+            prior = dict(tx.execute(select(RawFile.object_hash, RawFile.id).where(
+                RawFile.survey_id == self.survey_id, RawFile.object_hash.in_(hashes))).all())
+            arc.register_objects(tx, [item for o, res in batch if o.raw_hash not in prior
+                                      and res["ok"] for item in self._objects_of(res)])
+            for o, res in batch:
+                if o.raw_hash in prior:
+                    done.append((o, "already", prior[o.raw_hash]))
+                elif res["ok"]:
+                    done.append((o, "loaded", self._record(tx, o, res)))
+                else:
+                    self._record_failure(tx, o, res)
+                    done.append((o, "failed", None))
+        for o, status, row_id in done:
+            o.status, o.raw_file_id = status, row_id
+
+    def _objects_of(self, res: dict[str, Any]) -> list[tuple[str, int, str]]:
+        """The objects a parsed file's row refers to: (hash, size, kind)."""
+        out = [(res["raw"]["hash"], res["raw"]["size"], "raw"),
+               (res["fixes"]["hash"], res["fixes"]["size"], "fixes")]
+        if res.get("rejects_obj"):
+            out.append((res["rejects_obj"]["hash"], res["rejects_obj"]["size"], "rejects"))
+        if self.profile_hash:
+            out.append((self.profile_hash, self._profile_size(), "profile"))
+        return out
+
+    def _profile_size(self) -> int:
+        if self.profile_size is None:
+            self.profile_size = self.arc.objects.size(self.profile_hash)
+        return self.profile_size
+
+    def _record(self, tx, o: FileOutcome, res: dict[str, Any]) -> int:
+        arc = self.arc
+        for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid",
+                  "t_first", "t_last", "rejects", "ignored", "notes"):
+            setattr(o, k, res.get(k) or ({} if k in ("rejects", "ignored") else
+                                         [] if k == "notes" else res.get(k)))
+        fixes, rejects = res["fixes"], res.get("rejects_obj")
+        details = {"rejects": res["rejects"], "date": self.date.isoformat() if self.date
+                   else None, "node_pattern": self.node_pattern,
+                   "ignored": res.get("ignored") or {}, "notes": res.get("notes") or [],
+                   "no_quality": int(res.get("n_no_quality") or 0)}
         row = RawFile(
-            survey_id=survey_id, object_hash=o.raw_hash, original_name=o.path, node=o.node,
-            format=fmt, profile_hash=profile_hash, size=o.size, received_at=utcnow(),
-            received_by=arc.actor, parser=PARSERS[fmt], n_lines=o.n_lines,
-            n_accepted=o.n_accepted, n_rejected=o.n_rejected, n_ignored=o.n_ignored,
-            n_fixes=o.n_fixes, n_valid=o.n_valid, t_first=o.t_first, t_last=o.t_last,
-            fixes_hash=res["fixes_hash"], rejects_hash=res["rejects_hash"],
+            survey_id=self.survey_id, object_hash=o.raw_hash, original_name=o.path,
+            node=o.node, format=self.fmt, profile_hash=self.profile_hash, size=o.size,
+            received_at=utcnow(), received_by=arc.actor, parser=PARSERS[self.fmt],
+            n_lines=o.n_lines, n_accepted=o.n_accepted, n_rejected=o.n_rejected,
+            n_ignored=o.n_ignored, n_fixes=o.n_fixes, n_valid=o.n_valid, t_first=o.t_first,
+            t_last=o.t_last, fixes_hash=fixes["hash"],
+            rejects_hash=rejects["hash"] if rejects else None,
             details=json.dumps(details, sort_keys=True),
         )
         tx.add(row)
         tx.flush()
         arc.log(tx, "load.fixes", {"raw": o.raw_hash, "name": Path(o.path).name,
-                                   "node": o.node, "format": fmt, "fixes": res["fixes_hash"],
-                                   "rejects": res["rejects_hash"], "n_fixes": o.n_fixes,
-                                   "n_rejected": o.n_rejected},
-                survey_id=survey_id, rows=[row])
-    o.status, o.raw_file_id = "loaded", row.id
+                                   "node": o.node, "format": self.fmt,
+                                   "fixes": fixes["hash"],
+                                   "rejects": rejects["hash"] if rejects else None,
+                                   "n_fixes": o.n_fixes, "n_rejected": o.n_rejected},
+                survey_id=self.survey_id, rows=[row])
+        return row.id
 
-
-def _record_failure(arc: Archive, survey_id: int, o: FileOutcome, res: dict[str, Any],
-                    fmt: str, profile_hash: str | None) -> None:
-    """One transaction for a file that did not parse: its raw bytes and a ledger event."""
-    o.status, o.error = "failed", res["error"]
-    counts = res.get("counts") or {}
-    for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid"):
-        setattr(o, k, int(counts.get(k, 0)))
-    o.rejects = dict(res.get("rejects") or {})
-    with arc.transaction() as tx:
+    def _record_failure(self, tx, o: FileOutcome, res: dict[str, Any]) -> None:
+        """A file that did not parse: its raw bytes and a ledger event."""
+        arc = self.arc
+        o.error = res["error"]
+        counts = res.get("counts") or {}
+        for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid"):
+            setattr(o, k, int(counts.get(k, 0)))
+        o.rejects = dict(res.get("rejects") or {})
         arc.register_object(tx, o.raw_hash, o.size, "raw-failed")
-        if profile_hash:
-            arc.register_object(tx, profile_hash, arc.objects.size(profile_hash), "profile")
+        if self.profile_hash:
+            arc.register_object(tx, self.profile_hash, arc.objects.size(self.profile_hash),
+                                "profile")
         arc.log(tx, "load.fixes.failed",
                 {"raw": o.raw_hash, "name": Path(o.path).name, "node": o.node,
-                 "format": fmt, "profile": profile_hash, "size": o.size, "error": o.error,
-                 "counts": counts or None, "rejects": o.rejects},
-                survey_id=survey_id)
+                 "format": self.fmt, "profile": self.profile_hash, "size": o.size,
+                 "error": o.error, "counts": counts or None, "rejects": o.rejects},
+                survey_id=self.survey_id)

@@ -17,7 +17,7 @@ from sqlalchemy import select
 from archive.errors import Refused, UsageError
 from archive.ingest.overlap import first_epochs
 from archive.ingest.result import sort_fixes
-from archive.ingest.schema import FIX_SCHEMA
+from archive.ingest.schema import FIX_SCHEMA, conform_fixes
 from archive.store.archive import Archive
 from archive.store.models import RawFile
 from archive.store.objects import PARQUET_OPTIONS
@@ -57,7 +57,7 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
                          else "load its logs with 'nodekeep load fixes FILES'")
     parts, ranks = [], []
     for order, h in enumerate(rows):
-        t = arc.objects.read_table(h)
+        t = conform_fixes(arc.objects.read_table(h))
         mask = None
         if start is not None:
             mask = pc.greater_equal(t.column("time"), pa.scalar(start, FIX_SCHEMA.field("time").type))
@@ -100,15 +100,34 @@ def write_fixes(table: pa.Table, path: str | Path, *, force: bool = False) -> Pa
 
 
 def raw_file_dict(r: RawFile) -> dict[str, Any]:
-    """A raw file row as plain data (with its reject counts by reason)."""
+    """A raw file row as plain data: its reject counts by reason, its ignored lines by
+    sentence type, its fixes without quality information and the notes its reading left
+    (such as a GPS week rollover). Rows loaded before these were kept have them empty."""
     details = json.loads(r.details or "{}")
     return {"id": r.id, "node": r.node, "name": r.original_name, "format": r.format,
             "raw_hash": r.object_hash, "size": r.size, "n_lines": r.n_lines,
             "n_accepted": r.n_accepted, "n_rejected": r.n_rejected, "n_ignored": r.n_ignored,
             "n_fixes": r.n_fixes, "n_valid": r.n_valid, "t_first": r.t_first,
             "t_last": r.t_last, "fixes_hash": r.fixes_hash, "rejects_hash": r.rejects_hash,
-            "rejects": details.get("rejects", {}), "received_at": r.received_at,
+            "rejects": details.get("rejects", {}), "ignored": details.get("ignored", {}),
+            "n_no_quality": details.get("no_quality", 0), "notes": details.get("notes", []),
+            "received_at": r.received_at,
             "received_by": r.received_by}
+
+
+def raw_notes(r: RawFile) -> list[dict[str, Any]]:
+    """The notes reading a raw file left (such as a GPS week rollover), oldest rows none."""
+    return json.loads(r.details or "{}").get("notes", [])
+
+
+def with_notes(arc: Archive, survey_id: int, raw: list[dict[str, Any]]
+               ) -> list[dict[str, Any]]:
+    """Raw file dicts (with their ``id``) given the notes their reading left."""
+    ids = [r["id"] for r in raw]
+    with arc.session() as s:
+        notes = {r.id: raw_notes(r) for r in s.scalars(select(RawFile).where(
+            RawFile.survey_id == survey_id, RawFile.id.in_(ids)))} if ids else {}
+    return [{**r, "notes": notes.get(r["id"], [])} for r in raw]
 
 
 def list_raw_files(arc: Archive, survey_id: int, node: str | None = None) -> list[dict[str, Any]]:

@@ -10,7 +10,11 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.ingest.arrow_build import coded_strings, constant_strings, from_numpy
 from archive.ingest.schema import FIX_SCHEMA, REJECT_REASONS, REJECT_SCHEMA
+
+__all__ = ["ParseResult", "constant_strings", "line_texts", "rejects_table", "empty_fixes",
+           "empty_rejects", "sort_fixes"]
 
 REJECT_TEXT_MAX = 120
 
@@ -30,7 +34,8 @@ class ParseResult:
     n_accepted: int
     n_rejected: int
     n_ignored: int
-    notes: list[str] = field(default_factory=list)
+    ignored: dict[str, int] = field(default_factory=dict)  # ignored lines by sentence type
+    notes: list[dict[str, Any]] = field(default_factory=list)  # e.g. week rollover
 
     def reject_counts(self) -> dict[str, int]:
         """Number of rejected lines by reason class (only classes that occur)."""
@@ -47,6 +52,13 @@ class ParseResult:
     def n_valid(self) -> int:
         return int(pc.sum(self.fixes.column("valid").cast(pa.int64())).as_py() or 0)
 
+    @property
+    def n_no_quality(self) -> int:
+        """Fixes without quality information (an epoch of RMC/GLL sentences only)."""
+        if "no_quality" not in self.fixes.column_names:
+            return 0
+        return int(pc.sum(self.fixes.column("no_quality").cast(pa.int64())).as_py() or 0)
+
     def time_range(self) -> tuple[datetime | None, datetime | None]:
         """First and last fix time (UTC), or (None, None) without fixes."""
         if self.fixes.num_rows == 0:
@@ -58,16 +70,10 @@ class ParseResult:
         t0, t1 = self.time_range()
         return {"n_lines": self.n_lines, "n_accepted": self.n_accepted,
                 "n_rejected": self.n_rejected, "n_ignored": self.n_ignored,
-                "n_fixes": self.n_fixes, "n_valid": self.n_valid, "t_first": t0,
-                "t_last": t1, "rejects": self.reject_counts()}
-
-
-def constant_strings(value: str, n: int) -> pa.Array:
-    """A string array of ``n`` copies of ``value``, built from buffers (no Python loop)."""
-    raw = value.encode("utf-8")
-    offsets = (np.arange(n + 1, dtype=np.int64) * len(raw)).astype(np.int32)
-    return pa.StringArray.from_buffers(n, pa.py_buffer(offsets.tobytes()),
-                                       pa.py_buffer(raw * n))
+                "n_fixes": self.n_fixes, "n_valid": self.n_valid,
+                "n_no_quality": self.n_no_quality, "t_first": t0,
+                "t_last": t1, "rejects": self.reject_counts(),
+                "ignored": dict(sorted(self.ignored.items())), "notes": self.notes}
 
 
 def line_texts(buf: np.ndarray, starts: np.ndarray, ends: np.ndarray,
@@ -92,11 +98,12 @@ def line_texts(buf: np.ndarray, starts: np.ndarray, ends: np.ndarray,
 
 def rejects_table(lines: np.ndarray, reasons: np.ndarray, texts: pa.Array) -> pa.Table:
     """A REJECT_SCHEMA table from 1-based line numbers, reason names and texts."""
-    bad = set(np.unique(reasons).tolist()) - set(REJECT_REASONS)
+    names, codes = np.unique(np.asarray(reasons, dtype=object).astype(str), return_inverse=True)
+    bad = set(names.tolist()) - set(REJECT_REASONS)
     if bad:
         raise ValueError(f"unknown reject reasons {sorted(bad)}")
-    return pa.table({"raw_line": pa.array(lines, pa.int64()),
-                     "reason": pa.array(reasons, pa.string()),
+    return pa.table({"raw_line": from_numpy(np.asarray(lines), pa.int64()),
+                     "reason": coded_strings(codes.reshape(-1), names.tolist()),
                      "text": texts}, schema=REJECT_SCHEMA)
 
 

@@ -23,6 +23,7 @@ from sqlalchemy import select
 from archive.deliver.deliveries import delivery_dict, raw_files_of
 from archive.edits.log import edit_node, list_edits
 from archive.errors import UsageError
+from archive.ingest.read import raw_notes, with_notes
 from archive.lineage.common import plain, run_summary
 from archive.solve.run import get_run, manifest_inputs, run_manifest
 from archive.store.archive import Archive
@@ -63,7 +64,8 @@ def _cloud_fixes(arc: Archive, survey_id: int, cloud: pa.Table,
                                                RawFile.object_hash.in_(raw_hashes))
                          .order_by(RawFile.id)).all()
     raw = [{"id": r.id, "name": r.original_name, "hash": r.object_hash, "node": r.node,
-            "received_at": r.received_at, "received_by": r.received_by} for r in raws]
+            "received_at": r.received_at, "received_by": r.received_by,
+            "notes": raw_notes(r)} for r in raws]
     return {"fixes": counts, "fixes_by_part": _counts_by_part(cloud, rows), "raw_files": raw}
 
 
@@ -169,7 +171,7 @@ def trace_file(arc: Archive, path: str | Path) -> dict[str, Any]:
         "delivery": delivery_dict(d),
         "same_bytes_delivered": [x.id for x in found],
         "run": run_summary(arc, run),
-        "raw_files": raw_files_of(arc, d.survey_id, fix_hashes),
+        "raw_files": with_notes(arc, d.survey_id, raw_files_of(arc, d.survey_id, fix_hashes)),
         "edits": edits,
         "n_stations": lineage.get("delivery", {}).get("n_stations"),
         "survey": lineage.get("survey"),

@@ -27,6 +27,7 @@ from archive.qc import figures, html, notes
 from archive.qc.check import QcResult, qc_of, summary_rows
 from archive.qc.review_list import (
     BEYOND,
+    MAX_TABLE_ROWS,
     OCC_KEY,
     CloudReader,
     cloud_section,
@@ -78,6 +79,37 @@ def _summary_section(result: QcResult) -> str:
                  "marked the node itself; the sensor offset lowers it).</p>")
     body += "".join(f'<p class="note">{escape(n)}</p>' for n in result.notes[:4])
     return html.section("summary", "Summary against the check points", body)
+
+
+def _no_quality_section(data: RunData) -> str:
+    """Delivered stations that used fixes without quality information, and how many each."""
+    dl = delivered(data.positions)
+    if "n_no_quality" not in dl.column_names:
+        return ""  # a run made before the count was kept
+    n = dl["n_no_quality"].to_numpy(zero_copy_only=False)
+    used = dl["n_used"].to_numpy(zero_copy_only=False)
+    some = np.flatnonzero(n > 0)
+    if some.size == 0:
+        return ""
+    params = (data.manifest or {}).get("params", {})
+    setting = params.get("screen", {}).get("no_quality", "accept")
+    limit = params.get("flags", {}).get("max_no_quality_share", 0.5)
+    share = n[some] / np.maximum(used[some], 1)
+    order = some[np.argsort(-share, kind="stable")][:MAX_TABLE_ROWS]
+    cols = {c: dl[c].to_pylist() for c in ("line", "point", "index", "node")}
+    rows = [(f"{cols['line'][i]:g} / {cols['point'][i]:g}", cols["index"][i],
+             cols["node"][i], f"{int(n[i]):,}", f"{int(used[i]):,}",
+             html.pct(n[i] / max(used[i], 1))) for i in order.tolist()]
+    body = (f"<p>{some.size:,} of {len(n):,} delivered stations used fixes without quality "
+            "information (epochs of RMC or GLL sentences only: no fix quality, satellite "
+            f"count or HDOP), {int(n.sum()):,} fixes in all. The run's screen.no_quality is "
+            f"{escape(str(setting))}: such fixes are weighted as a typical fix of their own "
+            f"cloud. Where they are more than {html.pct(limit)} of the fixes used, the "
+            "station carries the flag quality-unknown.</p>"
+            + '<div class="scroll">' + html.table(
+                ["station (line / point)", "index", "node", "without quality", "fixes used",
+                 "share"], rows, numeric=(1, 3, 4, 5)) + "</div>")
+    return html.section("no-quality", "Fixes without quality information", body)
 
 
 def _lineage_section(data: RunData) -> str:
@@ -186,6 +218,7 @@ def _page(data: RunData, result: QcResult, figs: list[str], review: Any, clouds_
         f"<li>{escape(c)}</li>" for c in notes.CAUTIONS) + "</ul>", cls="caution")
     body = "".join([
         _verdict(result, beyond_n), cautions, _lineage_section(data), _summary_section(result),
+        _no_quality_section(data),
         html.section("figures", "Maps and distributions", LEGEND + "".join(figs)),
         html.section("review", f"Stations to review ({len(review):,})",
                      review_table(review, set(range(drawn))) + clouds_html),

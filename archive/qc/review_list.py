@@ -71,13 +71,14 @@ def review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
         rows.append((link, r.occupation, escape(str(r.node)),
                      escape(r.reasons.replace(";", ", ")),
                      html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
-                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}"))
+                     html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}",
+                     html.num(getattr(r, "n_no_quality", None), "{:,.0f}")))
     more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more stations are not listed; '
             "'nodekeep qc --json' lists every one.</p>" if len(df) > MAX_TABLE_ROWS else "")
     return ('<div class="scroll">' + html.table(
         ["station (line / point)", "index", "node", "reasons", "to check point (m)",
-         "to preplot (m)", "own R95 (m)", "fixes used", "rejected"], rows,
-        numeric=(1, 4, 5, 6, 7, 8), raw=(0, 2, 3)) + "</div>" + more)
+         "to preplot (m)", "own R95 (m)", "fixes used", "rejected", "without quality"], rows,
+        numeric=(1, 4, 5, 6, 7, 8, 9), raw=(0, 2, 3)) + "</div>" + more)
 
 
 def _station(r: Any) -> Station:

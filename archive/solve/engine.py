@@ -32,7 +32,7 @@ from archive.solve import flags as flagmod
 from archive.solve import stages
 from archive.solve.fixarrays import FixArrays
 from archive.solve.heights import Heights, Sampler, solve_heights
-from archive.solve.schema import POSITION_SCHEMA
+from archive.solve.schema import POSITION_SCHEMA, conform_positions
 from archive.solve.segments import seg_median
 from archive.solve.uncertainty import batch_covariance
 from archive.solve.windows import FOREVER, Windows
@@ -98,7 +98,7 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     order = np.lexsort((rows["part"], rows["t_start"], rows["node"].astype(str),
                         rows["index"], rows["point"], rows["line"],
                         (rows["kind"] == "unlogged").astype(np.int8)))
-    positions = _table({k: v[order] for k, v in rows.items()})
+    positions = conform_positions(_table({k: v[order] for k, v in rows.items()}), params)
     w = found.windows
     stats = {"n_fixes": len(screened.fx), "n_duplicates": screened.fx.n_duplicates,
              "n_windows": len(w), "n_unlogged": int((w.kind == "unlogged").sum()),
@@ -155,7 +155,8 @@ def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray
         {"n_used": est.n_used, "span_s": span,
          "unit_scale": np.where(occupied, est.robust.scale, 0.0), "moved": parts.moved[rw],
          "dist_preplot": pre["dist_preplot"], "dist_nearest": pre["dist_nearest"],
-         "dh": hts.dh, "off_model": hts.off_model, "kind": kind}, params)
+         "dh": hts.dh, "off_model": hts.off_model, "kind": kind,
+         "n_no_quality": est.n_no_quality}, params)
     split = parts.moves.split_us[rw]
     t_start = np.where(part == 2, split, w.start[rw])
     t_end = np.where(part == 1, split - 1, w.end[rw])
@@ -177,6 +178,7 @@ def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray
         "occupation": np.where(kind == "logged", w.occupation[rw], 0),
         "deployed": w.deployed[rw], "retrieved": w.retrieved[rw],
         "from_margins": found.from_margins[rw],
+        "n_no_quality": est.n_no_quality,
     }
     for key in ("sigma_e", "sigma_n", "corr_en", "ell_major", "ell_minor", "ell_bearing",
                 "r95", "n_eff", "spread", "span_s", "h_gnss", "dh"):

@@ -52,6 +52,8 @@ class FixArrays:
     raw_line: np.ndarray
     n_duplicates: int = 0
     src: np.ndarray | None = None  # row of the given table behind each sorted fix
+    no_quality: np.ndarray | None = None  # no fix quality, satellites or HDOP (all False
+    # for tables written before the column existed)
 
     def raw_hashes(self, fix: np.ndarray) -> list[str]:
         """Raw file hash of the given sorted fixes."""
@@ -78,7 +80,7 @@ class FixArrays:
         """The columns screening reads."""
         return {"quality": self.quality, "valid": self.valid, "fix_type": self.fix_type,
                 "n_sats": self.n_sats, "pdop": self.pdop, "hdop": self.hdop,
-                "lat": self.lat, "lon": self.lon}
+                "lat": self.lat, "lon": self.lon, "no_quality": self.no_quality}
 
 
 def _appearance_rank(raw_hash: pa.ChunkedArray) -> Callable[[np.ndarray], np.ndarray]:
@@ -124,6 +126,10 @@ def fix_arrays(table: pa.Table) -> FixArrays:
         return values if src is None else values[src]
 
     valid = table["valid"].to_numpy(zero_copy_only=False).astype(bool)
+    if "no_quality" in table.column_names:
+        nq = pc.fill_null(table["no_quality"], False).to_numpy(zero_copy_only=False).astype(bool)
+    else:
+        nq = np.zeros(table.num_rows, dtype=bool)
     return FixArrays(
         node_names=names, node_code=codes, t_us=t_raw.astype(np.int64),
         lat=col("lat"), lon=col("lon"), h_ell=col("h_ell"), h_msl=col("h_msl"),
@@ -132,4 +138,5 @@ def fix_arrays(table: pa.Table) -> FixArrays:
         fix_type=col("fix_type"), n_sats=col("n_sats"), pdop=col("pdop"), hdop=col("hdop"),
         raw_hash=table["raw_hash"], raw_line=raw_line.astype(np.int64), n_duplicates=n_dup,
         src=np.arange(len(codes)) if src is None else src,
+        no_quality=nq if src is None else nq[src],
     )

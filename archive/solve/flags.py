@@ -76,6 +76,8 @@ def flag_strings(cols: dict[str, np.ndarray], p: dict[str, Any]) -> np.ndarray:
     sigma0 = p["estimate"]["sigma0"]
     used = cols["n_used"]
     occupied = used > 0
+    unrated = cols.get("n_no_quality", np.zeros(len(used)))
+    share = f.get("max_no_quality_share", 0.5)  # absent from manifests of earlier runs
     tests = {
         "few-fixes": occupied & (used < f["min_fixes"]),
         "short-span": occupied & (cols["span_s"] < f["min_span_hours"] * 3600),
@@ -87,6 +89,7 @@ def flag_strings(cols: dict[str, np.ndarray], p: dict[str, Any]) -> np.ndarray:
         "off-model": cols["off_model"],
         "unlogged": cols["kind"] == "unlogged",
         "unoccupied": ~occupied,
+        "quality-unknown": occupied & (unrated > share * used),
     }
     assert list(tests) == list(FLAGS)
     out = np.full(len(used), "", dtype=object)

@@ -21,6 +21,7 @@ from sqlalchemy import select
 
 from archive.edits.log import exclude_spans_in_force
 from archive.errors import UsageError
+from archive.ingest.schema import conform_fixes
 from archive.solve.fixarrays import empty_fixes
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
@@ -207,11 +208,12 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
 
 def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
     """The fix tables of these objects, concatenated in the order given (schema of the
-    ingest contract). Give them in load order: repeated epochs keep the earlier file's fix."""
+    ingest contract, :func:`archive.ingest.schema.conform_fixes`: tables of every version
+    read alike). Give them in load order: repeated epochs keep the earlier file's fix."""
     if not hashes:
         return empty_fixes()
-    tables = [arc.objects.read_table(h) for h in hashes]
-    return pa.concat_tables(tables, promote_options="default")
+    tables = [conform_fixes(arc.objects.read_table(h)) for h in hashes]
+    return pa.concat_tables(tables)
 
 
 def check_objects(arc: Archive, manifest: dict[str, Any], *, rehash: bool = True) -> None:

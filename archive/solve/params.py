@@ -17,6 +17,7 @@ from typing import Any
 
 from archive.errors import InputError, UsageError
 
+NO_QUALITY = ("accept", "reject")
 UNCERTAINTY_METHODS = ("batch", "ar1")
 
 # section -> key -> (default, help). Order here is the order printed by ``nodekeep params``.
@@ -33,6 +34,8 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "min_sats": (4, "fewest satellites in use"),
         "max_pdop": (6.0, "largest PDOP kept"),
         "max_hdop": (4.0, "largest HDOP kept"),
+        "no_quality": ("accept", "fixes without quality information (RMC/GLL only): accept "
+                                 "(weighted by their cloud's spread) | reject"),
     },
     "estimate": {
         "estimator": ("huber", "robust estimator, one of:"),
@@ -65,6 +68,8 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "move_z": (4.0, "step must also exceed this many standard errors"),
         "far_from_plan": (20.0, "distance to the preplot station before 'far-from-plan', m"),
         "height_tol": (6.0, "|GNSS - model height| before 'height-mismatch', m"),
+        "max_no_quality_share": (0.5, "share of used fixes without quality information "
+                                      "beyond which 'quality-unknown'"),
     },
     "clusters": {
         "radius": (10.0, "stationary cluster radius R, m"),
@@ -125,6 +130,11 @@ def _validate(p: dict[str, dict[str, Any]], source: str) -> None:
     if est["estimator"] not in ESTIMATORS:
         raise UsageError(f"{source}: estimate.estimator {est['estimator']!r} is unknown",
                          hint=f"use one of {', '.join(ESTIMATORS.names())}")
+    if p["screen"]["no_quality"] not in NO_QUALITY:
+        raise UsageError(f"{source}: screen.no_quality {p['screen']['no_quality']!r} is unknown",
+                         hint=f"use one of {', '.join(NO_QUALITY)}")
+    if not 0.0 <= p["flags"]["max_no_quality_share"] <= 1.0:
+        raise UsageError(f"{source}: flags.max_no_quality_share must be in [0, 1]")
     if p["uncertainty"]["method"] not in UNCERTAINTY_METHODS:
         raise UsageError(f"{source}: uncertainty.method {p['uncertainty']['method']!r} is unknown",
                          hint=f"use one of {', '.join(UNCERTAINTY_METHODS)}")

@@ -152,10 +152,12 @@ def _add_stats(total: dict[str, Any], more: dict[str, Any]) -> None:
 
 def _combine(tables: list[pa.Table], manifest: dict[str, Any]) -> pa.Table:
     """The partitions' positions as one table in the run's sort order, in the schema of
-    the manifest's format (format 1 runs have no occupation columns)."""
-    from archive.solve.schema import POSITION_SCHEMA, POSITION_SCHEMA_V1
+    the manifest's format (format 1 runs have no occupation columns) and without the
+    columns its parameters predate (:func:`~archive.solve.schema.conform_positions`)."""
+    from archive.solve.schema import POSITION_SCHEMA, POSITION_SCHEMA_V1, conform_positions
 
     table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
+    table = conform_positions(table, manifest["params"])
     table = table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
     if manifest.get("format", 1) < 2:
         table = table.select(POSITION_SCHEMA_V1.names).cast(POSITION_SCHEMA_V1)
@@ -380,4 +382,7 @@ def station_solution(arc: Archive, survey_id: int, line: float, point: float,
                          + f" is not in run {run.id[:12]}" + (f"; it has {have}" if have else ""),
                          hint="check the line and point numbers, or choose a run with --run")
     n_occ = len({r["occupation"] for r in rows if r["occupation"] is not None})
-    return {"run": run.id, "n_occupations": n_occ, "rows": rows}
+    screen = run_manifest(arc, run)["params"].get("screen", {})
+    # runs made before the parameter existed accepted every fix that passed the screen
+    return {"run": run.id, "n_occupations": n_occ, "rows": rows,
+            "no_quality": screen.get("no_quality", "accept")}

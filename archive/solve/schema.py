@@ -73,9 +73,27 @@ POSITION_SCHEMA = pa.schema(
      pa.field("deployed", UTC_TIME),
      pa.field("retrieved", UTC_TIME),  # null: still in the ground (or unlogged)
      # the settled window held no usable fix, so the fixes of the settle margins were used
-     pa.field("from_margins", pa.bool_(), nullable=False)],
+     pa.field("from_margins", pa.bool_(), nullable=False),
+     # used fixes without quality information (RMC/GLL only); absent from tables of runs
+     # made before it existed (see ADDED_COLUMNS)
+     pa.field("n_no_quality", pa.int64(), nullable=False)],
     metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "2"},
 )
+
+# Columns added to the table after runs were first recorded, with the parameter whose
+# presence in a run's resolved parameters says the run knew of them ([section, key]).
+# A run whose manifest predates one leaves it out, so that 'reproduce' gives its table
+# bit for bit.
+ADDED_COLUMNS = {"n_no_quality": ("screen", "no_quality")}
+
+
+def conform_positions(table: pa.Table, params: dict) -> pa.Table:
+    """``table`` (of POSITION_SCHEMA) as a run with these resolved parameters writes it:
+    without the :data:`ADDED_COLUMNS` its parameters predate."""
+    drop = [c for c, (sec, key) in ADDED_COLUMNS.items()
+            if key not in params.get(sec, {}) and c in table.column_names]
+    return table.drop_columns(drop) if drop else table
+
 
 # Review flags: key -> what a reviewer should understand.
 FLAGS = {
@@ -89,4 +107,6 @@ FLAGS = {
     "off-model": "the position is outside the elevation model or on nodata",
     "unlogged": "stationary cluster with no logged deployment",
     "unoccupied": "a deployed station with no usable fixes",
+    "quality-unknown": "most used fixes carry no quality information (RMC/GLL only): "
+                       "weighted by the cloud's own spread",
 }

@@ -22,7 +22,7 @@ from archive.solve.clusters import find_clusters
 from archive.solve.fixarrays import FixArrays, fix_arrays
 from archive.solve.moves import MoveResult, detect_moves
 from archive.solve.robust import RobustResult, robust_centre
-from archive.solve.screen import mark_excluded, screen_codes
+from archive.solve.screen import cloud_hdop, mark_excluded, screen_codes
 from archive.solve.segments import from_local, seg_median, seg_starts, to_local
 from archive.solve.uncertainty import (
     CentreCovariance,
@@ -185,6 +185,7 @@ class Estimate:
     n_total: np.ndarray
     occupied: np.ndarray  # bool per row: at least one used fix
     median_hdop: np.ndarray
+    n_no_quality: np.ndarray  # used fixes without quality information, per row
 
 
 def estimate(s: Screened, c: Clouds, parts: Parts, from_margins: np.ndarray,
@@ -195,7 +196,9 @@ def estimate(s: Screened, c: Clouds, parts: Parts, from_margins: np.ndarray,
     cap = est["scale_sample"]
     kept_row = parts.member_row[c.kept]
     e, n = c.east[c.kept], c.north[c.kept]
-    hdop = s.fx.hdop[c.kept_fix]
+    # fixes without quality information weigh as a typical fix of their own cloud
+    unrated = s.fx.no_quality[c.kept_fix] if s.fx.no_quality is not None else None
+    hdop = cloud_hdop(s.fx.hdop[c.kept_fix], unrated, kept_row, parts.n_rows, cap)
     rr = robust_centre([e, n], hdop, kept_row, parts.n_rows, estimator=est["estimator"],
                        huber_k=est["huber_k"], tukey_c=est["tukey_c"],
                        reject_quantile=est["reject_quantile"], iterations=est["iterations"],
@@ -221,6 +224,9 @@ def estimate(s: Screened, c: Clouds, parts: Parts, from_margins: np.ndarray,
     floor2 = unc["floor"] ** 2
     vee, vnn, ven = cov.vee + floor2, cov.vnn + floor2, cov.ven
     median_hdop = seg_median(np.nan_to_num(hdop[used], nan=1.0), used_row, parts.n_rows, cap)
+    n_no_quality = (np.bincount(used_row, weights=unrated[used], minlength=parts.n_rows)
+                    .astype(np.int64) if unrated is not None
+                    else np.zeros(parts.n_rows, dtype=np.int64))
     row_margins = from_margins[parts.row_window]
     if row_margins.any():
         # Margin fixes span minutes, far less than the error correlation time: their mean is
@@ -229,7 +235,7 @@ def estimate(s: Screened, c: Clouds, parts: Parts, from_margins: np.ndarray,
         vee = np.where(row_margins, np.maximum(vee, single + floor2), vee)
         vnn = np.where(row_margins, np.maximum(vnn, single + floor2), vnn)
     return Estimate(rr, kept_row, used, used_row, t_s, cov, vee, vnn, ven, n_used, n_total,
-                    n_used > 0, median_hdop)
+                    n_used > 0, median_hdop, n_no_quality)
 
 
 @dataclass

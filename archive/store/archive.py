@@ -271,6 +271,20 @@ class Archive:
             stmt = sqlite_insert(StoredObject).values(**values).on_conflict_do_nothing()
         session.execute(stmt)
 
+    def register_objects(self, session: Session, items: list[tuple[str, int, str]]) -> None:
+        """:meth:`register_object` for many ``(hash, size, kind)`` at once, in one
+        statement (the first of a repeated hash wins, as with single calls)."""
+        seen: dict[str, tuple[str, int, str]] = {}
+        for h, size, kind in items:
+            seen.setdefault(h, (h, size, kind))
+        if not seen:
+            return
+        now = utcnow()
+        values = [{"hash": h, "size": size, "kind": kind, "created_at": now}
+                  for h, size, kind in seen.values()]
+        insert = pg_insert if self.engine.dialect.name == "postgresql" else sqlite_insert
+        session.execute(insert(StoredObject).values(values).on_conflict_do_nothing())
+
     def survey(self, session: Session, name: str | None = None) -> Survey:
         """The survey called ``name``, or the only survey when ``name`` is None."""
         if name is not None:

@@ -26,7 +26,7 @@ import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
-from archive.errors import ObjectDamaged, Refused, StorageError
+from archive.errors import IntegrityError, ObjectDamaged, Refused, StorageError
 from archive.store.hashing import CHUNK, is_hash
 
 # errno values of a storage that refuses writes: disk full, quota, read-only, permission.
@@ -303,6 +303,83 @@ class ObjectStore:
         finally:
             self._fs.delete_file(tmp)
         return h, size
+
+    def temporary(self, prefix: str = "put-") -> Path:
+        """A new empty temporary file for an object being written elsewhere (a loading
+        process writes its raw copy and tables there, then :meth:`adopt` names them).
+        On a local store it lies in the store's own ``tmp`` folder (same filesystem, so
+        adopting is a rename); on a remote store in the system's temporary folder."""
+        self._refuse_if_read_only()
+        try:
+            if self.root is not None:
+                tmpdir = self.root / "tmp"
+                tmpdir.mkdir(parents=True, exist_ok=True)
+            else:
+                tmpdir = Path(tempfile.gettempdir())
+            fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix=prefix)
+        except OSError as exc:
+            if exc.errno in STORAGE_ERRNOS:
+                raise StorageError(
+                    f"cannot write to the object store {self.url}: {exc.strerror}",
+                    hint="nothing was recorded; free space or make the folder writable "
+                         "and run the command again") from exc
+            raise
+        os.close(fd)
+        return Path(tmp)
+
+    def adopt(self, tmp: str | Path, h: str, size: int, *, sync_dir: bool = True) -> bool:
+        """Make the finished temporary file ``tmp`` the object ``h`` (its SHA-256, computed
+        by whoever wrote it, and already flushed to disk). Returns False when that object
+        was already stored (``tmp`` is removed). On a local store this is a rename, and
+        the folder is flushed unless ``sync_dir`` is false (the caller then calls
+        :meth:`sync_folders` for many objects at once); a remote store uploads ``tmp``.
+        A storage that refuses the write raises :class:`StorageError`; ``tmp`` is removed
+        either way."""
+        self._refuse_if_read_only()
+        tmp = Path(tmp)
+        try:
+            if self.root is None:
+                with open(tmp, "rb") as fh:
+                    got, _ = self._put_remote(fh)
+                if got != h:
+                    raise IntegrityError(f"temporary object {tmp} does not hash to {h}")
+                return True
+            final = self.root / fanout(h)
+            if final.is_file():
+                return False
+            final.parent.mkdir(parents=True, exist_ok=True)
+            os.chmod(tmp, stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
+            os.replace(tmp, final)
+            if sync_dir:
+                _fsync_dir(final.parent)
+            return True
+        except OSError as exc:
+            if exc.errno in STORAGE_ERRNOS:
+                raise StorageError(
+                    f"cannot write to the object store {self.url}: {exc.strerror}",
+                    hint="this write was not recorded; free space or make the folder "
+                         "writable and run the command again") from exc
+            raise
+        finally:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+
+    def sync_folders(self, hashes: list[str]) -> None:
+        """Flush the folders of freshly adopted objects (once each), so their names survive
+        a power loss before the catalog records them."""
+        if self.root is None:
+            return
+        folders = sorted({(self.root / fanout(h)).parent for h in hashes})
+        if len(folders) < 4:
+            for folder in folders:
+                _fsync_dir(folder)
+            return
+        # Flushed side by side: the file system commits concurrent flushes together, which
+        # on a journalling file system is many times faster than one after the other.
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(min(16, len(folders)), thread_name_prefix="nodekeep-sync") as ex:
+            list(ex.map(_fsync_dir, folders))
 
 
 def _fsync_dir(path: Path) -> None:

@@ -22,11 +22,15 @@ SAMPLE = write_nmea(np.array(["2024-03-01T23:59:58", "2024-03-01T23:59:59",
 
 
 def n_records(data: bytes) -> int:
-    """Records between line ends (CR, LF or CR LF), counted independently of the reader."""
+    """Records counted independently of the reader: the lines between line ends (CR, LF or
+    CR LF), plus one for every '$' after the first of a line (a line holding several
+    sentences, joined by a lost line end, gives one record per sentence)."""
     if not data:
         return 0
     parts = re.split(rb"\r\n|\r|\n", data)
-    return len(parts) - (1 if parts[-1] == b"" else 0)
+    if parts[-1] == b"":
+        parts = parts[:-1]
+    return sum(1 + max(0, p.count(b"$") - 1) for p in parts)
 
 
 def check(r, data: bytes) -> None:

@@ -62,7 +62,7 @@ def test_load_stores_raw_fixes_rejects_and_ledger(survey_arc, logs):
     first = rows[0]
     # raw bytes kept byte for byte under their hash
     assert arc.objects.read_bytes(first.object_hash) == (logs / "KF10001.nmea").read_bytes()
-    assert first.node == "KF10001" and first.format == "nmea" and first.parser == "nmea-1"
+    assert first.node == "KF10001" and first.format == "nmea" and first.parser == "nmea-2"
     assert first.n_lines == 1801 and first.n_accepted == 1800 and first.n_rejected == 1
     assert first.n_accepted + first.n_rejected + first.n_ignored == first.n_lines
     assert first.n_fixes == 600 and first.n_valid == 540
@@ -106,7 +106,7 @@ def test_bad_files_fail_alone(survey_arc, logs):
     assert status["KF10001.nmea"][0] == status["KF10002.nmea"][0] == "loaded"
     assert "photo.jpg: binary data" in status["photo.jpg"][1]
     assert "empty.nmea: the file is empty" in status["empty.nmea"][1]
-    assert "sheet.csv: no usable GGA sentence" in status["sheet.csv"][1]
+    assert "sheet.csv: no usable position sentence" in status["sheet.csv"][1]
     assert "--date" in status["ggaonly.nmea"][1]
     assert not report.ok and len(report.failed) == 4
     with arc.session() as s:

@@ -69,10 +69,18 @@ def test_depriest_gga_rmc_gsa():
 
 
 def test_nmea_revealed_examples_mixed_talkers_and_rollover():
-    # R2 (00:10:31, 10 Jan 2017) dates G2 (00:10:43) of the following epoch.
+    # R2 (00:10:31, 10 Jan 2017) is an epoch of its own (a position without quality
+    # information) and dates G2 (00:10:43) of the following epoch.
     r = parse(R2, G2, S2)
-    assert r.n_accepted == 3
-    f = row(r)
+    assert r.n_accepted == 3 and r.fixes.num_rows == 2
+    first = row(r, 0)
+    assert first["time"] == dt.datetime(2017, 1, 10, 0, 10, 31, tzinfo=dt.UTC)
+    assert first["sentence"] == "RMC" and first["no_quality"] and first["quality"] == -1
+    # "NMEA Revealed" RMC example: 4404.13993,N 12118.86023,W
+    assert first["lat"] == pytest.approx(44 + 4.13993 / 60, abs=1e-12)
+    assert first["lon"] == pytest.approx(-(121 + 18.86023 / 60), abs=1e-12)
+    f = row(r, 1)
+    assert f["sentence"] == "GGA" and not f["no_quality"]
     assert f["time"] == dt.datetime(2017, 1, 10, 0, 10, 43, tzinfo=dt.UTC)
     assert f["lat"] == pytest.approx(44 + 4.14036 / 60, abs=1e-12)
     assert f["lon"] == pytest.approx(-(121 + 18.85961 / 60), abs=1e-12)  # W is negative
@@ -96,7 +104,10 @@ def test_published_checksums_are_checked():
     bad = G1.replace(b"545.4", b"545.5")
     r = parse(bad, R1)
     assert r.n_rejected == 1 and r.rejects.column("reason").to_pylist() == ["checksum"]
-    assert r.fixes.num_rows == 0
+    # the RMC of the same second still places the epoch, marked as without quality
+    f = row(r)
+    assert r.fixes.num_rows == 1 and f["sentence"] == "RMC" and f["no_quality"]
+    assert f["raw_line"] == 2 and f["n_sats"] is None and f["hdop"] is None
     # our checksum helper reproduces the published ones (DePriest 47, gpsd 7B)
     assert nmea(G1[3:-3].decode()) == G1 and nmea(R2[3:-3].decode(), "GN") == R2
 
@@ -184,7 +195,8 @@ def test_several_gsa_per_epoch_and_talkers():
 
 @pytest.mark.parametrize("end", [b"\r\n", b"\n", b"\r"])
 def test_line_ends(end):
-    r = parse(G1, S1, R1, b"", G1, end=end)
+    later = nmea(G1[3:-3].decode().replace("123519", "123520"))  # the next second
+    r = parse(G1, S1, R1, b"", later, end=end)
     assert (r.n_lines, r.n_accepted, r.n_ignored) == (5, 4, 1)
     assert r.fixes.column("raw_line").to_pylist() == [1, 5]
 

@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
-from archive.ingest.schema import FIX_SCHEMA
+from archive.ingest.schema import FIX_SCHEMA_V1, conform_fixes
 from archive.solve.schema import POSITION_SCHEMA
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
@@ -59,13 +59,13 @@ def add_raw_file(arc: Archive, sid: int, node: str, name: str, lat: float, lon: 
     raw_hash, raw_size = arc.objects.put_bytes(raw)
     t0 = datetime(2024, 3, 10, tzinfo=UTC)
     n = 5
-    fixes = pa.table({
+    fixes = conform_fixes(pa.table({
         "node": [node] * n, "time": [t0 + timedelta(seconds=30 * i) for i in range(n)],
         "lat": [lat] * n, "lon": [lon] * n, "h_ell": [400.0] * n, "h_msl": [420.0] * n,
         "geoid_sep": [-20.0] * n, "quality": [1] * n, "fix_type": [3] * n,
         "valid": [True] * n, "n_sats": [9] * n, "pdop": [1.5] * n, "hdop": [0.9] * n,
         "vdop": [1.2] * n, "raw_hash": [raw_hash] * n, "raw_line": list(range(2, 2 + n)),
-    }, schema=FIX_SCHEMA)
+    }, schema=FIX_SCHEMA_V1))
     fixes_hash, fixes_size = arc.objects.put_table(fixes)
     with arc.transaction() as tx:
         arc.register_object(tx, raw_hash, raw_size, "raw")
@@ -102,6 +102,7 @@ def positions_table(final: pa.Table, flags: list[str] | None = None,
         "occupation": d["index"], "deployed": d["deployed"], "retrieved": d["retrieved"],
         "from_margins": [False] * n,
     }
+    cols["n_no_quality"] = [0] * n
     return pa.table(cols, schema=POSITION_SCHEMA)
 
 

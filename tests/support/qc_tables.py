@@ -34,6 +34,7 @@ def positions_table(rows: Sequence[dict]) -> pa.Table:
         "index": 1, "occupation": 1, "deployed": T0 - timedelta(minutes=30),
         "retrieved": T0 + timedelta(days=3, minutes=30), "from_margins": False,
     }
+    defaults["n_no_quality"] = 0
     cols = {}
     for f in POSITION_SCHEMA:
         vals = [r.get(f.name, defaults.get(f.name)) for r in rows]

@@ -1,0 +1,54 @@
+"""Processes that parse logs, started early so that their start-up overlaps the caller's.
+
+A new process needs about half a second before it reads its first byte: numba's runtime and
+the cached compiled reader load on first use. :func:`prestart` forks the parsing processes
+at once and has each load the reader while the caller goes on (opening the catalog, looking
+up what is loaded); :func:`archive.ingest.load.load_fix_files` takes them with
+:func:`take`. Only the standard library is imported here, so calling it first costs nothing.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import os
+from concurrent.futures import ProcessPoolExecutor
+
+_POOL: ProcessPoolExecutor | None = None
+_SIZE = 0
+_SAMPLE = (b"$GPGGA,123519,4807.038,N,01131.000,E,1,08,0.9,545.4,M,46.9,M,,*47\r\n"
+           b"$GPRMC,123519,A,4807.038,N,01131.000,E,022.4,084.4,230394,003.1,W*6A\r\n")
+
+
+def context():
+    """The start method of parsing processes: fork where there is one (they inherit what is
+    loaded), else spawn."""
+    import multiprocessing as mp
+
+    return mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
+
+
+def warm() -> None:
+    """Load the compiled reader by reading two sentences (DePriest's GGA and RMC examples)."""
+    from archive.ingest.nmea import parse_nmea
+
+    parse_nmea(_SAMPLE, node="warm-up", raw_hash="0" * 64, date=dt.date(2000, 1, 1))
+
+
+def prestart(n: int) -> None:
+    """Start ``n`` parsing processes now, each loading the reader (no-op if started)."""
+    global _POOL, _SIZE
+    if _POOL is not None or n < 1:
+        return
+    _POOL = ProcessPoolExecutor(n, mp_context=context(), initializer=warm)
+    _SIZE = n
+    for _ in range(n):  # a process starts per task submitted, up to n
+        _POOL.submit(os.getpid)
+
+
+def take() -> tuple[ProcessPoolExecutor | None, int]:
+    """The started processes and their number (``(None, 0)`` if none); they are the
+    caller's to shut down."""
+    global _POOL, _SIZE
+    pool, size = _POOL, _SIZE
+    _POOL, _SIZE = None, 0
+    return pool, size
