@@ -34,13 +34,13 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import select
+from sqlalchemy import select, update
 
 from archive.errors import Refused, StorageError, UsageError
 from archive.ingest.paths import expand_paths, node_for
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
-from archive.store.models import InputVersion, LedgerHead, RawFile, utcnow
+from archive.store.models import InputVersion, LedgerHead, RawFile, StoredObject, utcnow
 
 FORMATS = ("nmea", "delimited")
 PARSERS = {"nmea": "nmea-2", "delimited": "delimited-2"}
@@ -336,6 +336,12 @@ class _Recorder:
                 RawFile.survey_id == self.survey_id, RawFile.object_hash.in_(hashes))).all())
             arc.register_objects(tx, [item for o, res in batch if o.raw_hash not in prior
                                       and res["ok"] for item in self._objects_of(res)])
+            # raw bytes kept from an earlier attempt that failed now belong to a loaded log
+            loaded_raw = [o.raw_hash for o, res in batch if o.raw_hash not in prior and res["ok"]]
+            if loaded_raw:
+                tx.execute(update(StoredObject).where(StoredObject.hash.in_(loaded_raw),
+                                                      StoredObject.kind == "raw-failed")
+                           .values(kind="raw"))
             for o, res in batch:
                 if o.raw_hash in prior:
                     done.append((o, "already", prior[o.raw_hash]))

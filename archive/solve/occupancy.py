@@ -85,7 +85,7 @@ def _from_rows(positions: pa.Table) -> dict[str, np.ndarray]:
 
 
 def upgrade_positions(positions: pa.Table, deployments: pa.Table | None) -> pa.Table:
-    """``positions`` in :data:`POSITION_SCHEMA`: a v1 table gets its occupation columns from
+    """``positions`` with the occupation columns of :data:`POSITION_SCHEMA`: a v1 table gets its occupation columns from
     ``deployments`` (the run's own deployments table), or from its rows when there is none."""
     if all(c in positions.column_names for c in UPGRADE_COLUMNS):
         return positions
@@ -99,7 +99,11 @@ def upgrade_positions(positions: pa.Table, deployments: pa.Table | None) -> pa.T
         arrays.append(pa.array(v, pa.int64(), mask=v == NULL_US).cast(
             POSITION_SCHEMA.field(name).type))
     arrays.append(pa.array(np.zeros(n, dtype=bool)))
-    return pa.Table.from_arrays(arrays, schema=POSITION_SCHEMA)
+    # the v1 columns, then the occupation columns (columns added later stay absent, as in
+    # any run that predates them: see schema.ADDED_COLUMNS)
+    schema = pa.schema([*positions.schema, *(POSITION_SCHEMA.field(c) for c in UPGRADE_COLUMNS)],
+                       metadata=POSITION_SCHEMA.metadata)
+    return pa.Table.from_arrays(arrays, schema=schema)
 
 
 def run_occupations(arc: Any, run: Any) -> pa.Table:

@@ -234,3 +234,26 @@ def test_failed_files_are_kept_and_ledgered(survey_arc, logs):
     assert got["photo.jpg"]["counts"]["n_lines"] == photo.n_lines
     assert got["empty.nmea"]["raw"] == empty.raw_hash
     assert "the file is empty" in got["empty.nmea"]["error"]
+
+
+def test_raw_bytes_of_a_failed_attempt_become_a_loaded_log(survey_arc, tmp_path):
+    """A log that failed with the wrong column profile keeps its raw bytes (raw-failed);
+    loaded again with the right profile, the same object is the loaded log's raw copy."""
+    log = tmp_path / "KF30004.csv"
+    log.write_text("t,lat,lon,q\n2024-03-01T00:00:00Z,35.1,-101.2,1\n"
+                   "2024-03-01T00:00:01Z,35.1,-101.2,4\n")
+    wrong = tmp_path / "wrong.toml"
+    wrong.write_text('[columns]\ntime = "time"\nlat = "lat"\nlon = "lon"\n')
+    right = tmp_path / "right.toml"
+    right.write_text('[columns]\ntime = "t"\nlat = "lat"\nlon = "lon"\nquality = "q"\n')
+    sid = survey_id(survey_arc)
+    first = load_fix_files(survey_arc, sid, [log], fmt="delimited", profile_path=wrong)
+    assert [f.status for f in first.files] == ["failed"]
+    h = first.files[0].raw_hash
+    with survey_arc.session() as s:
+        assert s.get(StoredObject, h).kind == "raw-failed"
+    second = load_fix_files(survey_arc, sid, [log], fmt="delimited", profile_path=right)
+    assert [f.status for f in second.files] == ["loaded"] and second.files[0].raw_hash == h
+    with survey_arc.session() as s:
+        assert s.get(StoredObject, h).kind == "raw"
+    assert verify_archive(survey_arc).ok

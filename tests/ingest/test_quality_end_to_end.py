@@ -17,7 +17,7 @@ import pytest
 from pyproj import Transformer
 
 from archive.ingest.nmea_write import write_nmea
-from tests.conftest import SURVEY_EPSG, invoke
+from tests.support.cli import SURVEY_EPSG, invoke
 
 T0 = np.datetime64("2019-04-07T00:00:00", "us")
 N = 1800  # 30 minutes at 1 Hz

@@ -397,3 +397,40 @@ def test_missing_postgres_module(tmp_path: Path):
         'objects = "objects"\n')
     done = run([sys.executable, "-c", HIDE_PSYCOPG, "-A", str(root), "runs"])
     one_line(done, ENVIRONMENT, "psycopg", "pip install 'nodekeep[postgres]'")
+
+
+def test_object_store_fills_while_workers_write_fixes(tmp_path: Path, tmpfs):
+    """Parsing processes write the fix tables; the store fills part way through the harvest:
+    no good log is recorded as failed, and the re-run after freeing space loads them all."""
+    from archive.store.models import LedgerEvent, StoredObject
+    from tests.reliability.logs import write_logs
+    from tests.support.reliability import make_survey_archive
+
+    objects = tmpfs("objects", "3m")
+    root = make_survey_archive(tmp_path / "archive", None)
+    cfg = root / "nodekeep.toml"
+    cfg.write_text(cfg.read_text().replace('objects = "objects"', f'objects = "{objects}"'))
+    logs = write_logs(tmp_path / "logs", 12, 3000)  # 12 x 0.5 MB raw, plus fix tables
+    done = run(cli_argv(root, "load", "fixes", "--workers", "2", "--quiet",
+                        str(tmp_path / "logs")))
+    one_line(done, ENVIRONMENT, "No space left on device")
+
+    def state() -> tuple[int, int, set[str]]:
+        with Archive.open(root) as arc, arc.session() as s:
+            failed = s.scalar(select(func.count()).select_from(LedgerEvent)
+                              .where(LedgerEvent.action == "load.fixes.failed"))
+            loaded = s.scalar(select(func.count()).select_from(RawFile))
+            kinds = set(s.scalars(select(StoredObject.kind)))
+        return failed, loaded, kinds
+
+    failed, loaded, _ = state()
+    assert failed == 0 and loaded < len(logs)
+    assert list((objects / "tmp").iterdir()) == []
+    assert verify_json(root)["ok"]
+    subprocess.run(["mount", "-o", "remount,size=40m", str(objects)], check=True)
+    done = run(cli_argv(root, "load", "fixes", "--workers", "2", "--quiet",
+                        str(tmp_path / "logs")))
+    assert done.returncode == 0, done.stderr
+    failed, loaded, kinds = state()
+    assert failed == 0 and loaded == len(logs) and "raw-failed" not in kinds
+    assert verify_json(root)["ok"]

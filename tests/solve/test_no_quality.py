@@ -5,8 +5,6 @@ their positions bit for bit."""
 from __future__ import annotations
 
 import copy
-import shutil
-from pathlib import Path
 
 import numpy as np
 import pyarrow as pa
@@ -20,8 +18,6 @@ from archive.solve.params import default_params, resolve_params
 from archive.solve.schema import POSITION_SCHEMA
 from archive.solve.screen import SCREEN_REASONS, cloud_hdop, screen_codes
 from tests.solve.test_screen import _cols
-
-SAVED = Path(__file__).resolve().parents[1] / "store" / "saved" / "rev0001-run"
 
 
 def old_params() -> dict:
@@ -130,24 +126,3 @@ def test_parameters_of_an_old_run_give_its_table(small_sim):
                       sim.meta["epsg"]).positions
     assert "n_no_quality" in new.column_names and "n_no_quality" not in old.column_names
     assert new.drop_columns(["n_no_quality"]).equals(old)
-
-
-def test_saved_run_of_an_earlier_version_reproduces_bit_for_bit(tmp_path):
-    from archive.lineage.reproduce import reproduce
-    from archive.solve.run import list_runs
-    from archive.store.archive import Archive
-
-    root = tmp_path / "saved"
-    shutil.copytree(SAVED, root)
-    arc = Archive.open(root, actor="tester")
-    try:
-        (run,) = list_runs(arc, _survey(arc))
-        res = reproduce(arc, run["id"])
-        assert res["identical"], res.get("what_differs")
-    finally:
-        arc.close()
-
-
-def _survey(arc) -> int:
-    with arc.session() as s:
-        return arc.survey(s).id
