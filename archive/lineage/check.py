@@ -120,7 +120,7 @@ def _ledgered_digest(session: Any, row: Delivery) -> str | None:
     for ev in session.scalars(select(LedgerEvent).where(LedgerEvent.action == "deliver")
                               .order_by(LedgerEvent.seq)):
         try:
-            payload = json.loads(ev.payload)
+            payload = json.loads(ev.payload or "{}")
         except ValueError:
             continue
         for r in payload.get("rows", []) if isinstance(payload, dict) else []:

@@ -6,6 +6,13 @@ Writers lock the single ``ledger_head`` row (``SELECT ... FOR UPDATE`` on Postgr
 SQLite write transaction already holds the database write lock), so the chain never forks.
 Catalog rows written by the same transaction are summarised in the payload by their row
 digest, which lets ``verify`` detect a row changed behind the archive's back.
+
+Two hash schemes exist. Scheme 1 (events written before nodekeep 0.4) hashes the payload
+text itself. Scheme 2, written by every new event, hashes the payload's SHA-256 instead and
+adds the database session user (PostgreSQL's ``session_user``: who the server says is
+connected, beside the actor the command declared; None on SQLite). Hashing the payload's
+digest rather than its text lets a custody bundle carry an event it does not need as its
+digest alone and still recompute every link of the chain (docs/custody.md).
 """
 
 from __future__ import annotations
@@ -17,17 +24,23 @@ from typing import Any
 from sqlalchemy import inspect, select
 from sqlalchemy.orm import Session
 
-from archive.store.hashing import canonical_hash, canonical_json
+from archive.store.hashing import canonical_hash, canonical_json, sha256_bytes
 from archive.store.models import Base, LedgerEvent, LedgerHead, utcnow
 
 GENESIS = "0" * 64
+SCHEME = 2
+"""The hash scheme of new events (see module doc)."""
+BUNDLE_ACTION = "bundle.made"
+"""The event a custody bundle closes its ledger with; its payload declares which earlier
+events the bundle carries reduced to their digest (``reduced``, ranges of sequence numbers)
+and which rows recorded by events it carries whole it leaves out (``left_out``)."""
 
 
 def event_hash(
     seq: int, at: datetime, actor: str, action: str, survey_id: int | None, payload: str,
     prev_hash: str,
 ) -> str:
-    """Hash of an event over its canonical fields (the payload as stored text)."""
+    """Scheme-1 hash of an event over its canonical fields (the payload as stored text)."""
     return canonical_hash(
         {
             "seq": seq,
@@ -39,6 +52,63 @@ def event_hash(
             "prev": prev_hash,
         }
     )
+
+
+def payload_digest(payload: str) -> str:
+    """SHA-256 of a payload's stored text (UTF-8)."""
+    return sha256_bytes(payload.encode("utf-8"))
+
+
+def event_hash_v2(
+    seq: int, at: datetime, actor: str, db_user: str | None, action: str,
+    survey_id: int | None, digest: str, prev_hash: str,
+) -> str:
+    """Scheme-2 hash of an event: its fields, the payload's SHA-256 and the session user."""
+    return canonical_hash(
+        {
+            "scheme": 2,
+            "seq": seq,
+            "at": at.isoformat(),
+            "actor": actor,
+            "db_user": db_user,
+            "action": action,
+            "survey": survey_id,
+            "payload_sha256": digest,
+            "prev": prev_hash,
+        }
+    )
+
+
+def hash_of(ev: LedgerEvent) -> str | None:
+    """The hash an event's content gives under its scheme (None when it cannot be
+    computed: a scheme-1 event without its payload, or an unknown scheme).
+
+    A scheme-2 event carried with its payload is hashed over that payload's digest, so a
+    changed payload shows as a wrong hash; one carried without it, over the recorded digest.
+    """
+    if (ev.scheme or 1) == 1:
+        if ev.payload is None:
+            return None
+        return event_hash(ev.seq, ev.at, ev.actor, ev.action, ev.survey_id, ev.payload,
+                          ev.prev_hash)
+    if ev.scheme == 2:
+        digest = payload_digest(ev.payload) if ev.payload is not None else ev.payload_digest
+        if digest is None:
+            return None
+        return event_hash_v2(ev.seq, ev.at, ev.actor, ev.db_user, ev.action, ev.survey_id,
+                             digest, ev.prev_hash)
+    return None
+
+
+def session_user(session: Session) -> str | None:
+    """The database session user as the server reports it (PostgreSQL), else None."""
+    conn = session.connection()
+    if conn.dialect.name != "postgresql":
+        return None
+    info = conn.connection.info  # per driver connection: the login does not change
+    if "nodekeep_session_user" not in info:
+        info["nodekeep_session_user"] = conn.exec_driver_sql("SELECT session_user").scalar()
+    return info["nodekeep_session_user"]
 
 
 def row_columns(row: Base) -> list[str]:
@@ -102,10 +172,12 @@ def append(
     text = canonical_json(payload).decode("utf-8")
     at = utcnow()
     seq = prev_seq + 1
-    h = event_hash(seq, at, actor, action, survey_id, text, prev_hash)
+    digest = payload_digest(text)
+    db_user = session_user(session)
+    h = event_hash_v2(seq, at, actor, db_user, action, survey_id, digest, prev_hash)
     event = LedgerEvent(
-        seq=seq, at=at, actor=actor, action=action, survey_id=survey_id, payload=text,
-        prev_hash=prev_hash, hash=h,
+        seq=seq, at=at, actor=actor, db_user=db_user, action=action, survey_id=survey_id,
+        payload=text, payload_digest=digest, scheme=SCHEME, prev_hash=prev_hash, hash=h,
     )
     session.add(event)
     if head is None:
@@ -116,9 +188,9 @@ def append(
     return event
 
 
-def payload_of(event: LedgerEvent) -> dict[str, Any]:
-    """The decoded payload of an event."""
-    return json.loads(event.payload)
+def payload_of(event: LedgerEvent) -> dict[str, Any] | None:
+    """The decoded payload of an event (None when a bundle carries it as its digest only)."""
+    return None if event.payload is None else json.loads(event.payload)
 
 
 def head(session: Session) -> LedgerHead | None:
