@@ -9,7 +9,9 @@ the point index it is delivered under, ``station_index`` the preplot station's,
 out), ``t_start``/``t_end`` the fixes used; ``merged`` lists the indices merged into the row
 (``deliver --merge-occupations``). The file is UTF-8. The ``crs`` and
 ``vertical_datum`` columns repeat the survey's EPSG code and vertical datum on every row so
-the file cannot be separated from what its numbers mean.
+the file cannot be separated from what its numbers mean. ``anchor_event`` and
+``anchor_after`` repeat the delivery's ledger anchor the same way
+(:class:`archive.store.ledger.Anchor`).
 """
 
 from __future__ import annotations
@@ -28,8 +30,9 @@ CSV_COLUMNS = (
 )
 
 
-def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
-    """The columns written to CSV, in order (times as ISO 8601 text)."""
+def csv_table(table: pa.Table, ctx: DeliveryContext, *, anchor: bool = True) -> pa.Table:
+    """The columns written to CSV, in order (times as ISO 8601 text); with ``anchor`` and a
+    context that has one, the ledger anchor's two columns last."""
     cols, names = [], []
     for name in CSV_COLUMNS:
         if name not in table.column_names:
@@ -43,6 +46,9 @@ def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
     n = table.num_rows
     cols += [pa.array([f"EPSG:{ctx.crs_epsg}"] * n), pa.array([ctx.vertical_datum] * n)]
     names += ["crs", "vertical_datum"]
+    if anchor and ctx.anchor is not None:
+        cols += [pa.array([ctx.anchor.event] * n, pa.int64()), pa.array([ctx.anchor.after] * n)]
+        names += ["anchor_event", "anchor_after"]
     return pa.table(cols, names=names)
 
 

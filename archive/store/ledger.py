@@ -18,6 +18,8 @@ digest alone and still recompute every link of the chain (docs/custody.md).
 from __future__ import annotations
 
 import json
+import re
+from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
@@ -186,6 +188,58 @@ def append(
         head.seq, head.hash = seq, h
     session.flush()
     return event
+
+
+SHORT_HASH = 16
+"""Hex digits of each earlier event's hash a delivery's manifest keeps (to name the first
+event that differs; the full hash of the event before the delivery's is the proof)."""
+
+_ANCHOR_TEXT = re.compile(r"event\s+(\d+)\s+after\s+([0-9a-f][0-9a-f\s]*)")
+
+
+@dataclass(frozen=True)
+class Anchor:
+    """Where a delivery sits in the ledger: ``event`` is the sequence number of the event
+    that records it and ``after`` the hash of the event before (the head the delivery was
+    recorded on). The delivered file cannot carry its own event's hash, which covers the
+    file's hash; ``after`` covers every event before it."""
+
+    event: int
+    after: str
+
+    def text(self) -> str:
+        """The anchor as delivered files state it: ``event N after HASH``."""
+        return f"event {self.event} after {self.after}"
+
+    def as_dict(self) -> dict[str, Any]:
+        """The anchor as plain data."""
+        return {"event": self.event, "after": self.after}
+
+    @classmethod
+    def parse(cls, text: str) -> Anchor | None:
+        """The anchor in a text (header records may break the hash over lines), or None."""
+        m = _ANCHOR_TEXT.search(text)
+        if m is None:
+            return None
+        digits = re.sub(r"\s", "", m.group(2))[:64]
+        return cls(int(m.group(1)), digits) if len(digits) == 64 else None
+
+
+def next_anchor(session: Session) -> Anchor:
+    """The anchor of the next event, taking the writers' lock on the ledger head: inside a
+    write transaction, the next :func:`append` in it is that event."""
+    head = session.execute(
+        select(LedgerHead).where(LedgerHead.id == 1).with_for_update()
+    ).scalar_one_or_none()
+    return Anchor(head.seq + 1, head.hash) if head else Anchor(1, GENESIS)
+
+
+def short_hashes(session: Session, before: int) -> list[str]:
+    """The first :data:`SHORT_HASH` hex digits of the hash of every event before ``before``,
+    in order (item ``i`` is event ``i + 1``)."""
+    rows = session.execute(select(LedgerEvent.hash).where(LedgerEvent.seq < before)
+                           .order_by(LedgerEvent.seq)).scalars()
+    return [h[:SHORT_HASH] for h in rows]
 
 
 def payload_of(event: LedgerEvent) -> dict[str, Any] | None:
