@@ -59,7 +59,7 @@ def load_fixes(state: CliState, paths: tuple[str, ...], fmt: str | None,
             day = dt.date.fromisoformat(date_)
         except ValueError:
             raise UsageError(f"--date {date_!r} is not a date", hint="use YYYY-MM-DD") from None
-    arc = state.archive()
+    arc = state.archive(write=True)
     survey_id = state.survey_id(survey_name)
     bar = Bar(state)
     report = load_fix_files(arc, survey_id, list(paths), fmt=fmt, profile_path=profile_path,

@@ -30,6 +30,12 @@ def sqlite_url(path: Path) -> str:
     return f"sqlite:///{Path(path).resolve()}"
 
 
+def sqlite_read_only(url: str) -> bool:
+    """True when the SQLite catalog at ``url`` cannot be written here."""
+    u = make_url(url)
+    return u.get_backend_name() == "sqlite" and _read_only_sqlite(u.database or "")
+
+
 def _read_only_sqlite(path: str) -> bool:
     """True when a SQLite catalog file cannot be written here (read-only media or file)."""
     if not path or path == ":memory:" or not os.path.exists(path):
@@ -66,7 +72,9 @@ def make_engine(url: str, *, read_only: bool = False) -> Engine:
 
     A SQLite catalog opened ``read_only``, or whose file or folder is not writable (a
     read-only disk, an archive copied to read-only media), is opened without any write
-    (see :func:`_read_only_engine`): reading and ``verify`` work, writes are refused."""
+    (see :func:`_read_only_engine`, a ``mode=ro`` URI): reading and ``verify`` work, writes
+    are refused. A PostgreSQL catalog opened ``read_only`` runs every transaction read-only
+    (``default_transaction_read_only``)."""
     u = make_url(url)
     if u.get_backend_name() == "sqlite":
         media = _read_only_sqlite(u.database or "")
@@ -92,4 +100,8 @@ def make_engine(url: str, *, read_only: bool = False) -> Engine:
             conn.exec_driver_sql("BEGIN IMMEDIATE" if immediate else "BEGIN")
 
         return engine
+    if read_only and u.get_backend_name() == "postgresql":
+        # every transaction of the session is read-only: the server refuses any write
+        return create_engine(url, pool_pre_ping=True,
+                             connect_args={"options": "-c default_transaction_read_only=on"})
     return create_engine(url, pool_pre_ping=True)
