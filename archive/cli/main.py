@@ -39,6 +39,7 @@ COMMANDS: dict[str, str] = {
     "reproduce": "archive.cli.lineage:reproduce",
     "diff": "archive.cli.lineage:diff",
     "where": "archive.cli.lineage:where",
+    "bundle": "archive.cli.bundle:bundle",
     "qc": "archive.cli.qc:qc",
     "report": "archive.cli.qc:report",
     "demo": "archive.cli.demo:demo",

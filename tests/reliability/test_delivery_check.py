@@ -12,6 +12,7 @@ import pytest
 from sqlalchemy import select, update
 
 from archive.lineage.anchor import read_file_anchor
+from archive.lineage.bundle import make_bundle
 from archive.lineage.check import check_delivery
 from archive.store.archive import Archive
 from archive.store.ledger import Anchor
@@ -207,3 +208,25 @@ def test_deleted_anchor_event_is_named(delivered):
         c.execute(LedgerEvent.__table__.delete().where(LedgerEvent.seq >= res.anchor["event"]))
     kinds = [(p.kind, p.subject) for p in check_delivery(arc, res.lineage_path).problems]
     assert ("anchor-missing", f"ledger event {res.anchor['event']}") in kinds
+
+
+def test_a_bundle_keeps_the_evidence_of_the_history_it_was_made_from(delivered, tmp_path):
+    """Bundled from either backend: the bundle proves the held delivery, keeps the database
+    user each event recorded, and still holds the original history after the source's is
+    rewritten, so the rewrite shows against the source and not against the bundle."""
+    arc, res = delivered
+    made = make_bundle(arc, [res.delivery_id], tmp_path / "bundle")
+    assert made.subset.verify.ok
+    login = arc.engine.url.username if arc.engine.dialect.name == "postgresql" else None
+    with Archive.open(tmp_path / "bundle") as b, b.session() as s:
+        users = {e.db_user for e in s.scalars(select(LedgerEvent))
+                 if e.action != "bundle.made"}
+    assert users == {login}
+    with arc.session() as s:
+        first = s.scalars(select(LedgerEvent).where(LedgerEvent.action == "load.fixes")
+                          .order_by(LedgerEvent.seq)).first()
+    rewrite_history(arc, first.seq, lambda p: p.update(name="another-node.nmea"))
+    assert [p.kind for p in check_delivery(arc, res.lineage_path).problems] == \
+        ["history-rewritten"]
+    with Archive.open(tmp_path / "bundle") as b:
+        assert check_delivery(b, res.lineage_path).ok and verify_archive(b).ok
