@@ -7,7 +7,7 @@ SQLite write transaction already holds the database write lock), so the chain ne
 Catalog rows written by the same transaction are summarised in the payload by their row
 digest, which lets ``verify`` detect a row changed behind the archive's back.
 
-Two hash schemes exist. Scheme 1 (events written before nodekeep 0.4) hashes the payload
+Two hash schemes exist. Scheme 1 (events written before catalog revision 0003) hashes the payload
 text itself. Scheme 2, written by every new event, hashes the payload's SHA-256 instead and
 adds the database session user (PostgreSQL's ``session_user``: who the server says is
 connected, beside the actor the command declared; None on SQLite). Hashing the payload's

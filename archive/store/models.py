@@ -103,7 +103,7 @@ class LedgerEvent(Base):
     """An append-only, hash-chained record of one state change.
 
     ``scheme`` says what the hash covers (:mod:`archive.store.ledger`): 1, events written
-    before nodekeep 0.4, hash the payload text itself; 2 hashes the payload's SHA-256
+    before catalog revision 0003, hash the payload text itself; 2 hashes the payload's SHA-256
     (``payload_digest``) and the database session user (``db_user``, PostgreSQL only), so a
     custody bundle can carry an event it does not need with its payload left out
     (``payload`` NULL) and still prove the chain; ``survey_id`` names the survey without a
