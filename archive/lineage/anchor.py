@@ -164,7 +164,11 @@ def check_anchor(session: Any, anchor: Anchor, *, delivery_id: int | None,
     subject = f"ledger event {last.seq} ({last.action})"
     stated = {"delivery": delivery_id, "file": file_hash, "lineage": manifest_hash}
     differs = [k for k, v in stated.items() if v is not None and payload.get(k) != v]
-    if last.action != "deliver" or differs:
+    if last.payload is None:
+        out.problems.append(Problem(
+            "anchor-mismatch", subject, "this archive is a custody bundle that carries the "
+            "anchored event as its digest only: the delivery is not one of its deliveries"))
+    elif last.action != "deliver" or differs:
         out.problems.append(Problem(
             "anchor-mismatch", subject,
             f"is not the event of delivery {delivery_id} as held"

@@ -79,6 +79,11 @@ def test_the_bundle_verifies_on_its_own(unpacked, delivered_survey_archive: Deli
     # the held delivered file is proved against the bundle's chain
     check = _json(root, "verify", "--delivery", delivered_survey_archive.sps.path)
     assert check["ok"] and check["anchor"]["anchor"] == delivered_survey_archive.sps.anchor
+    # a delivery the bundle does not hold: its event is there only as a digest
+    r = CliRunner().invoke(cli, ["-A", str(root), "verify", "--delivery",
+                                 delivered_survey_archive.csv.path])
+    assert r.exit_code == 3 and "PROBLEM anchor-mismatch" in r.stdout
+    assert "custody bundle that carries the anchored event as its digest only" in r.stdout
 
 
 def test_the_bundle_answers_as_the_source_did(unpacked, delivered_survey_archive):
