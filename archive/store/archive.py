@@ -185,8 +185,9 @@ class Archive:
         if self.engine.dialect.name == "postgresql":
             with self.engine.connect() as conn:
                 user, may, session_ro, standby = conn.execute(text(
-                    "SELECT current_user, has_table_privilege('ledger_head', 'UPDATE') AND "
-                    "has_table_privilege('ledger_events', 'INSERT'), "
+                    "SELECT current_user, CASE WHEN to_regclass('ledger_head') IS NULL "
+                    "THEN true ELSE has_table_privilege('ledger_head', 'UPDATE') AND "
+                    "has_table_privilege('ledger_events', 'INSERT') END, "
                     "current_setting('transaction_read_only'), pg_is_in_recovery()")).one()
             if standby:
                 return "the PostgreSQL server is a read-only standby"
