@@ -154,3 +154,14 @@ def test_refusals(delivered_survey_archive: Delivered, tmp_path):
     r = CliRunner().invoke(cli, ["-A", str(d.root), "bundle", "--delivery", "42", "--to",
                                  str(tmp_path / "b")])
     assert r.exit_code == 2 and "no delivery 42" in r.stderr
+
+
+def test_several_deliveries_in_one_bundle(delivered_survey_archive: Delivered, tmp_path):
+    d = delivered_survey_archive
+    r = CliRunner().invoke(cli, ["-A", str(d.root), "bundle", "--delivery", str(d.sps.delivery_id),
+                                 "--delivery", str(d.csv.delivery_id), "--to",
+                                 str(tmp_path / "both")])
+    assert r.exit_code == 0, r.output
+    assert "bundle of deliveries 1, 2" in r.stdout and "verified: archive OK" in r.stdout
+    for held in (d.sps, d.csv):
+        assert _json(tmp_path / "both", "verify", "--delivery", held.path)["ok"]
