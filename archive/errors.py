@@ -153,3 +153,18 @@ class ObjectDamaged(IntegrityError):
             self.owner = owner
             self.args = (self._text(),)
         return self
+
+
+class ReadOnly(StorageError):
+    """The archive cannot be written here (opened with ``--read-only``, a catalog or object
+    folder without write permission, a PostgreSQL role granted SELECT only, a read-only
+    server): a command that would change it is refused before it does anything."""
+
+    def __init__(self, where: str, reason: str, *, what: str = "this command",
+                 hint: str | None = None) -> None:
+        self.where, self.reason = where, reason
+        super().__init__(f"the archive {where} is read-only here ({reason}); {what} would "
+                         "change it",
+                         hint=hint or "every query command works read-only (where, trace, "
+                                      "show, history, verify, reproduce, bundle, ...); to "
+                                      "change the archive, use an account that may write it")

@@ -8,6 +8,8 @@ within the solver's targets, deliveries whose columns read back, and a clean ver
 from __future__ import annotations
 
 import json
+import shutil
+import tarfile
 from pathlib import Path
 from typing import Any
 
@@ -140,3 +142,46 @@ def test_failed_demo_exits_3(demo: dict[str, Any], monkeypatch: pytest.MonkeyPat
     assert "MISSED" in res.stdout and "PROBLEMS: dangling: 1 object" in res.stdout
     assert "demo FAILED: archive verify found 1 problem(s); 1 planted problem(s) not " \
            f"flagged: moved {moved['line']:.0f}/{moved['point']:.0f}" in res.stderr
+
+
+def _answer(root: Path, *args: str) -> Any:
+    r = CliRunner().invoke(cli, ["-A", str(root), *args, "--json"])
+    assert r.exit_code == 0, (args, r.output)
+    return json.loads(r.stdout)
+
+
+def test_a_bundle_of_the_sps_delivery_stands_on_its_own(demo: dict[str, Any],
+                                                        tmp_path: Path) -> None:
+    """The custody bundle of the demo's SPS delivery, unpacked in a fresh folder after the
+    archive it came from is removed: it verifies, answers where and trace as the source did
+    for that delivery, proves the held file and reproduces the run."""
+    source = tmp_path / "source"
+    shutil.copytree(demo["archive_dir"], source)
+    sps = demo["deliveries"]["sps"]
+    lineage = json.loads(Path(sps + ".lineage.json").read_text(encoding="utf-8"))
+    did, when = lineage["delivery"]["id"], lineage["delivery"]["at"]
+    st = lineage["occupations"][0]
+    line, point = f"{st['line']:g}", f"{st['point']:g}"
+    before = {"where": _answer(source, "where", line, point, "--as-of", when),
+              "file": _answer(source, "trace", "--file", sps),
+              "station": _answer(source, "trace", line, point)}
+    made = _answer(source, "bundle", "--delivery", str(did), "--to", str(tmp_path / "made"),
+                   "--tar", str(tmp_path / "made.tar"))
+    assert made["verify_ok"] and made["tar"]["bytes"] > made["bytes"]
+    shutil.rmtree(source)
+    shutil.rmtree(tmp_path / "made")
+    (tmp_path / "fresh").mkdir()
+    with tarfile.open(tmp_path / "made.tar") as tf:
+        tf.extractall(tmp_path / "fresh", filter="data")
+    root = tmp_path / "fresh" / "made"
+    assert _answer(root, "verify")["ok"]
+    assert _answer(root, "verify", "--delivery", sps)["ok"]
+    assert _answer(root, "where", line, point, "--as-of", when) == before["where"]
+    assert _answer(root, "trace", "--file", sps) == before["file"]
+    t = _answer(root, "trace", line, point)
+    assert t["run"] == before["station"]["run"] and t["edits"] == before["station"]["edits"]
+    for o, so in zip(t["occupations"], before["station"]["occupations"], strict=True):
+        assert (o["solution"], o["fixes"], o["raw_files"]) == \
+            (so["solution"], so["fixes"], so["raw_files"])
+        assert o["deliveries"] == [x for x in so["deliveries"] if x["id"] == did]
+    assert _answer(root, "reproduce", demo["run_id"])["identical"] is True

@@ -41,7 +41,7 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
     """Deliver a run's final positions (run + edits in force) as a file."""
     from archive.deliver.deliveries import deliver as run
 
-    arc = state.archive()
+    arc = state.archive(write=True)
     sid = state.survey_id(survey_name)
     res = run(arc, sid, run_ref, fmt, to, recipient or "", note=note, allow_flags=allow_flags,
               force=force, merge_occupations=merge)

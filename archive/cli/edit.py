@@ -67,7 +67,7 @@ def set_position(state: CliState, line: float, point: float, index: int | None,
     """Set the delivered position of an occupation of station LINE POINT."""
     from archive.edits.decisions import set_position as run
 
-    _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
+    _done(state, run(state.archive(write=True), state.survey_id(survey_name), line, point, index,
                      reason=reason, source=source, easting=easting, northing=northing,
                      node=node))
 
@@ -88,7 +88,7 @@ def set_height(state: CliState, line: float, point: float, index: int | None,
     """Set the delivered height of an occupation of station LINE POINT."""
     from archive.edits.decisions import set_height as run
 
-    _done(state, run(state.archive(), state.survey_id(survey_name), line, point, index,
+    _done(state, run(state.archive(write=True), state.survey_id(survey_name), line, point, index,
                      reason=reason, source=source, height=height, node=node))
 
 
@@ -108,7 +108,7 @@ def exclude(state: CliState, line: float, point: float, index: int | None, node:
     """Leave a span of a node's fixes out of the next solve of station LINE POINT."""
     from archive.edits.decisions import exclude_span
 
-    _done(state, exclude_span(state.archive(), state.survey_id(survey_name), line, point,
+    _done(state, exclude_span(state.archive(write=True), state.survey_id(survey_name), line, point,
                               index, node=node, start=start, end=end, reason=reason))
 
 
@@ -124,7 +124,7 @@ def reject(state: CliState, line: float, point: float, index: int | None, node: 
     """Do not deliver an occupation of station LINE POINT."""
     from archive.edits.decisions import reject_station
 
-    _done(state, reject_station(state.archive(), state.survey_id(survey_name), line, point,
+    _done(state, reject_station(state.archive(write=True), state.survey_id(survey_name), line, point,
                                 index, reason=reason, node=node))
 
 
@@ -142,7 +142,7 @@ def ack(state: CliState, line: float, point: float, index: int | None, node: str
     blocks delivery)."""
     from archive.review.acknowledge import ack_flag
 
-    _done(state, ack_flag(state.archive(), state.survey_id(survey_name), line, point, index,
+    _done(state, ack_flag(state.archive(write=True), state.survey_id(survey_name), line, point, index,
                           flag=flag, reason=reason, node=node))
 
 
@@ -156,7 +156,7 @@ def undo(state: CliState, edit_id: int, reason: str | None, survey_name: str | N
     """Take edit EDIT_ID out of force (recorded as a new edit)."""
     from archive.edits.decisions import undo as run
 
-    _done(state, run(state.archive(), state.survey_id(survey_name), edit_id, reason=reason))
+    _done(state, run(state.archive(write=True), state.survey_id(survey_name), edit_id, reason=reason))
 
 
 @click.command()

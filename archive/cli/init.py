@@ -39,7 +39,7 @@ def upgrade(state: CliState) -> None:
     """Migrate the archive's catalog to this version of nodekeep."""
     from archive.store import migrate
 
-    arc = state.archive(check_schema=False)
+    arc = state.archive(check_schema=False, write=True)
     before, after = migrate.upgrade(arc.engine, actor=arc.actor)
     info = {"from": before, "to": after, "changed": before != after}
     emit(state, info, f"catalog schema {before} -> {after}" if before != after

@@ -20,7 +20,7 @@ def _load(state: CliState, survey_name: str | None, kind: str, file: str,
     from archive.survey.kinds import input_kind
     from archive.survey.parsed import format_problem
 
-    arc = state.archive()
+    arc = state.archive(write=True)
     survey = survey_for(arc, survey_name)
     res = load_input(arc, survey.id, kind, file, **options)
     data = res.as_dict()

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+from pathlib import Path
 from typing import Any
 
 import click
 
 from archive.cli.options import (
     CliState,
+    force_option,
     occupation_options,
     output_options,
     pass_state,
@@ -95,6 +97,17 @@ def _station_text(t: dict[str, Any]) -> str:
     return "\n".join(out)
 
 
+def _write_prov(arc: Any, path: str, to: Path, force: bool) -> dict[str, Any]:
+    """Write the PROV-JSON of the delivery that wrote ``path``; what was written."""
+    from archive.lineage.prov import delivery_provenance
+    from archive.store.outfiles import check_target, write_file
+
+    check_target(to, force)
+    prov = delivery_provenance(arc, path)
+    write_file(to, prov.json_text().encode("utf-8"))
+    return {"path": str(to), **prov.counts()}
+
+
 def _file_text(t: dict[str, Any]) -> str:
     d = t["delivery"]
     out = [f"{t['file']['path']}: delivery {d['id']} ({d['format']}) to {d['recipient']} at "
@@ -105,6 +118,10 @@ def _file_text(t: dict[str, Any]) -> str:
     out += _raw_text(t["raw_files"])
     out.append(f"edits in force ({len(t['edits'])}):")
     out += _edits_text(t["edits"])
+    if t.get("prov"):
+        p = t["prov"]
+        out.append(f"wrote W3C PROV-JSON {p['path']}: {p['entity']} entities, {p['activity']} "
+                   f"activities, {p['agent']} agents, {p['relations']} relations")
     return "\n".join(out)
 
 
@@ -114,22 +131,33 @@ def _file_text(t: dict[str, Any]) -> str:
 @occupation_options
 @click.option("--file", "path", type=click.Path(exists=True, dir_okay=False), default=None,
               help="Trace a delivered file (found by its SHA-256) instead of a station.")
+@click.option("--prov", "prov_to", type=click.Path(dir_okay=False, path_type=Path),
+              default=None, metavar="OUT.json",
+              help="With --file: also write the delivery's lineage as W3C PROV-JSON.")
+@force_option
 @survey_option
 @output_options
 @pass_state
 def trace(state: CliState, line: float | None, point: float | None, index: int | None,
-          node: str | None, path: str | None, survey_name: str | None) -> None:
+          node: str | None, path: str | None, prov_to: Path | None, force: bool,
+          survey_name: str | None) -> None:
     """The whole chain behind station LINE POINT (every occupation, or the one --index /
-    --node choose), or behind a delivered --file."""
+    --node choose), or behind a delivered --file (and, with --prov, that chain as W3C
+    PROV-JSON for other tools)."""
     from archive.errors import UsageError
 
     arc = state.archive()
+    if prov_to is not None and path is None:
+        raise UsageError("--prov describes a delivered file: give it with --file FILE",
+                         hint="e.g. nodekeep trace --file receivers.sps --prov receivers.prov.json")
     if path is not None:
         if line is not None:
             raise UsageError("give either LINE POINT or --file, not both")
         from archive.lineage.trace import trace_file
 
         t = trace_file(arc, path)
+        if prov_to is not None:
+            t["prov"] = _write_prov(arc, path, prov_to, force)
         emit(state, t, lambda: _file_text(t))
         return
     if line is None or point is None:

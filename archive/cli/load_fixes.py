@@ -79,7 +79,7 @@ def load_fixes(state: CliState, paths: tuple[str, ...], fmt: str | None,
     try:
         from archive.ingest.load import load_fix_files
 
-        arc = state.archive()
+        arc = state.archive(write=True)
         survey_id = state.survey_id(survey_name)
         bar = Bar(state)
         report = load_fix_files(arc, survey_id, list(paths), fmt=fmt,

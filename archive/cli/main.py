@@ -39,6 +39,7 @@ COMMANDS: dict[str, str] = {
     "reproduce": "archive.cli.lineage:reproduce",
     "diff": "archive.cli.lineage:diff",
     "where": "archive.cli.lineage:where",
+    "bundle": "archive.cli.bundle:bundle",
     "qc": "archive.cli.qc:qc",
     "report": "archive.cli.qc:report",
     "demo": "archive.cli.demo:demo",
@@ -112,16 +113,23 @@ def _debug(ctx: click.Context) -> bool:
                    "the current one that holds an archive).")
 @click.option("--actor", default=None, metavar="NAME",
               help="Who is acting, for the ledger (default: $NODEKEEP_ACTOR, else the OS user).")
+@click.option("--read-only", "read_only", is_flag=True, default=False,
+              envvar="NODEKEEP_READ_ONLY",
+              help="Open the archive without any write (SQLite read-only URI, PostgreSQL "
+                   "read-only transactions): a command that would change it is refused. "
+                   "An archive you cannot write is opened this way by itself.")
 @click.option("--debug", is_flag=True, default=False, help="Show tracebacks on errors.")
 @click.version_option(__version__, prog_name="nodekeep")
 @click.pass_context
-def cli(ctx: click.Context, archive_dir: str | None, actor: str | None, debug: bool) -> None:
+def cli(ctx: click.Context, archive_dir: str | None, actor: str | None, read_only: bool,
+        debug: bool) -> None:
     """nodekeep: receiver positions from node GPS logs, with their chain of custody.
 
     Load node logs and survey inputs, solve one position per deployed station, check
     them, deliver them, and trace any delivered coordinate back to its raw bytes.
     """
-    ctx.obj = CliState(archive_dir, actor, debug or bool(os.environ.get("NODEKEEP_DEBUG")))
+    ctx.obj = CliState(archive_dir, actor, debug or bool(os.environ.get("NODEKEEP_DEBUG")),
+                       read_only=read_only)
 
 
 class LoadGroup(LazyGroup):

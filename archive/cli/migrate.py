@@ -25,7 +25,7 @@ def migrate(state: CliState, to_db: str, to_objects: str | None) -> None:
     """
     from archive.scale.migrate import migrate_archive
 
-    report = migrate_archive(state.archive(), to_db, to_objects, progress=Bar(state))
+    report = migrate_archive(state.archive(write=True), to_db, to_objects, progress=Bar(state))
 
     def text() -> str:
         rows = sum(report.tables.values())

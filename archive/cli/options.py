@@ -11,8 +11,8 @@ Catalogue:
   occupation of a station by its delivered point index or by the node deployed there; the
   query commands show every occupation when neither is given.
 - ``--to FILE`` (commands writing files): where to write.
-The archive itself (``--archive/-A``), ``--actor`` and ``--debug`` are options of the
-``nodekeep`` group, placed before the command name.
+The archive itself (``--archive/-A``), ``--actor``, ``--read-only`` and ``--debug`` are
+options of the ``nodekeep`` group, placed before the command name.
 """
 
 from __future__ import annotations
@@ -98,25 +98,34 @@ class RegistryOption(click.Option):
 class CliState:
     """What the ``nodekeep`` group knows, shared with every command through ``ctx.obj``."""
 
-    def __init__(self, archive_dir: str | None, actor: str | None, debug: bool) -> None:
+    def __init__(self, archive_dir: str | None, actor: str | None, debug: bool,
+                 read_only: bool = False) -> None:
         self.archive_dir = archive_dir
         self.actor = actor
         self.debug = debug
+        self.read_only = read_only
         self.as_json = False
         self.quiet = False
         self._archive = None
         self.catalog: str | None = None
         """The open archive's catalog (path or masked URL), for messages about it."""
 
-    def archive(self, *, check_schema: bool = True):
-        """Open the archive once per invocation; it is closed when the command ends."""
+    def archive(self, *, check_schema: bool = True, write: bool = False):
+        """Open the archive once per invocation; it is closed when the command ends.
+
+        ``write``: the command is about to change the archive; on an archive that cannot be
+        written here it is refused now, with one line, before any work
+        (:class:`archive.errors.ReadOnly`)."""
         if self._archive is None:
             from archive.store.archive import Archive
 
             self._archive = Archive.open(self.archive_dir, actor=self.actor,
-                                         check_schema=check_schema)
+                                         check_schema=check_schema, read_only=self.read_only)
             self.catalog = self._archive.catalog_name
             click.get_current_context().call_on_close(self._archive.close)
+        if write:
+            ctx = click.get_current_context()
+            self._archive.require_writable(f"'nodekeep {ctx.command_path.split(' ', 1)[-1]}'")
         return self._archive
 
     def survey_id(self, name: str | None) -> int:

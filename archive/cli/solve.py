@@ -85,7 +85,7 @@ def solve(state: CliState, params_file: str | None, label: str, stations: str | 
     overrides = load_params(params_file) if params_file else None
     sid = _survey_id(state, survey_name)
     node_list = [n.strip() for n in nodes.split(",") if n.strip()] if nodes else None
-    res = solve_survey(state.archive(), sid, overrides, label=label,
+    res = solve_survey(state.archive(write=True), sid, overrides, label=label,
                        stations=_stations(stations), nodes=node_list, progress=Bar(state),
                        scheduler=scheduler, workers=workers)
     d = res.as_dict()

@@ -33,7 +33,7 @@ def create(state: CliState, name: str, crs: str, vertical_datum: str, client: st
     """Create survey NAME with its projected CRS."""
     from archive.survey.surveys import create_survey, survey_dict
 
-    s = create_survey(state.archive(), name, crs, vertical_datum=vertical_datum, client=client,
+    s = create_survey(state.archive(write=True), name, crs, vertical_datum=vertical_datum, client=client,
                       contractor=contractor, area=area, height_mode=height_mode,
                       height_param=height_param)
     d = survey_dict(s)

@@ -11,10 +11,11 @@ from archive.errors import CatalogDamaged, EnvironmentProblem, StorageError
 
 @click.command()
 @click.option("--no-rehash", is_flag=True, help="Check presence only, do not re-hash objects.")
-@click.option("--delivery", "delivery", default=None, metavar="MANIFEST",
+@click.option("--delivery", "delivery", default=None, metavar="FILE",
               type=click.Path(exists=True, dir_okay=False),
               help="Check only a delivered file and its .lineage.json manifest (either path) "
-                   "against the archive.")
+                   "against the archive, with the ledger history the delivery was anchored "
+                   "on; a file without its manifest is checked from the anchor it states.")
 @output_options
 @pass_state
 def verify(state: CliState, no_rehash: bool, delivery: str | None) -> None:
@@ -71,9 +72,15 @@ def _verify_delivery(state: CliState, path: str, *, rehash: bool) -> None:
 
     def text() -> str:
         lines = [f"delivered file {result.file_path}", f"  SHA-256 {result.file_hash or '-'}",
-                 f"manifest {result.manifest_path}", f"  SHA-256 {result.manifest_hash}",
+                 f"manifest {result.manifest_path or '(none: the file checked on its own)'}",
+                 f"  SHA-256 {result.manifest_hash or '-'}",
                  f"delivery {result.delivery_id or '-'} of run {result.run_id or '-'}, "
                  f"{result.objects_checked} archive objects checked"]
+        a = result.anchor
+        lines.append(f"ledger anchor: event {a['anchor']['event']} after "
+                     f"{a['anchor']['after'][:16]}…, {a['events_checked']} events checked"
+                     if a else "ledger anchor: none (delivered before deliveries were "
+                               "anchored)")
         lines += [f"PROBLEM {p.kind}: {p.subject}: {p.detail}" for p in result.problems]
         lines.append("delivery OK" if result.ok
                      else f"delivery NOT OK: {len(result.problems)} problem(s)")

@@ -16,6 +16,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from archive.errors import Refused
+from archive.store.ledger import Anchor
 from archive.survey.crs import crs_from_epsg
 from archive.survey.keys import station_text
 
@@ -23,6 +24,8 @@ from archive.survey.keys import station_text
 TIME_BASIS = "UTC, when the node was laid out (deployment log)"
 TIME_COLUMN = "deployed"
 POSITION_MAPPED = "receiver (node) as solved from its GNSS fixes"
+ANCHOR_LABEL = "Ledger anchor"
+"""The header label of the anchor (:class:`archive.store.ledger.Anchor`) in SPS and SEG-P1."""
 CAUTION = ("positions for seismic processing; not a certified or legal survey, not for "
            "boundaries, construction or safety setbacks")
 
@@ -84,6 +87,7 @@ class DeliveryContext:
     edit_ids: tuple[int, ...] = field(default_factory=tuple)
     code_version: str = ""
     produced_at: datetime | None = None
+    anchor: Anchor | None = None  # the delivery's place in the ledger, stated in the header
 
     @property
     def crs(self) -> CrsFacts:

@@ -9,7 +9,13 @@ the point index it is delivered under, ``station_index`` the preplot station's,
 out), ``t_start``/``t_end`` the fixes used; ``merged`` lists the indices merged into the row
 (``deliver --merge-occupations``). The file is UTF-8. The ``crs`` and
 ``vertical_datum`` columns repeat the survey's EPSG code and vertical datum on every row so
-the file cannot be separated from what its numbers mean.
+the file cannot be separated from what its numbers mean. Text cells that a spreadsheet would
+run as a formula (beginning with ``=``, ``+``, ``-``, ``@``, tab or carriage return, and not
+a plain number) get a leading apostrophe, as OWASP recommends against CSV injection
+(:func:`archive.store.outfiles.spreadsheet_column`); numbers, negative ones included, are
+written as numbers. ``anchor_event`` and
+``anchor_after`` repeat the delivery's ledger anchor the same way
+(:class:`archive.store.ledger.Anchor`).
 """
 
 from __future__ import annotations
@@ -19,6 +25,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from archive.deliver.context import DeliveryContext, check_unique_keys
+from archive.store.outfiles import spreadsheet_column
 
 CSV_COLUMNS = (
     "line", "point", "index", "station_index", "node", "deployed", "retrieved",
@@ -28,8 +35,10 @@ CSV_COLUMNS = (
 )
 
 
-def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
-    """The columns written to CSV, in order (times as ISO 8601 text)."""
+def csv_table(table: pa.Table, ctx: DeliveryContext, *, anchor: bool = True) -> pa.Table:
+    """The columns written to CSV, in order (times as ISO 8601 text, text cells kept from
+    being run as formulas); with ``anchor`` and a context that has one, the ledger anchor's
+    two columns last."""
     cols, names = [], []
     for name in CSV_COLUMNS:
         if name not in table.column_names:
@@ -38,11 +47,15 @@ def csv_table(table: pa.Table, ctx: DeliveryContext) -> pa.Table:
         if pa.types.is_timestamp(col.type):
             col = pc.binary_join_element_wise(
                 pc.strftime(col, format="%Y-%m-%dT%H:%M:%S"), pa.scalar("Z"), "")
-        cols.append(col)
+        cols.append(spreadsheet_column(col))
         names.append(name)
     n = table.num_rows
-    cols += [pa.array([f"EPSG:{ctx.crs_epsg}"] * n), pa.array([ctx.vertical_datum] * n)]
+    cols += [pa.array([f"EPSG:{ctx.crs_epsg}"] * n),
+             spreadsheet_column(pa.array([ctx.vertical_datum] * n, pa.string()))]
     names += ["crs", "vertical_datum"]
+    if anchor and ctx.anchor is not None:
+        cols += [pa.array([ctx.anchor.event] * n, pa.int64()), pa.array([ctx.anchor.after] * n)]
+        names += ["anchor_event", "anchor_after"]
     return pa.table(cols, names=names)
 
 

@@ -4,7 +4,14 @@ One delivery = the file's bytes stored by hash, the final-positions table stored
 a lineage manifest (JSON) stored by hash and written beside the file as
 ``<file>.lineage.json``, a :class:`Delivery` row and a ``deliver`` ledger event. The file is
 written to a temporary name in the target folder first and renamed into place only after
-the transaction committed, so there is never a delivered file without its record. The
+the transaction committed, so there is never a delivered file without its record.
+
+Every delivery is anchored in the ledger: the file states (in a header record, CSV columns
+or the GeoJSON ``nodekeep`` member) the sequence number of its own ``deliver`` event and
+the hash of the event before it, and the manifest adds the short hashes of every earlier
+event (:func:`archive.deliver.manifest.ledger_section`). The file's bytes depend on that
+anchor, so they are rendered inside the recording transaction, after the writers' lock on
+the ledger head is taken: nothing can come between the anchor and the event. The
 target and lineage paths are checked before anything is stored (not a folder, parent folder
 exists and is writable); should a rename still fail after the commit, a ``deliver.failed``
 ledger event names the delivery and :class:`StorageError` is raised.
@@ -18,7 +25,8 @@ from __future__ import annotations
 import contextlib
 import json
 import os
-from dataclasses import asdict, dataclass, field
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -34,8 +42,10 @@ from archive.edits.log import delivery_edit_set
 from archive.errors import Refused, StorageError, UsageError
 from archive.solve.inputs import check_objects
 from archive.solve.run import get_run, manifest_inputs, run_manifest
+from archive.store import ledger
 from archive.store.archive import Archive
-from archive.store.models import Delivery, LedgerHead, RawFile, Run, Survey, utcnow
+from archive.store.ledger import Anchor
+from archive.store.models import Delivery, RawFile, Run, Survey, utcnow
 from archive.store.outfiles import check_target, temp_beside
 from archive.survey.keys import station_text
 
@@ -54,6 +64,7 @@ class DeliveryResult:
     manifest_hash: str
     final_hash: str
     run_id: str
+    anchor: dict[str, Any]  # the delivery's ledger event and the hash of the one before
     n_stations: int  # stations (line, point) delivered
     n_records: int  # records: one per occupation (stations occupied twice count twice)
     edit_ids: list[int] = field(default_factory=list)
@@ -182,26 +193,26 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         contractor=survey.contractor, area=survey.area, vertical_datum=heights_datum,
         run_id=run.id, edit_set_hash=edit_hash, edit_ids=tuple(e.id for e in edits),
         code_version=__version__, produced_at=produced)
-    data = write(final, ctx)
 
-    file_hash, file_size = arc.objects.put_bytes(data)
     final_hash, final_size = arc.objects.put_table(final)
     facts = DeliveryFacts(
-        fmt=fmt, file_name=target.name, file_hash=file_hash, file_size=file_size,
+        fmt=fmt, file_name=target.name, file_hash="", file_size=0,
         recipient=recipient, note=note, actor=arc.actor, produced=produced,
         allow_flags=allow_flags, flags=flags, survey=survey, heights_datum=heights_datum,
         run=run, run_manifest=manifest, edits=edits, edit_set_hash=edit_hash,
         unapplied=unapplied, inputs=inputs,
         raw_files=raw_files, final=final,
         final_hash=final_hash, merge=merge_occupations, merges=built.merges)
-    delivery_id, manifest_hash, (tmp_file, tmp_lineage) = _record(
-        arc, survey_id, facts, data, final_size, target, lineage_path)
+    delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(
+        arc, survey_id, facts, lambda anchor: write(final, replace(ctx, anchor=anchor)),
+        final_size, target, lineage_path)
     _move_into_place(arc, survey_id, delivery_id,
                      [(tmp_file, target), (tmp_lineage, lineage_path)])
     return DeliveryResult(
         delivery_id=delivery_id, path=str(target), lineage_path=str(lineage_path),
-        format=fmt, file_hash=file_hash, manifest_hash=manifest_hash, final_hash=final_hash,
-        run_id=run.id, n_stations=facts.n_stations, n_records=final.num_rows,
+        format=fmt, file_hash=facts.file_hash, manifest_hash=manifest_hash,
+        final_hash=final_hash, run_id=run.id, anchor=facts.anchor.as_dict(),
+        n_stations=facts.n_stations, n_records=final.num_rows,
         edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
         unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
         merges=built.merges)
@@ -217,18 +228,24 @@ def _require_inputs(arc: Archive, manifest: dict[str, Any],
         arc.objects.require(raw["hash"], rehash=False)
 
 
-def _record(arc: Archive, survey_id: int, f: DeliveryFacts, data: bytes, final_size: int,
-            target: Path, lineage_path: Path) -> tuple[int, str, tuple[Path, Path]]:
-    """Record the delivery in one transaction (its id is taken under the ledger's write
-    lock) with the file and manifest written to temporary files beside their targets;
-    returns (id, manifest hash, temporary files). On any failure the temporary files go."""
-    tmp_file = temp_beside(target, data)
-    tmp_lineage = None
+def _record(arc: Archive, survey_id: int, f: DeliveryFacts,
+            render: Callable[[Anchor], bytes], final_size: int, target: Path,
+            lineage_path: Path) -> tuple[int, DeliveryFacts, str, tuple[Path, Path]]:
+    """Record the delivery in one transaction: take the ledger's write lock, which fixes
+    the delivery's id and its anchor (the next event is its ``deliver`` event), render the
+    file with that anchor (``render``), store it and its manifest, and write both to
+    temporary files beside their targets. Returns (id, the completed facts, manifest hash,
+    temporary files). On any failure the temporary files go."""
+    tmp_file = tmp_lineage = None
     try:
         with arc.transaction() as tx:
-            # Serialise deliveries so the next id is ours (the ledger head is the write lock).
-            tx.execute(select(LedgerHead).where(LedgerHead.id == 1).with_for_update())
+            anchor = ledger.next_anchor(tx)  # the write lock: the next event and id are ours
             next_id = (tx.execute(select(func.max(Delivery.id))).scalar_one_or_none() or 0) + 1
+            data = render(anchor)
+            file_hash, file_size = arc.objects.put_bytes(data)
+            tmp_file = temp_beside(target, data)
+            f = replace(f, file_hash=file_hash, file_size=file_size, anchor=anchor,
+                        chain=ledger.short_hashes(tx, anchor.event))
             lineage_bytes = manifest_bytes(lineage_manifest(f, next_id))
             manifest_hash, manifest_size = arc.objects.put_bytes(lineage_bytes)
             tmp_lineage = temp_beside(lineage_path, lineage_bytes)
@@ -243,22 +260,26 @@ def _record(arc: Archive, survey_id: int, f: DeliveryFacts, data: bytes, final_s
                 allowed_flags=bool(f.allow_flags), created_at=f.produced, created_by=arc.actor)
             tx.add(row)
             tx.flush()
-            arc.log(tx, "deliver",
-                    {"delivery": next_id, "run": f.run.id, "format": f.fmt,
-                     "file": f.file_hash, "name": f.file_name, "final": f.final_hash,
-                     "lineage": manifest_hash, "recipient": f.recipient,
-                     "edit_set": f.edit_set_hash, "edits": [e.id for e in f.edits],
-                     "allowed_flags": bool(f.allow_flags), "unacknowledged_flags": f.flags,
-                     "merge_occupations": bool(f.merge),
-                     "merged_stations": sum(1 for m in f.merges if m["merged"])},
-                    survey_id=survey_id, rows=[row])
+            event = arc.log(tx, "deliver",
+                            {"delivery": next_id, "run": f.run.id, "format": f.fmt,
+                             "file": f.file_hash, "name": f.file_name, "final": f.final_hash,
+                             "lineage": manifest_hash, "recipient": f.recipient,
+                             "edit_set": f.edit_set_hash, "edits": [e.id for e in f.edits],
+                             "allowed_flags": bool(f.allow_flags),
+                             "unacknowledged_flags": f.flags,
+                             "merge_occupations": bool(f.merge),
+                             "merged_stations": sum(1 for m in f.merges if m["merged"])},
+                            survey_id=survey_id, rows=[row])
+            if (event.seq, event.prev_hash) != (anchor.event, anchor.after):
+                raise RuntimeError(f"delivery {next_id}: its event {event.seq} is not the "
+                                   f"anchored event {anchor.event}")
     except BaseException:
         for tmp in (tmp_file, tmp_lineage):
             if tmp is not None:
                 with contextlib.suppress(FileNotFoundError):
                     tmp.unlink()
         raise
-    return next_id, manifest_hash, (tmp_file, tmp_lineage)
+    return next_id, f, manifest_hash, (tmp_file, tmp_lineage)
 
 
 def delivery_dict(d: Delivery) -> dict[str, Any]:

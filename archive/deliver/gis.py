@@ -49,7 +49,7 @@ def write_geojson(table: pa.Table, ctx: DeliveryContext) -> bytes:
     check_unique_keys(table, "GeoJSON")
     lon, lat = wgs84_lonlat(table, ctx)
     height = column(table, "height")
-    props = csv_table(table, ctx).to_pylist()
+    props = csv_table(table, ctx, anchor=False).to_pylist()
     features = []
     for i, p in enumerate(props):  # one feature per station: JSON needs Python objects
         coords = [round(float(lon[i]), 9), round(float(lat[i]), 9)]
@@ -61,7 +61,8 @@ def write_geojson(table: pa.Table, ctx: DeliveryContext) -> bytes:
         "type": "FeatureCollection",
         "nodekeep": {"survey": ctx.survey, "grid_crs": f"EPSG:{ctx.crs_epsg}",
                      "vertical_datum": ctx.vertical_datum, "run": ctx.run_id,
-                     "edit_set": ctx.edit_set_hash},
+                     "edit_set": ctx.edit_set_hash}
+        | ({"ledger_anchor": ctx.anchor.as_dict()} if ctx.anchor is not None else {}),
         "features": features,
     }
     return (json.dumps(doc, ensure_ascii=False, allow_nan=False, separators=(",", ":"))

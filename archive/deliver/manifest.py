@@ -8,7 +8,7 @@ and stored by hash (its layout: docs/delivery.md, "What a delivery writes and re
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
 
@@ -18,7 +18,7 @@ from archive import __version__
 from archive.deliver.context import CAUTION
 from archive.edits.log import edit_dict
 from archive.store.hashing import table_digest
-from archive.store.ledger import row_digest
+from archive.store.ledger import SHORT_HASH, Anchor, row_digest
 from archive.store.models import Edit, Run, Survey
 
 LINEAGE_FORMAT = 1
@@ -51,6 +51,8 @@ class DeliveryFacts:
     final_hash: str
     merge: bool
     merges: list[dict[str, Any]]
+    anchor: Anchor | None = None  # known once the delivery holds the ledger's write lock
+    chain: list[str] = field(default_factory=list)  # short hashes of the events before it
 
     @property
     def n_stations(self) -> int:
@@ -99,9 +101,19 @@ def lineage_manifest(f: DeliveryFacts, delivery_id: int) -> dict[str, Any]:
                             "rows": f.final.num_rows},
         "occupations": occupations_of(f.final),
         "merges": f.merges,
+        **({"ledger": ledger_section(f.anchor, f.chain)} if f.anchor is not None else {}),
         "code_version": __version__,
         "caution": CAUTION,
     }
+
+
+def ledger_section(anchor: Anchor, chain: list[str]) -> dict[str, Any]:
+    """The manifest's ``ledger`` section: the anchor (the delivery's event and the hash of
+    the event before it, also stated in the delivered file) and the first
+    :data:`SHORT_HASH` hex digits of every earlier event's hash, which let a check name the
+    first event that differs when the history before the delivery was rewritten."""
+    return {"anchor": anchor.as_dict(), "short_hash_digits": SHORT_HASH,
+            "short_hashes": chain}
 
 
 def manifest_bytes(doc: dict[str, Any]) -> bytes:

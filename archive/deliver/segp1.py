@@ -26,6 +26,7 @@ import numpy as np
 import pyarrow as pa
 
 from archive.deliver.context import (
+    ANCHOR_LABEL,
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
@@ -91,7 +92,7 @@ def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str
 
 def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]:
     """Exactly 20 H records: survey, datum/spheroid, projection and parameters, units, time
-    basis, what position is mapped, producing run and edit set.
+    basis, what position is mapped, producing run, edit set and the ledger anchor.
 
     Each record is ``Hnn`` and free text in columns 5-80: ``description: data``, long data
     continuing on the next record indented by two spaces; projection
@@ -132,6 +133,8 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
         ("Edit set", ctx.edit_set_hash),
         ("Produced", f"{produced} nodekeep {ctx.code_version}, {len(ctx.edit_ids)} edits"),
     ]
+    if ctx.anchor is not None:
+        items.append((ANCHOR_LABEL, ctx.anchor.text()))
     lines: list[str] = []
     for desc, data in items:
         first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)

@@ -19,6 +19,7 @@ import numpy as np
 import pyarrow as pa
 
 from archive.deliver.context import (
+    ANCHOR_LABEL,
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
@@ -97,8 +98,10 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
         ("H26", "Producing run", ctx.run_id),
         ("H26", "Edit set", ctx.edit_set_hash),
         ("H26", "Edit ids in force", ",".join(str(i) for i in ctx.edit_ids) or "none"),
-        ("H26", "Not a certified survey", "for seismic processing, not legal/setback use"),
     ]
+    if ctx.anchor is not None:  # where the delivery sits in the archive's ledger
+        recs.append(("H26", ANCHOR_LABEL, ctx.anchor.text()))
+    recs.append(("H26", "Not a certified survey", "for seismic processing, not legal/setback use"))
     return [line for r in recs for line in header_lines(*r, continuation_item="H26")]
 
 

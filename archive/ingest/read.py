@@ -21,7 +21,7 @@ from archive.ingest.schema import FIX_SCHEMA, conform_fixes
 from archive.store.archive import Archive
 from archive.store.models import RawFile
 from archive.store.objects import PARQUET_OPTIONS
-from archive.store.outfiles import write_file
+from archive.store.outfiles import spreadsheet_column, write_file
 
 
 def _utc(t: dt.datetime | None) -> dt.datetime | None:
@@ -80,7 +80,8 @@ def node_fixes(arc: Archive, survey_id: int, node: str, start: dt.datetime | Non
 
 
 def write_fixes(table: pa.Table, path: str | Path, *, force: bool = False) -> Path:
-    """Write fixes as CSV (time in ISO 8601 UTC) or Parquet, chosen by the file suffix."""
+    """Write fixes as CSV (time in ISO 8601 UTC, text cells kept from being run as
+    spreadsheet formulas) or Parquet, chosen by the file suffix."""
     path = Path(path)
     suffix = path.suffix.lower()
     if suffix not in (".csv", ".parquet"):
@@ -94,6 +95,7 @@ def write_fixes(table: pa.Table, path: str | Path, *, force: bool = False) -> Pa
     else:
         iso = pc.strftime(table.column("time"), format="%Y-%m-%dT%H:%M:%SZ")
         out = table.set_column(table.schema.get_field_index("time"), "time", iso)
+        out = pa.table([spreadsheet_column(c) for c in out.columns], names=out.column_names)
         pacsv.write_csv(out, sink)
     write_file(path, sink.getvalue().to_pybytes())
     return path

@@ -19,6 +19,9 @@ delivered and that everything they name is still intact, or names exactly what d
   input tables, raw logs) is gone from the store or its bytes changed.
 - ``altered-row`` / ``unledgered-row``: the delivery row changed since its ledger event
   recorded it, or no ledger event recorded it.
+- ``history-rewritten`` / ``anchor-missing`` / ``anchor-mismatch`` / ``broken-chain``: the
+  ledger no longer holds the history the delivery was anchored on
+  (:mod:`archive.lineage.anchor`). Deliveries made before anchors have none to check.
 
 Never writes.
 """
@@ -34,9 +37,10 @@ from sqlalchemy import select
 
 from archive.deliver.deliveries import LINEAGE_SUFFIX
 from archive.errors import UsageError
+from archive.lineage.anchor import check_anchor, read_file_anchor
 from archive.store.archive import Archive
 from archive.store.hashing import is_hash, sha256_bytes, sha256_file
-from archive.store.ledger import row_digest, row_key
+from archive.store.ledger import Anchor, row_digest, row_key
 from archive.store.models import Delivery, LedgerEvent, Run, StoredObject
 from archive.store.verify import Problem
 
@@ -52,6 +56,7 @@ class DeliveryCheck:
     file_hash: str | None = None
     manifest_hash: str | None = None
     objects_checked: int = 0
+    anchor: dict[str, Any] | None = None  # the ledger anchor checked (None: not anchored)
     problems: list[Problem] = field(default_factory=list)
 
     @property
@@ -65,7 +70,7 @@ class DeliveryCheck:
         return {"ok": self.ok, "manifest_path": self.manifest_path, "file_path": self.file_path,
                 "delivery_id": self.delivery_id, "run_id": self.run_id,
                 "file_hash": self.file_hash, "manifest_hash": self.manifest_hash,
-                "objects_checked": self.objects_checked,
+                "objects_checked": self.objects_checked, "anchor": self.anchor,
                 "problems": [p.as_dict() for p in self.problems]}
 
 
@@ -120,7 +125,7 @@ def _ledgered_digest(session: Any, row: Delivery) -> str | None:
     for ev in session.scalars(select(LedgerEvent).where(LedgerEvent.action == "deliver")
                               .order_by(LedgerEvent.seq)):
         try:
-            payload = json.loads(ev.payload)
+            payload = json.loads(ev.payload or "{}")
         except ValueError:
             continue
         for r in payload.get("rows", []) if isinstance(payload, dict) else []:
@@ -129,15 +134,23 @@ def _ledgered_digest(session: Any, row: Delivery) -> str | None:
     return None
 
 
-def check_delivery(arc: Archive, manifest_path: str | Path, *, rehash: bool = True
-                   ) -> DeliveryCheck:
+def check_delivery(arc: Archive, path: str | Path, *, rehash: bool = True) -> DeliveryCheck:
     """Check a delivered file and its ``.lineage.json`` manifest against the archive.
 
-    ``manifest_path`` may also name the delivered file (its manifest is found beside it).
-    The result lists every problem found (see the module docstring); it never raises for
-    a difference, only for a manifest path that does not exist.
+    ``path`` may name the manifest or the delivered file (its manifest is found beside
+    it). A delivered file without its manifest is checked on its own, from the ledger
+    anchor it states (:func:`archive.lineage.anchor.read_file_anchor`). The result lists
+    every problem found (see the module docstring); it never raises for a difference, only
+    for a path that is neither.
     """
-    mpath = manifest_for(manifest_path)
+    p = Path(path)
+    try:
+        mpath = manifest_for(p)
+    except UsageError:
+        anchor = read_file_anchor(p) if p.is_file() else None
+        if anchor is None:
+            raise
+        return _check_file_alone(arc, p, anchor, rehash=rehash)
     if not mpath.is_file():
         raise UsageError(f"no such lineage manifest: {mpath}")
     fpath = mpath.with_name(mpath.name[: -len(LINEAGE_SUFFIX)])
@@ -169,44 +182,102 @@ def check_delivery(arc: Archive, manifest_path: str | Path, *, rehash: bool = Tr
                 out.add("manifest-changed", str(mpath),
                         f"SHA-256 {out.manifest_hash} is not the manifest stored for delivery "
                         f"{row.id} ({row.manifest_hash})")
+        ledger = lineage.get("ledger") if isinstance(lineage.get("ledger"), dict) else None
+        if ledger is not None:
+            a = ledger.get("anchor") or {}
+            _check_ledger(s, out, Anchor(int(a.get("event", 0)), str(a.get("after", ""))),
+                          delivery_id=stated.get("id"), file_hash=stated_file,
+                          manifest_hash=out.manifest_hash if row is not None
+                          and row.manifest_hash == out.manifest_hash else None,
+                          short_hashes=list(ledger.get("short_hashes") or []))
         if row is None:
             if lineage:
                 out.add("no-delivery", str(mpath),
                         "this archive holds no delivery recorded with this manifest")
             return out
-        out.delivery_id = row.id
-        subject = f"deliveries row {row.id}"
-        for name, mine, theirs in (
-            ("file hash", row.file_hash, stated_file),
-            ("format", row.format, stated.get("format")),
-            ("file name", row.file_name, stated.get("file_name")),
-            ("run", row.run_id, (lineage.get("run") or {}).get("id")),
-        ):
-            if theirs is not None and mine != theirs:
-                out.add("delivery-mismatch", subject,
-                        f"{name} is {mine!r} in the archive, {theirs!r} in the manifest")
-        if (out.file_hash and out.file_hash != row.file_hash
-                and not any(p.kind == "file-changed" for p in out.problems)):
-            out.add("file-changed", str(fpath),
-                        f"SHA-256 {out.file_hash} is not the delivered {row.file_hash}")
-        recorded = _ledgered_digest(s, row)
-        if recorded is None:
-            out.add("unledgered-row", subject, "no ledger event recorded this delivery")
-        elif recorded != row_digest(row):
-            out.add("altered-row", subject, "row content differs from its ledger record")
-        out.run_id = row.run_id
-        run = s.get(Run, row.run_id)
-        stated_run = lineage.get("run") or {}
-        if run is None:
-            out.add("run-missing", f"run {row.run_id}", "the delivered run is not in the catalog")
-        else:
-            for key in ("manifest_hash", "positions_hash", "positions_digest"):
-                theirs = stated_run.get(key)
-                if theirs is not None and getattr(run, key) != theirs:
-                    out.add("run-mismatch", f"run {run.id[:12]}",
-                            f"{key} is {getattr(run, key)} in the archive, {theirs} in the "
-                            "manifest")
+        run = _check_row(s, out, row, lineage)
         known = set(s.scalars(select(StoredObject.hash)))
+    _check_objects(arc, out, lineage, row, run, known, rehash=rehash)
+    return out
+
+
+def _check_file_alone(arc: Archive, fpath: Path, anchor: Anchor, *, rehash: bool
+                      ) -> DeliveryCheck:
+    """Check a delivered file without its manifest: its hash finds the delivery, the anchor
+    it states is proved against the chain (the first event that differs cannot be named
+    without the manifest's short hashes: only the range holding the change)."""
+    out = DeliveryCheck("", str(fpath))
+    out.file_hash, _ = sha256_file(fpath)
+    with arc.session() as s:
+        row = s.scalars(select(Delivery).where(Delivery.file_hash == out.file_hash)
+                        .order_by(Delivery.id)).first()
+        _check_ledger(s, out, anchor, delivery_id=row.id if row else None,
+                      file_hash=out.file_hash)
+        if row is None:
+            out.add("no-delivery", str(fpath), f"this archive holds no delivery of a file "
+                                               f"with SHA-256 {out.file_hash}")
+            return out
+        out.manifest_hash = row.manifest_hash
+        lineage: dict[str, Any] = {}
+        if arc.objects.exists(row.manifest_hash):
+            lineage = json.loads(arc.objects.read_bytes(row.manifest_hash))
+        run = _check_row(s, out, row, lineage)
+        known = set(s.scalars(select(StoredObject.hash)))
+    _check_objects(arc, out, lineage, row, run, known, rehash=rehash)
+    return out
+
+
+def _check_ledger(s: Any, out: DeliveryCheck, anchor: Anchor, *, delivery_id: int | None,
+                  file_hash: str | None, manifest_hash: str | None = None,
+                  short_hashes: list[str] | None = None) -> None:
+    result = check_anchor(s, anchor, delivery_id=delivery_id, file_hash=file_hash,
+                          manifest_hash=manifest_hash, short_hashes=short_hashes)
+    out.anchor = result.as_dict()
+    out.problems.extend(result.problems)
+
+
+def _check_row(s: Any, out: DeliveryCheck, row: Delivery, lineage: dict[str, Any]
+               ) -> Run | None:
+    """The delivery row against the manifest and its ledger record; its run. Returns the
+    run (None when it is gone)."""
+    stated = lineage.get("delivery", {}) if isinstance(lineage.get("delivery"), dict) else {}
+    out.delivery_id = row.id
+    subject = f"deliveries row {row.id}"
+    for name, mine, theirs in (
+        ("file hash", row.file_hash, stated.get("file_hash")),
+        ("format", row.format, stated.get("format")),
+        ("file name", row.file_name, stated.get("file_name")),
+        ("run", row.run_id, (lineage.get("run") or {}).get("id")),
+    ):
+        if theirs is not None and mine != theirs:
+            out.add("delivery-mismatch", subject,
+                    f"{name} is {mine!r} in the archive, {theirs!r} in the manifest")
+    if (out.file_hash and out.file_hash != row.file_hash
+            and not any(p.kind == "file-changed" for p in out.problems)):
+        out.add("file-changed", out.file_path,
+                f"SHA-256 {out.file_hash} is not the delivered {row.file_hash}")
+    recorded = _ledgered_digest(s, row)
+    if recorded is None:
+        out.add("unledgered-row", subject, "no ledger event recorded this delivery")
+    elif recorded != row_digest(row):
+        out.add("altered-row", subject, "row content differs from its ledger record")
+    out.run_id = row.run_id
+    run = s.get(Run, row.run_id)
+    stated_run = lineage.get("run") or {}
+    if run is None:
+        out.add("run-missing", f"run {row.run_id}", "the delivered run is not in the catalog")
+        return None
+    for key in ("manifest_hash", "positions_hash", "positions_digest"):
+        theirs = stated_run.get(key)
+        if theirs is not None and getattr(run, key) != theirs:
+            out.add("run-mismatch", f"run {run.id[:12]}",
+                    f"{key} is {getattr(run, key)} in the archive, {theirs} in the manifest")
+    return run
+
+
+def _check_objects(arc: Archive, out: DeliveryCheck, lineage: dict[str, Any], row: Delivery,
+                   run: Run | None, known: set[str], *, rehash: bool) -> None:
+    """Every object the delivery depends on is in the store, and (``rehash``) intact."""
     direct = {row.file_hash, row.manifest_hash, row.final_hash}
     if run is not None:
         direct |= {run.manifest_hash, run.positions_hash}
@@ -219,4 +290,3 @@ def check_delivery(arc: Archive, manifest_path: str | Path, *, rehash: bool = Tr
         if rehash and not arc.objects.check(h):
             out.add("hash-mismatch", f"object {h}", f"{what} bytes no longer match the hash")
         out.objects_checked += 1
-    return out

@@ -147,19 +147,32 @@ def _position(r: dict[str, Any]) -> dict[str, Any]:
     return {k: r[k] for k in keys if k in r}
 
 
-def trace_file(arc: Archive, path: str | Path) -> dict[str, Any]:
-    """The delivery that wrote a file (found by its SHA-256) and everything behind it."""
+def deliveries_of_file(arc: Archive, path: str | Path) -> tuple[str, list[Delivery]]:
+    """The SHA-256 of a file and the deliveries that wrote those bytes (oldest first);
+    UsageError when none did."""
     path = Path(path)
     if not path.is_file():
         raise UsageError(f"no such file: {path}")
     h, _ = sha256_file(path)
     with arc.session() as s:
-        found = s.scalars(select(Delivery).where(Delivery.file_hash == h)
-                          .order_by(Delivery.id)).all()
+        found = list(s.scalars(select(Delivery).where(Delivery.file_hash == h)
+                               .order_by(Delivery.id)))
     if not found:
         raise UsageError(f"{path} (SHA-256 {h[:16]}...) matches no delivery of this archive",
                          hint="the file may have been changed after delivery: compare it with "
                               "the file_hash in its .lineage.json")
+    return h, found
+
+
+def delivery_of_file(arc: Archive, path: str | Path) -> Delivery:
+    """The (latest) delivery that wrote a file's bytes; UsageError when none did."""
+    return deliveries_of_file(arc, path)[1][-1]
+
+
+def trace_file(arc: Archive, path: str | Path) -> dict[str, Any]:
+    """The delivery that wrote a file (found by its SHA-256) and everything behind it."""
+    path = Path(path)
+    h, found = deliveries_of_file(arc, path)
     d = found[-1]
     run = get_run(arc, d.survey_id, d.run_id)
     lineage = json.loads(arc.objects.read_bytes(d.manifest_hash))

@@ -1,7 +1,10 @@
 """Building blocks of the report page: escaped HTML fragments, no templates, no scripts.
 
 The page is self-contained: its style sheet is inlined from ``report.css`` and figures are
-data URIs, so it opens anywhere without network access.
+data URIs, so it opens anywhere without network access. Text cells of its tables that a
+spreadsheet would run as a formula when the table is pasted or opened in one get a leading
+apostrophe (:func:`archive.store.outfiles.spreadsheet_text`, OWASP's advice against CSV
+injection); numeric columns are left as they are.
 """
 
 from __future__ import annotations
@@ -12,6 +15,8 @@ from datetime import datetime
 from html import escape
 from importlib import resources
 from typing import Any
+
+from archive.store.outfiles import spreadsheet_text
 
 MAX_LIST = 20
 """Entries of a long list of records in the lineage shown before the rest are counted."""
@@ -38,14 +43,17 @@ def pct(v: float | None) -> str:
 
 def table(headers: Sequence[str], rows: Iterable[Sequence[Any]], *, numeric: Sequence[int] = (),
           cls: str = "", raw: Sequence[int] = ()) -> str:
-    """An HTML table; cells are escaped unless their column is in ``raw``."""
+    """An HTML table; cells are escaped unless their column is in ``raw``, and text cells
+    (columns not in ``numeric`` or ``raw``) kept from being run as spreadsheet formulas."""
     head = "".join(f'<th class="num">{escape(h)}</th>' if i in numeric else f"<th>{escape(h)}</th>"
                    for i, h in enumerate(headers))
     body = []
     for r in rows:
         cells = []
         for i, v in enumerate(r):
-            text = str(v) if i in raw else escape("" if v is None else str(v))
+            text = "" if v is None else str(v)
+            if i not in raw:
+                text = escape(text if i in numeric else spreadsheet_text(text))
             cells.append(f'<td class="num">{text}</td>' if i in numeric else f"<td>{text}</td>")
         body.append("<tr>" + "".join(cells) + "</tr>")
     c = f' class="{cls}"' if cls else ""
@@ -105,8 +113,9 @@ def kv_table(pairs: Iterable[tuple[str, str]], hash_like: bool = False) -> str:
     rows = []
     for k, v in pairs:
         mono = hash_like or _has_hash(v)
-        cell = f'<td class="hash">{escape(v)}</td>' if mono else f"<td>{escape(v)}</td>"
-        rows.append(f"<tr><th>{escape(k)}</th>{cell}</tr>")
+        v = escape(spreadsheet_text(v))
+        cell = f'<td class="hash">{v}</td>' if mono else f"<td>{v}</td>"
+        rows.append(f"<tr><th>{escape(spreadsheet_text(k))}</th>{cell}</tr>")
     return f'<table class="wide">{"".join(rows)}</table>'
 
 

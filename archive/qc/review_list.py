@@ -22,6 +22,7 @@ from archive.qc.check import QcResult
 from archive.qc.clouds import Station, cloud_figure
 from archive.qc.sources import RunData
 from archive.qc.stats import delivered
+from archive.store.outfiles import spreadsheet_text
 from archive.survey.keys import station_text
 
 MAX_TABLE_ROWS = 1000
@@ -68,7 +69,7 @@ def review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
     for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
         name = station_text(r.line, r.point)
         link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
-        rows.append((link, r.occupation, escape(str(r.node)),
+        rows.append((link, r.occupation, escape(spreadsheet_text(str(r.node))),
                      escape(r.reasons.replace(";", ", ")),
                      html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
                      html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}",

@@ -29,9 +29,9 @@ from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
-from archive.errors import ArchiveNotFound, UsageError
+from archive.errors import ArchiveNotFound, ReadOnly, UsageError
 from archive.store import ledger
-from archive.store.db import make_engine, mask_url, sqlite_disk_full, sqlite_url
+from archive.store.db import make_engine, mask_url, sqlite_disk_full, sqlite_read_only, sqlite_url
 from archive.store.models import LedgerEvent, StoredObject, Survey, utcnow
 from archive.store.objects import ObjectStore
 
@@ -84,6 +84,7 @@ class Archive:
         self.config = config
         self.actor = actor or default_actor()
         self.read_only = read_only
+        self.refusal: str | None = "opened read-only" if read_only else None
         self.db_url = self._resolve_db(config["db"])
         self.objects_url = self._resolve_objects(config["objects"])
         self.full_disk = sqlite_disk_full(self.db_url)
@@ -155,17 +156,18 @@ class Archive:
         with open(folder / CONFIG_NAME, "rb") as fh:
             config = tomllib.load(fh)["archive"]
         arc = cls(folder, config, actor=actor, read_only=read_only)
-        if check_schema:
-            try:
+        try:
+            if check_schema:
                 migrate.check_schema(arc.engine)
-            except Exception as exc:
-                arc.close()
-                from archive.store.faults import world_fault
+            arc._settle_read_only()
+        except Exception as exc:
+            arc.close()
+            from archive.store.faults import world_fault
 
-                fault = world_fault(exc, arc.catalog_name)
-                if fault is None or fault is exc:
-                    raise
-                raise fault from exc
+            fault = world_fault(exc, arc.catalog_name)
+            if fault is None or fault is exc:
+                raise
+            raise fault from exc
         return arc
 
     @property
@@ -176,6 +178,58 @@ class Archive:
 
             return make_url(self.db_url).database or mask_url(self.db_url)
         return mask_url(self.db_url)
+
+    # -- who may write ------------------------------------------------------------------
+    def _settle_read_only(self) -> None:
+        """Find out whether this archive can be written here; if not, every write (object
+        or catalog) is refused at once with the reason (:class:`ReadOnly`)."""
+        if self.refusal is None:
+            self.refusal = self._cannot_write()
+        if self.refusal is not None:
+            self.read_only = True
+            self.objects.read_only = True
+            self.objects.refusal = (str(self.root), self.refusal)
+
+    def _cannot_write(self) -> str | None:
+        """Why this archive cannot be written here, or None: a SQLite catalog on a full disk,
+        a SQLite catalog file or folder without write permission, a PostgreSQL user without write privileges on the ledger
+        (granted SELECT only), a read-only session or standby server, an object folder
+        without write permission."""
+        from sqlalchemy import text
+
+        if self.full_disk:
+            return self.full_disk
+        if self.engine.dialect.name == "sqlite" and sqlite_read_only(self.db_url):
+            return f"the catalog {self.engine.url.database} or its folder is not writable"
+        if self.engine.dialect.name == "postgresql":
+            with self.engine.connect() as conn:
+                user, may, session_ro, standby = conn.execute(text(
+                    "SELECT current_user, CASE WHEN to_regclass('ledger_head') IS NULL "
+                    "THEN true ELSE has_table_privilege('ledger_head', 'UPDATE') AND "
+                    "has_table_privilege('ledger_events', 'INSERT') END, "
+                    "current_setting('transaction_read_only'), pg_is_in_recovery()")).one()
+            if standby:
+                return "the PostgreSQL server is a read-only standby"
+            if session_ro == "on":
+                return "the PostgreSQL session is read-only"
+            if not may:
+                return f"the PostgreSQL user {user} may read the catalog, not write it"
+        root = self.objects.root
+        if root is not None and root.exists() and not os.access(root, os.W_OK | os.X_OK):
+            return f"the object folder {root} is not writable"
+        return None
+
+    def require_writable(self, what: str = "this command") -> None:
+        """Refuse (:class:`ReadOnly`) when the archive cannot be written here: called by
+        commands that change it before they do any work."""
+        if self.read_only:
+            raise self._read_only_error(what)
+
+    def _read_only_error(self, what: str) -> ReadOnly:
+        hint = ("nothing was recorded; free space on that disk and run the command again "
+                "(reading commands still work)") if self.full_disk else None
+        return ReadOnly(str(self.root), self.refusal or "opened read-only", what=what,
+                        hint=hint)
 
     def close(self) -> None:
         """Release database connections."""
@@ -197,15 +251,7 @@ class Archive:
     def transaction(self) -> Iterator[Session]:
         """A write transaction: committed on success, rolled back on any exception."""
         if self.read_only:
-            from archive.errors import Refused
-
-            raise Refused(f"the archive {self.root} is open read-only")
-        if self.full_disk:
-            from archive.errors import StorageError
-
-            raise StorageError(f"cannot change the archive: {self.full_disk}",
-                               hint="nothing was recorded; free space and run the command "
-                                    "again (reading commands still work)")
+            raise self._read_only_error("this change")
         with (
             self.engine.connect().execution_options(nodekeep_write=True) as conn,
             Session(bind=conn, expire_on_commit=False) as session,
@@ -241,7 +287,8 @@ class Archive:
         sqlstate = getattr(orig, "sqlstate", None)
         low = text.lower()
         if ("disk is full" in low or "readonly database" in low or "read-only" in low
-                or sqlstate in ("53100", "25006")):  # PostgreSQL: disk full, read-only
+                or sqlstate in ("53100", "25006", "42501")):  # PostgreSQL: disk full,
+            # read-only transaction, insufficient privilege
             return StorageError(
                 f"the catalog {mask_url(self.db_url)} refused the write: {text}",
                 hint="this change was not recorded; free space or make the catalog "

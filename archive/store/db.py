@@ -32,6 +32,12 @@ def sqlite_url(path: Path) -> str:
     return f"sqlite:///{Path(path).resolve()}"
 
 
+def sqlite_read_only(url: str) -> bool:
+    """True when the SQLite catalog at ``url`` cannot be written here."""
+    u = make_url(url)
+    return u.get_backend_name() == "sqlite" and _read_only_sqlite(u.database or "")
+
+
 def _read_only_sqlite(path: str) -> bool:
     """True when a SQLite catalog file cannot be written here (read-only media or file)."""
     if not path or path == ":memory:" or not os.path.exists(path):
@@ -143,7 +149,9 @@ def make_engine(url: str, *, read_only: bool = False) -> Engine:
     a catalog whose disk is full: SQLite cannot even open a write-ahead-logged database for
     reading there (it must create its shared-memory file), while a read-only, immutable
     connection can, so ``verify``, ``where``, ``trace`` and ``history`` still answer; a write
-    is refused naming the full disk (:func:`sqlite_disk_full`)."""
+    is refused naming the full disk (:func:`sqlite_disk_full`).
+    A PostgreSQL catalog opened ``read_only`` runs every transaction read-only
+    (``default_transaction_read_only``)."""
     u = make_url(url)
     if u.get_backend_name() == "sqlite":
         path = u.database or ""
@@ -173,6 +181,10 @@ def make_engine(url: str, *, read_only: bool = False) -> Engine:
 
         return engine
     try:
+        if read_only and u.get_backend_name() == "postgresql":
+            # every transaction of the session is read-only: the server refuses any write
+            return create_engine(url, pool_pre_ping=True,
+                                 connect_args={"options": "-c default_transaction_read_only=on"})
         return create_engine(url, pool_pre_ping=True)
     except ModuleNotFoundError as exc:
         from archive.errors import EnvironmentProblem

@@ -12,10 +12,15 @@ from archive.store.models import LedgerEvent
 
 
 def event_dict(e: LedgerEvent) -> dict[str, Any]:
-    """A ledger event as plain data."""
-    return {"seq": e.seq, "at": e.at, "actor": e.actor, "action": e.action,
-            "survey_id": e.survey_id, "payload": json.loads(e.payload), "prev_hash": e.prev_hash,
-            "hash": e.hash}
+    """A ledger event as plain data: ``actor`` is who the command said acted, ``db_user``
+    who the database server says was connected (PostgreSQL; None on SQLite and for events
+    written before it was recorded); ``payload`` is None for an event a custody bundle
+    carries as its digest only (``payload_digest``)."""
+    return {"seq": e.seq, "at": e.at, "actor": e.actor, "db_user": e.db_user,
+            "action": e.action, "survey_id": e.survey_id,
+            "payload": None if e.payload is None else json.loads(e.payload),
+            "payload_digest": e.payload_digest, "scheme": e.scheme,
+            "prev_hash": e.prev_hash, "hash": e.hash}
 
 
 def ledger_events(arc: Archive, *, limit: int | None = None,

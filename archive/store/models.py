@@ -100,15 +100,28 @@ class StoredObject(Base):
 
 
 class LedgerEvent(Base):
-    """An append-only, hash-chained record of one state change."""
+    """An append-only, hash-chained record of one state change.
+
+    ``scheme`` says what the hash covers (:mod:`archive.store.ledger`): 1, events written
+    before catalog revision 0003, hash the payload text itself; 2 hashes the payload's SHA-256
+    (``payload_digest``) and the database session user (``db_user``, PostgreSQL only), so a
+    custody bundle can carry an event it does not need with its payload left out
+    (``payload`` NULL) and still prove the chain; ``survey_id`` names the survey without a
+    foreign key for the same reason.
+    """
 
     __tablename__ = "ledger_events"
     seq: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
     at: Mapped[datetime] = mapped_column(UTCDateTime)
     actor: Mapped[str] = mapped_column(String(200))
+    db_user: Mapped[str | None] = mapped_column(String(200), nullable=True)
     action: Mapped[str] = mapped_column(String(80), index=True)
-    survey_id: Mapped[int | None] = mapped_column(ForeignKey("surveys.id"), nullable=True)
-    payload: Mapped[str] = mapped_column(Text)
+    # the survey an event concerns, by id; no foreign key, so a bundle can carry the events
+    # of surveys it does not hold
+    survey_id: Mapped[int | None] = mapped_column(Integer, nullable=True)
+    payload: Mapped[str | None] = mapped_column(Text, nullable=True)
+    payload_digest: Mapped[str | None] = mapped_column(HASH, nullable=True)
+    scheme: Mapped[int] = mapped_column(Integer, default=1, server_default="1")
     prev_hash: Mapped[str] = mapped_column(HASH)
     hash: Mapped[str] = mapped_column(HASH, unique=True)
 

@@ -26,7 +26,7 @@ import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
-from archive.errors import IntegrityError, ObjectDamaged, Refused, StorageError
+from archive.errors import IntegrityError, ObjectDamaged, ReadOnly, StorageError
 from archive.store.hashing import CHUNK, is_hash
 
 # errno values of a storage that refuses writes: disk full, quota, read-only, permission.
@@ -70,6 +70,7 @@ class ObjectStore:
     def __init__(self, url: str | Path, *, read_only: bool = False) -> None:
         self.url = str(url)
         self.read_only = read_only
+        self.refusal: tuple[str, str] | None = None  # (archive, reason) set by its Archive
         if "://" in self.url and not self.url.startswith("file://"):
             fs, base = remote_filesystem(self.url)
             self._fs: pafs.FileSystem | None = fs
@@ -223,7 +224,8 @@ class ObjectStore:
     # -- writing ------------------------------------------------------------------------
     def _refuse_if_read_only(self) -> None:
         if self.read_only:
-            raise Refused(f"the object store {self.url} is open read-only")
+            where, reason = self.refusal or (self.url, "the object store is open read-only")
+            raise ReadOnly(where, reason, what="storing an object")
 
     def put_bytes(self, data: bytes) -> tuple[str, int]:
         """Store bytes; returns (hash, size). Idempotent."""

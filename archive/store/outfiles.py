@@ -5,6 +5,13 @@ permissions a new file gets from the user's umask (``0666 & ~umask``: team-reada
 umask says so, unlike the owner-only mode of a temporary file), and renamed onto its target
 by the caller once everything it depends on is recorded. A failure removes the temporary
 file, so no half-written file is ever left under the target's name.
+
+Text that people open in a spreadsheet is kept from being run as a formula (the "CSV
+injection" class described by OWASP): a text cell beginning with ``=``, ``+``, ``-``, ``@``,
+a tab or a carriage return gets a leading apostrophe, which spreadsheets read as "this is
+text" (:func:`spreadsheet_text`, :func:`spreadsheet_column`). A cell that is a plain number
+(``-12.5``, ``+3``) is a number, not a formula, and stays as it is; so does every numeric
+column, negative values included.
 """
 
 from __future__ import annotations
@@ -18,11 +25,19 @@ import threading
 import time
 from pathlib import Path
 
+import pyarrow as pa
+import pyarrow.compute as pc
+
 from archive.errors import Refused, StorageError, UsageError
 from archive.store.space import free_bytes
 
 # errno values of a file system that refuses a write: no space, quota, read-only.
 STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS}
+
+FORMULA_START = "=+-@\t\r"
+"""Characters that make a spreadsheet read a cell as a formula (OWASP, CSV Injection)."""
+_FORMULA = r"^[=+\-@\t\r]"
+_PLAIN_NUMBER = r"^[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?$"
 
 _UMASK_LOCK = threading.Lock()
 
@@ -152,3 +167,23 @@ def check_target(path: Path, force: bool) -> None:
     if not os.access(parent, os.W_OK | os.X_OK):
         raise UsageError(f"the folder {parent} is not writable",
                          hint="choose a folder you may write to with --to")
+
+
+def spreadsheet_text(text: str) -> str:
+    """``text`` as a spreadsheet will show it rather than evaluate it: a leading apostrophe
+    when it begins with a formula character (:data:`FORMULA_START`) and is not a plain
+    number; anything else unchanged."""
+    if text and text[0] in FORMULA_START and not re.match(_PLAIN_NUMBER, text):
+        return "'" + text
+    return text
+
+
+def spreadsheet_column(values: pa.Array | pa.ChunkedArray) -> pa.Array | pa.ChunkedArray:
+    """:func:`spreadsheet_text` over a string column (nulls stay null); other types are
+    returned unchanged."""
+    if not (pa.types.is_string(values.type) or pa.types.is_large_string(values.type)):
+        return values
+    risky = pc.and_(pc.match_substring_regex(values, _FORMULA),
+                    pc.invert(pc.match_substring_regex(values, _PLAIN_NUMBER)))
+    fixed = pc.binary_join_element_wise(pa.scalar("'", values.type), values, "")
+    return pc.if_else(pc.fill_null(risky, False), fixed, values)

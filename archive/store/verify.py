@@ -16,6 +16,11 @@ Checks, with a fixed vocabulary of problem kinds:
   share a key that must be unique.
 - ``dangling`` (not corruption): a stored file nothing in the catalog references, typically
   left by an interrupted write. Reported apart; ``verify`` still passes.
+
+A custody bundle (:mod:`archive.lineage.bundle`) carries some events reduced to the digest
+of their payload and leaves out rows that events it carries whole recorded; its closing
+``bundle.made`` event declares both, and only what it declares is accepted. An event
+without its payload that no such event declares is a ``broken-chain``.
 """
 
 from __future__ import annotations
@@ -31,7 +36,14 @@ from sqlalchemy.orm import Session
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
 from archive.store.catalog_check import check_catalog
-from archive.store.ledger import GENESIS, event_hash, row_digest, row_key
+from archive.store.ledger import (
+    BUNDLE_ACTION,
+    GENESIS,
+    hash_of,
+    payload_digest,
+    row_digest,
+    row_key,
+)
 from archive.store.models import (
     Base,
     Delivery,
@@ -70,6 +82,8 @@ class VerifyReport:
     bytes_checked: int = 0
     events_checked: int = 0
     rows_checked: int = 0
+    events_reduced: int = 0  # carried by a bundle as their payload digest only
+    rows_left_out: int = 0  # recorded by the ledger, left out of a bundle on purpose
     head: str | None = None
 
     @property
@@ -85,6 +99,8 @@ class VerifyReport:
             "bytes_checked": self.bytes_checked,
             "events_checked": self.events_checked,
             "rows_checked": self.rows_checked,
+            "events_reduced": self.events_reduced,
+            "rows_left_out": self.rows_left_out,
             "head": self.head,
         }
 
@@ -100,7 +116,8 @@ def _object_columns(model: type[Base]) -> list[str]:
 
 def verify_archive(arc: Archive, *, rehash: bool = True,
                    progress: Progress | None = None) -> VerifyReport:
-    """Check objects, references, the ledger chain and ledgered rows. Never writes."""
+    """Check the catalog itself, objects, references, the ledger chain and ledgered rows.
+    Never writes."""
     progress = progress or NoProgress()
     report = VerifyReport()
     for kind, subject, detail in check_catalog(arc.engine):
@@ -172,36 +189,7 @@ def _verify_rows(arc: Archive, s: Session, report: VerifyReport, *, rehash: bool
                         "bad-reference", f"{model.__tablename__} row {row_key(row)}",
                         f"column {c} names object {value}, unknown to the catalog"))
     # 3. the ledger chain
-    prev_hash, prev_seq = GENESIS, 0
-    recorded: dict[tuple[str, str], tuple[str, list[str] | None]] = {}
-    last = None
-    for ev in s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq)):
-        report.events_checked += 1
-        subject = f"ledger event {ev.seq} ({ev.action})"
-        if ev.seq != prev_seq + 1:
-            report.problems.append(Problem("broken-chain", subject,
-                                           f"sequence jumps from {prev_seq} to {ev.seq}"))
-        if ev.prev_hash != prev_hash:
-            report.problems.append(Problem("broken-chain", subject,
-                                           "previous-hash link does not match the event before"))
-        expect = event_hash(ev.seq, ev.at, ev.actor, ev.action, ev.survey_id, ev.payload,
-                            ev.prev_hash)
-        if expect != ev.hash:
-            report.problems.append(Problem("broken-chain", subject,
-                                           "event content does not match its hash"))
-        try:
-            payload = json.loads(ev.payload)
-        except ValueError:
-            payload = {}
-            report.problems.append(Problem("broken-chain", subject, "payload is not JSON"))
-        for r in payload.get("rows", []) if isinstance(payload, dict) else []:
-            recorded[(r["table"], r["key"])] = (r["digest"], r.get("columns"))
-        prev_hash, prev_seq, last = ev.hash, ev.seq, ev
-    head = s.get(LedgerHead, 1)
-    report.head = head.hash if head else None
-    if last is not None and (head is None or head.hash != last.hash or head.seq != last.seq):
-        report.problems.append(Problem("broken-chain", "ledger head",
-                                       f"head does not name the last event ({last.seq})"))
+    recorded, declared = _walk_chain(s, report)
     # 4. ledgered rows unchanged, and none gone
     present: set[tuple[str, str]] = set()
     for model in LEDGERED_TABLES:
@@ -217,5 +205,83 @@ def _verify_rows(arc: Archive, s: Session, report: VerifyReport, *, rehash: bool
                 report.problems.append(Problem("altered-row", subject,
                                                "row content differs from its ledger record"))
     for table, key in sorted(set(recorded) - present):
+        if (table, key) in declared.left_out:
+            report.rows_left_out += 1
+            continue
         report.problems.append(Problem("deleted-row", f"{table} row {key}",
                                        "a ledger event recorded this row; it is gone"))
+
+
+@dataclass
+class _Declared:
+    """What the bundle events of a chain declare: reduced events and rows left out."""
+
+    reduced: set[int] = field(default_factory=set)
+    left_out: set[tuple[str, str]] = field(default_factory=set)
+
+    def add(self, payload: dict[str, Any]) -> None:
+        for first, last in payload.get("reduced") or []:
+            self.reduced.update(range(int(first), int(last) + 1))
+        self.left_out.update((str(t), str(k)) for t, k in payload.get("left_out") or [])
+
+
+def _walk_chain(s: Any, report: VerifyReport
+                ) -> tuple[dict[tuple[str, str], tuple[str, list[str] | None]], _Declared]:
+    """Walk the ledger in order: sequence, links, each event's hash under its scheme and
+    its payload digest. Returns the row digests the events recorded and what bundle events
+    declare; problems go into ``report``."""
+    prev_hash, prev_seq = GENESIS, 0
+    recorded: dict[tuple[str, str], tuple[str, list[str] | None]] = {}
+    declared = _Declared()
+    without_payload: list[LedgerEvent] = []
+    last = None
+    for ev in s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq)):
+        report.events_checked += 1
+        subject = f"ledger event {ev.seq} ({ev.action})"
+        if ev.seq != prev_seq + 1:
+            report.problems.append(Problem("broken-chain", subject,
+                                           f"sequence jumps from {prev_seq} to {ev.seq}"))
+        if ev.prev_hash != prev_hash:
+            report.problems.append(Problem("broken-chain", subject,
+                                           "previous-hash link does not match the event before"))
+        expect = hash_of(ev)
+        if expect is None:
+            report.problems.append(Problem(
+                "broken-chain", subject,
+                f"its hash cannot be recomputed (scheme {ev.scheme}"
+                + (", payload missing)" if ev.payload is None else ")")))
+        elif expect != ev.hash:
+            report.problems.append(Problem("broken-chain", subject,
+                                           "event content does not match its hash"))
+        elif (ev.scheme or 1) >= 2 and ev.payload is not None \
+                and ev.payload_digest != payload_digest(ev.payload):
+            report.problems.append(Problem("broken-chain", subject,
+                                           "recorded payload digest does not match the payload"))
+        payload: Any = {}
+        if ev.payload is None:
+            without_payload.append(ev)
+        else:
+            try:
+                payload = json.loads(ev.payload)
+            except ValueError:
+                report.problems.append(Problem("broken-chain", subject, "payload is not JSON"))
+        if not isinstance(payload, dict):
+            payload = {}
+        for r in payload.get("rows", []):
+            recorded[(r["table"], r["key"])] = (r["digest"], r.get("columns"))
+        if ev.action == BUNDLE_ACTION:
+            declared.add(payload)
+        prev_hash, prev_seq, last = ev.hash, ev.seq, ev
+    for ev in without_payload:
+        if ev.seq in declared.reduced:
+            report.events_reduced += 1
+        else:
+            report.problems.append(Problem(
+                "broken-chain", f"ledger event {ev.seq} ({ev.action})",
+                "its payload is gone and no custody-bundle event declares it left out"))
+    head = s.get(LedgerHead, 1)
+    report.head = head.hash if head else None
+    if last is not None and (head is None or head.hash != last.hash or head.seq != last.seq):
+        report.problems.append(Problem("broken-chain", "ledger head",
+                                       f"head does not name the last event ({last.seq})"))
+    return recorded, declared

@@ -6,6 +6,7 @@ import json
 import os
 
 from sqlalchemy import text
+from sqlalchemy.engine import make_url
 
 from archive.cli.main import cli
 from archive.store.archive import Archive
@@ -102,3 +103,22 @@ def test_postgres_url_password_is_never_printed(tmp_path, runner, pg_url):
 def test_history_limit_must_not_be_negative(runner, arc):
     r = invoke(runner, arc.root, "history", "--limit", "-3")
     assert r.exit_code == 2 and "-3 is not in the range x>=0" in r.output
+
+
+def test_history_shows_the_declared_actor_and_the_database_user(tmp_path, runner, db_url):
+    """On PostgreSQL every event records the session user the server saw beside the actor
+    the command declared; SQLite has no server login, so there is none."""
+    root = tmp_path / "arc"
+    args = ["init", str(root)] + (["--db", db_url] if db_url else [])
+    assert runner.invoke(cli, args).exit_code == 0
+    r = runner.invoke(cli, ["-A", str(root), "--actor", "crew 7 party chief", "survey",
+                            "create", "Kestrel Flats 3D", "--crs", "EPSG:32614"])
+    assert r.exit_code == 0, r.output
+    events = json.loads(invoke(runner, root, "history", "--json").output)
+    login = make_url(db_url).username if db_url else None
+    assert events[0]["actor"] == "crew 7 party chief" and events[0]["db_user"] == login
+    assert all(e["db_user"] == login for e in events)
+    text_out = invoke(runner, root, "history").output
+    header, _rule, row = text_out.splitlines()[:3]
+    assert "actor" in header and "db user" in header
+    assert "crew 7 party chief" in row and (login or "-") in row.split()

@@ -12,8 +12,10 @@ from sqlalchemy import select
 from archive.deliver.deliveries import deliver, list_deliveries
 from archive.edits import decisions as ed
 from archive.errors import Refused, StorageError, UsageError
+from archive.lineage.anchor import read_file_anchor
 from archive.review.acknowledge import ack_flag
 from archive.store.hashing import sha256_file
+from archive.store.ledger import Anchor
 from archive.store.models import Delivery, LedgerEvent
 from archive.store.verify import verify_archive
 from tests.support.builders import delivery_archive, make_run, positions_table
@@ -199,3 +201,19 @@ def test_edits_in_force_are_those_the_delivery_rests_on(flagged, tmp_path):
     res2 = deliver(arc, sid, run2.id, "csv", tmp_path / "b.csv", "processing",
                    allow_flags=True)
     assert res2.edit_ids == [ex.id, rej.id] and res2.warnings == []
+
+
+@pytest.mark.parametrize("fmt", ["sps", "segp1", "csv", "geojson", "gpkg"])
+def test_every_format_states_its_ledger_anchor(flagged, tmp_path, fmt):
+    """The delivered file itself holds the anchor (its deliver event and the hash before
+    it), so the recipient keeps it even without the manifest."""
+    arc, sid, *_ = flagged
+    out = tmp_path / f"kestrel.{fmt}"
+    res = deliver(arc, sid, None, fmt, out, "Harrow Basin Energy processing",
+                  allow_flags=True)
+    with arc.session() as s:
+        ev = s.scalars(select(LedgerEvent).order_by(LedgerEvent.seq.desc())).first()
+    assert ev.action == "deliver" and res.anchor == {"event": ev.seq, "after": ev.prev_hash}
+    assert read_file_anchor(out) == Anchor(ev.seq, ev.prev_hash)
+    if fmt == "sps":  # an H26 comment record, continued like every long header value
+        assert any(line.startswith("H26 Ledger anchor") for line in out.read_text().splitlines())

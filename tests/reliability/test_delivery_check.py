@@ -9,13 +9,18 @@ import stat
 from pathlib import Path
 
 import pytest
-from sqlalchemy import update
+from sqlalchemy import select, update
 
+from archive.lineage.anchor import read_file_anchor
+from archive.lineage.bundle import make_bundle
 from archive.lineage.check import check_delivery
 from archive.store.archive import Archive
-from archive.store.models import Delivery, Run
+from archive.store.ledger import Anchor
+from archive.store.models import Delivery, LedgerEvent, Run
+from archive.store.verify import verify_archive
 from tests.reliability.harness import ArchiveTemplate
 from tests.support.cli import invoke
+from tests.support.insider import rewrite_history
 from tests.support.reliability import make_delivery, make_survey_archive
 
 
@@ -133,3 +138,95 @@ def test_not_a_manifest_is_named(delivered, tmp_path):
     check = check_delivery(arc, bogus)
     assert _kinds(check) == ["manifest-unreadable"]
 
+
+
+def _deliver_event(arc: Archive, delivery_id: int) -> LedgerEvent:
+    with arc.session() as s:
+        return next(e for e in s.scalars(select(LedgerEvent).where(LedgerEvent.action ==
+                                                                   "deliver"))
+                    if json.loads(e.payload)["delivery"] == delivery_id)
+
+
+def test_the_file_and_its_manifest_carry_the_ledger_anchor(delivered):
+    """The anchor is the delivery's own event and the hash of the event before it; the
+    manifest adds the short hash of every earlier event."""
+    arc, res = delivered
+    ev = _deliver_event(arc, res.delivery_id)
+    assert res.anchor == {"event": ev.seq, "after": ev.prev_hash}
+    assert read_file_anchor(res.path) == Anchor(ev.seq, ev.prev_hash)
+    ledger = json.loads(Path(res.lineage_path).read_text(encoding="utf-8"))["ledger"]
+    assert ledger["anchor"] == res.anchor and len(ledger["short_hashes"]) == ev.seq - 1
+    with arc.session() as s:
+        earlier = [e.hash for e in s.scalars(select(LedgerEvent).where(LedgerEvent.seq < ev.seq)
+                                             .order_by(LedgerEvent.seq))]
+    assert [h[:16] for h in earlier] == ledger["short_hashes"] and earlier[-1] == ev.prev_hash
+    check = check_delivery(arc, res.lineage_path)
+    assert check.ok and check.anchor["events_checked"] == ev.seq
+
+
+def test_history_rewritten_before_the_delivery_is_named(delivered, runner, tmp_path):
+    """What an insider with write access could do: change an early event and recompute every
+    later hash and the head. A plain verify passes; the held delivery names the event."""
+    arc, res = delivered
+    with arc.session() as s:
+        target = s.scalars(select(LedgerEvent).where(LedgerEvent.action == "load.fixes")
+                           .order_by(LedgerEvent.seq)).first()
+    rewrite_history(arc, target.seq, lambda p: p.update(name="another-node.nmea"))
+    assert verify_archive(arc).ok  # the rewritten chain is whole again
+    r = invoke(runner, arc.root, "verify", "--delivery", res.path)
+    assert r.exit_code == 3
+    assert f"PROBLEM history-rewritten: ledger event {target.seq} (load.fixes)" in r.output
+    check = check_delivery(arc, res.lineage_path)
+    assert [p.kind for p in check.problems] == ["history-rewritten"]
+    assert check.anchor["first_differing_event"] == target.seq
+    # the file alone (manifest lost) still exposes the rewrite, as a range of events
+    alone = tmp_path / "alone" / Path(res.path).name
+    alone.parent.mkdir()
+    alone.write_bytes(Path(res.path).read_bytes())
+    check = check_delivery(arc, alone)
+    n = res.anchor["event"] - 1
+    assert [(p.kind, p.subject) for p in check.problems] == [
+        ("history-rewritten", f"ledger events 1-{n}")]
+    assert check.delivery_id == res.delivery_id
+
+
+def test_history_after_the_delivery_is_not_its_concern(delivered):
+    """An event rewritten after the delivery's own event leaves the delivery's history
+    intact (a later anchor, or a head recorded outside, covers that event)."""
+    arc, res = delivered
+    h, size = arc.objects.put_bytes(b"a note added after the delivery")
+    with arc.transaction() as tx:
+        arc.register_object(tx, h, size, "note")
+        later = arc.log(tx, "note.add", {"object": h})
+    rewrite_history(arc, later.seq, lambda p: p.update(object="0" * 64))
+    assert check_delivery(arc, res.lineage_path).ok
+
+
+def test_deleted_anchor_event_is_named(delivered):
+    arc, res = delivered
+    with arc.engine.begin() as c:
+        c.execute(LedgerEvent.__table__.delete().where(LedgerEvent.seq >= res.anchor["event"]))
+    kinds = [(p.kind, p.subject) for p in check_delivery(arc, res.lineage_path).problems]
+    assert ("anchor-missing", f"ledger event {res.anchor['event']}") in kinds
+
+
+def test_a_bundle_keeps_the_evidence_of_the_history_it_was_made_from(delivered, tmp_path):
+    """Bundled from either backend: the bundle proves the held delivery, keeps the database
+    user each event recorded, and still holds the original history after the source's is
+    rewritten, so the rewrite shows against the source and not against the bundle."""
+    arc, res = delivered
+    made = make_bundle(arc, [res.delivery_id], tmp_path / "bundle")
+    assert made.subset.verify.ok
+    login = arc.engine.url.username if arc.engine.dialect.name == "postgresql" else None
+    with Archive.open(tmp_path / "bundle") as b, b.session() as s:
+        users = {e.db_user for e in s.scalars(select(LedgerEvent))
+                 if e.action != "bundle.made"}
+    assert users == {login}
+    with arc.session() as s:
+        first = s.scalars(select(LedgerEvent).where(LedgerEvent.action == "load.fixes")
+                          .order_by(LedgerEvent.seq)).first()
+    rewrite_history(arc, first.seq, lambda p: p.update(name="another-node.nmea"))
+    assert [p.kind for p in check_delivery(arc, res.lineage_path).problems] == \
+        ["history-rewritten"]
+    with Archive.open(tmp_path / "bundle") as b:
+        assert check_delivery(b, res.lineage_path).ok and verify_archive(b).ok

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from archive.errors import Refused
+from archive.errors import ReadOnly
 from archive.store.archive import Archive
 from archive.store.history import ledger_head
 from archive.store.verify import verify_archive
@@ -135,9 +135,9 @@ def test_read_only_media(tmp_path: Path, tmpfs):
     assert json.loads(done.stdout)["ok"] and json.loads(done.stdout)["head"] == before["head"]
     assert run(cli_argv(root, "history", "--head")).stdout.startswith(before["head"])
     _assert_clean_failure(run(cli_argv(root, "load", "fixes", str(tmp_path / "later"))),
-                          "Read-only file system")
+                          "is read-only here (the catalog")
     _assert_clean_failure(run(cli_argv(root, "survey", "create", "Second", "--crs",
-                                       f"EPSG:{SURVEY_EPSG}")), "readonly database")
+                                       f"EPSG:{SURVEY_EPSG}")), "is read-only here")
     remount(media, "rw")
     assert _verify_ok(root)["head"] == before["head"]
 
@@ -172,9 +172,9 @@ def test_permissions_taken_away(tmp_path: Path):
         done = as_user("verify")
         assert done.returncode == 0 and "archive OK" in done.stdout, done.stderr
         _assert_clean_failure(as_user("load", "fixes", "--workers", "1", str(later[0])),
-                              "Permission denied")
+                              "is read-only here (the catalog")
         _assert_clean_failure(as_user("survey", "create", "Second", "--crs",
-                                      f"EPSG:{SURVEY_EPSG}"), "readonly database")
+                                      f"EPSG:{SURVEY_EPSG}"), "is read-only here")
     finally:
         for d, _, files in os.walk(root):
             os.chmod(d, stat.S_IRWXU)
@@ -194,11 +194,11 @@ def test_archive_opened_read_only(tmp_path: Path):
         assert verify_archive(arc).ok
         with arc.session() as s:
             sid = arc.survey(s, SURVEY_NAME).id
-        with pytest.raises(Refused, match="read-only"):
+        with pytest.raises(ReadOnly, match="is read-only here"):
             arc.objects.put_bytes(b"a field note")
-        with pytest.raises(Refused, match="read-only"):
+        with pytest.raises(ReadOnly, match="is read-only here"):
             load_fix_files(arc, sid, logs, workers=1)
-        with pytest.raises(Refused, match="read-only"):
+        with pytest.raises(ReadOnly, match="is read-only here"):
             create_survey(arc, "Second", f"EPSG:{SURVEY_EPSG}")
     after = _verify_ok(root)
     assert after == before and list((root / "objects").rglob("put-*")) == []

@@ -19,11 +19,12 @@ import pytest
 from sqlalchemy import select, text, update
 
 from archive.store.archive import Archive
-from archive.store.ledger import GENESIS, event_hash, row_key
-from archive.store.models import LedgerEvent, LedgerHead, RawFile, StoredObject
+from archive.store.ledger import row_key
+from archive.store.models import LedgerEvent, RawFile, StoredObject
 from archive.store.verify import LEDGERED_TABLES, verify_archive
 from tests.reliability.harness import ArchiveTemplate
 from tests.support.cli import invoke
+from tests.support.insider import rewrite_history
 
 # One text column per ledgered table, changed by the tamper test.
 TAMPER_COLUMN = {"surveys": "client", "raw_files": "node", "input_versions": "original_name",
@@ -203,19 +204,18 @@ def test_consistently_rewritten_chain_is_caught_by_the_recorded_head(arc: Archiv
     """An insider edits an old event and recomputes every later hash and the head: the
     chain is whole again, but the head recorded outside the archive no longer is in it."""
     earlier = _head(runner, arc.root)
-    events = _events(arc)
-    first = events[1]
-    payload = json.loads(first.payload)
-    payload["name"] = "rewritten"
-    first.payload = json.dumps(payload, sort_keys=True, separators=(",", ":"))
-    prev = GENESIS
-    with arc.engine.begin() as c:
-        for ev in events:
-            h = event_hash(ev.seq, ev.at, ev.actor, ev.action, ev.survey_id, ev.payload, prev)
-            c.execute(update(LedgerEvent).where(LedgerEvent.seq == ev.seq)
-                      .values(payload=ev.payload, prev_hash=prev, hash=h))
-            prev = h
-        c.execute(update(LedgerHead).where(LedgerHead.id == 1).values(hash=prev))
+    rewrite_history(arc, _events(arc)[1].seq, lambda p: p.update(name="rewritten"))
     assert verify_archive(arc).ok  # the rewrite is internally consistent...
     assert not _chain_grew_from(runner, arc.root, earlier)  # ...but the recorded head is gone
     assert _head(runner, arc.root)["hash"] != earlier["hash"]
+
+
+def test_payload_removed_outside_a_bundle_is_named(arc: Archive):
+    """Only a custody bundle may carry an event as its digest alone, and only when its
+    closing event declares it: a payload blanked in an ordinary archive is named."""
+    ev = _events(arc)[0]  # archive.init: no rows, so nothing else would notice
+    with arc.engine.begin() as c:
+        c.execute(update(LedgerEvent).where(LedgerEvent.seq == ev.seq).values(payload=None))
+    report = verify_archive(arc)
+    assert _kinds(report) == [("broken-chain", f"ledger event {ev.seq} (archive.init)")]
+    assert "no custody-bundle event declares it" in report.problems[0].detail

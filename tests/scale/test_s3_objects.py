@@ -12,7 +12,7 @@ import hashlib
 import pyarrow as pa
 import pytest
 
-from archive.errors import IntegrityError, Refused
+from archive.errors import IntegrityError, ReadOnly
 from archive.store.archive import Archive
 from archive.store.objects import ObjectStore
 from archive.store.verify import verify_archive
@@ -65,7 +65,7 @@ def test_tables_and_large_streams_round_trip(s3_url, tmp_path):
 
 def test_read_only_store_refuses_writes_and_missing_is_an_integrity_error(s3_url):
     store = ObjectStore(s3_url, read_only=True)
-    with pytest.raises(Refused):
+    with pytest.raises(ReadOnly):
         store.put_bytes(b"x")
     with pytest.raises(IntegrityError, match="missing"):
         store.open(hashlib.sha256(b"nothing").hexdigest())

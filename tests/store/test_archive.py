@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+import json
 import os
 
 import pytest
@@ -9,7 +11,7 @@ from sqlalchemy import select, text
 
 from archive.errors import ArchiveNotFound, SchemaBehind, UsageError
 from archive.store.archive import Archive, locate
-from archive.store.ledger import GENESIS, event_hash
+from archive.store.ledger import GENESIS
 from archive.store.models import LedgerEvent, RawFile, StoredObject, Survey, utcnow
 from archive.store.verify import verify_archive
 from archive.survey.surveys import create_survey
@@ -42,9 +44,20 @@ def test_init_open_and_chain(any_survey_arc: Archive):
         assert [e.action for e in events] == ["archive.init", "survey.create", "load.fixes"]
         prev = GENESIS
         for e in events:
-            assert e.prev_hash == prev
-            assert e.hash == event_hash(e.seq, e.at, e.actor, e.action, e.survey_id, e.payload,
-                                        e.prev_hash)
+            assert e.prev_hash == prev and e.scheme == 2
+            # who the server saw beside the declared actor: the login of the catalog URL on
+            # PostgreSQL, nothing on SQLite (no server, no login)
+            assert e.db_user == (arc.engine.url.username
+                                 if arc.engine.dialect.name == "postgresql" else None)
+            # the scheme-2 hash written out with the standard library: SHA-256 (FIPS 180-4,
+            # hashlib) of sorted, compact UTF-8 JSON over the fields and the payload's SHA-256
+            digest = hashlib.sha256(e.payload.encode("utf-8")).hexdigest()
+            assert e.payload_digest == digest
+            fields = {"scheme": 2, "seq": e.seq, "at": e.at.isoformat(), "actor": e.actor,
+                      "db_user": e.db_user, "action": e.action, "survey": e.survey_id,
+                      "payload_sha256": digest, "prev": e.prev_hash}
+            text = json.dumps(fields, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
+            assert e.hash == hashlib.sha256(text.encode("utf-8")).hexdigest()
             prev = e.hash
         report = verify_archive(reopened)
         assert report.ok, report.problems

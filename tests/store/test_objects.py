@@ -9,7 +9,7 @@ import stat
 import pyarrow as pa
 import pytest
 
-from archive.errors import IntegrityError, Refused
+from archive.errors import IntegrityError, ReadOnly
 from archive.store.objects import ObjectStore, fanout
 
 
@@ -69,7 +69,7 @@ def test_missing_object_and_read_only_store(tmp_path):
     with pytest.raises(IntegrityError, match="missing"):
         store.read_bytes("0" * 64)
     ro = ObjectStore(tmp_path / "o", read_only=True)
-    with pytest.raises(Refused, match="read-only"):
+    with pytest.raises(ReadOnly, match="read-only"):
         ro.put_bytes(b"x")
 
 

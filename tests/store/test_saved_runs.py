@@ -94,3 +94,27 @@ def test_a_run_with_occupations_saved_by_an_earlier_version_reproduces(tmp_path)
                 for x in read_sps_r((root / "delivered" / "receivers.sps").read_text())]
         assert (1001.0, 5002.0, 2) in keys and len(set(keys)) == 4
         assert verify_archive(arc).ok
+
+
+def test_a_bundle_of_an_archive_written_before_payload_digests(tmp_path):
+    """Events hashed over their payload text (scheme 1) cannot be reduced to a digest: the
+    bundle carries them whole, and the rows they recorded that it leaves out (the other
+    delivery) are declared left out, so the bundle still verifies, proves the held file and
+    reproduces the run."""
+    from archive.lineage.bundle import make_bundle
+
+    root = tmp_path / "v2"
+    shutil.copytree(SAVED_V2, root)
+    with Archive.open(root, check_schema=False) as arc:
+        migrate.upgrade(arc.engine)
+    with Archive.open(root, read_only=True) as arc:
+        held = root / "delivered" / "receivers.csv"
+        delivery_id = json.loads((root / "delivered" / "receivers.csv.lineage.json")
+                                 .read_text(encoding="utf-8"))["delivery"]["id"]
+        res = make_bundle(arc, [delivery_id], tmp_path / "bundle")
+    assert res.subset.rows_left_out == 1 and res.subset.events_reduced == 0
+    with Archive.open(tmp_path / "bundle") as b:
+        report = verify_archive(b)
+        assert report.ok and report.rows_left_out == 1
+        assert check_delivery(b, held).ok
+        assert reproduce(b, RUN_V2[:10])["identical"] is True

@@ -48,3 +48,10 @@ def test_init_from_installed_wheel(tmp_path):
                          capture_output=True, text=True, cwd=tmp_path)
     assert run.returncode == 0, run.stderr
     assert "UTM zone 14N" in run.stdout
+    # every package of the checkout is in the wheel (a package missing from the build's
+    # list installs nothing and fails only when a command imports it)
+    packages = sorted("archive." + p.parent.name for p in (REPO / "archive").glob("*/__init__.py"))
+    run = subprocess.run([str(fresh_py), "-c", "import importlib, sys; "
+                          "[importlib.import_module(m) for m in sys.argv[1:]]", *packages],
+                         capture_output=True, text=True, cwd=tmp_path)
+    assert run.returncode == 0, run.stderr
