@@ -36,7 +36,7 @@ from typing import Any
 
 from sqlalchemy import select, update
 
-from archive.errors import Refused, StorageError, UsageError
+from archive.errors import StorageError, UsageError
 from archive.ingest.paths import expand_paths, node_for
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
@@ -155,8 +155,7 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
         raise UsageError(f"unknown log format {fmt!r}", hint=f"use one of {', '.join(FORMATS)}")
     if node and node_pattern:
         raise UsageError("give either a node serial or a node pattern, not both")
-    if arc.read_only or arc.objects.read_only:
-        raise Refused(f"the archive {arc.root} is open read-only")
+    arc.require_writable("loading fix logs")
     if fmt == "delimited":
         if not profile_path:
             raise UsageError("delimited logs need a profile",
