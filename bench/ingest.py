@@ -40,8 +40,7 @@ import time
 from pathlib import Path
 
 import numpy as np
-
-from archive.ingest.nmea_write import write_nmea
+from archive.seeds.nmea_write import write_nmea
 
 HEAVY = ("numba", "scipy", "pandas", "pyarrow", "matplotlib", "dask", "rasterio", "pyproj",
          "sqlalchemy", "alembic", "numpy")

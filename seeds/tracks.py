@@ -14,9 +14,8 @@ from dataclasses import dataclass
 import numpy as np
 from archive.seeds.gnss_errors import ErrorModel, node_errors
 from archive.seeds.layout import Occupation
+from archive.seeds.nmea_write import write_nmea
 from archive.seeds.terrain import Terrain
-
-from archive.ingest.nmea_write import write_nmea
 
 ANTENNA_STANDING = 0.15  # m above ground, node on the ground (common practice, no source)
 ANTENNA_CARRIED = 1.2  # m, in a bag or on a truck bed

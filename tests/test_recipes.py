@@ -1,5 +1,5 @@
 """The maintainer-guide recipes, each followed once: a new delivery format, a new survey input
-kind, a new solver estimator (and a new fix-log format), registered in one place and picked
+kind, a new solver estimator and a new fix-log format, registered in one place and picked
 up by the command line and the library without touching anything else."""
 
 from __future__ import annotations
@@ -130,3 +130,81 @@ def test_recipe_new_estimator(toy_estimator, runner):
         scale_est="mad", update_scale=False, conv="coefs", tol=1e-12, maxiter=500)
     assert abs(res.centre[0][0] - 10.0) < 0.3  # the outliers were down-weighted
     assert res.centre[0][0] == pytest.approx(ref.params[0], abs=0.05)
+
+
+@pytest.fixture
+def toy_log_format() -> Iterator[str]:
+    from archive.ingest.formats import LOG_FORMATS, LogFormat
+    from archive.ingest.result import ParseResult, empty_rejects, rejects_table
+    from archive.ingest.schema import FIX_SCHEMA
+
+    def parse_semicolons(data: bytes, options) -> ParseResult:
+        """``UTC time;lat;lon;height;quality`` lines; any other line is rejected."""
+        lines = data.decode("ascii", "replace").splitlines()
+        good, bad = [], []
+        for k, line in enumerate(lines, start=1):
+            parts = line.split(";")
+            try:
+                t = np.datetime64(parts[0].rstrip("Z"), "us")
+                lat, lon, h, q = float(parts[1]), float(parts[2]), float(parts[3]), int(parts[4])
+            except (ValueError, IndexError):
+                bad.append(k)
+                continue
+            good.append((k, t, lat, lon, h, q))
+        n = len(good)
+        col = list(zip(*good, strict=True)) if good else [[]] * 6
+        fixes = pa.table({
+            "node": [options.node] * n,
+            "time": pa.array(np.array(col[1], dtype="datetime64[us]")).cast(
+                FIX_SCHEMA.field("time").type),
+            "lat": pa.array(col[2], pa.float64()), "lon": pa.array(col[3], pa.float64()),
+            "h_ell": pa.nulls(n, pa.float64()), "h_msl": pa.array(col[4], pa.float64()),
+            "geoid_sep": pa.nulls(n, pa.float64()), "quality": pa.array(col[5], pa.int8()),
+            "fix_type": pa.nulls(n, pa.int8()),
+            "valid": pa.array([q > 0 for q in col[5]], pa.bool_()),
+            "n_sats": pa.nulls(n, pa.int16()), "pdop": pa.nulls(n, pa.float32()),
+            "hdop": pa.nulls(n, pa.float32()), "vdop": pa.nulls(n, pa.float32()),
+            "raw_hash": [options.raw_hash] * n, "raw_line": pa.array(col[0], pa.int64()),
+            "sentence": pa.nulls(n, pa.string()), "no_quality": pa.array([False] * n),
+            "weeks_added": pa.array([0] * n, pa.int16())}, schema=FIX_SCHEMA)
+        rejects = (rejects_table(np.array(bad), np.array(["malformed"] * len(bad)),
+                                 pa.array([lines[k - 1] for k in bad]))
+                   if bad else empty_rejects())
+        return ParseResult(fixes=fixes, rejects=rejects, n_lines=len(lines), n_accepted=n,
+                           n_rejected=len(bad), n_ignored=0)
+
+    LOG_FORMATS.register("semicolons", "time;lat;lon;height;quality lines (a test format)",
+                         LogFormat(parse=parse_semicolons, parser="semicolons-1",
+                                   expected="time;lat;lon;height;quality lines"))
+    yield "semicolons"
+    LOG_FORMATS.unregister("semicolons")
+
+
+def test_recipe_new_log_format(toy_log_format, survey_arc, tmp_path, runner):
+    log = tmp_path / "KF40001.txt"
+    log.write_text("2024-03-01T00:00:00Z;35.1000001;-101.2;910.5;1\n"
+                   "a note the logger wrote\n"
+                   "2024-03-01T00:00:01Z;35.1000002;-101.2000001;910.7;4\n")
+    r = invoke(runner, survey_arc.root, "load", "fixes", "--help")
+    text = " ".join(r.output.split())
+    assert "semicolons]" in text and "semicolons: time;lat;lon;height;quality lines" in text
+    r = invoke(runner, survey_arc.root, "load", "fixes", str(log), "--format", "semicolons",
+               "--workers", "1")
+    assert r.exit_code == 0, r.stderr
+    r = invoke(runner, survey_arc.root, "logs", "--json")
+    [row] = json.loads(r.output)
+    assert (row["node"], row["n_fixes"], row["n_rejected"]) == ("KF40001", 2, 1)
+    from archive.store.models import RawFile
+
+    with survey_arc.session() as s:
+        assert s.query(RawFile).one().parser == "semicolons-1"
+    out = tmp_path / "fixes.csv"
+    r = invoke(runner, survey_arc.root, "fixes", "KF40001", "--to", str(out))
+    assert r.exit_code == 0, r.stderr
+    assert out.read_text().splitlines()[1].split(",")[:3] == [
+        '"KF40001"', '"2024-03-01T00:00:00.000000Z"', "35.1000001"]
+    empty = tmp_path / "KF40002.txt"
+    empty.write_text("nothing here\n")
+    r = invoke(runner, survey_arc.root, "load", "fixes", str(empty), "--format", "semicolons",
+               "--workers", "1")
+    assert r.exit_code == 1 and "expected time;lat;lon;height;quality lines" in r.output + r.stderr

@@ -6,8 +6,9 @@ import datetime as dt
 
 import click
 
-from archive.cli.options import CliState, output_options, pass_state, survey_option
+from archive.cli.options import CliState, RegistryOption, output_options, pass_state, survey_option
 from archive.cli.output import Bar, emit, table
+from archive.ingest.formats import LOG_FORMATS
 
 
 def _summary(report) -> str:
@@ -42,7 +43,7 @@ def _prestart(paths: list[str], workers: int | None) -> None:
 
 @click.command("fixes")
 @click.argument("paths", nargs=-1, required=True, metavar="PATH...")
-@click.option("--format", "fmt", type=click.Choice(["nmea", "delimited"]), default=None,
+@click.option("--format", "fmt", cls=RegistryOption, registry=LOG_FORMATS, default=None,
               help="Log format (default: nmea, or delimited when --profile is given).")
 @click.option("--profile", "profile_path", type=click.Path(exists=True, dir_okay=False),
               default=None, help="TOML mapping profile for delimited (CSV/TSV) logs.")

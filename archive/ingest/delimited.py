@@ -16,6 +16,8 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.errors import UsageError
+from archive.ingest.formats import LogOptions
 from archive.ingest.nmea_scan import split_lines
 from archive.ingest.profile import Profile
 from archive.ingest.result import (
@@ -217,3 +219,15 @@ def _table(lines, t, lat, lon, nums, profile: Profile, node: str, raw_hash: str)
         "weeks_added": pa.array(np.zeros(m, np.int16), pa.int16()),
     }
     return sort_fixes(pa.table(cols, schema=FIX_SCHEMA))
+
+
+def parse_log(data: bytes, options: LogOptions) -> ParseResult:
+    """The ``delimited`` log format's parse function (:mod:`archive.ingest.formats`): the
+    profile named in ``options`` is read (and checked) here."""
+    from archive.ingest.profile import load_profile
+
+    if not options.profile_path:
+        raise UsageError("delimited logs need a profile",
+                         hint="pass --profile FILE (see docs/ingest.md)")
+    return parse_delimited(data, profile=load_profile(options.profile_path), node=options.node,
+                           raw_hash=options.raw_hash)

@@ -37,13 +37,12 @@ from typing import Any
 from sqlalchemy import select, update
 
 from archive.errors import StorageError, UsageError
+from archive.ingest.formats import log_format
 from archive.ingest.paths import expand_paths, node_for
 from archive.progress import NoProgress, Progress
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, LedgerHead, RawFile, StoredObject, utcnow
 
-FORMATS = ("nmea", "delimited")
-PARSERS = {"nmea": "nmea-2", "delimited": "delimited-2"}
 BATCH_FILES = 64  # most files per transaction; the first batches are 1, 2, 4, ... files
 BATCH_SECONDS = 2.0
 
@@ -151,14 +150,13 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
 
     progress = progress or NoProgress()
     fmt = fmt or ("delimited" if profile_path else "nmea")
-    if fmt not in FORMATS:
-        raise UsageError(f"unknown log format {fmt!r}", hint=f"use one of {', '.join(FORMATS)}")
+    spec = log_format(fmt)  # UsageError naming the registered formats
     if node and node_pattern:
         raise UsageError("give either a node serial or a node pattern, not both")
     arc.require_writable("loading fix logs")
-    if fmt == "delimited":
+    if spec.needs_profile:
         if not profile_path:
-            raise UsageError("delimited logs need a profile",
+            raise UsageError(f"{fmt} logs need a column profile",
                              hint="pass --profile FILE (see docs/ingest.md)")
         from archive.ingest.profile import load_profile
 
@@ -172,7 +170,7 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
     outcomes = [FileOutcome(str(p), "pending") for p in files]
     sizes = [p.stat().st_size for p in files]
     progress.start(sum(sizes), "bytes", "load fixes")
-    profile_hash = arc.objects.put_file(profile_path)[0] if fmt == "delimited" else None
+    profile_hash = arc.objects.put_file(profile_path)[0] if spec.needs_profile else None
     windows, survey_window = reference_windows(arc, survey_id)
     known = _known_hashes(arc, survey_id)
     set_known(known)
@@ -381,7 +379,7 @@ class _Recorder:
         row = RawFile(
             survey_id=self.survey_id, object_hash=o.raw_hash, original_name=o.path,
             node=o.node, format=self.fmt, profile_hash=self.profile_hash, size=o.size,
-            received_at=utcnow(), received_by=arc.actor, parser=PARSERS[self.fmt],
+            received_at=utcnow(), received_by=arc.actor, parser=log_format(self.fmt).parser,
             n_lines=o.n_lines, n_accepted=o.n_accepted, n_rejected=o.n_rejected,
             n_ignored=o.n_ignored, n_fixes=o.n_fixes, n_valid=o.n_valid, t_first=o.t_first,
             t_last=o.t_last, fixes_hash=fixes["hash"],

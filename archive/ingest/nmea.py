@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from archive.ingest.formats import LogOptions
 from archive.ingest.nmea_chunks import (
     Assembler,
     Chunk,
@@ -209,3 +210,9 @@ def parse_nmea(data: bytes, *, node: str, raw_hash: str, date: dt.date | None = 
     result, days = combine_with_days(memory_chunks(data, max(1, chunk_bytes), node=node,
                                          raw_hash=raw_hash, date=date))
     return apply_rollover(result, days, reference, data, reference_text)
+
+
+def parse_log(data: bytes, options: LogOptions) -> ParseResult:
+    """The ``nmea`` log format's parse function (:mod:`archive.ingest.formats`)."""
+    return parse_nmea(data, node=options.node, raw_hash=options.raw_hash, date=options.date,
+                      reference=options.reference, reference_text=options.reference_text)

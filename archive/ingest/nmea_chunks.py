@@ -30,6 +30,7 @@ from archive.ingest.arrow_build import (
     floats,
     from_numpy,
 )
+from archive.ingest.ascii import COMMA, SPACE, STAR
 from archive.ingest.nmea_epochs import US_PER_DAY, assemble
 from archive.ingest.result import empty_rejects, line_texts, sort_fixes
 from archive.ingest.schema import FIX_STORAGE_SCHEMA, REJECT_SCHEMA
@@ -212,7 +213,7 @@ def _type_matrix(buf: np.ndarray, at: np.ndarray) -> np.ndarray:
     idx = at[:, None] + np.arange(1, 9)[None, :]
     inside = idx < buf.shape[0]
     chars = np.where(inside, buf[np.minimum(idx, max(buf.shape[0] - 1, 0))], 0).astype(np.uint8)
-    stop = (chars == 44) | (chars == 42) | (chars < 33) | (chars > 126)
+    stop = (chars == COMMA) | (chars == STAR) | (chars <= SPACE) | (chars > 126)
     cut = np.where(stop.any(axis=1), stop.argmax(axis=1), 8)
     chars[np.arange(8)[None, :] >= cut[:, None]] = 0
     std = np.zeros_like(chars)

@@ -14,6 +14,8 @@ from numba import carray, njit
 from numba.core import cgutils, types
 from numba.extending import intrinsic
 
+from archive.ingest.ascii import DOT, MINUS, PLUS, SPACE, A, D, E, F, M, N, P, R, S
+
 # exact: every 10^k, k <= 22, is a double, so a decimal with up to 18 digits is scaled
 # by one correctly rounded division
 POW10 = np.array([10.0 ** k for k in range(19)])
@@ -49,15 +51,15 @@ def num(buf, a, b):  # pragma: no cover - compiled
 @njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def number(buf, a, b):  # pragma: no cover - compiled
     """(value, code, digits after the decimal point) of a decimal number (see :func:`num`)."""
-    while a < b and buf[a] == 32:
+    while a < b and buf[a] == SPACE:
         a += 1
-    while b > a and buf[b - 1] == 32:
+    while b > a and buf[b - 1] == SPACE:
         b -= 1
     if a >= b:
         return np.nan, 1, 0
     neg = False
-    if buf[a] == 45 or buf[a] == 43:
-        neg = buf[a] == 45
+    if buf[a] == MINUS or buf[a] == PLUS:
+        neg = buf[a] == MINUS
         a += 1
     mant = 0
     frac = 0
@@ -72,7 +74,7 @@ def number(buf, a, b):  # pragma: no cover - compiled
             ndig += 1
             if dot:
                 frac += 1
-        elif c == 46 and not dot:
+        elif c == DOT and not dot:
             dot = True
         else:
             return np.nan, 2, 0
@@ -123,7 +125,7 @@ def time_of_day(buf, a, b):  # pragma: no cover - compiled
     ss = (buf[a + 4] - 48) * 10 + buf[a + 5] - 48
     us = 0
     if b > a + 6:
-        if buf[a + 6] != 46:
+        if buf[a + 6] != DOT:
             return -1, 2
         scale = 100000
         for j in range(a + 7, b):
@@ -222,23 +224,23 @@ def mode_quality(buf, a, b):  # pragma: no cover - compiled
         c = buf[j]
         rank = -1
         q = 0
-        if c == 82:  # R
+        if c == R:
             rank, q = 8, 4
-        elif c == 70:  # F
+        elif c == F:
             rank, q = 7, 5
-        elif c == 80:  # P
+        elif c == P:
             rank, q = 6, 3
-        elif c == 68:  # D
+        elif c == D:
             rank, q = 5, 2
-        elif c == 65:  # A
+        elif c == A:
             rank, q = 4, 1
-        elif c == 69:  # E
+        elif c == E:
             rank, q = 3, 6
-        elif c == 77:  # M
+        elif c == M:
             rank, q = 2, 7
-        elif c == 83:  # S
+        elif c == S:
             rank, q = 1, 8
-        elif c == 78:  # N
+        elif c == N:
             rank, q = 0, 0
         else:
             return -1, 2

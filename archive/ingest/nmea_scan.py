@@ -22,6 +22,27 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from archive.ingest.ascii import (
+    COMMA,
+    CR,
+    DOLLAR,
+    LF,
+    SPACE,
+    STAR,
+    TAB,
+    A,
+    C,
+    D,
+    G,
+    L,
+    M,
+    N,
+    P,
+    R,
+    S,
+    V,
+    Z,
+)
 from archive.ingest.nmea_fields import (
     angle,
     borrowed,
@@ -110,7 +131,7 @@ def _max_records(buf):  # pragma: no cover - compiled
         c = buf[i]
         b = buf[i - 1]
         count += (c == 10) | ((c == 13) & (buf[i + 1] != 10)) | \
-            ((c == 36) & (b != 10) & (b != 13))
+            ((c == DOLLAR) & (b != LF) & (b != CR))
     if n > 0:
         count += 2
     return count
@@ -131,9 +152,9 @@ def _continuation(buf, pos, final):  # pragma: no cover - compiled
         c = buf[j]
         if c == 10 or c == 13:
             break
-        if c == 36 or c < 32 or c > 126:
+        if c == DOLLAR or c < SPACE or c > 126:
             return -1, j, j, 0
-        if c == 42 and star < 0:
+        if c == STAR and star < 0:
             star = j
         elif star < 0:
             x ^= c
@@ -147,7 +168,7 @@ def _continuation(buf, pos, final):  # pragma: no cover - compiled
     if j < n:
         nxt = j + 2 if (buf[j] == 13 and j + 1 < n and buf[j + 1] == 10) else j + 1
     e = end
-    while e > pos and (buf[e - 1] == 32 or buf[e - 1] == 9):
+    while e > pos and (buf[e - 1] == SPACE or buf[e - 1] == TAB):
         e -= 1
     if star < 0 or e - star != 3 or hexval(buf[star + 1]) < 0 or hexval(buf[star + 2]) < 0:
         return -1, end, nxt, 0
@@ -285,7 +306,7 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
         c = 0
         while pos < n:
             c = buf[pos]
-            if c == 36:  # a sentence starts: an open one ends here (a lost line end)
+            if c == DOLLAR:  # a sentence starts: an open one ends here (a lost line end)
                 if d >= 0:
                     split = True
                     break
@@ -303,15 +324,15 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
             if body:  # XOR the printable run of the body, up to '*'
                 while pos < n:
                     c = buf[pos]
-                    if c == 42 or c == 36 or c < 32 or c > 126:
+                    if c == STAR or c == DOLLAR or c < SPACE or c > 126:  # noqa: SIM109 - numba
                         break
-                    if c == 44:
+                    if c == COMMA:
                         if nc <= MAX_FIELDS:
                             cm[nc] = pos
                         nc += 1
                     x ^= c
                     pos += 1
-                if pos < n and c == 42:
+                if pos < n and c == STAR:
                     p = pos
                     body = False
                     pos += 1
@@ -354,7 +375,7 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
         iv[S_START, i] = s
         iv[S_END, i] = e
         iv[S_LINE, i] = nline
-        while e > s and (buf[e - 1] == 32 or buf[e - 1] == 9):
+        while e > s and (buf[e - 1] == SPACE or buf[e - 1] == TAB):
             e -= 1
         if p >= e:
             p = -1
@@ -376,8 +397,8 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
                 c = buf[j]
                 if not ((65 <= c <= 90) or (48 <= c <= 57)):
                     plausible = False
-            proprietary = buf[d + 1] == 80
-            if not proprietary and (not plausible or buf[d + 6] != 44):
+            proprietary = buf[d + 1] == P  # $P...: a maker's own sentence
+            if not proprietary and (not plausible or buf[d + 6] != COMMA):
                 iv[S_STATUS, i] = ST_MALFORMED
                 break
             iv[S_ADDR, i] = d + 16  # where the address is, to count ignored types by
@@ -401,17 +422,17 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
             t0, t1, t2 = buf[d + 3], buf[d + 4], buf[d + 5]
             k = K_OTHER
             need = 0
-            if t0 == 71 and t1 == 71 and t2 == 65:
+            if t0 == G and t1 == G and t2 == A:  # GGA
                 k, need = K_GGA, 11
-            elif t0 == 82 and t1 == 77 and t2 == 67:
+            elif t0 == R and t1 == M and t2 == C:  # RMC
                 k, need = K_RMC, 9
-            elif t0 == 71 and t1 == 83 and t2 == 65:
+            elif t0 == G and t1 == S and t2 == A:  # GSA
                 k, need = K_GSA, 17
-            elif t0 == 90 and t1 == 68 and t2 == 65:
+            elif t0 == Z and t1 == D and t2 == A:  # ZDA
                 k, need = K_ZDA, 4
-            elif t0 == 71 and t1 == 78 and t2 == 83:
+            elif t0 == G and t1 == N and t2 == S:  # GNS
                 k, need = K_GNS, 8
-            elif t0 == 71 and t1 == 76 and t2 == 76:
+            elif t0 == G and t1 == L and t2 == L:  # GLL
                 k, need = K_GLL, 6
             if k == K_OTHER:
                 break
@@ -515,7 +536,7 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
                 dv, cd = -1, 1
                 if k == K_RMC:
                     dv, cd = ddmmyy(buf, fs[8], fe[8])
-                bad = bad or (stv != 65 and stv != 86) or cd == 2
+                bad = bad or (stv != A and stv != V) or cd == 2
                 rng = rng or cd == 3
                 if bad:
                     iv[S_STATUS, i] = ST_MALFORMED
@@ -523,7 +544,7 @@ def scan_buffer(data, final, checksummed, iv, tod, fv, first):  # pragma: no cov
                     iv[S_STATUS, i] = ST_RANGE
                 else:
                     iv[S_STATUS, i] = ST_ACCEPTED
-                    iv[S_I1, i] = 1 if (stv == 65 and mode != 78) else 0
+                    iv[S_I1, i] = 1 if (stv == A and mode != N) else 0
                     iv[S_DATE, i] = dv
             if iv[S_STATUS, i] == ST_ACCEPTED:
                 tod[i] = t

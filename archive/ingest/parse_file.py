@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from archive.errors import InputError, NodekeepError, StorageError
+from archive.ingest.formats import LogOptions, log_format
 from archive.store.objects import STORAGE_ERRNOS
 
 SMALL_FILE = 32 << 20  # read whole into memory below this size
@@ -81,12 +82,8 @@ def _not_a_log(path: str, n_lines: int, counts: dict[str, int], fmt: str) -> Inp
     if counts.get("no-date", 0):
         return InputError(path, "position sentences but no date (no RMC or ZDA sentence)",
                           hint="give the log's first UTC date with --date YYYY-MM-DD")
-    if fmt == "nmea":
-        return InputError(path, "no usable position sentence: not an NMEA 0183 fix log",
-                          expected="$--GGA, $--GNS, $--RMC or $--GLL sentences",
-                          hint="for CSV/TSV logs use --format delimited --profile FILE")
-    return InputError(path, "no line could be read with the delimited profile",
-                      hint="check the profile's column names, delimiter and formats")
+    spec = log_format(fmt)
+    return InputError(path, spec.no_fix, expected=spec.expected, hint=spec.hint or None)
 
 
 def _write_tmp(store, data: bytes | memoryview, sync: bool) -> str:
@@ -195,7 +192,7 @@ def _parse(task: dict[str, Any], seen: dict[str, Any], written: list[str]) -> di
     path = task["path"]
     sync = task.get("sync", True)
     size = os.path.getsize(path)
-    if task["format"] == "nmea" and size > task.get("small_file", SMALL_FILE):
+    if log_format(task["format"]).streams and size > task.get("small_file", SMALL_FILE):
         from archive.ingest.parse_stream import parse_large
 
         return parse_large(task, store, seen, written)
@@ -213,18 +210,14 @@ def _parse(task: dict[str, Any], seen: dict[str, Any], written: list[str]) -> di
 
 
 def _parse_memory(task: dict[str, Any], data: bytes, h: str):
-    date = dt.date.fromisoformat(task["date"]) if task.get("date") else None
-    if task["format"] == "nmea":
-        from archive.ingest.nmea import parse_nmea
-
-        return parse_nmea(data, node=task["node"], raw_hash=h, date=date,
-                          reference=_reference(task),
-                          reference_text=task.get("reference_text") or "the survey")
-    from archive.ingest.delimited import parse_delimited
-    from archive.ingest.profile import load_profile
-
-    profile = load_profile(task["profile_path"])
-    return parse_delimited(data, profile=profile, node=task["node"], raw_hash=h)
+    """Parse a log held in memory with its format's parse function."""
+    spec = log_format(task["format"])
+    options = LogOptions(
+        node=task["node"], raw_hash=h,
+        date=dt.date.fromisoformat(task["date"]) if task.get("date") else None,
+        reference=_reference(task), reference_text=task.get("reference_text") or "the survey",
+        profile_path=task.get("profile_path"))
+    return spec.parse_function()(data, options)
 
 
 def _finish(task: dict[str, Any], store, result, seen: dict[str, Any], written: list[str],

@@ -12,7 +12,7 @@ from archive.ingest.load import load_fix_files
 from archive.store.ledger import payload_of
 from archive.store.models import LedgerEvent, RawFile
 from archive.store.verify import verify_archive
-from tests.ingest.test_load import log_bytes, survey_id
+from tests.support.fixlogs import log_bytes, survey_id
 
 
 class Boom(RuntimeError):

@@ -202,7 +202,7 @@ def test_no_capture_is_refused_whole(survey_arc, tmp_path):
     import shutil
 
     from archive.ingest.load import load_fix_files
-    from tests.ingest.test_load import survey_id
+    from tests.support.fixlogs import survey_id
 
     d = tmp_path / "captures"
     d.mkdir()

@@ -10,11 +10,11 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+from archive.seeds.nmea_write import write_nmea
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from archive.ingest.nmea import combine, has_checksums, iter_chunks, parse_nmea
-from archive.ingest.nmea_write import write_nmea
 from archive.ingest.result import sort_fixes
 
 H = "0" * 64

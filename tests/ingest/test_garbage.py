@@ -5,12 +5,12 @@ from __future__ import annotations
 import re
 
 import numpy as np
+from archive.seeds.nmea_write import write_nmea
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from archive.ingest.delimited import parse_delimited
 from archive.ingest.nmea import parse_nmea
-from archive.ingest.nmea_write import write_nmea
 from archive.ingest.profile import profile_from_dict
 from archive.ingest.schema import FIX_SCHEMA, REJECT_REASONS, REJECT_SCHEMA
 

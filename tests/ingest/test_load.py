@@ -12,21 +12,12 @@ import pytest
 from sqlalchemy import func, select
 
 from archive.ingest.load import load_fix_files
-from archive.ingest.nmea_write import write_nmea
 from archive.ingest.read import list_raw_files, node_fixes
 from archive.store.ledger import payload_of
 from archive.store.models import LedgerEvent, RawFile, StoredObject
 from archive.store.verify import verify_archive
-from tests.support.cli import SURVEY_NAME, invoke
-
-
-def log_bytes(n: int = 600, start: str = "2024-03-01T23:55:00", seed: int = 3) -> bytes:
-    rng = np.random.default_rng(seed)
-    t = np.datetime64(start, "us") + np.arange(n) * np.timedelta64(1, "s")
-    return write_nmea(t, 35.2 + rng.normal(0, 2e-5, n), -101.7 + rng.normal(0, 2e-5, n),
-                      rng.normal(910, 3, n), np.full(n, -24.1), np.where(np.arange(n) % 10, 1, 0),
-                      rng.integers(5, 14, n), rng.uniform(0.6, 2.5, n), rng.uniform(1, 4, n),
-                      rng.uniform(1, 3, n))
+from tests.support.cli import invoke
+from tests.support.fixlogs import log_bytes, survey_id
 
 
 @pytest.fixture
@@ -36,11 +27,6 @@ def logs(tmp_path):
     (d / "KF10001.nmea").write_bytes(log_bytes(seed=1) + b"$GPGGA,0001\x00\x00")
     (d / "KF10002.nmea").write_bytes(log_bytes(seed=2))
     return d
-
-
-def survey_id(arc) -> int:
-    with arc.session() as s:
-        return arc.survey(s, SURVEY_NAME).id
 
 
 def counts(arc) -> tuple[int, int, int]:

@@ -155,7 +155,7 @@ def test_unknown_and_proprietary_sentences_are_counted_by_type():
 def test_one_node_many_overlapping_files_keep_one_fix_per_time(survey_arc, tmp_path):
     from archive.ingest.load import load_fix_files
     from archive.ingest.read import node_fixes
-    from tests.ingest.test_load import log_bytes, survey_id
+    from tests.support.fixlogs import log_bytes, survey_id
 
     a = log_bytes(300, "2024-03-01T10:00:00", seed=5)
     b = log_bytes(300, "2024-03-01T10:04:00", seed=5)  # 60 s of overlap with a

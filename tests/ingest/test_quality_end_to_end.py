@@ -14,9 +14,9 @@ import re
 
 import numpy as np
 import pytest
+from archive.seeds.nmea_write import write_nmea
 from pyproj import Transformer
 
-from archive.ingest.nmea_write import write_nmea
 from tests.support.cli import SURVEY_EPSG, invoke
 
 T0 = np.datetime64("2019-04-07T00:00:00", "us")

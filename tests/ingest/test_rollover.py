@@ -13,9 +13,9 @@ import numpy as np
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 import pytest
+from archive.seeds.nmea_write import write_nmea
 
 from archive.ingest.nmea import parse_nmea
-from archive.ingest.nmea_write import write_nmea
 from archive.ingest.parse_file import parse_file
 from archive.ingest.rollover import note_text
 from archive.ingest.schema import conform_fixes

@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 import pynmea2
 import pytest
+from archive.seeds.nmea_write import write_nmea
 
 from archive.ingest.nmea import parse_nmea
-from archive.ingest.nmea_write import write_nmea
 
 
 def epochs(n: int, seed: int = 7):

@@ -10,8 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-
-from archive.ingest.nmea_write import write_nmea
+from archive.seeds.nmea_write import write_nmea
 
 START = np.datetime64("2024-03-04T06:00:00", "us")
 DAMAGE = (b"$GPGGA,060000.00,3530.00000,N,09930.00000,W,1,08,0.9,545.4,M,-26.0,M,,*00\r\n",

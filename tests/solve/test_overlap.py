@@ -16,7 +16,7 @@ from archive.ingest.load import load_fix_files
 from archive.ingest.read import node_fixes
 from archive.solve.fixarrays import fix_arrays
 from archive.solve.inputs import load_fix_tables, partitions, survey_inputs
-from tests.ingest.test_load import log_bytes
+from tests.support.fixlogs import log_bytes
 
 NODE = "KF29999"
 
