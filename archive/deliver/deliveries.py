@@ -54,7 +54,8 @@ class DeliveryResult:
     final_hash: str
     run_id: str
     n_stations: int  # stations (line, point) delivered
-    n_records: int  # records: one per occupation (stations occupied twice count twice)
+    n_records: int  # records: one per occupation (stations occupied twice count twice) and
+    # one per part of a node that moved during its stay
     edit_ids: list[int] = field(default_factory=list)
     edit_set_hash: str = ""
     recipient: str = ""

@@ -22,6 +22,7 @@ from sqlalchemy import select
 from archive.edits.log import exclude_spans_in_force
 from archive.errors import IntegrityError, UsageError
 from archive.solve.fixarrays import empty_fixes
+from archive.solve.parts import used_indices
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
 from archive.survey.inputs import require_input
@@ -57,6 +58,7 @@ class SolveInputs:
     station_keys: set[tuple[float, float]] | None = None
     detect_unlogged: bool = True
     extra: dict[str, Any] = field(default_factory=dict)
+    used: pa.Table | None = None  # point indices in use per line/point (archive.solve.parts)
 
     @property
     def fix_hashes(self) -> list[str]:
@@ -163,13 +165,16 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
         restrict = keys is not None or bool(selection.get("nodes"))
         files = [(n, h, c) for n, h, c in rows if not restrict or n in nodes]
     datum = json.loads(dem_v.meta or "{}").get("vertical_datum", "") if dem_v else ""
+    retired = ((json.loads(dep_v.meta or "{}").get("occupations") or {}).get("retired") or []
+               if dep_v else [])
     return SolveInputs(
         survey=sdict, stations=stations, stations_hash=st_hash, deployments=deployments,
         deployments_hash=dep_hash, dem_hash=dem_hash, dem_datum=datum,
         versions={"stations": st_v.version if st_v else None,
                   "deployments": dep_v.version if dep_v else None,
                   "dem": dem_v.version if dem_v else None},
-        fix_files=files, edits=edits, station_keys=keys)
+        fix_files=files, edits=edits, station_keys=keys,
+        used=used_indices(dep_all, stations, retired))
 
 
 def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> list[Partition]:

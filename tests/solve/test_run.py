@@ -7,6 +7,7 @@ import os
 import stat
 from datetime import timedelta
 
+import numpy as np
 import pyarrow.compute as pc
 import pytest
 from sqlalchemy import select
@@ -65,9 +66,15 @@ def test_positions_carry_heights_uncertainty_and_flags(sim_arc, small_sim) -> No
     # model height 240 + 0.002·(E - west edge): |dh| stays small for these simulated nodes
     assert all(abs(d) < 3 for d in pos["dh"])
     assert all(s > 0.2 for s in pos["sigma_h"])
-    # 95 % radius between the circular-normal factors of the larger and smaller sigma
-    for se, sn, r95 in zip(pos["sigma_e"], pos["sigma_n"], pos["r95"], strict=True):
-        assert 1.9599 * max(se, sn) <= r95 <= 2.4478 * max(se, sn)
+    # 95 % radius between the circular-normal factors of the larger and smaller sigma, times
+    # the coverage factor of its degrees of freedom (archive.solve.noise.coverage_factor)
+    from archive.solve.noise import coverage_factor
+
+    for se, sn, r95, dof in zip(pos["sigma_e"], pos["sigma_n"], pos["r95"], pos["dof"],
+                                strict=True):
+        k = float(np.sqrt(coverage_factor(np.array([dof]))[0]))
+        assert 1.0 <= k < 1.5 and dof >= 1
+        assert 1.9599 * k * max(se, sn) <= r95 <= 2.4478 * k * max(se, sn)
 
 
 def test_recompute_is_bit_identical_and_detects_altered_inputs(sim_arc) -> None:
