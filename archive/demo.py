@@ -185,11 +185,12 @@ def _timed(seconds: dict[str, float], name: str, fn: Callable[[], Any]) -> Any:
 
 
 def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
-             progress: Progress | None = None) -> DemoSummary:
+             progress: Progress | None = None, interval: float | None = None) -> DemoSummary:
     """Run the whole job on a freshly generated scenario in ``out_dir`` (see module doc).
 
     ``out_dir`` must not already hold a demo archive. ``size`` is ``"demo"`` (a few hundred
-    stations) or ``"small"`` (thirty, for tests).
+    stations), ``"small"`` (thirty, for tests) or ``"same-day"`` (nine-hour deployments);
+    ``interval`` (s) logs at another interval than the size's.
     """
     from archive.deliver.deliveries import deliver
     from archive.ingest.load import load_fix_files
@@ -210,7 +211,8 @@ def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
                          hint="choose another folder, or remove this one first")
     sec: dict[str, float] = {}
     t_start = time.perf_counter()
-    sc = _timed(sec, "generate", lambda: generate(out / SCENARIO_DIR, seed=seed, size=size))
+    sc = _timed(sec, "generate", lambda: generate(out / SCENARIO_DIR, seed=seed, size=size,
+                                                  interval=interval))
     arc = Archive.init(out / ARCHIVE_DIR)
     try:
         survey = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
