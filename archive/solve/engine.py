@@ -75,14 +75,16 @@ def _stations(stations: pa.Table) -> dict[str, np.ndarray]:
                                                      "northing")}
 
 
-def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
+def solve_fixes(fixes: pa.Table | FixArrays, deployments: pa.Table, stations: pa.Table,
                 params: dict[str, Any], crs_epsg: int, *,
                 excludes: list[Span] | None = None,
                 sampler: Sampler | None = None, orthometric: Orthometric | None = None,
                 detect_unlogged: bool = True, extra_windows: Windows | None = None,
                 want_members: bool = False, used: pa.Table | None = None,
                 finish: bool = True) -> SolveOutput:
-    """Solve every deployment of ``deployments`` from ``fixes`` (see module doc).
+    """Solve every deployment of ``deployments`` from ``fixes`` (see module doc): a fix
+    table, or its arrays (:func:`archive.solve.fixarrays.fix_arrays`) so the table itself
+    need not stay in memory.
 
     ``excludes`` are the exclude spans in force (:mod:`archive.edits.spans`);
     ``extra_windows`` adds windows given directly (an unlogged cluster's window, when one

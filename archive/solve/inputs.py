@@ -21,7 +21,7 @@ from sqlalchemy import select
 
 from archive.edits.log import exclude_spans_in_force
 from archive.errors import IntegrityError, UsageError
-from archive.solve.fixarrays import empty_fixes
+from archive.solve.fixarrays import FixArrays, empty_fixes, fix_arrays, read_fix_arrays
 from archive.solve.parts import used_indices
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
@@ -216,11 +216,25 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
 
 def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
     """The fix tables of these objects, concatenated in the order given (schema of the
-    ingest contract). Give them in load order: repeated epochs keep the earlier file's fix."""
+    ingest contract, ``raw_hash`` dictionary-encoded: a 64-character hash repeated on every
+    fix of a raw file would be most of the table's memory). Give them in load order:
+    repeated epochs keep the earlier file's fix."""
     if not hashes:
         return empty_fixes()
-    tables = [arc.objects.read_table(h) for h in hashes]
+    tables = []
+    for h in hashes:
+        t = arc.objects.read_table(h)
+        i = t.schema.get_field_index("raw_hash")
+        tables.append(t.set_column(i, "raw_hash", pc.dictionary_encode(t["raw_hash"])))
     return pa.concat_tables(tables, promote_options="default")
+
+
+def load_fix_arrays(arc: Any, hashes: list[str]) -> FixArrays:
+    """The solver's arrays of these fix tables (in load order), read file by file
+    (:func:`archive.solve.fixarrays.read_fix_arrays`); ``arc`` has the ``objects`` store."""
+    if not hashes:
+        return fix_arrays(empty_fixes())
+    return read_fix_arrays([arc.objects.parquet_file(h) for h in hashes])
 
 
 def check_objects(arc: Archive, manifest: dict[str, Any]) -> None:

@@ -31,7 +31,7 @@ from archive.solve.inputs import (
     Partition,
     SolveInputs,
     check_objects,
-    load_fix_tables,
+    load_fix_arrays,
     partitions,
     survey_inputs,
 )
@@ -137,7 +137,7 @@ def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[s
                 sampler: Any) -> tuple[pa.Table, dict[str, Any]]:
     """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from."""
     survey = manifest["survey"]
-    fixes = load_fix_tables(holder, part.fix_hashes)
+    fixes = load_fix_arrays(holder, part.fix_hashes)
     out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
                       survey["crs_epsg"], excludes=manifest_spans(manifest["edits"]),
                       sampler=sampler, orthometric=_orthometric(survey),

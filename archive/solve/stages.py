@@ -55,8 +55,9 @@ class Screened:
 
 
 def screen(fixes: Any, params: dict[str, Any], spans: list[Span]) -> Screened:
-    """Sort the fixes, screen them by what the receiver said, and by the exclude spans."""
-    fx = fix_arrays(fixes)
+    """Sort the fixes (a fix table, or its :class:`FixArrays`), screen them by what the
+    receiver said, and by the exclude spans."""
+    fx = fixes if isinstance(fixes, FixArrays) else fix_arrays(fixes)
     code = screen_codes(fx.columns(), params["screen"])
     mark_excluded(code, excluded(fx.node_code, fx.t_us, fx.node_names, spans))
     return Screened(fx, code, code == 0)
