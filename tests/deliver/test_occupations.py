@@ -411,3 +411,36 @@ def test_a_moved_node_is_delivered_in_two_parts_each_for_its_own_time(survey, ru
     r = invoke(runner, base / "archive", "where", f"{line:g}", f"{point:g}", "--at",
                (at + timedelta(hours=6)).strftime("%Y-%m-%dT%H:%M:%SZ"))
     assert r.exit_code == 0 and "index 2" in r.output
+
+
+def test_edits_of_a_moved_node_act_on_its_occupation(survey):
+    """An edit names the occupation: an acknowledgement clears the flag on both parts, a set
+    position makes it one record again for the whole stay, under the occupation's index."""
+    from archive.review.acknowledge import ack_flag
+
+    arc, sid, run_id, sc, base = survey
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
+    line, point = moved["line"], moved["point"]
+    run = get_run(arc, sid, run_id)
+
+    def records():
+        final = final_positions(arc, sid, run)
+        return [r for r in final.to_pylist() if (r["line"], r["point"]) == (line, point)]
+
+    before = records()
+    assert [(r["index"], r["part"], r["occupation"]) for r in before] == [(1, 1, 1), (2, 2, 1)]
+    with pytest.raises(UsageError, match="no occupation with index 2"):
+        ed.reject_station(arc, sid, line, point, 2, reason="the later part only")
+    ack = ack_flag(arc, sid, line, point, 1, flag="moved", reason="the crew moved it")
+    after = records()
+    assert all("moved" not in r["flags"].split(";") and r["flags_acknowledged"] == "moved"
+               for r in after) and len(after) == 2
+    e = ed.set_position(arc, sid, line, point, 1, source="given", easting=before[1]["easting"],
+                        northing=before[1]["northing"], reason="surveyed where it ended")
+    [one] = records()
+    assert (one["index"], one["part"]) == (1, 0)
+    assert one["deployed"] == before[0]["deployed"] and one["retrieved"] == before[1]["retrieved"]
+    assert one["source"].startswith(f"edit:{e.id}")
+    for x in (e, ack):
+        ed.undo(arc, sid, x.id, reason="test done")
+    assert len(records()) == 2
