@@ -164,3 +164,33 @@ def test_errors_say_what_to_do(survey_arc) -> None:
         get_run(survey_arc, sid)
     with pytest.raises(UsageError, match="too short"):
         get_run(survey_arc, sid, "ab")
+
+
+def test_parameters_of_an_older_run_solve_as_they_did(small_sim) -> None:
+    """A manifest written before the pooled uncertainty, the move scan and the delivery of
+    each part names none of their parameters: it solves with batch means and the normal
+    quantile, the hour-block detector, and delivers the later part for the whole stay."""
+    from archive.solve.engine import solve_fixes
+    from archive.solve.params import BEFORE, default_params
+    from archive.solve.run import MANIFEST_FORMAT, _combine
+
+    old = {sec: {k: v for k, v in keys.items() if (sec, k) not in BEFORE}
+           for sec, keys in default_params().items()}
+    old["uncertainty"] |= {"method": "batch", "floor": 0.3}
+    old["flags"] |= {"min_span_hours": 6.0, "move_min_hours": 6.0, "move_block_min": 60.0,
+                     "move_z": 4.0}
+    sim = small_sim
+    out = solve_fixes(sim.fixes, sim.deployments, sim.stations, old, sim.meta["epsg"],
+                      finish=False).positions
+    pos = out.to_pydict()
+    moved = [k for k, f in enumerate(pos["flags"]) if "moved" in f.split(";")]
+    assert sorted(pos["part"][k] for k in moved) == [1, 2]
+    for k in moved:  # only the later part is delivered, under the occupation's index
+        assert pos["delivered"][k] == (pos["part"][k] == 2)
+    later = next(k for k in moved if pos["part"][k] == 2)
+    assert pos["point_index"][later] == pos["occupation"][later]
+    assert pos["held_from"][later] == pos["deployed"][later]
+    assert all(d is None for d in pos["dof"])  # the normal quantile
+    v2, _ = _combine([out], {"format": 2, "params": old,
+                             "survey": {"crs_epsg": sim.meta["epsg"]}})
+    assert "point_index" not in v2.column_names and MANIFEST_FORMAT == 3
