@@ -68,7 +68,7 @@ class DemoSummary:
     n_logs: int
     n_fixes: int
     n_rejected_lines: int
-    n_delivered: int  # delivered records (one per occupation)
+    n_delivered: int  # delivered records (one per occupation, one per part of a moved node)
     n_flagged: int
     check_points: dict[str, Any]
     truth: dict[str, Any]
@@ -112,8 +112,9 @@ def score(positions: Any, truth_csv: Path, problems: list[dict[str, Any]],
     """Score delivered positions against the truth and the planted problems.
 
     ``positions`` is a run's positions table with its occupation columns (rows with
-    ``delivered`` true are scored, each against the truth of its own occupation: the
-    scenario numbers a station's occupations in time order, as the deployment log does).
+    ``delivered`` true are scored, each against the truth of its own occupation and part:
+    the scenario numbers a station's occupations in time order, as the deployment log does,
+    and the parts of a moved node before and after the move).
     Returns the truth statistics (stations with a planted problem left out: their log or
     their stay is wrong on purpose; ``reoccupied`` repeats them over the occupations of
     stations laid out more than once), one outcome per planted problem, and the count of
@@ -122,15 +123,18 @@ def score(positions: Any, truth_csv: Path, problems: list[dict[str, Any]],
     pos = positions.to_pandas()
     pos = pos[pos["delivered"] & (pos["kind"] == "logged")]
     occ = pos["occupation"].fillna(pos["index"]).astype(int)
-    key = list(zip(pos["line"].astype(float), pos["point"].astype(float), occ, strict=True))
+    # each delivered record against the truth of its own place: the whole stay (part 0),
+    # or the part before (1) or after (2) a move
+    key = list(zip(pos["line"].astype(float), pos["point"].astype(float), occ,
+                   pos["part"].astype(int), strict=True))
     at = dict(zip(key, range(len(pos)), strict=True))
-    truth = {(float(r["line"]), float(r["point"]), int(r.get("occupation") or 1)): r
-             for r in _read_csv(truth_csv) if r["final"] == "true"}
+    truth = {(float(r["line"]), float(r["point"]), int(r.get("occupation") or 1),
+              int(r.get("part") or 0)): r for r in _read_csv(truth_csv)}
     planted = {(float(p["line"]), float(p["point"])) for p in problems
                if p["kind"] != "damaged-log"}
     again = {(float(r["line"]), float(r["point"])) for r in reoccupied or []}
 
-    def dist_to_truth(k: tuple[float, float, int]) -> float | None:
+    def dist_to_truth(k: tuple[float, float, int, int]) -> float | None:
         if k not in at or k not in truth:
             return None
         row = pos.iloc[at[k]]
@@ -145,7 +149,7 @@ def score(positions: Any, truth_csv: Path, problems: list[dict[str, Any]],
     d_again = np.array([dist_to_truth(k) for k in clean if k[:2] in again], dtype=float)
     stats["reoccupied"] = _distances(d_again) | {"stations": len(again)}
 
-    def first(line: float, point: float) -> tuple[float, float, int] | None:
+    def first(line: float, point: float) -> tuple[float, float, int, int] | None:
         keys = sorted(k for k in at if k[:2] == (line, point))
         return keys[0] if keys else None
 
@@ -181,11 +185,12 @@ def _timed(seconds: dict[str, float], name: str, fn: Callable[[], Any]) -> Any:
 
 
 def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
-             progress: Progress | None = None) -> DemoSummary:
+             progress: Progress | None = None, interval: float | None = None) -> DemoSummary:
     """Run the whole job on a freshly generated scenario in ``out_dir`` (see module doc).
 
     ``out_dir`` must not already hold a demo archive. ``size`` is ``"demo"`` (a few hundred
-    stations) or ``"small"`` (thirty, for tests).
+    stations), ``"small"`` (thirty, for tests) or ``"same-day"`` (nine-hour deployments);
+    ``interval`` (s) logs at another interval than the size's.
     """
     from archive.deliver.deliveries import deliver
     from archive.ingest.load import load_fix_files
@@ -206,7 +211,8 @@ def run_demo(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
                          hint="choose another folder, or remove this one first")
     sec: dict[str, float] = {}
     t_start = time.perf_counter()
-    sc = _timed(sec, "generate", lambda: generate(out / SCENARIO_DIR, seed=seed, size=size))
+    sc = _timed(sec, "generate", lambda: generate(out / SCENARIO_DIR, seed=seed, size=size,
+                                                  interval=interval))
     arc = Archive.init(out / ARCHIVE_DIR)
     try:
         survey = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",

@@ -50,6 +50,8 @@ class Size:
 SIZES = {
     "small": Size(n_lines=2, per_line=15, roll=6, dt=60.0, days=3.0),
     "demo": Size(n_lines=6, per_line=40, roll=60, dt=30.0, days=3.0),
+    # laid out in the afternoon, picked up before dawn: 9-hour deployments
+    "same-day": Size(n_lines=3, per_line=12, roll=6, dt=30.0, days=0.375),
 }
 
 

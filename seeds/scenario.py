@@ -24,7 +24,7 @@ bytes.
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
@@ -123,17 +123,20 @@ def _plant(seed: int, spread: Spread, plan: Plan, size_roll: int, n_nodes: int,
 
 
 def generate(out_dir: str | Path, *, seed: int = 7, size: str = "demo",
-             reoccupy: int = 4, relay_offset: tuple[float, float] = (2.0, 6.0)) -> Scenario:
+             reoccupy: int = 4, relay_offset: tuple[float, float] = (2.0, 6.0),
+             interval: float | None = None) -> Scenario:
     """Write the invented Kestrel Flats 3D scenario into ``out_dir`` and describe it.
 
-    ``size`` is ``"demo"`` (240 stations on 6 lines, 3-day deployments logged every 30 s)
-    or ``"small"`` (30 stations on 2 lines, 3-day deployments at 60 s, for tests).
+    ``size`` is ``"demo"`` (240 stations on 6 lines, 3-day deployments logged every 30 s),
+    ``"small"`` (30 stations on 2 lines, 3-day deployments at 60 s, for tests) or
+    ``"same-day"`` (36 stations on 3 lines, 9-hour deployments at 30 s). ``interval``
+    (seconds) logs every node at another interval than the size's (1 s, say).
     ``reoccupy`` stations are laid out again after their first pickup (the last one twice
     more), each new node ``relay_offset`` (2-6 m) from where the first one sat.
     """
     if size not in SIZES:
         raise ValueError(f"unknown scenario size {size!r}; use one of {', '.join(SIZES)}")
-    sz = SIZES[size]
+    sz = SIZES[size] if interval is None else replace(SIZES[size], dt=float(interval))
     out = Path(out_dir)
     (out / "logs").mkdir(parents=True, exist_ok=True)
 

@@ -59,6 +59,9 @@ class SimConfig:
     n_unlogged: int = 1
     move_range: tuple[float, float] = (8.0, 15.0)
     seed: int = 7
+    hours: tuple[float, float] | None = None  # per-node deployment length drawn in this
+    # range (hours) instead of ``days`` for every node: same-day deployments, say (6, 12)
+    move_at: tuple[float, float] = (0.35, 0.65)  # when a move happens, fraction of the stay
 
 
 @dataclass
@@ -113,7 +116,8 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
 
     dt = cfg.interval
     dep_start = EPOCH.timestamp() + cfg.camp_hours * 3600 + rng.uniform(0, 3600, n_st)
-    dep_len = cfg.days * 86400
+    dep_len = (np.full(n_st, cfg.days * 86400) if cfg.hours is None
+               else np.round(rng.uniform(*cfg.hours, n_st) * 3600))
     transit = 1800.0
     fin_e, fin_n = true_e.copy(), true_n.copy()
     move_t = np.full(n_st, np.nan)
@@ -121,11 +125,11 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
     to_geo = transformer(cfg.epsg, WGS84_GEOGRAPHIC)
     # the common-mode error every node shares at the same instant, on one time grid
     k0 = int(np.floor((dep_start.min() - transit - cfg.camp_hours * 3600) / dt)) - 1
-    k1 = int(np.ceil((dep_start.max() + dep_len + transit + cfg.camp_hours * 3600) / dt)) + 1
+    k1 = int(np.ceil((np.max(dep_start + dep_len) + transit + cfg.camp_hours * 3600) / dt)) + 1
     common = common_mode(rng, k1 - k0 + 1, dt, cfg.model)
     for i in range(n_st):
         t0 = dep_start[i] - transit - cfg.camp_hours * 3600
-        t_end = dep_start[i] + dep_len + transit + cfg.camp_hours * 3600
+        t_end = dep_start[i] + dep_len[i] + transit + cfg.camp_hours * 3600
         t = np.arange(np.ceil(t0 / dt) * dt, t_end, dt)
         n = len(t)
         pe = np.full(n, camp[0]) + rng.normal(0, 3, n)  # camp: nodes stacked in racks
@@ -133,20 +137,20 @@ def simulate(cfg: SimConfig | None = None) -> Simulation:
         go = (t >= dep_start[i] - transit) & (t < dep_start[i])
         f = (t[go] - (dep_start[i] - transit)) / transit
         pe[go], pn[go] = camp[0] + f * (true_e[i] - camp[0]), camp[1] + f * (true_n[i] - camp[1])
-        on = (t >= dep_start[i]) & (t < dep_start[i] + dep_len)
+        on = (t >= dep_start[i]) & (t < dep_start[i] + dep_len[i])
         pe[on], pn[on] = true_e[i], true_n[i]
         handled = on & (t < dep_start[i] + 900)  # first 15 min: still being placed
         pe[handled] += rng.normal(0, 6, handled.sum())
         pn[handled] += rng.normal(0, 6, handled.sum())
         if moved[i]:
-            move_t[i] = dep_start[i] + rng.uniform(0.35, 0.65) * dep_len
+            move_t[i] = dep_start[i] + rng.uniform(*cfg.move_at) * dep_len[i]
             ang = rng.uniform(0, 2 * np.pi)
             size = rng.uniform(*cfg.move_range)
             fin_e[i], fin_n[i] = true_e[i] + size * np.sin(ang), true_n[i] + size * np.cos(ang)
             after = on & (t >= move_t[i])
             pe[after], pn[after] = fin_e[i], fin_n[i]
-        back = (t >= dep_start[i] + dep_len) & (t < dep_start[i] + dep_len + transit)
-        f = (t[back] - (dep_start[i] + dep_len)) / transit
+        back = (t >= dep_start[i] + dep_len[i]) & (t < dep_start[i] + dep_len[i] + transit)
+        f = (t[back] - (dep_start[i] + dep_len[i])) / transit
         pe[back] = fin_e[i] + f * (camp[0] - fin_e[i])
         pn[back] = fin_n[i] + f * (camp[1] - fin_n[i])
         k = np.round(t / dt).astype(np.int64) - k0

@@ -71,10 +71,11 @@ def test_deliveries_read_back(demo: dict[str, Any]) -> None:
     sps = Path(demo["deliveries"]["sps"]).read_bytes().decode("ascii").splitlines()
     rec = [x for x in sps if x.startswith("R")]
     # one record per occupation: 30 stations, four of them occupied again (one of those
-    # three times), so 35 records under unique (line, point, index) keys
-    assert len(rec) == demo["n_delivered"] == demo["n_occupations"] == 35
+    # three times), so 35 occupations, and the node moved part way through its stay is
+    # delivered as two records (before and after the move): 36 under unique keys
+    assert len(rec) == demo["n_delivered"] == demo["n_occupations"] + 1 == 36
     keys = {(x[1:11], x[11:21], x[23]) for x in rec}
-    assert len(keys) == 35 and sum(1 for x in rec if x[23] != "1") == 5
+    assert len(keys) == 36 and sum(1 for x in rec if x[23] != "1") == 6
     # SPS rev 2.1: easting cols 47-55 (F9.1), northing 56-65 (F10.1) (SEG SPS format rev 2.1 (2006),
     # point record layout)
     e = np.array([float(x[46:55]) for x in rec])
@@ -82,9 +83,9 @@ def test_deliveries_read_back(demo: dict[str, Any]) -> None:
     assert np.all((e > 583000) & (e < 584000)) and np.all((n > 4062000) & (n < 4063500))
     p1 = Path(demo["deliveries"]["segp1"]).read_bytes().decode("ascii").splitlines()
     data = [x for x in p1 if not x.startswith("H")]
-    assert len(data) == 35
+    assert len(data) == 36
     # the point index of re-occupied stations rides in the reshoot-code column 26
-    assert len({(x[1:17], x[17:25], x[25]) for x in data}) == 35
+    assert len({(x[1:17], x[17:25], x[25]) for x in data}) == 36
     # SEG-P1: easting 46-53 and northing 54-61 (SEG, "Standard exchange formats for positional
     # data", Geophysics 1983, as read by GDAL's SEG-P1 driver); whole metres
     e1 = np.array([float(x[45:53]) for x in data])

@@ -47,8 +47,8 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
               force=force, merge_occupations=merge)
     d = res.as_dict()
     flags = res.unacknowledged_flags
-    records = (f" ({res.n_records} records: stations occupied more than once have one per "
-               "occupation)" if res.n_records != res.n_stations else "")
+    records = (f" ({res.n_records} records: one per occupation, and one per part of a node "
+               "that moved during its stay)" if res.n_records != res.n_stations else "")
     text = (f"delivery {res.delivery_id}: {res.n_stations} stations{records} of run "
             f"{res.run_id[:12]} "
             f"with {len(res.edit_ids)} edit(s) in force, as {fmt}, to {res.path} for "
@@ -59,7 +59,7 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
     merged = [m for m in res.merges if m["merged"]]
     if res.merges:
         text += (f"\n  occupations merged at {len(merged)} of {len(res.merges)} station(s) "
-                 "occupied more than once")
+                 "with more than one record (occupied again, or a node that moved)")
         for m in res.merges:
             if not m["merged"]:
                 text += f"\n    {station_text(m['line'], m['point'])} kept apart: {m['reason']}"

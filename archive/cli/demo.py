@@ -22,7 +22,7 @@ def summary_text(d: dict) -> str:
         f"logs, {d['n_fixes']:,} fixes, {d['n_rejected_lines']} lines rejected)",
         f"  archive    {d['archive_dir']}",
         f"  run        {d['run_id'][:12]}  ({d['n_delivered']} records delivered: one per "
-        f"occupation, {d['n_flagged']} flagged)",
+        f"occupation, one per part of a moved node; {d['n_flagged']} flagged)",
         f"  occupied   {d['n_reoccupied']} stations more than once ({d['n_occupations']} "
         f"occupations of {d['n_stations']} stations, each delivered under its own point "
         "index)",
@@ -80,11 +80,16 @@ def failure_line(d: dict) -> str | None:
 @click.argument("directory", default="demo-out", type=click.Path(file_okay=False))
 @click.option("--seed", default=7, show_default=True, type=int,
               help="Seed of the invented scenario (same seed, same files).")
-@click.option("--size", type=click.Choice(["demo", "small"]), default="demo", show_default=True,
-              help="demo: 240 stations, 3-day deployments at 30 s; small: 30 stations at 60 s.")
+@click.option("--size", type=click.Choice(["demo", "small", "same-day"]), default="demo",
+              show_default=True,
+              help="demo: 240 stations, 3-day deployments at 30 s; small: 30 stations at "
+                   "60 s; same-day: 36 stations, 9-hour deployments at 30 s.")
+@click.option("--interval", type=click.FloatRange(min=0.1), default=None,
+              help="Log every node at this interval, seconds, instead of the size's (1, say).")
 @output_options
 @pass_state
-def demo(state: CliState, directory: str, seed: int, size: str) -> None:
+def demo(state: CliState, directory: str, seed: int, size: str,
+         interval: float | None) -> None:
     """Run the whole job on an invented survey, in DIRECTORY (default demo-out).
 
     Generates the Kestrel Flats 3D scenario, archives and solves it, writes the QC
@@ -96,7 +101,7 @@ def demo(state: CliState, directory: str, seed: int, size: str) -> None:
 
     bar = Bar(state)
     try:
-        result = run_demo(directory, seed=seed, size=size, progress=bar)
+        result = run_demo(directory, seed=seed, size=size, progress=bar, interval=interval)
     finally:
         bar.close()
     data = result.as_dict()

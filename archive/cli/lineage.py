@@ -71,17 +71,23 @@ def _occupation_text(o: dict[str, Any]) -> list[str]:
         out.append(f"  solved part {s['part']} node {s['node']}: E {_f(s['easting'])} "
                    f"N {_f(s['northing'])} r95 {_f(s['r95'], '{:.2f}')} m, window "
                    f"{_when(s['t_start'])} to {_when(s['t_end'])}, flags {s['flags'] or 'none'}"
-                   + (" (delivered part)" if s["delivered"] else "")
+                   + (_delivered_as(s) if s["delivered"] else "")
                    + (" (from the settle-margin fixes)" if s.get("from_margins") else ""))
     fx = o["fixes"]
     out.append("  fixes in its window, all parts: "
                + (", ".join(f"{k} {v}" for k, v in fx.items()) or "none"))
     out += [f"    part {p['part']} node {p['node']}: used {p['used']}, rejected "
             f"{p['rejected']}, screened {p['screened']}"
-            + (" (delivered part)" if p["delivered"] else "") for p in o["fixes_by_part"]]
+            + (_delivered_as(p) if p["delivered"] else "") for p in o["fixes_by_part"]]
     out.append(f"  raw files ({len(o['raw_files'])}):")
     out += ["  " + line for line in _raw_text(o["raw_files"])]
     return out
+
+
+def _delivered_as(part: dict[str, Any]) -> str:
+    """' (delivered as index 2)', or ' (delivered part)' when the index is not known."""
+    k = part.get("index")
+    return f" (delivered as index {k})" if k is not None else " (delivered part)"
 
 
 def _station_text(t: dict[str, Any]) -> str:

@@ -146,9 +146,17 @@ def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int,
                 if r["deployed"] is not None else "")
         margins = ("  (no usable fix in the settled window: solved from the settle-margin "
                    "fixes, uncertainty widened)" if r["from_margins"] else "")
+        delivered = ""
+        if r["delivered"]:
+            k = r.get("point_index")
+            delivered = (f"  (delivered as index {k}, holds {r.get('held_from')} .. "
+                         f"{r.get('held_to') or 'open'})"
+                         if k is not None and r.get("part") in (1, 2) else "  (delivered)")
+        dof = (f"; expanded for {_fmt(r['dof'], 0)} degrees of freedom"
+               if r.get("dof") is not None else "")
         out += [
             f"station {station_text(r['line'], r['point'])} {occ}  node {r['node']}  "
-            f"{r['kind']} part {r['part']}{'  (delivered)' if r['delivered'] else ''}",
+            f"{r['kind']} part {r['part']}{delivered}",
             *([held] if held else []),
             f"  window     {r['t_start']} .. {r['t_end']}{margins}",
             f"  position   E {_fmt(r['easting'], 3)}  N {_fmt(r['northing'], 3)}  "
@@ -158,7 +166,7 @@ def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int,
             f"sigma {_fmt(r['sigma_h'])}",
             f"  sigma      E {_fmt(r['sigma_e'], 3)}  N {_fmt(r['sigma_n'], 3)}  corr "
             f"{_fmt(r['corr_en'])}  95% ellipse {_fmt(r['ell_major'])} x {_fmt(r['ell_minor'])}"
-            f" m at {_fmt(r['ell_bearing'], 0)} deg  r95 {_fmt(r['r95'])} m",
+            f" m at {_fmt(r['ell_bearing'], 0)} deg  r95 {_fmt(r['r95'])} m{dof}",
             f"  fixes      {r['n_used']} used, {r['n_rejected']} not used of {r['n_total']}; "
             f"n_eff {_fmt(r['n_eff'], 0)}; span {_fmt((r['span_s'] or 0) / 3600, 1)} h; "
             f"spread {_fmt(r['spread'])} m ({r['estimator']})",

@@ -66,7 +66,8 @@ class DeliveryResult:
     run_id: str
     anchor: dict[str, Any]  # the delivery's ledger event and the hash of the one before
     n_stations: int  # stations (line, point) delivered
-    n_records: int  # records: one per occupation (stations occupied twice count twice)
+    n_records: int  # records: one per occupation (stations occupied twice count twice) and
+    # one per part of a node that moved during its stay
     edit_ids: list[int] = field(default_factory=list)
     edit_set_hash: str = ""
     recipient: str = ""

@@ -1,9 +1,14 @@
 """Final positions: a run's delivered rows with the edits in force applied.
 
-One row per occupation (one deployment of a node at a station): ``index`` is the point index
-the occupation is delivered under (:mod:`archive.survey.occupations`), ``station_index`` the
-preplot station's own index, ``deployed``/``retrieved`` its logged window. An edit names one
-occupation by (line, point, index), so it never lands on another occupation of the station.
+One row per occupation (one deployment of a node at a station), or per part of it when the
+node moved during its stay: ``index`` is the point index the record is delivered under
+(the occupation's, :mod:`archive.survey.occupations`; the later part of a moved node has
+its own, :mod:`archive.solve.parts`), ``station_index`` the preplot station's own index,
+``occupation`` and ``part`` the occupation and part it is, ``deployed``/``retrieved`` the
+time the position holds (the occupation's logged window, cut at the move for a part). An
+edit names one occupation by (line, point, index of the occupation), so it never lands on
+another occupation of the station; it acts on every part of it, and a set position makes
+the occupation one record again, for its whole stay.
 With ``merge``, occupations of a station that cannot be told apart statistically are
 delivered as one position (:mod:`archive.deliver.merge`).
 
@@ -52,7 +57,9 @@ FINAL_SCHEMA = pa.schema(
         pa.field("index", pa.int8(), nullable=False),  # delivered point index (occupation)
         pa.field("station_index", pa.int8(), nullable=False),  # the preplot station's index
         pa.field("node", pa.string()),
-        pa.field("deployed", UTC_TIME),  # the occupation's logged window
+        # the time the position holds: the occupation's logged window, cut at the move for
+        # each part of a moved node
+        pa.field("deployed", UTC_TIME),
         pa.field("retrieved", UTC_TIME),  # null: still in the ground
         pa.field("easting", pa.float64()),
         pa.field("northing", pa.float64()),
@@ -75,8 +82,13 @@ FINAL_SCHEMA = pa.schema(
         # the merged occupations' logged windows, "deployed/retrieved;..." (ISO 8601, an
         # empty end while still out); "" for a single occupation (its window is above)
         pa.field("windows", pa.string(), nullable=False),
+        # the occupation (its point index in the deployment log) the record belongs to, and
+        # which part of it: 0 the whole stay, 1 and 2 before and after a move, each part of
+        # a moved node delivered as its own record (its own index and time)
+        pa.field("occupation", pa.int8()),
+        pa.field("part", pa.int8()),
     ],
-    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "2"},
+    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "3"},
 )
 
 Key = tuple[float, float, int]
@@ -92,16 +104,27 @@ def _key(line: Any, point: Any, index: Any) -> Key:
 
 
 def _delivered_rows(positions: pa.Table) -> dict[str, list[Any]]:
-    """The delivered row of every occupation as columns of FINAL_SCHEMA (``index`` is the
-    occupation's delivered point index, ``station_index`` the preplot station's)."""
+    """The delivered rows of every occupation as columns of FINAL_SCHEMA: ``index`` the
+    point index each is delivered under (the occupation's, or a part's own), ``station_index``
+    the preplot station's, ``occupation`` the occupation's, ``deployed``/``retrieved`` the
+    time the position holds."""
     dl = positions.filter(pc.equal(positions["delivered"], True))
     cols = {name: dl.column(name).to_pylist() if name in dl.column_names
             else [None] * dl.num_rows for name in FINAL_SCHEMA.names}
     cols["station_index"] = dl.column("index").to_pylist()
     if "occupation" in dl.column_names:
-        cols["index"] = [o if o is not None else i for o, i in
-                         zip(dl.column("occupation").to_pylist(), cols["station_index"],
+        cols["occupation"] = [o if o is not None else i for o, i in
+                              zip(dl.column("occupation").to_pylist(), cols["station_index"],
+                                  strict=True)]
+    else:
+        cols["occupation"] = list(cols["station_index"])
+    cols["index"] = list(cols["occupation"])
+    if "point_index" in dl.column_names:
+        cols["index"] = [p if p is not None else o for p, o in
+                         zip(dl.column("point_index").to_pylist(), cols["occupation"],
                              strict=True)]
+        cols["deployed"] = dl.column("held_from").to_pylist()
+        cols["retrieved"] = dl.column("held_to").to_pylist()
     return cols
 
 
@@ -122,26 +145,42 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
     cols["merged"] = [""] * n
     cols["windows"] = [""] * n
     cols["flags"] = [f or "" for f in cols["flags"]]
-    rows = {_key(a, b, c): i for i, (a, b, c) in
-            enumerate(zip(cols["line"], cols["point"], cols["index"], strict=True))}
+    # an edit names an occupation: it acts on every record of it (both parts of a moved node)
+    rows: dict[Key, list[int]] = {}
+    for i, key in enumerate(zip(cols["line"], cols["point"], cols["occupation"], strict=True)):
+        rows.setdefault(_key(*key), []).append(i)
     rejected: set[Key] = set()
+    dropped: set[int] = set()
     node_kept: set[int] = set()
 
-    def row_of(key: Key, create: bool) -> int | None:
+    def row_of(key: Key, create: bool) -> list[int]:
         if key in rows:
             return rows[key]
         if not create:
-            return None
+            return []
         for name in cols:
             cols[name].append(None)
         i = len(cols["line"]) - 1
         cols["line"][i], cols["point"][i], cols["index"][i] = key
-        cols["station_index"][i] = key[2]
+        cols["station_index"][i] = cols["occupation"][i] = key[2]
+        cols["part"][i] = 0
         cols["flags"][i], cols["flags_acknowledged"][i], cols["merged"][i] = "", "", ""
         cols["windows"][i] = ""
         cols["source"][i], cols["n_used"][i], cols["n_rejected"][i] = "", 0, 0
-        rows[key] = i
-        return i
+        rows[key] = [i]
+        return rows[key]
+
+    def one_position(found: list[int]) -> int:
+        """A set position is one place for the whole occupation: the parts of a moved node
+        become its first record, for the whole stay, under the occupation's index."""
+        first = min(found, key=lambda i: (cols["part"][i] or 0))
+        if len(found) > 1:
+            last = max(found, key=lambda i: (cols["part"][i] or 0))
+            cols["retrieved"][first] = cols["retrieved"][last]
+            cols["index"][first], cols["part"][first] = cols["occupation"][first], 0
+            dropped.update(i for i in found if i != first)
+            found[:] = [first]
+        return first
 
     def mark(i: int, edit_id: int) -> None:
         tag = f"edit:{edit_id}"
@@ -154,7 +193,7 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
         if e.kind == "reject-station":
             rejected.add(key)
         elif e.kind == "set-position":
-            i = row_of(key, create=True)
+            i = one_position(row_of(key, create=True))
             cols["easting"][i], cols["northing"][i] = p["easting"], p["northing"]
             cols["sigma_e"][i], cols["sigma_n"][i] = p.get("sigma_e"), p.get("sigma_n")
             cols["corr_en"][i], cols["r95"][i] = None, None
@@ -167,28 +206,27 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
                 node_kept.add(i)
             mark(i, e.id)
         elif e.kind == "set-height":
-            i = row_of(key, create=False)
-            if i is None:
-                continue  # a height alone gives no position: applied once one exists
-            cols["height"][i], cols["height_source"][i] = p["height"], p["source"]
-            mark(i, e.id)
+            # a height alone gives no position: applied once one exists
+            for i in row_of(key, create=False):
+                cols["height"][i], cols["height_source"][i] = p["height"], p["source"]
+                mark(i, e.id)
         elif e.kind == "ack-flag":
-            i = row_of(key, create=False)
-            if i is None:
-                continue
-            flags = [f for f in cols["flags"][i].split(";") if f]
-            if p["flag"] in flags:
-                flags.remove(p["flag"])
-                acked = [f for f in cols["flags_acknowledged"][i].split(";") if f]
-                cols["flags_acknowledged"][i] = ";".join([*acked, p["flag"]])
-                cols["flags"][i] = ";".join(flags)
+            for i in row_of(key, create=False):
+                flags = [f for f in cols["flags"][i].split(";") if f]
+                if p["flag"] in flags:
+                    flags.remove(p["flag"])
+                    acked = [f for f in cols["flags_acknowledged"][i].split(";") if f]
+                    cols["flags_acknowledged"][i] = ";".join([*acked, p["flag"]])
+                    cols["flags"][i] = ";".join(flags)
     for i in node_kept:
         cols["source"][i] += ";node:deployed"
     table = pa.table({n: pa.array(cols[n], FINAL_SCHEMA.field(n).type)
                       for n in FINAL_SCHEMA.names}, schema=FINAL_SCHEMA)
-    if rejected:
-        keep = np.array([_key(a, b, c) not in rejected for a, b, c in
-                         zip(cols["line"], cols["point"], cols["index"], strict=True)], bool)
+    if rejected or dropped:
+        keep = np.array([_key(a, b, c) not in rejected and i not in dropped
+                         for i, (a, b, c) in enumerate(zip(cols["line"], cols["point"],
+                                                           cols["occupation"], strict=True))],
+                        bool)
         table = table.filter(pa.array(keep))
     return _sorted(_with_lonlat(table, epsg))
 

@@ -62,13 +62,18 @@ class DeliveryFacts:
 
 
 def occupations_of(final: pa.Table) -> list[dict[str, Any]]:
-    """The delivered occupations of every station (line, point)."""
+    """The delivered occupations of every station (line, point); a part of a node that
+    moved during its stay also names its ``part`` (1 before the move, 2 after) and the
+    ``occupation`` it belongs to."""
     cols = ["line", "point", "index", "station_index", "node", "deployed", "retrieved",
             "merged"]
+    extra = [c for c in ("occupation", "part") if c in final.column_names]
     stations: dict[tuple[float, float], list[dict[str, Any]]] = {}
-    for r in final.select(cols).to_pylist():  # one entry per delivered record
+    for r in final.select(cols + extra).to_pylist():  # one entry per delivered record
         occ = {k: r[k] for k in cols[2:]}
         occ["merged"] = [int(i) for i in r["merged"].split(";")] if r["merged"] else []
+        if r.get("part") in (1, 2):
+            occ |= {"part": r["part"], "occupation": r["occupation"]}
         stations.setdefault((r["line"], r["point"]), []).append(occ)
     return [{"line": k[0], "point": k[1], "occupations": v} for k, v in stations.items()]
 

@@ -133,6 +133,9 @@ def _combined(rows: list[dict[str, Any]], cov: list[np.ndarray], unit: float,
         "windows": ";".join(
             f"{r['deployed'].isoformat() if r['deployed'] else ''}/"
             f"{r['retrieved'].isoformat() if r['retrieved'] else ''}" for r in rows),
+        "occupation": min((r["occupation"] for r in rows if r.get("occupation") is not None),
+                          default=None),
+        "part": 0,
     }
 
 

@@ -92,8 +92,9 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
         ("H26", "Position mapped", POSITION_MAPPED),
         ("H26", "Day/time columns 72-80", TIME_BASIS),
         ("H26", "Point index column 24", "one per occupation of the station (a node deployed "
-                                         "there), numbered in order of deployment; the lineage "
-                                         "manifest gives each one's node and window"),
+                                         "there), numbered in order of deployment, and one per "
+                                         "part of a node that moved during its stay; the "
+                                         "lineage manifest gives each one's node and window"),
         ("H26", "Units and precision", f"E/N {crs.unit} to 0.1, elevation metre to 0.1"),
         ("H26", "Producing run", ctx.run_id),
         ("H26", "Edit set", ctx.edit_set_hash),

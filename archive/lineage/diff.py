@@ -1,10 +1,10 @@
 """``diff``: how far each occupation moved between two runs.
 
-Occupations are paired by (line, point, point index of the occupation), whatever the format
+Delivered records are paired by (line, point, delivered point index), whatever the format
 of either run (runs made before occupations were numbered are paired through their own
-deployment table, :mod:`archive.solve.occupancy`): per-occupation horizontal and vertical
-movement of the delivered rows, a summary, those beyond a threshold, and those added or
-removed.
+deployment table, :mod:`archive.solve.occupancy`): the occupation's index, or a part's own
+for the later part of a node that moved during its stay. Per record: horizontal and vertical
+movement, a summary, those beyond a threshold, and those added or removed.
 """
 
 from __future__ import annotations
@@ -26,15 +26,19 @@ KEY = ["line", "point", "index"]
 
 
 def _frame(table: pa.Table, delivered_only: bool = True) -> pd.DataFrame:
-    """Delivered rows keyed by occupation: ``index`` is the occupation's point index (the
-    ``occupation`` column of a positions table, the ``index`` of a final table)."""
+    """Delivered rows keyed by delivered record: ``index`` is the point index it is
+    delivered under (``point_index``, else the ``occupation`` column of a positions table;
+    the ``index`` of a final table)."""
     if delivered_only and "delivered" in table.column_names:
         table = table.filter(pc.equal(table["delivered"], True))
     cols = [c for c in (*KEY, "node", "easting", "northing", "height")
             if c in table.column_names]
     df = table.select(cols).to_pandas()
     if "occupation" in table.column_names:
-        df["index"] = table["occupation"].to_pandas().fillna(df["index"]).astype("int64")
+        index = table["occupation"].to_pandas().fillna(df["index"])
+        if "point_index" in table.column_names:
+            index = table["point_index"].to_pandas().fillna(index)
+        df["index"] = index.astype("int64")
     return df
 
 

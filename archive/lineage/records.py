@@ -24,7 +24,7 @@ from archive.survey.keys import rows_at
 RECORD_KEYS = ("index", "station_index", "node", "deployed", "retrieved", "easting",
                "northing", "height", "height_source", "lat", "lon", "sigma_e", "sigma_n",
                "r95", "source", "flags", "flags_acknowledged", "merged", "windows",
-               "t_start", "t_end", "file_index")
+               "t_start", "t_end", "file_index", "occupation", "part")
 
 
 def _legacy_lookup(arc: Archive, run_id: str, line: float, point: float

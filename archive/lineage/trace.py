@@ -4,8 +4,9 @@
 and why": every delivery that carried it, the run behind the latest one (parameters, code
 version, input tables), the raw files whose fixes were in its cloud (name, hash, when and by
 whom received), how many fixes were used, rejected and screened (over all parts of the
-station's windows, and per part with the delivered part marked: a moved node has a part
-before and one after the move) and every edit of the station.
+station's windows, and per part with the delivered ones marked and the point index each is
+delivered under: a moved node has a part before and one after the move, each delivered as
+its own record) and every edit of the station.
 ``trace_file`` starts from a file on disk: its SHA-256 finds the delivery that wrote it.
 Both are read-only views.
 """
@@ -45,9 +46,11 @@ def _counts_by_part(cloud: pa.Table, rows: list[dict[str, Any]]) -> list[dict[st
     for node, part, status, n in zip(*(grouped[c].to_pylist() for c in
                                        ("node", "part", "status", "time_count")), strict=True):
         counts.setdefault((node, int(part)), {})[status] = int(n)
-    delivered = {(r["node"], int(r["part"])) for r in rows if r["delivered"]}
+    delivered = {(r["node"], int(r["part"])): r.get("point_index") for r in rows
+                 if r["delivered"]}
     keys = sorted({(r["node"], int(r["part"])) for r in rows} | set(counts))
-    return [{"node": node, "part": part, "delivered": (node, part) in delivered}
+    return [{"node": node, "part": part, "delivered": (node, part) in delivered,
+             "index": delivered.get((node, part))}
             | {k: counts.get((node, part), {}).get(k, 0) for k in STATUSES}
             for node, part in keys]
 
@@ -71,7 +74,8 @@ def _cloud_fixes(arc: Archive, survey_id: int, cloud: pa.Table,
 
 def _solution_row(r: dict[str, Any]) -> dict[str, Any]:
     return _position(r) | {"part": r["part"], "delivered": r["delivered"], "node": r["node"],
-                           "flags": r["flags"], "t_start": r["t_start"], "t_end": r["t_end"],
+                           "index": r.get("point_index"), "flags": r["flags"],
+                           "t_start": r["t_start"], "t_end": r["t_end"],
                            "from_margins": r["from_margins"]}
 
 

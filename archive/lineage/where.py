@@ -89,11 +89,12 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int | 
         nearest = [] if inside else _nearest(occupations, moment)
     elif len(occupations) == 1:
         chosen = occupations[0]
+    notes += _part_notes(occupations, chosen)
     if chosen is not None:
         rec = chosen["delivered"]["record"]
         moved = {f for f in ((rec.get("flags") or "") + ";"
                              + (rec.get("flags_acknowledged") or "")).split(";") if f}
-        if "moved" in moved:
+        if "moved" in moved and rec.get("part") not in (1, 2):
             notes.append("the node moved during this occupation: the delivered position is "
                          "where it stood at the end ('nodekeep trace' shows each part)")
         if rec.get("file_index") is not None and rec["file_index"] != rec["index"]:
@@ -107,6 +108,29 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int | 
                                        "history": [_flat(h) for h in o["history"]]}
                                   for o in occupations],
                   "nearest": nearest, "notes": notes})
+
+
+def _part_notes(occupations: list[dict[str, Any]], chosen: dict[str, Any] | None
+                ) -> list[str]:
+    """Notes naming the parts of a node that moved during its stay (each delivered as its
+    own record): the chosen one's, or every moved node's when none was chosen."""
+    parts: dict[tuple[Any, Any], dict[int, dict[str, Any]]] = {}
+    for o in occupations:
+        rec = o["delivered"]["record"]
+        if rec.get("part") in (1, 2):
+            parts.setdefault((rec.get("occupation"), rec["node"]), {})[rec["part"]] = rec
+    notes = []
+    for (_, node), p in sorted(parts.items(), key=lambda kv: str(kv[0])):
+        if chosen is not None and chosen["delivered"]["record"] not in p.values():
+            continue
+        before, after = p.get(1), p.get(2)
+        at = (after or {}).get("deployed") or (before or {}).get("retrieved")
+        when = at.strftime("%Y-%m-%dT%H:%M:%SZ") if at is not None else "an unknown time"
+        notes.append(f"node {node} moved during its stay, at {when}: index "
+                     f"{before['index'] if before else '?'} is where it stood before, index "
+                     f"{after['index'] if after else '?'} where it stood after (each holds "
+                     "for its own time; --at picks the one in the ground then)")
+    return notes
 
 
 def _flat(entry: dict[str, Any]) -> dict[str, Any]:

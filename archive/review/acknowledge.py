@@ -22,7 +22,8 @@ from archive.survey.keys import rows_at, station_text
 
 def carried_flags(arc: Archive, survey_id: int, line: float, point: float,
                   index: int) -> tuple[str, list[str]]:
-    """The newest run's id and the flags of the occupation's delivered row in it."""
+    """The newest run's id and the flags of the occupation's delivered rows in it (both
+    parts of a node that moved: an acknowledgement acts on the occupation)."""
     where = station_text(line, point, index)
     try:
         run = get_run(arc, survey_id)
@@ -35,7 +36,10 @@ def carried_flags(arc: Archive, survey_id: int, line: float, point: float,
         raise UsageError(f"station {where} has no delivered position in the newest run "
                          f"{run.id[:12]}, so it carries no flag to acknowledge",
                          hint="check the line and point numbers (and --index)")
-    return run.id, [f for f in (table["flags"][0].as_py() or "").split(";") if f]
+    found: list[str] = []
+    for text in table["flags"].to_pylist():  # one entry per delivered part
+        found += [f for f in (text or "").split(";") if f and f not in found]
+    return run.id, found
 
 
 def ack_flag(arc: Archive, survey_id: int, line: float, point: float,

@@ -32,8 +32,12 @@ from archive.solve import flags as flagmod
 from archive.solve import stages
 from archive.solve.fixarrays import FixArrays
 from archive.solve.heights import Heights, Sampler, solve_heights
+from archive.solve.params import setting
+from archive.solve.parts import later_part_index, used_indices
+from archive.solve.pooled import finish as finish_pooled
+from archive.solve.pooled import work_arrays, work_columns
 from archive.solve.schema import POSITION_SCHEMA, conform_positions
-from archive.solve.segments import seg_median
+from archive.solve.segments import seg_median, seg_starts
 from archive.solve.uncertainty import batch_covariance
 from archive.solve.windows import FOREVER, Windows
 from archive.survey.crs import survey_crs
@@ -71,17 +75,25 @@ def _stations(stations: pa.Table) -> dict[str, np.ndarray]:
                                                      "northing")}
 
 
-def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
+def solve_fixes(fixes: pa.Table | FixArrays, deployments: pa.Table, stations: pa.Table,
                 params: dict[str, Any], crs_epsg: int, *,
                 excludes: list[Span] | None = None,
                 sampler: Sampler | None = None, orthometric: Orthometric | None = None,
                 detect_unlogged: bool = True, extra_windows: Windows | None = None,
-                want_members: bool = False) -> SolveOutput:
-    """Solve every deployment of ``deployments`` from ``fixes`` (see module doc).
+                want_members: bool = False, used: pa.Table | None = None,
+                finish: bool = True) -> SolveOutput:
+    """Solve every deployment of ``deployments`` from ``fixes`` (see module doc): a fix
+    table, or its arrays (:func:`archive.solve.fixarrays.fix_arrays`) so the table itself
+    need not stay in memory.
 
     ``excludes`` are the exclude spans in force (:mod:`archive.edits.spans`);
     ``extra_windows`` adds windows given directly (an unlogged cluster's window, when one
-    station's cloud is recomputed without searching the node tracks again).
+    station's cloud is recomputed without searching the node tracks again). ``used`` holds
+    the point indices in use at each line and point over the whole survey
+    (:func:`archive.solve.parts.used_indices`; by default those of ``deployments`` and
+    ``stations``), from which the later part of a moved node takes its own. With the
+    pooled uncertainty and ``finish`` false, the table keeps the working columns of
+    :mod:`archive.solve.pooled` for the caller to finish with the rest of its run.
     """
     unit = survey_crs(crs_epsg).unit_factor  # metres per CRS unit (1 for metric grids)
     st = _stations(stations)
@@ -89,16 +101,23 @@ def solve_fixes(fixes: pa.Table, deployments: pa.Table, stations: pa.Table,
     found = stages.find_windows(screened, deployments, st, params, crs_epsg, unit,
                                 detect_unlogged=detect_unlogged, extra=extra_windows)
     clouds = stages.gather_clouds(screened, found, params["estimate"]["scale_sample"])
-    parts = stages.split_moves(clouds, params["flags"])
+    parts = stages.split_moves(clouds, params)
     est = stages.estimate(screened, clouds, parts, found.from_margins, params)
     grid = stages.to_grid(clouds, parts, est, crs_epsg, unit)
     span, spread = stages.span_and_spread(est, parts.n_rows)
     hts = _heights(screened, clouds, parts, est, grid, params, sampler, orthometric)
-    rows = _rows(found, parts, st, grid, est, hts, span, spread, params, unit)
+    if used is None:
+        used = used_indices(deployments, stations)
+    rows = _rows(found, parts, st, grid, est, hts, span, spread, params, unit, clouds, used)
     order = np.lexsort((rows["part"], rows["t_start"], rows["node"].astype(str),
                         rows["index"], rows["point"], rows["line"],
                         (rows["kind"] == "unlogged").astype(np.int8)))
-    positions = conform_positions(_table({k: v[order] for k, v in rows.items()}), params)
+    work = None
+    if est.noise is not None:
+        work = {k: v[order] for k, v in work_columns(est, hts.slope_e, hts.slope_n).items()}
+    positions = conform_positions(_table({k: v[order] for k, v in rows.items()}, work), params)
+    if work is not None and finish:
+        positions, _ = finish_pooled(positions, params, crs_epsg)
     w = found.windows
     stats = {"n_fixes": len(screened.fx), "n_duplicates": screened.fx.n_duplicates,
              "n_windows": len(w), "n_unlogged": int((w.kind == "unlogged").sum()),
@@ -137,9 +156,51 @@ def _heights(s: stages.Screened, c: stages.Clouds, parts: stages.Parts,
                          np.sqrt(hcov.vee), sampler, params["height"])
 
 
+def _allowed(c: stages.Clouds, parts: stages.Parts, t_start: np.ndarray, t_end: np.ndarray
+             ) -> tuple[np.ndarray, np.ndarray]:
+    """Per row: the seconds of logging its window allows (to its end, or to the node's last
+    fix while it is still out) and the fixes that allows at the node's logging interval
+    (median step between its fixes)."""
+    n = parts.n_rows
+    starts, counts = seg_starts(parts.member_row, n)
+    last = np.where(counts > 0, c.t_us[np.maximum(starts + counts - 1, 0)] if len(c.t_us)
+                    else 0, t_start)
+    end = np.where(t_end >= FOREVER, last, t_end)
+    allowed = np.maximum(end - t_start, 0) / 1e6
+    same = np.r_[False, parts.member_row[1:] == parts.member_row[:-1]]
+    step = np.diff(c.t_us, prepend=c.t_us[:1]) / 1e6
+    idx = np.flatnonzero(same)
+    interval = seg_median(step[idx], parts.member_row[idx], n, 2048)
+    return allowed, allowed / interval
+
+
+def _delivery(found: stages.WindowSet, parts: stages.Parts, params: dict[str, Any],
+              used: pa.Table) -> dict[str, np.ndarray]:
+    """Which rows are delivered, under which point index, for which time (µs, FOREVER for
+    none): every part of a moved node on its own (``move_deliver = "each"``), or only its
+    last part, for the whole stay."""
+    w, rw, part = found.windows, parts.row_window, parts.row_part
+    logged = w.kind[rw] == "logged"
+    each = setting(params, "flags", "move_deliver") == "each"
+    delivered = logged if each else logged & (part == np.where(parts.moved[rw], 2, 0))
+    occ = w.occupation[rw].astype(np.int64)
+    index = occ.copy()
+    later = logged & (part == 2) & each
+    if later.any():
+        index[later] = later_part_index(w.line[rw][later], w.point[rw][later], occ[later], used)
+    split = parts.moves.split_us[rw]
+    dep, ret = w.deployed[rw], w.retrieved[rw]
+    held_from = np.where(later, split, dep)
+    held_to = np.where(logged & (part == 1) & each, split, ret)
+    return {"delivered": delivered, "point_index": np.where(delivered, index, 0),
+            "held_from": np.where(delivered, held_from, FOREVER),
+            "held_to": np.where(delivered, held_to, FOREVER)}
+
+
 def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray],
           grid: stages.GridPositions, est: stages.Estimate, hts: Heights, span: np.ndarray,
-          spread: np.ndarray, params: dict[str, Any], unit: float) -> dict[str, np.ndarray]:
+          spread: np.ndarray, params: dict[str, Any], unit: float, c: stages.Clouds,
+          used: pa.Table) -> dict[str, np.ndarray]:
     """The columns of the positions table, one element per row (before sorting): station
     and occupation, window of the part, position and uncertainty, heights, counts, preplot
     checks and review flags."""
@@ -151,19 +212,19 @@ def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray
                                  st["northing"], st["line"], st["point"], unit_factor=unit)
     kind = w.kind[rw]
     occupied = est.occupied
-    flags = flagmod.flag_strings(
-        {"n_used": est.n_used, "span_s": span,
-         "unit_scale": np.where(occupied, est.robust.scale, 0.0), "moved": parts.moved[rw],
-         "dist_preplot": pre["dist_preplot"], "dist_nearest": pre["dist_nearest"],
-         "dh": hts.dh, "off_model": hts.off_model, "kind": kind,
-         "n_no_quality": est.n_no_quality}, params)
     split = parts.moves.split_us[rw]
     t_start = np.where(part == 2, split, w.start[rw])
     t_end = np.where(part == 1, split - 1, w.end[rw])
+    allowed, expected = _allowed(c, parts, t_start, t_end)
+    flags = flagmod.flag_strings(
+        {"n_used": est.n_used, "span_s": span, "allowed_s": allowed, "expected": expected,
+         "unit_scale": np.where(occupied, est.robust.scale, 0.0), "moved": parts.moved[rw],
+         "dist_preplot": pre["dist_preplot"], "dist_nearest": pre["dist_nearest"],
+         "dh": hts.dh, "dh_sigma": np.hypot(hts.sigma_gnss, params["height"]["model_sigma"]),
+         "off_model": hts.off_model, "kind": kind, "n_no_quality": est.n_no_quality}, params)
     cols = {
         "line": line, "point": point, "index": index, "node": w.node[rw], "kind": kind,
-        "part": part.astype(np.int8),
-        "delivered": (kind == "logged") & (part == np.where(parts.moved[rw], 2, 0)),
+        "part": part.astype(np.int8), **_delivery(found, parts, params, used),
         "t_start": t_start, "t_end": t_end,
         "easting": grid.east, "northing": grid.north, "lat": grid.lat, "lon": grid.lon,
         "height": hts.height, "height_source": hts.source, "h_gnss": hts.h_gnss,
@@ -172,12 +233,14 @@ def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray
         "ell_major": grid.ell_major, "ell_minor": grid.ell_minor,
         "ell_bearing": grid.ell_bearing, "r95": grid.r95, "sigma_h": hts.sigma,
         "n_total": est.n_total, "n_used": est.n_used, "n_rejected": est.n_total - est.n_used,
-        "n_eff": est.covariance.n_eff, "span_s": span, "spread": spread, **pre,
+        "n_eff": (est.covariance.n_eff if est.covariance is not None
+                  else np.full(parts.n_rows, np.nan)), "span_s": span, "spread": spread, **pre,
         "estimator": np.full(parts.n_rows, params["estimate"]["estimator"], dtype=object),
         "flags": flags,
         "occupation": np.where(kind == "logged", w.occupation[rw], 0),
         "deployed": w.deployed[rw], "retrieved": w.retrieved[rw],
         "from_margins": found.from_margins[rw],
+        "dof": np.full(parts.n_rows, np.nan),  # the normal quantile (batch, ar1)
         "n_no_quality": est.n_no_quality,
     }
     for key in ("sigma_e", "sigma_n", "corr_en", "ell_major", "ell_minor", "ell_bearing",
@@ -197,7 +260,8 @@ def _members(s: stages.Screened, c: stages.Clouds, parts: stages.Parts,
                    screen=s.code[c.fix], rejected=rejected, fx=s.fx)
 
 
-def _table(data: dict[str, np.ndarray]) -> pa.Table:
+def _table(data: dict[str, np.ndarray], work: dict[str, np.ndarray] | None = None
+           ) -> pa.Table:
     arrays = []
     for f in POSITION_SCHEMA:
         v = data[f.name]
@@ -205,7 +269,7 @@ def _table(data: dict[str, np.ndarray]) -> pa.Table:
             v = np.where(v >= FOREVER, np.iinfo(np.int64).min, v)
             arr = pa.array(v.astype(np.int64), type=pa.int64(),
                            mask=v == np.iinfo(np.int64).min).cast(f.type)
-        elif f.name == "occupation":
+        elif f.name in ("occupation", "point_index"):
             arr = pa.array(np.asarray(v, dtype=np.int8), type=f.type, mask=np.asarray(v) == 0)
         elif pa.types.is_floating(f.type):
             arr = pa.array(np.asarray(v, dtype=np.float64), type=f.type, from_pandas=True)
@@ -214,4 +278,7 @@ def _table(data: dict[str, np.ndarray]) -> pa.Table:
         else:
             arr = pa.array(np.asarray(v), type=f.type)
         arrays.append(arr)
-    return pa.Table.from_arrays(arrays, schema=POSITION_SCHEMA)
+    table = pa.Table.from_arrays(arrays, schema=POSITION_SCHEMA)
+    for name, arr in work_arrays(work) if work is not None else []:
+        table = table.append_column(name, arr)
+    return table

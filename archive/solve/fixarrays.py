@@ -17,10 +17,11 @@ from dataclasses import dataclass
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.parquet as pq
 
 from archive.errors import UsageError
 from archive.ingest.overlap import first_epochs
-from archive.ingest.schema import FIX_SCHEMA
+from archive.ingest.schema import FIX_SCHEMA, conform_fixes
 
 TIME_BITS = 44  # 2^44 µs ≈ 203 days of fixes per survey
 MAX_NODES = 1 << (63 - TIME_BITS)
@@ -57,7 +58,7 @@ class FixArrays:
 
     def raw_hashes(self, fix: np.ndarray) -> list[str]:
         """Raw file hash of the given sorted fixes."""
-        return self.raw_hash.take(pa.array(self.src[fix])).to_pylist()
+        return self.raw_hash.take(pa.array(self.src[fix])).cast(pa.string()).to_pylist()
 
     def __len__(self) -> int:
         return len(self.t_us)
@@ -87,7 +88,7 @@ def _appearance_rank(raw_hash: pa.ChunkedArray) -> Callable[[np.ndarray], np.nda
     """Load rank of the raw file of given rows: the table's first row of that raw file
     (the table's raw files are in load order)."""
     def rank(rows: np.ndarray) -> np.ndarray:
-        hashes = raw_hash.take(pa.array(rows))
+        hashes = raw_hash.take(pa.array(rows)).cast(pa.string())
         idx = pc.index_in(hashes, value_set=pc.unique(hashes)).to_numpy(zero_copy_only=False)
         idx = idx.astype(np.int64)
         first = np.full(int(idx.max()) + 1 if len(idx) else 0, np.iinfo(np.int64).max)
@@ -101,6 +102,32 @@ def empty_fixes() -> pa.Table:
     return FIX_SCHEMA.empty_table()
 
 
+FLOATS = ("lat", "lon", "h_ell", "h_msl", "geoid_sep", "quality", "fix_type", "n_sats",
+          "pdop", "hdop")
+
+
+def _finish(names: list[str], codes: np.ndarray, t_raw: np.ndarray, raw_line: np.ndarray,
+            valid: np.ndarray, floats: dict[str, np.ndarray], raw_hash: pa.ChunkedArray,
+            no_quality: np.ndarray) -> FixArrays:
+    """Sorted, de-duplicated :class:`FixArrays` from unsorted columns in load order."""
+    if len(names) >= MAX_NODES:
+        raise UsageError(f"{len(names)} nodes in one solve; at most {MAX_NODES - 1} are supported",
+                         hint="solve by node selection (--nodes)")
+    src, n_dup = first_epochs(codes, t_raw, raw_line, _appearance_rank(raw_hash))
+    if src is not None:
+        codes, t_raw, raw_line, valid = codes[src], t_raw[src], raw_line[src], valid[src]
+        no_quality = no_quality[src]
+        floats = {k: v[src] for k, v in floats.items()}
+    span = (int(t_raw.max()) - int(t_raw.min())) if len(t_raw) else 0
+    if span >= (1 << TIME_BITS):
+        raise UsageError("the fixes of one solve span more than 200 days",
+                         hint="solve by node selection (--nodes)")
+    return FixArrays(node_names=names, node_code=codes, t_us=t_raw.astype(np.int64),
+                     valid=valid, raw_hash=raw_hash, raw_line=raw_line.astype(np.int64),
+                     n_duplicates=n_dup, src=np.arange(len(codes)) if src is None else src,
+                     no_quality=no_quality, **floats)
+
+
 def fix_arrays(table: pa.Table) -> FixArrays:
     """Sort, de-duplicate and convert a fix table (FIX_SCHEMA columns) to numpy columns."""
     if table.num_rows == 0:
@@ -109,34 +136,55 @@ def fix_arrays(table: pa.Table) -> FixArrays:
     names = sorted(pc.unique(table["node"]).to_pylist())
     codes = pc.index_in(table["node"], value_set=pa.array(names, pa.string()))
     codes = codes.to_numpy(zero_copy_only=False).astype(np.int64)
-    if len(names) >= MAX_NODES:
-        raise UsageError(f"{len(names)} nodes in one solve; at most {MAX_NODES - 1} are supported",
-                         hint="solve by node selection (--nodes)")
-    raw_line = table["raw_line"].to_numpy()
-    src, n_dup = first_epochs(codes, t_raw, raw_line, _appearance_rank(table["raw_hash"]))
-    if src is not None:
-        codes, t_raw, raw_line = codes[src], t_raw[src], raw_line[src]
-    span = (int(t_raw.max()) - int(t_raw.min())) if len(t_raw) else 0
-    if span >= (1 << TIME_BITS):
-        raise UsageError("the fixes of one solve span more than 200 days",
-                         hint="solve by node selection (--nodes)")
+    return _finish(names, codes, t_raw, table["raw_line"].to_numpy(),
+                   table["valid"].to_numpy(zero_copy_only=False).astype(bool),
+                   {name: _float(table[name]) for name in FLOATS}, table["raw_hash"],
+                   _no_quality(table))
 
-    def col(name: str) -> np.ndarray:
-        values = _float(table[name])
-        return values if src is None else values[src]
 
-    valid = table["valid"].to_numpy(zero_copy_only=False).astype(bool)
-    if "no_quality" in table.column_names:
-        nq = pc.fill_null(table["no_quality"], False).to_numpy(zero_copy_only=False).astype(bool)
-    else:
-        nq = np.zeros(table.num_rows, dtype=bool)
-    return FixArrays(
-        node_names=names, node_code=codes, t_us=t_raw.astype(np.int64),
-        lat=col("lat"), lon=col("lon"), h_ell=col("h_ell"), h_msl=col("h_msl"),
-        geoid_sep=col("geoid_sep"), quality=col("quality"),
-        valid=valid if src is None else valid[src],
-        fix_type=col("fix_type"), n_sats=col("n_sats"), pdop=col("pdop"), hdop=col("hdop"),
-        raw_hash=table["raw_hash"], raw_line=raw_line.astype(np.int64), n_duplicates=n_dup,
-        src=np.arange(len(codes)) if src is None else src,
-        no_quality=nq if src is None else nq[src],
-    )
+def read_fix_arrays(files: list[pq.ParquetFile]) -> FixArrays:
+    """:func:`fix_arrays` of the fix tables of ``files`` concatenated in the order given,
+    read one file at a time into arrays sized from the files' metadata: the whole table
+    never sits in memory beside its arrays (at 1 s logging it would be as large again).
+    ``raw_hash`` is kept dictionary-encoded, one chunk per file."""
+    n = sum(f.metadata.num_rows for f in files)
+    t_raw = np.empty(n, dtype=np.int64)
+    raw_line = np.empty(n, dtype=np.int64)
+    valid = np.empty(n, dtype=bool)
+    unrated = np.empty(n, dtype=bool)
+    local = np.empty(n, dtype=np.int64)  # node code among the names of its own file
+    floats = {name: np.empty(n, dtype=np.float64) for name in FLOATS}
+    chunks, file_names, at = [], [], 0
+    for f in files:
+        t = conform_fixes(f.read())  # every version of the fix table read alike
+        m = t.num_rows
+        t_raw[at:at + m] = pc.cast(t["time"], pa.int64()).to_numpy(zero_copy_only=False)
+        raw_line[at:at + m] = t["raw_line"].to_numpy()
+        valid[at:at + m] = t["valid"].to_numpy(zero_copy_only=False).astype(bool)
+        unrated[at:at + m] = _no_quality(t)
+        for name in FLOATS:
+            floats[name][at:at + m] = _float(t[name])
+        names = pc.unique(t["node"]).to_pylist()
+        local[at:at + m] = pc.index_in(t["node"], value_set=pa.array(names, pa.string())
+                                       ).to_numpy(zero_copy_only=False)
+        file_names.append((at, at + m, names))
+        chunks.extend(pc.dictionary_encode(t["raw_hash"]).chunks)
+        at += m
+        del t
+        pa.default_memory_pool().release_unused()  # the decoding buffers of that file
+    names = sorted({x for _, _, ns in file_names for x in ns})
+    lookup = {x: i for i, x in enumerate(names)}
+    codes = np.empty(n, dtype=np.int64)
+    for a, b, ns in file_names:  # one entry per file, not per fix
+        codes[a:b] = np.array([lookup[x] for x in ns], dtype=np.int64)[local[a:b]]
+    del local
+    raw_hash = (pa.chunked_array(chunks) if chunks
+                else pa.chunked_array([], pa.dictionary(pa.int32(), pa.string())))
+    return _finish(names, codes, t_raw, raw_line, valid, floats, raw_hash, unrated)
+
+
+def _no_quality(table: pa.Table) -> np.ndarray:
+    """Which fixes carry no quality information (all False for tables before the column)."""
+    if "no_quality" not in table.column_names:
+        return np.zeros(table.num_rows, dtype=bool)
+    return pc.fill_null(table["no_quality"], False).to_numpy(zero_copy_only=False).astype(bool)

@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 from scipy.spatial import cKDTree
 
+from archive.solve.params import setting
 from archive.solve.schema import FLAGS
 
 
@@ -71,25 +72,42 @@ def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
 
 
 def flag_strings(cols: dict[str, np.ndarray], p: dict[str, Any]) -> np.ndarray:
-    """The ";"-joined flags of every position from its columns and the parameters."""
+    """The ";"-joined flags of every position from its columns and the parameters.
+
+    Thresholds relative to the window (``flags.min_fix_fraction``, ``min_span_fraction``,
+    ``height_z``) are read with :func:`archive.solve.params.setting`: a run made before
+    they existed keeps its absolute rules (``min_fixes``, ``min_span_hours``,
+    ``height_tol``).
+    """
     f = p["flags"]
     sigma0 = p["estimate"]["sigma0"]
     used = cols["n_used"]
     occupied = used > 0
+    few = used < f["min_fixes"]
+    share = setting(p, "flags", "min_fix_fraction")
+    if share:
+        few |= used < share * np.nan_to_num(cols["expected"], nan=0.0)
+    span_share = setting(p, "flags", "min_span_fraction")
+    short = (cols["span_s"] < f["min_span_hours"] * 3600 if span_share is None
+             else cols["span_s"] < span_share * cols["allowed_s"])
+    height = np.abs(cols["dh"]) > f["height_tol"]
+    z = setting(p, "flags", "height_z")
+    if z:
+        height &= np.abs(cols["dh"]) > z * cols["dh_sigma"]
     unrated = cols.get("n_no_quality", np.zeros(len(used)))
-    share = f.get("max_no_quality_share", 0.5)  # absent from manifests of earlier runs
+    unrated_share = f.get("max_no_quality_share", 0.5)  # absent from manifests of earlier runs
     tests = {
-        "few-fixes": occupied & (used < f["min_fixes"]),
-        "short-span": occupied & (cols["span_s"] < f["min_span_hours"] * 3600),
+        "few-fixes": occupied & few,
+        "short-span": occupied & short,
         "wide-spread": occupied & (cols["unit_scale"] > f["spread_factor"] * sigma0),
         "moved": cols["moved"],
         "far-from-plan": cols["dist_preplot"] > f["far_from_plan"],
         "nearer-other": cols["dist_nearest"] < cols["dist_preplot"],
-        "height-mismatch": np.abs(cols["dh"]) > f["height_tol"],
+        "height-mismatch": height,
         "off-model": cols["off_model"],
         "unlogged": cols["kind"] == "unlogged",
         "unoccupied": ~occupied,
-        "quality-unknown": occupied & (unrated > share * used),
+        "quality-unknown": occupied & (unrated > unrated_share * used),
     }
     assert list(tests) == list(FLAGS)
     out = np.full(len(used), "", dtype=object)

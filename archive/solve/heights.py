@@ -31,6 +31,9 @@ class Heights:
     h_gnss: np.ndarray
     dh: np.ndarray
     off_model: np.ndarray  # bool: a model exists but has no value here
+    slope_e: np.ndarray  # model slope dz/dE, dz/dN at the position (0 without a model)
+    slope_n: np.ndarray
+    sigma_gnss: np.ndarray  # σ of the GNSS height (batch means and the floor)
 
 
 def solve_heights(east: np.ndarray, north: np.ndarray, sigma_e: np.ndarray,
@@ -54,8 +57,7 @@ def solve_heights(east: np.ndarray, north: np.ndarray, sigma_e: np.ndarray,
         slope_e[finite] = np.where(np.isfinite(ge), ge, 0.0)
         slope_n[finite] = np.where(np.isfinite(gn), gn, 0.0)
     has_model = np.isfinite(h_model)
-    sig_model = np.sqrt(params["model_sigma"] ** 2 + (slope_e * sigma_e) ** 2
-                        + (slope_n * sigma_n) ** 2)
+    sig_model = model_height_sigma(sigma_e, sigma_n, slope_e, slope_n, params)
     sig_gnss = np.sqrt(sigma_gnss**2 + params["gnss_floor"] ** 2)
     has_gnss = np.isfinite(h_gnss)
     height = np.where(has_model, h_model, np.where(has_gnss, h_gnss, np.nan))
@@ -63,4 +65,12 @@ def solve_heights(east: np.ndarray, north: np.ndarray, sigma_e: np.ndarray,
     sigma = np.where(has_model, sig_model, np.where(has_gnss, sig_gnss, np.nan))
     off = (sampler is not None) & finite & ~has_model
     return Heights(height=height, source=source, sigma=sigma, h_model=h_model, h_gnss=h_gnss,
-                   dh=h_gnss - h_model, off_model=np.asarray(off, dtype=bool))
+                   dh=h_gnss - h_model, off_model=np.asarray(off, dtype=bool),
+                   slope_e=slope_e, slope_n=slope_n, sigma_gnss=sig_gnss)
+
+
+def model_height_sigma(sigma_e: np.ndarray, sigma_n: np.ndarray, slope_e: np.ndarray,
+                       slope_n: np.ndarray, params: dict[str, Any]) -> np.ndarray:
+    """σ of a model height: the model's own σ and the slope times the horizontal σ."""
+    return np.sqrt(params["model_sigma"] ** 2 + (slope_e * sigma_e) ** 2
+                   + (slope_n * sigma_n) ** 2)

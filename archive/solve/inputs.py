@@ -22,7 +22,8 @@ from sqlalchemy import select
 from archive.edits.log import exclude_spans_in_force
 from archive.errors import UsageError
 from archive.ingest.schema import conform_fixes
-from archive.solve.fixarrays import empty_fixes
+from archive.solve.fixarrays import FixArrays, empty_fixes, fix_arrays, read_fix_arrays
+from archive.solve.parts import used_indices
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
 from archive.survey.inputs import require_input
@@ -58,6 +59,7 @@ class SolveInputs:
     station_keys: set[tuple[float, float]] | None = None
     detect_unlogged: bool = True
     extra: dict[str, Any] = field(default_factory=dict)
+    used: pa.Table | None = None  # point indices in use per line/point (archive.solve.parts)
 
     @property
     def fix_hashes(self) -> list[str]:
@@ -160,13 +162,16 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
         restrict = keys is not None or bool(selection.get("nodes"))
         files = [(n, h, c) for n, h, c in rows if not restrict or n in nodes]
     datum = json.loads(dem_v.meta or "{}").get("vertical_datum", "") if dem_v else ""
+    retired = ((json.loads(dep_v.meta or "{}").get("occupations") or {}).get("retired") or []
+               if dep_v else [])
     return SolveInputs(
         survey=sdict, stations=stations, stations_hash=st_hash, deployments=deployments,
         deployments_hash=dep_hash, dem_hash=dem_hash, dem_datum=datum,
         versions={"stations": st_v.version if st_v else None,
                   "deployments": dep_v.version if dep_v else None,
                   "dem": dem_v.version if dem_v else None},
-        fix_files=files, edits=edits, station_keys=keys)
+        fix_files=files, edits=edits, station_keys=keys,
+        used=used_indices(dep_all, stations, retired))
 
 
 def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> list[Partition]:
@@ -208,12 +213,25 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
 
 def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
     """The fix tables of these objects, concatenated in the order given (schema of the
-    ingest contract, :func:`archive.ingest.schema.conform_fixes`: tables of every version
-    read alike). Give them in load order: repeated epochs keep the earlier file's fix."""
+    ingest contract, ``raw_hash`` dictionary-encoded: a 64-character hash repeated on every
+    fix of a raw file would be most of the table's memory). Give them in load order:
+    repeated epochs keep the earlier file's fix."""
     if not hashes:
         return empty_fixes()
-    tables = [conform_fixes(arc.objects.read_table(h)) for h in hashes]
-    return pa.concat_tables(tables)
+    tables = []
+    for h in hashes:
+        t = conform_fixes(arc.objects.read_table(h))  # tables of every version read alike
+        i = t.schema.get_field_index("raw_hash")
+        tables.append(t.set_column(i, "raw_hash", pc.dictionary_encode(t["raw_hash"])))
+    return pa.concat_tables(tables, promote_options="default")
+
+
+def load_fix_arrays(arc: Any, hashes: list[str]) -> FixArrays:
+    """The solver's arrays of these fix tables (in load order), read file by file
+    (:func:`archive.solve.fixarrays.read_fix_arrays`); ``arc`` has the ``objects`` store."""
+    if not hashes:
+        return fix_arrays(empty_fixes())
+    return read_fix_arrays([arc.objects.parquet_file(h) for h in hashes])
 
 
 def check_objects(arc: Archive, manifest: dict[str, Any], *, rehash: bool = True) -> None:

@@ -1,11 +1,15 @@
 """A run's positions with their occupations, whatever the run's format.
 
-Runs of manifest format 2 store each row's occupation (delivered point index, logged window,
-``from_margins``). Runs of format 1 were solved before occupations were numbered: their rows
-are matched here to the run's own deployments table (numbered by
-:mod:`archive.survey.occupations`): same station and node, the row's window start inside the
-deployment's logged window. So an old run is delivered, traced and compared by occupation
-exactly like a new one, and its stored table (what ``reproduce`` checks) is never changed.
+Runs of manifest format 3 store each row's occupation, the point index it is delivered
+under and the time that position holds. Runs of format 2 store the occupation (delivered
+point index, logged window, ``from_margins``) and delivered only the last part of a moved
+node, under the occupation's index for its whole stay: those are the values their rows get
+here (``point_index``, ``held_from``/``held_to``; ``dof`` null, the normal quantile). Runs of
+format 1 were solved before occupations were numbered: their rows are matched here to the
+run's own deployments table (numbered by :mod:`archive.survey.occupations`): same station
+and node, the row's window start inside the deployment's logged window. So an old run is
+delivered, traced and compared by occupation exactly like a new one, and its stored table
+(what ``reproduce`` checks) is never changed.
 """
 
 from __future__ import annotations
@@ -16,11 +20,12 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from archive.solve.schema import POSITION_SCHEMA
+from archive.solve.schema import POSITION_SCHEMA, POSITION_SCHEMA_V2
 from archive.survey.occupations import Records, number_occupations, with_occupations
 from archive.times import us_array
 
 UPGRADE_COLUMNS = ("occupation", "deployed", "retrieved", "from_margins")
+PART_COLUMNS = ("point_index", "held_from", "held_to", "dof")
 
 
 NULL_US = np.iinfo(np.int64).min  # a null timestamp while the columns are int64
@@ -84,11 +89,38 @@ def _from_rows(positions: pa.Table) -> dict[str, np.ndarray]:
     return {"occupation": occ, "deployed": none, "retrieved": none.copy()}
 
 
+def _with_parts(positions: pa.Table) -> pa.Table:
+    """A v2 table with the columns of v3 as a run of its time meant them: the delivered
+    row of each occupation under its index, for the occupation's whole logged window."""
+    import pyarrow.compute as pc
+
+    dl = pc.fill_null(positions["delivered"], False)
+    null_int = pa.scalar(None, pa.int8())
+    arrays: list[Any] = [positions[name] for name in POSITION_SCHEMA_V2.names]
+    arrays.append(pc.if_else(dl, positions["occupation"], null_int))
+    for name in ("deployed", "retrieved"):
+        t = POSITION_SCHEMA.field(name).type
+        arrays.append(pc.if_else(dl, positions[name], pa.scalar(None, t)))
+    arrays.append(pa.nulls(positions.num_rows, pa.float64()))
+    # columns added later (n_no_quality) are carried when the table has them, else absent
+    # as in any run that predates them (schema.ADDED_COLUMNS)
+    later = [c for c in positions.column_names
+             if c not in POSITION_SCHEMA_V2.names and c not in PART_COLUMNS]
+    arrays += [positions[c] for c in later]
+    schema = pa.schema([*POSITION_SCHEMA_V2, *(POSITION_SCHEMA.field(c) for c in PART_COLUMNS),
+                        *(positions.schema.field(c) for c in later)],
+                       metadata=POSITION_SCHEMA.metadata)
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
 def upgrade_positions(positions: pa.Table, deployments: pa.Table | None) -> pa.Table:
-    """``positions`` with the occupation columns of :data:`POSITION_SCHEMA`: a v1 table gets its occupation columns from
-    ``deployments`` (the run's own deployments table), or from its rows when there is none."""
-    if all(c in positions.column_names for c in UPGRADE_COLUMNS):
+    """``positions`` in :data:`POSITION_SCHEMA`: a v1 table gets its occupation columns from
+    ``deployments`` (the run's own deployments table), or from its rows when there is none;
+    a v1 or v2 table gets the part columns of v3 (:func:`_with_parts`)."""
+    if all(c in positions.column_names for c in UPGRADE_COLUMNS + PART_COLUMNS):
         return positions
+    if all(c in positions.column_names for c in UPGRADE_COLUMNS):
+        return _with_parts(positions)
     cols = (_from_deployments(positions, deployments) if deployments is not None
             else _from_rows(positions))
     n = positions.num_rows
@@ -99,11 +131,7 @@ def upgrade_positions(positions: pa.Table, deployments: pa.Table | None) -> pa.T
         arrays.append(pa.array(v, pa.int64(), mask=v == NULL_US).cast(
             POSITION_SCHEMA.field(name).type))
     arrays.append(pa.array(np.zeros(n, dtype=bool)))
-    # the v1 columns, then the occupation columns (columns added later stay absent, as in
-    # any run that predates them: see schema.ADDED_COLUMNS)
-    schema = pa.schema([*positions.schema, *(POSITION_SCHEMA.field(c) for c in UPGRADE_COLUMNS)],
-                       metadata=POSITION_SCHEMA.metadata)
-    return pa.Table.from_arrays(arrays, schema=schema)
+    return _with_parts(pa.Table.from_arrays(arrays, schema=POSITION_SCHEMA_V2))
 
 
 def run_occupations(arc: Any, run: Any) -> pa.Table:
@@ -112,7 +140,7 @@ def run_occupations(arc: Any, run: Any) -> pa.Table:
 
     positions = run_positions(arc, run)
     if all(c in positions.column_names for c in UPGRADE_COLUMNS):
-        return positions
+        return upgrade_positions(positions, None)
     dep_hash = (run_manifest(arc, run).get("inputs") or {}).get("deployments")
     deployments = arc.objects.read_table(dep_hash) if dep_hash else None
     return upgrade_positions(positions, deployments)

@@ -18,7 +18,9 @@ from typing import Any
 from archive.errors import InputError, UsageError
 
 NO_QUALITY = ("accept", "reject")
-UNCERTAINTY_METHODS = ("batch", "ar1")
+UNCERTAINTY_METHODS = ("pooled", "batch", "ar1")
+MOVE_METHODS = ("scan", "blocks")
+MOVE_DELIVERY = ("each", "last")
 
 # section -> key -> (default, help). Order here is the order printed by ``nodekeep params``.
 _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
@@ -48,10 +50,12 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "scale_sample": (2048, "most fixes per cloud used for the median and MAD"),
     },
     "uncertainty": {
-        "method": ("batch", "batch (batch means) | ar1 (AR(1) effective sample size)"),
-        "batch_hours": (3.0, "batch length, hours (several times the error correlation time)"),
+        "method": ("pooled", "pooled (error model measured on all the run's clouds, scaled "
+                             "per cloud, Student-type quantiles) | batch (batch means, normal "
+                             "quantile) | ar1 (AR(1) effective sample size)"),
+        "batch_hours": (3.0, "batch length of 'batch' (and of GNSS heights), hours"),
         "min_batches": (4, "fewest batches; shorter windows use shorter batches"),
-        "floor": (0.3, "per-axis error that never averages out (multipath bias, offsets), m"),
+        "floor": (0.25, "per-axis error that never averages out (multipath bias, offsets), m"),
     },
     "height": {
         "model_sigma": (0.2, "one-sigma error of the elevation model itself, m"),
@@ -60,14 +64,22 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
     },
     "flags": {
         "min_fixes": (120, "fewest used fixes before 'few-fixes'"),
-        "min_span_hours": (6.0, "shortest span of used fixes before 'short-span', hours"),
+        "min_fix_fraction": (0.5, "'few-fixes' also below this share of the fixes the window "
+                                  "and the node's logging interval allow"),
+        "min_span_fraction": (0.5, "'short-span' when the used fixes span less than this share "
+                                   "of the window"),
         "spread_factor": (3.0, "'wide-spread' when the robust scale per HDOP exceeds this x sigma0"),
+        "move_method": ("scan", "scan (two-sample scan of block medians, split at the fix) | "
+                                "blocks (hour blocks, 6 h a side; runs made before)"),
         "move_step": (5.0, "smallest persistent step of the cloud centre reported as a move, m"),
-        "move_min_hours": (6.0, "shortest part on each side of a move, hours"),
-        "move_block_min": (60.0, "block length of the running centre used to find moves, minutes"),
-        "move_z": (4.0, "step must also exceed this many standard errors"),
+        "move_min_hours": (1.0, "shortest part on each side of a move, hours"),
+        "move_block_min": (5.0, "block length of the running centre used to find moves, minutes"),
+        "move_z": (6.0, "the step's scan statistic must also exceed this (see docs/solving.md)"),
+        "move_deliver": ("each", "each (every part of a moved node delivered, its own point "
+                                 "index and time) | last (only the last part)"),
         "far_from_plan": (20.0, "distance to the preplot station before 'far-from-plan', m"),
         "height_tol": (6.0, "|GNSS - model height| before 'height-mismatch', m"),
+        "height_z": (3.0, "'height-mismatch' also needs |dh| beyond this many of its sigmas"),
         "max_no_quality_share": (0.5, "share of used fixes without quality information "
                                       "beyond which 'quality-unknown'"),
     },
@@ -78,6 +90,25 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "match_tol": (20.0, "farthest a cluster may be from a station to be reported, m"),
     },
 }
+
+
+# What a run manifest written before a parameter existed meant: the behaviour of that time.
+# A run is recomputed from its manifest's own parameters, so every parameter added later is
+# read through :func:`setting` with the value that gives the old behaviour.
+BEFORE: dict[tuple[str, str], Any] = {
+    ("window", "margin_fallback"): False,
+    ("flags", "min_fix_fraction"): 0.0,
+    ("flags", "min_span_fraction"): None,  # the absolute rule of flags.min_span_hours
+    ("flags", "move_method"): "blocks",
+    ("flags", "move_deliver"): "last",
+    ("flags", "height_z"): 0.0,
+}
+
+
+def setting(params: dict[str, Any], section: str, key: str) -> Any:
+    """``params[section][key]``, or what a manifest without it meant (:data:`BEFORE`)."""
+    sec = params.get(section) or {}
+    return sec[key] if key in sec else BEFORE[(section, key)]
 
 
 def default_params() -> dict[str, dict[str, Any]]:
@@ -138,11 +169,18 @@ def _validate(p: dict[str, dict[str, Any]], source: str) -> None:
     if p["uncertainty"]["method"] not in UNCERTAINTY_METHODS:
         raise UsageError(f"{source}: uncertainty.method {p['uncertainty']['method']!r} is unknown",
                          hint=f"use one of {', '.join(UNCERTAINTY_METHODS)}")
+    for key, allowed in (("move_method", MOVE_METHODS), ("move_deliver", MOVE_DELIVERY)):
+        if p["flags"][key] not in allowed:
+            raise UsageError(f"{source}: flags.{key} {p['flags'][key]!r} is unknown",
+                             hint=f"use one of {', '.join(allowed)}")
+    for key in ("min_fix_fraction", "min_span_fraction"):
+        if not 0.0 <= p["flags"][key] <= 1.0:
+            raise UsageError(f"{source}: flags.{key} must be between 0 and 1")
     if not 0.5 < est["reject_quantile"] <= 1.0:
         raise UsageError(f"{source}: estimate.reject_quantile must be in (0.5, 1]; 1 rejects nothing")
     positive = [("estimate", "sigma0"), ("estimate", "huber_k"), ("estimate", "tukey_c"),
                 ("uncertainty", "batch_hours"), ("clusters", "radius"), ("clusters", "chunk_min"),
-                ("flags", "move_block_min")]
+                ("flags", "move_block_min"), ("flags", "move_min_hours")]
     for sec, key in positive:
         if p[sec][key] <= 0:
             raise UsageError(f"{source}: {sec}.{key} must be positive")

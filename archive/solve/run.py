@@ -31,7 +31,7 @@ from archive.solve.inputs import (
     Partition,
     SolveInputs,
     check_objects,
-    load_fix_tables,
+    load_fix_arrays,
     partitions,
     survey_inputs,
 )
@@ -41,9 +41,11 @@ from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
 from archive.store.models import Run, utcnow
 
-MANIFEST_FORMAT = 2
-"""Format 2: positions carry each row's occupation (``POSITION_SCHEMA``); format 1 runs were
-solved before occupations were numbered and are recomputed with ``POSITION_SCHEMA_V1``."""
+MANIFEST_FORMAT = 3
+"""Format 3: positions carry each row's delivered point index, the time it holds and the
+degrees of freedom of its uncertainty (``POSITION_SCHEMA``). Format 2 runs (occupations, the
+last part of a moved node delivered) are recomputed in ``POSITION_SCHEMA_V2``, format 1 runs
+(solved before occupations were numbered) in ``POSITION_SCHEMA_V1``."""
 
 SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
              ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
@@ -116,7 +118,8 @@ def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
         progress.close()
         if dem is not None:
             dem.close()
-    return _combine(tables, manifest), stats
+    table, more = _combine(tables, manifest)
+    return table, stats | more
 
 
 def _height_sampler(dem: Any, epsg: int):
@@ -134,11 +137,11 @@ def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[s
                 sampler: Any) -> tuple[pa.Table, dict[str, Any]]:
     """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from."""
     survey = manifest["survey"]
-    fixes = load_fix_tables(holder, part.fix_hashes)
+    fixes = load_fix_arrays(holder, part.fix_hashes)
     out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
                       survey["crs_epsg"], excludes=manifest_spans(manifest["edits"]),
                       sampler=sampler, orthometric=_orthometric(survey),
-                      detect_unlogged=inp.detect_unlogged)
+                      detect_unlogged=inp.detect_unlogged, used=inp.used, finish=False)
     pos = out.positions
     if inp.station_keys is not None:
         pos = inp.keep_selected(pos)
@@ -150,18 +153,34 @@ def _add_stats(total: dict[str, Any], more: dict[str, Any]) -> None:
         total[k] = total.get(k, 0) + v
 
 
-def _combine(tables: list[pa.Table], manifest: dict[str, Any]) -> pa.Table:
+def _combine(tables: list[pa.Table], manifest: dict[str, Any]
+             ) -> tuple[pa.Table, dict[str, Any]]:
     """The partitions' positions as one table in the run's sort order, in the schema of
-    the manifest's format (format 1 runs have no occupation columns) and without the
-    columns its parameters predate (:func:`~archive.solve.schema.conform_positions`)."""
-    from archive.solve.schema import POSITION_SCHEMA, POSITION_SCHEMA_V1, conform_positions
+    the manifest's format (format 1 runs have no occupation columns, format 2 runs none of
+    the part and uncertainty columns of format 3) and without the columns its parameters
+    predate (:func:`~archive.solve.schema.conform_positions`). With the pooled uncertainty
+    the error model is fitted here, on every row of the run at once
+    (:mod:`archive.solve.pooled`); it goes to the run summary."""
+    from archive.solve.pooled import WORK, finish
+    from archive.solve.schema import (
+        POSITION_SCHEMA,
+        POSITION_SCHEMA_V1,
+        POSITION_SCHEMA_V2,
+        conform_positions,
+    )
 
     table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
     table = conform_positions(table, manifest["params"])
     table = table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
-    if manifest.get("format", 1) < 2:
-        table = table.select(POSITION_SCHEMA_V1.names).cast(POSITION_SCHEMA_V1)
-    return table
+    more: dict[str, Any] = {}
+    if all(c in table.column_names for c in WORK):
+        table, model = finish(table, manifest["params"], manifest["survey"]["crs_epsg"])
+        more["noise_model"] = model.as_dict()
+    fmt = manifest.get("format", 1)
+    if fmt < 3:
+        schema = POSITION_SCHEMA_V1 if fmt < 2 else POSITION_SCHEMA_V2
+        table = table.select(schema.names).cast(schema)
+    return table, more
 
 
 def solve_partition(part: Partition, shared: tuple[str, SolveInputs, dict[str, Any]]
@@ -197,7 +216,8 @@ def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     stats: dict[str, Any] = {}
     for _, st in results:
         _add_stats(stats, st)
-    return _combine([pos for pos, _ in results], manifest), stats
+    table, more = _combine([pos for pos, _ in results], manifest)
+    return table, stats | more
 
 
 def _orthometric(survey: dict[str, Any]):

@@ -2,8 +2,9 @@
 
 One row per deployment part: normally one part per deployment (one *occupation* of its
 station, see :mod:`archive.survey.occupations`); a node that moved during its
-deployment gives one row per part, and ``delivered`` marks the part to deliver (the last by
-default). Unlogged stationary clusters get rows with ``kind = "unlogged"`` and no node
+deployment gives one row per part, and ``delivered`` marks the rows to deliver: every part,
+each under its own ``point_index`` and for its own time (``held_from``/``held_to``), or only
+the last part in runs made before parts were delivered (``flags.move_deliver``). Unlogged stationary clusters get rows with ``kind = "unlogged"`` and no node
 window from the log. Easting/northing (and preplot_e/preplot_n) are in the survey CRS's
 unit, which may be feet; sigmas, ellipse axes, r95, spread and the distances dist_preplot and
 dist_nearest are always metres (grid distances converted with the CRS's unit factor).
@@ -64,20 +65,42 @@ POSITION_SCHEMA_V1 = pa.schema(
 )
 """The positions table of runs whose manifest has ``format`` 1 (before occupations)."""
 
+_POSITION_FIELDS_V2 = [
+    *_POSITION_FIELDS_V1,
+    # the occupation (deployment record) the row belongs to: its delivered point index and
+    # its logged window; null for unlogged clusters. A station occupied twice has two
+    # occupations, each delivered under its own index.
+    pa.field("occupation", pa.int8()),
+    pa.field("deployed", UTC_TIME),
+    pa.field("retrieved", UTC_TIME),  # null: still in the ground (or unlogged)
+    # the settled window held no usable fix, so the fixes of the settle margins were used
+    pa.field("from_margins", pa.bool_(), nullable=False),
+]
+
+POSITION_SCHEMA_V2 = pa.schema(
+    _POSITION_FIELDS_V2,
+    metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "2"},
+)
+"""The positions table of runs whose manifest has ``format`` 2 (occupations, before each
+part of a moved node was delivered on its own)."""
+
 POSITION_SCHEMA = pa.schema(
-    [*_POSITION_FIELDS_V1,
-     # the occupation (deployment record) the row belongs to: its delivered point index and
-     # its logged window; null for unlogged clusters. A station occupied twice has two
-     # occupations, each delivered under its own index.
-     pa.field("occupation", pa.int8()),
-     pa.field("deployed", UTC_TIME),
-     pa.field("retrieved", UTC_TIME),  # null: still in the ground (or unlogged)
-     # the settled window held no usable fix, so the fixes of the settle margins were used
-     pa.field("from_margins", pa.bool_(), nullable=False),
+    [*_POSITION_FIELDS_V2,
+     # the point index the row is delivered under (null when it is not delivered): the
+     # occupation's, or for the later part of a moved node a point index of its own
+     # (archive.solve.parts)
+     pa.field("point_index", pa.int8()),
+     # the time the delivered position holds, [held_from, held_to): the occupation's logged
+     # window, cut at the move for each part of a moved node (null: not delivered / open)
+     pa.field("held_from", UTC_TIME),
+     pa.field("held_to", UTC_TIME),
+     # effective degrees of freedom of the uncertainty (Welch–Satterthwaite); the 95 %
+     # ellipse and r95 use the matching quantile. Null when the normal quantile is used.
+     pa.field("dof", pa.float64()),
      # used fixes without quality information (RMC/GLL only); absent from tables of runs
      # made before it existed (see ADDED_COLUMNS)
      pa.field("n_no_quality", pa.int64(), nullable=False)],
-    metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "2"},
+    metadata={"nodekeep.table": "positions", "nodekeep.schema_version": "3"},
 )
 
 # Columns added to the table after runs were first recorded, with the parameter whose

@@ -18,9 +18,12 @@ from typing import Any
 import numpy as np
 
 from archive.edits.spans import Span, excluded
+from archive.solve.changepoint import scan_moves
 from archive.solve.clusters import find_clusters
 from archive.solve.fixarrays import FixArrays, fix_arrays
 from archive.solve.moves import MoveResult, detect_moves
+from archive.solve.noise import RowNoise, row_noise
+from archive.solve.params import setting
 from archive.solve.robust import RobustResult, robust_centre
 from archive.solve.screen import cloud_hdop, mark_excluded, screen_codes
 from archive.solve.segments import from_local, seg_median, seg_starts, to_local
@@ -52,8 +55,9 @@ class Screened:
 
 
 def screen(fixes: Any, params: dict[str, Any], spans: list[Span]) -> Screened:
-    """Sort the fixes, screen them by what the receiver said, and by the exclude spans."""
-    fx = fix_arrays(fixes)
+    """Sort the fixes (a fix table, or its :class:`FixArrays`), screen them by what the
+    receiver said, and by the exclude spans."""
+    fx = fixes if isinstance(fixes, FixArrays) else fix_arrays(fixes)
     code = screen_codes(fx.columns(), params["screen"])
     mark_excluded(code, excluded(fx.node_code, fx.t_us, fx.node_names, spans))
     return Screened(fx, code, code == 0)
@@ -77,7 +81,7 @@ def find_windows(s: Screened, deployments: Any, stations: dict[str, np.ndarray],
                                           win["settle_end_min"] * 60)
     # A run made before the fallback existed has no such parameter: it never used margins.
     margins = np.zeros(len(logged), dtype=bool)
-    if win.get("margin_fallback", False) and len(logged):
+    if setting(params, "window", "margin_fallback") and len(logged):
         settled = usable_counts(s.fx, s.kept, logged.code, logged.start, logged.end)
         whole = usable_counts(s.fx, s.kept, logged.code, raw_s, raw_e)
         margins = (settled == 0) & (whole > 0)
@@ -152,10 +156,13 @@ class Parts:
     member_part: np.ndarray  # int8 part of each member
 
 
-def split_moves(c: Clouds, flags: dict[str, Any]) -> Parts:
-    """Test every window for a move; a moved window becomes two rows split at the move."""
+def split_moves(c: Clouds, params: dict[str, Any]) -> Parts:
+    """Test every window for a move; a moved window becomes two rows split at the move
+    (``flags.move_method``: the scan of :mod:`changepoint`, or the hour blocks of
+    :mod:`moves` of runs made before it)."""
     k = c.kept
-    mv = detect_moves(c.east[k], c.north[k], c.t_us[k], c.kept_window, c.n_windows, flags)
+    detect = scan_moves if setting(params, "flags", "move_method") == "scan" else detect_moves
+    mv = detect(c.east[k], c.north[k], c.t_us[k], c.kept_window, c.n_windows, params["flags"])
     moved = mv.split_us >= 0
     n_parts = np.where(moved, 2, 1)
     first_row = np.concatenate([[0], np.cumsum(n_parts)[:-1]]).astype(np.int64)
@@ -177,7 +184,7 @@ class Estimate:
     used: np.ndarray  # bool per kept member: not rejected as an outlier
     used_row: np.ndarray  # row of each used member
     t_s: np.ndarray  # per kept member: seconds from its row's first kept fix
-    covariance: CentreCovariance
+    covariance: CentreCovariance | None  # None: pooled (noise holds what the model needs)
     vee: np.ndarray  # per row, with the floor (and the one-fix minimum of margin rows)
     vnn: np.ndarray
     ven: np.ndarray
@@ -185,7 +192,9 @@ class Estimate:
     n_total: np.ndarray
     occupied: np.ndarray  # bool per row: at least one used fix
     median_hdop: np.ndarray
-    n_no_quality: np.ndarray  # used fixes without quality information, per row
+    single: np.ndarray  # per row: one fix's per-axis variance (σ₀·HDOP)², margin rows
+    noise: RowNoise | None = None  # method "pooled": per-row inputs of the pooled model
+    n_no_quality: np.ndarray | None = None  # used fixes without quality information
 
 
 def estimate(s: Screened, c: Clouds, parts: Parts, from_margins: np.ndarray,
@@ -211,31 +220,39 @@ def estimate(s: Screened, c: Clouds, parts: Parts, from_margins: np.ndarray,
     row_t0 = np.full(parts.n_rows, np.iinfo(np.int64).max, dtype=np.int64)
     np.minimum.at(row_t0, kept_row, t_kept)
     t_s = (t_kept - row_t0[kept_row]) / 1e6
+    used = ~rr.rejected
+    used_row = kept_row[used]
+    n_used = np.bincount(used_row, minlength=parts.n_rows)
+    n_total = np.bincount(parts.member_row, minlength=parts.n_rows)
+    median_hdop = seg_median(np.nan_to_num(hdop[used], nan=1.0), used_row, parts.n_rows, cap)
+    n_no_quality = (np.bincount(used_row, weights=unrated[used], minlength=parts.n_rows)
+                    .astype(np.int64) if unrated is not None
+                    else np.zeros(parts.n_rows, dtype=np.int64))
+    row_margins = from_margins[parts.row_window]
+    # Margin fixes span minutes, far less than the error correlation time: their mean is
+    # no better than one fix, whose per-axis error is sigma0 * HDOP (the weight model).
+    single = np.where(row_margins, (est["sigma0"] * np.where(np.isfinite(median_hdop),
+                                                             median_hdop, 1.0)) ** 2, np.nan)
+    floor2 = unc["floor"] ** 2
+    if unc["method"] == "pooled":
+        noise = row_noise(de[used], dn[used], hdop[used], rr.weight[used], t_s[used],
+                          used_row, parts.n_rows)
+        nan = np.full(parts.n_rows, np.nan)
+        return Estimate(rr, kept_row, used, used_row, t_s, None, nan, nan.copy(), nan.copy(),
+                        n_used, n_total, n_used > 0, median_hdop, single, noise,
+                        n_no_quality=n_no_quality)
     if unc["method"] == "ar1":
         cov = ar1_covariance(de, dn, rr.weight, kept_row, parts.n_rows)
     else:
         cov = batch_covariance(de, dn, rr.weight, t_s, kept_row, parts.n_rows,
                                batch_s=unc["batch_hours"] * 3600,
                                min_batches=unc["min_batches"])
-    used = ~rr.rejected
-    used_row = kept_row[used]
-    n_used = np.bincount(used_row, minlength=parts.n_rows)
-    n_total = np.bincount(parts.member_row, minlength=parts.n_rows)
-    floor2 = unc["floor"] ** 2
     vee, vnn, ven = cov.vee + floor2, cov.vnn + floor2, cov.ven
-    median_hdop = seg_median(np.nan_to_num(hdop[used], nan=1.0), used_row, parts.n_rows, cap)
-    n_no_quality = (np.bincount(used_row, weights=unrated[used], minlength=parts.n_rows)
-                    .astype(np.int64) if unrated is not None
-                    else np.zeros(parts.n_rows, dtype=np.int64))
-    row_margins = from_margins[parts.row_window]
     if row_margins.any():
-        # Margin fixes span minutes, far less than the error correlation time: their mean is
-        # no better than one fix, whose per-axis error is sigma0 * HDOP (the weight model).
-        single = (est["sigma0"] * np.where(np.isfinite(median_hdop), median_hdop, 1.0)) ** 2
         vee = np.where(row_margins, np.maximum(vee, single + floor2), vee)
         vnn = np.where(row_margins, np.maximum(vnn, single + floor2), vnn)
     return Estimate(rr, kept_row, used, used_row, t_s, cov, vee, vnn, ven, n_used, n_total,
-                    n_used > 0, median_hdop, n_no_quality)
+                    n_used > 0, median_hdop, single, n_no_quality=n_no_quality)
 
 
 @dataclass
@@ -288,12 +305,27 @@ def to_grid(c: Clouds, parts: Parts, est: Estimate, crs_epsg: int, unit: float
     lat, lon = np.where(est.occupied, lat, np.nan), np.where(est.occupied, lon, np.nan)
     east, north = (np.asarray(a) for a in
                    transformer(WGS84_GEOGRAPHIC, crs_epsg).transform(lon, lat))
-    vee, vnn, ven = grid_covariance(lat, lon, east, north, est.vee, est.vnn, est.ven,
-                                    crs_epsg, unit)
+    if est.covariance is None:  # pooled: the covariance comes once the run is pooled
+        nan = np.full(len(east), np.nan)
+        return GridPositions(lat, lon, east, north, *(nan.copy() for _ in range(7)))
+    return GridPositions(lat, lon, east, north,
+                         *grid_uncertainty(lat, lon, east, north, est.vee, est.vnn, est.ven,
+                                           crs_epsg, unit))
+
+
+def grid_uncertainty(lat: np.ndarray, lon: np.ndarray, east: np.ndarray, north: np.ndarray,
+                     vee: np.ndarray, vnn: np.ndarray, ven: np.ndarray, crs_epsg: int,
+                     unit: float, expand: np.ndarray | float = 1.0
+                     ) -> tuple[np.ndarray, ...]:
+    """σE, σN, correlation, 95 % ellipse (semi-axes, bearing) and r95 in the grid from an
+    east/north covariance; ellipse and radius of the covariance times ``expand`` (the
+    coverage factor k² of :func:`archive.solve.noise.coverage_factor`, 1: normal)."""
+    vee, vnn, ven = grid_covariance(lat, lon, east, north, vee, vnn, ven, crs_epsg, unit)
     sig_e, sig_n = np.sqrt(vee), np.sqrt(vnn)
-    major, minor, bearing = ellipse95(vee, vnn, ven)
-    return GridPositions(lat, lon, east, north, sig_e, sig_n, ven / (sig_e * sig_n), major,
-                         minor, bearing, radius95(vee, vnn, ven))
+    k2 = np.asarray(expand, dtype=float)
+    major, minor, bearing = ellipse95(vee * k2, vnn * k2, ven * k2)
+    return (sig_e, sig_n, ven / (sig_e * sig_n), major, minor, bearing,
+            radius95(vee * k2, vnn * k2, ven * k2))
 
 
 def span_and_spread(est: Estimate, n_rows: int) -> tuple[np.ndarray, np.ndarray]:

@@ -2,10 +2,11 @@
 
 The scenario (seed 11, small) lays out four stations again after their first pickup: three
 twice (one by its own node, two by spare nodes 2-6 m from the first spot) and one three
-times. Every delivery format must carry one record per occupation under a unique key
+times, and moves one node 15-40 m part way through its stay. Every delivery format must
+carry one record per occupation, and one per part of the moved node, under a unique key
 (line, point, point index), and independent readers written from the published layouts
 (SEG SPS rev 2.1 (2006) point record; SEG-P1 data record, SEG 1983, as read by GDAL) map each
-record back to its occupation through the deployment log alone.
+record back to its occupation through the deployment log and the lineage manifest.
 """
 
 from __future__ import annotations
@@ -73,6 +74,17 @@ def _truth(sc) -> dict[tuple[float, float, int], dict[str, str]]:
             for r in _csv(sc.truth) if r["final"] == "true"}
 
 
+def _parts(lineage: dict) -> dict[tuple[float, float, int], dict]:
+    """Records that are a part of a moved node, by key, from a lineage manifest."""
+    return {(s["line"], s["point"], o["index"]): o for s in lineage["occupations"]
+            for o in s["occupations"] if o.get("part")}
+
+
+def _n_records(sc) -> int:
+    """One record per occupation, and a second one per node that moved during its stay."""
+    return len(_csv(sc.deployments)) + sum(1 for p in sc.problems if p["kind"] == "moved")
+
+
 def test_the_scenario_occupies_stations_twice_and_three_times(survey):
     *_, sc, _base = survey
     counts = sorted(r["occupations"] for r in sc.reoccupied)
@@ -89,7 +101,7 @@ def test_the_scenario_occupies_stations_twice_and_three_times(survey):
 
 def test_every_format_has_unique_keys(survey):
     arc, sid, run_id, sc, base = survey
-    n_occ = len(_csv(sc.deployments))
+    n_occ = _n_records(sc)
     out = {}
     for fmt, ext in (("sps", "sps"), ("segp1", "p1"), ("csv", "csv"), ("geojson", "geojson"),
                      ("gpkg", "gpkg")):
@@ -111,7 +123,13 @@ def test_every_format_has_unique_keys(survey):
         assert len(keys) == n_occ and len(set(keys)) == n_occ
     lineage = json.loads(Path(str(out["csv"]) + ".lineage.json").read_text())
     multi = [s for s in lineage["occupations"] if len(s["occupations"]) > 1]
-    assert len(multi) == 4 and sorted(len(s["occupations"]) for s in multi) == [2, 2, 2, 3]
+    assert len(multi) == 5 and sorted(len(s["occupations"]) for s in multi) == [2, 2, 2, 2, 3]
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
+    parts = [o for s in multi if (s["line"], s["point"]) == (moved["line"], moved["point"])
+             for o in s["occupations"]]
+    assert [(o["part"], o["occupation"], o["node"]) for o in parts] == [
+        (1, 1, moved["node"]), (2, 1, moved["node"])]
+    assert parts[0]["retrieved"] == parts[1]["deployed"]  # each holds for its own time
 
 
 def test_independent_readers_map_each_record_to_its_occupation(survey):
@@ -123,12 +141,21 @@ def test_independent_readers_map_each_record_to_its_occupation(survey):
     headers, p1 = read_segp1((base / "map.p1").read_text())
     assert any("Reshoot code col 26: occupation's point index, blank = 1" in h for h in headers)
     sps = read_sps_r((base / "map.sps").read_text())
+    parts = _parts(json.loads((base / "map.sps.lineage.json").read_text()))
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
     again = {(r["line"], r["point"]) for r in sc.reoccupied}
     planted = {(p["line"], p["point"]) for p in sc.problems if p["kind"] != "damaged-log"}
     for rec in sps:
         key = (rec["line"], rec["point"], rec["index"])
-        dep = log[key]  # the occupation the record names, from the log alone
+        part = parts.get(key, {})
+        # the occupation the record names, from the log (through the lineage for a part)
+        dep = log[(*key[:2], part.get("occupation", key[2]))]
         laid = _t(dep["deployed_utc"])
+        if part.get("part") == 2:  # the later part holds from the first fix after the move
+            held = datetime.strptime(f"{laid.year} {int(rec['doy'])} {rec['time']}",
+                                     "%Y %j %H%M%S").replace(tzinfo=UTC)
+            assert timedelta(0) <= held - _t(moved["at_utc"]) <= timedelta(minutes=3)
+            continue
         # SPS columns 72-80 hold the lay-out time (header H26 says so)
         assert rec["doy"] == laid.timetuple().tm_yday and rec["time"] == laid.strftime("%H%M%S")
         if key[:2] in again:
@@ -138,7 +165,7 @@ def test_independent_readers_map_each_record_to_its_occupation(survey):
             assert d < 1.5  # within the solver's 95th percentile target of its own spot
     for rec in p1:
         key = (float(rec["line"]), float(rec["point"]), int(rec["reshoot"].strip() or 1))
-        assert key in log
+        assert key in log or key in parts
         if key[:2] in again and key[:2] not in planted:
             t = truth[key]
             # SEG-P1 easting to 0.1 m, northing to whole metres in 8 columns
@@ -257,10 +284,10 @@ def test_merge_occupations_only_when_indistinguishable(survey):
     arc, sid, run_id, sc, base = survey
     res = deliver(arc, sid, run_id, "csv", base / "merged.csv", RECIPIENT, allow_flags=True,
                   force=True, merge_occupations=True)
-    # re-laid 2-6 m apart: far beyond the occupations' uncertainty, nothing merges
-    assert len(res.merges) == 4 and not any(m["merged"] for m in res.merges)
+    # re-laid 2-6 m apart, or moved 15-40 m: far beyond the uncertainty, nothing merges
+    assert len(res.merges) == 5 and not any(m["merged"] for m in res.merges)
     assert all("differ beyond their uncertainty" in m["reason"] for m in res.merges)
-    assert res.n_records == len(_csv(sc.deployments))
+    assert res.n_records == _n_records(sc)
 
 
 def test_qc_ties_a_check_point_to_the_occupation_surveyed(survey):
@@ -352,4 +379,68 @@ def test_where_refuses_a_date_for_at_and_names_what_was_delivered(survey):
         "delivered: index 1 (node" in w["notes"][0]
     moved = next(p for p in sc.problems if p["kind"] == "moved")
     w = where(arc, sid, moved["line"], moved["point"])
-    assert any("the node moved during this occupation" in n for n in w["notes"])
+    assert any(f"node {moved['node']} moved during its stay, at " in n
+               and "index 1 is where it stood before, index 2 where it stood after" in n
+               for n in w["notes"])
+
+
+def test_a_moved_node_is_delivered_in_two_parts_each_for_its_own_time(survey, runner):
+    """Shots before the move use the earlier place: ``where --at`` answers with the part in
+    the ground at that moment, each part within 1.5 m of where the node stood."""
+    arc, sid, run_id, sc, base = survey
+    deliver(arc, sid, run_id, "csv", base / "parts.csv", RECIPIENT, allow_flags=True,
+            force=True)
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
+    line, point = moved["line"], moved["point"]
+    truth = [r for r in _csv(sc.truth) if (float(r["line"]), float(r["point"])) == (line, point)]
+    assert [r["part"] for r in truth] == ["1", "2"]
+    at = _t(moved["at_utc"])
+    for when, k, t in ((at - timedelta(hours=6), 1, truth[0]), (at + timedelta(hours=6), 2,
+                                                                truth[1])):
+        w = where(arc, sid, line, point, at=when)
+        rec = w["delivered"]
+        assert rec["index"] == k and rec["part"] == k and rec["occupation"] == 1
+        assert np.hypot(rec["easting"] - float(t["easting"]),
+                        rec["northing"] - float(t["northing"])) < 1.5
+    w = where(arc, sid, line, point, at=at - timedelta(hours=6))
+    assert w["delivered"]["retrieved"] == where(arc, sid, line, point,
+                                                at=at + timedelta(hours=6))["delivered"]["deployed"]
+    rows = [r for r in _csv(base / "parts.csv") if (float(r["line"]), float(r["point"]))
+            == (line, point)]
+    assert [r["index"] for r in rows] == ["1", "2"] and rows[0]["node"] == rows[1]["node"]
+    r = invoke(runner, base / "archive", "where", f"{line:g}", f"{point:g}", "--at",
+               (at + timedelta(hours=6)).strftime("%Y-%m-%dT%H:%M:%SZ"))
+    assert r.exit_code == 0 and "index 2" in r.output
+
+
+def test_edits_of_a_moved_node_act_on_its_occupation(survey):
+    """An edit names the occupation: an acknowledgement clears the flag on both parts, a set
+    position makes it one record again for the whole stay, under the occupation's index."""
+    from archive.review.acknowledge import ack_flag
+
+    arc, sid, run_id, sc, base = survey
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
+    line, point = moved["line"], moved["point"]
+    run = get_run(arc, sid, run_id)
+
+    def records():
+        final = final_positions(arc, sid, run)
+        return [r for r in final.to_pylist() if (r["line"], r["point"]) == (line, point)]
+
+    before = records()
+    assert [(r["index"], r["part"], r["occupation"]) for r in before] == [(1, 1, 1), (2, 2, 1)]
+    with pytest.raises(UsageError, match="no occupation with index 2"):
+        ed.reject_station(arc, sid, line, point, 2, reason="the later part only")
+    ack = ack_flag(arc, sid, line, point, 1, flag="moved", reason="the crew moved it")
+    after = records()
+    assert all("moved" not in r["flags"].split(";") and r["flags_acknowledged"] == "moved"
+               for r in after) and len(after) == 2
+    e = ed.set_position(arc, sid, line, point, 1, source="given", easting=before[1]["easting"],
+                        northing=before[1]["northing"], reason="surveyed where it ended")
+    [one] = records()
+    assert (one["index"], one["part"]) == (1, 0)
+    assert one["deployed"] == before[0]["deployed"] and one["retrieved"] == before[1]["retrieved"]
+    assert one["source"].startswith(f"edit:{e.id}")
+    for x in (e, ack):
+        ed.undo(arc, sid, x.id, reason="test done")
+    assert len(records()) == 2

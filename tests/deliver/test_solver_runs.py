@@ -104,7 +104,8 @@ def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner)
     t = trace_station(arc, sid, row["line"], row["point"], row["occupation"])
     [o] = t["occupations"]
     by_part = {p["part"]: p for p in o["fixes_by_part"] if p["node"] == row["node"]}
-    assert {1, 2} <= set(by_part) and by_part[2]["delivered"] and not by_part[1]["delivered"]
+    # each part is delivered on its own (flags.move_deliver = "each")
+    assert {1, 2} <= set(by_part) and by_part[2]["delivered"] and by_part[1]["delivered"]
     for r in parts:  # each part's counts agree with the run's own counts of that part
         p = by_part[r["part"]]
         assert p["used"] == r["n_used"] and p["rejected"] + p["screened"] == r["n_rejected"]
@@ -115,8 +116,9 @@ def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner)
                "--index", str(row["occupation"]))
     assert r.exit_code == 0, r.stderr
     assert (f"part 2 node {row['node']}: used {row['n_used']}, rejected "
-            f"{by_part[2]['rejected']}, screened {by_part[2]['screened']} (delivered part)"
-            in r.output)
+            f"{by_part[2]['rejected']}, screened {by_part[2]['screened']} (delivered as index "
+            f"{row['point_index']})" in r.output)
+    assert row["point_index"] != row["occupation"] and by_part[2]["index"] == row["point_index"]
     r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}",
                "--node", row["node"], "--json")
     assert json.loads(r.output)["occupations"][0]["fixes_by_part"] == o["fixes_by_part"]

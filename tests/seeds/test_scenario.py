@@ -262,3 +262,24 @@ def test_problems_file_lists_every_planted_problem(small: Scenario) -> None:
                                               "swapped"]
     meta = json.loads((small.out_dir / "scenario.json").read_text(encoding="utf-8"))
     assert meta["survey_name"] == "Kestrel Flats 3D" and meta["epsg"] == 32614
+
+
+def test_same_day_deployments_at_another_interval(tmp_path: Path) -> None:
+    sc = generate(tmp_path / "sd", seed=3, size="same-day", interval=45.0)
+    assert sc.n_stations == 36 and sc.dt == 45.0
+    dep = _csv(sc.deployments)
+
+    def hours(r: dict[str, str]) -> float:
+        a, b = (np.datetime64(r[k].rstrip("Z")) for k in ("deployed_utc", "retrieved_utc"))
+        return float((b - a) / np.timedelta64(1, "h"))
+
+    first = [hours(r) for r in dep[:24]]  # the first wave: laid out, then picked up at night
+    assert min(first) >= 8.0 and max(first) <= 10.0
+    # every node logs at the interval asked: GGA times 45 s apart
+    log = sc.logs[0].read_bytes().split(b"\r\n")
+    t = [line.split(b",")[1] for line in log if line.startswith(b"$GPGGA")][:3]
+    secs = [int(x[:2]) * 3600 + int(x[2:4]) * 60 + float(x[4:]) for x in t]
+    assert np.diff(secs).tolist() == [45.0, 45.0]
+    moved = next(p for p in sc.problems if p["kind"] == "moved")
+    truth = [r for r in _csv(sc.truth) if r["node"] == moved["node"]]
+    assert [r["part"] for r in truth] == ["1", "2"]

@@ -29,9 +29,12 @@ def _delivered(sim: Simulation, solved) -> tuple[dict, np.ndarray]:
 
 
 def _errors(sim: Simulation, solved) -> tuple[np.ndarray, np.ndarray, dict, np.ndarray]:
+    """Errors of the delivered rows, each part of a moved node against where it stood."""
     pos, i = _delivered(sim, solved)
-    de = np.array(pos["easting"]) - sim.truth["e"][i]
-    dn = np.array(pos["northing"]) - sim.truth["n"][i]
+    first = np.array(pos["part"]) == 1
+    t = sim.truth
+    de = np.array(pos["easting"]) - np.where(first, t["e_first"][i], t["e"][i])
+    dn = np.array(pos["northing"]) - np.where(first, t["n_first"][i], t["n"][i])
     return de, dn, pos, i
 
 
@@ -51,8 +54,13 @@ def test_reported_uncertainty_is_calibrated(big_sim: Simulation, big_solved) -> 
     ven = r * se * sn
     det = se**2 * sn**2 - ven**2
     m2 = (sn**2 * de**2 - 2 * ven * de * dn + se**2 * dn**2) / det
-    inside = np.mean(m2 <= 5.991465)  # χ²₂(0.95), computed with scipy.stats.chi2
-    print(f"\n{inside:.1%} of {len(m2)} stations inside their own 95 % ellipse")
+    # the standard uncertainty: E[m²] = 2 for a calibrated 2-D normal (χ²₂ mean)
+    print(f"\nmean squared standardised error {np.mean(m2) / 2:.2f} per axis")
+    assert 0.6 <= np.mean(m2) / 2 <= 1.6
+    inside = np.mean(np.hypot(de, dn) <= np.array(pos["r95"]))
+    print(f"{inside:.1%} of {len(m2)} positions inside their own stated r95")
+    # 3.2 days: the floor (0.25 m) against this model's 0.3 m multipath bias (see
+    # docs/solving.md, "Measured") makes it slightly short of 95 %
     assert 0.85 <= inside <= 0.99
     # σ/√n would claim a few centimetres: the reported sigmas must be far above that
     n_used = np.array(pos["n_used"])
@@ -95,11 +103,14 @@ def test_every_move_and_mixup_is_flagged(big_sim: Simulation, big_solved) -> Non
         assert "nearer-other" in flags[node], node
     # and nothing else moved (no false alarms on this data)
     assert {n for n, f in flags.items() if "moved" in f} == set(t["node"][t["moved"]])
-    # the delivered part of a moved node is the later one, near where it was recovered
+    # each part of a moved node is delivered, near where it stood, split at the move
     de, dn, p, i = _errors(big_sim, big_solved)
     moved = t["moved"][i]
     assert np.all(np.hypot(de, dn)[moved] < 1.5)
-    assert set(np.array(p["part"])[moved]) == {2}
+    assert sorted(np.array(p["part"])[moved]) == sorted([1, 2] * int(t["moved"].sum()))
+    later = moved & (np.array(p["part"]) == 2)
+    split = np.array([x.timestamp() for x in np.array(p["held_from"], dtype=object)[later]])
+    assert np.all(np.abs(split - t["move_t"][i[later]]) <= 30.0)  # at the fix (30 s logging)
 
 
 def test_unlogged_deployment_is_found_and_camp_never_used(big_sim: Simulation,
@@ -140,4 +151,5 @@ def test_other_estimators_and_ar1_run_on_the_same_data(big_sim: Simulation,
                       detect_unlogged=False)
     pos = out.positions.to_pydict()
     assert set(pos["estimator"]) == {estimator}
-    assert all(np.isfinite(pos["sigma_e"])) and all(x > 0.3 for x in pos["sigma_e"])
+    floor = p["uncertainty"]["floor"]
+    assert all(np.isfinite(pos["sigma_e"])) and all(x > floor for x in pos["sigma_e"])

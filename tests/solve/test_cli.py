@@ -13,7 +13,7 @@ def test_params_prints_commented_toml(runner, survey_arc) -> None:
     assert res.exit_code == 0
     assert "# " in res.output and tomllib.loads(res.output)["estimate"]["huber_k"] == 1.345
     res = invoke(runner, survey_arc.root, "params", "--json")
-    assert json.loads(res.output)["uncertainty"]["method"] == "batch"
+    assert json.loads(res.output)["uncertainty"]["method"] == "pooled"
 
 
 def test_solve_runs_show(runner, sim_arc, tmp_path) -> None:

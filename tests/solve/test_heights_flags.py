@@ -77,11 +77,14 @@ def test_flag_strings_use_the_contract_keys_in_order() -> None:
     p = default_params()
     n = 4
     cols = {"n_used": np.array([5000, 50, 0, 5000]), "span_s": np.array([9e4, 600, 0, 9e4]),
+            "allowed_s": np.array([9.5e4, 9.5e4, 9.5e4, 9.5e4]),
+            "expected": np.array([5500.0, 5500.0, 5500.0, 5500.0]),
             "unit_scale": np.array([1.0, 20.0, 0.0, 1.0]),
             "moved": np.array([False, True, False, False]),
             "dist_preplot": np.array([0.5, 30.0, np.nan, 3.0]),
             "dist_nearest": np.array([25.0, 10.0, np.nan, 22.0]),
             "dh": np.array([0.3, 9.0, np.nan, -0.5]),
+            "dh_sigma": np.array([2.0, 2.0, np.nan, 2.0]),
             "off_model": np.array([False, False, False, True]),
             "kind": np.array(["logged", "logged", "logged", "unlogged"], dtype=object)}
     out = flag_strings(cols, p)
@@ -91,3 +94,45 @@ def test_flag_strings_use_the_contract_keys_in_order() -> None:
     for f in out:
         keys = [x for x in f.split(";") if x]
         assert keys == [k for k in FLAGS if k in keys]  # fixed order of the contract
+
+
+def _cols(**given: np.ndarray) -> dict[str, np.ndarray]:
+    n = len(next(iter(given.values())))
+    base = {"n_used": np.full(n, 5000), "span_s": np.full(n, 9e4),
+            "allowed_s": np.full(n, 9.5e4), "expected": np.full(n, 5500.0),
+            "unit_scale": np.ones(n), "moved": np.zeros(n, bool),
+            "dist_preplot": np.full(n, 0.5), "dist_nearest": np.full(n, 25.0),
+            "dh": np.zeros(n), "dh_sigma": np.full(n, 2.0), "off_model": np.zeros(n, bool),
+            "kind": np.full(n, "logged", dtype=object)}
+    return base | given
+
+
+def test_short_span_and_few_fixes_are_relative_to_the_window() -> None:
+    """A same-day deployment logged in full is not short; a node that died early is, at
+    any window length. The rules, with the share 0.5 of the defaults: short-span when the
+    used fixes span less than half the window, few-fixes below half the fixes the window
+    allows at the node's interval (or below the absolute minimum)."""
+    p = default_params()
+    hours = np.array([5.0, 5.0, 71.0, 71.0, 11.0, 11.0])
+    span = np.array([4.9, 2.0, 70.0, 3.0, 10.8, 10.8]) * 3600
+    expected = hours * 3600 / np.array([30.0, 30.0, 30.0, 30.0, 1.0, 1.0])
+    used = np.array([580, 240, 8400, 360, 38000, 12000])
+    out = flag_strings(_cols(span_s=span, allowed_s=hours * 3600, expected=expected,
+                             n_used=used), p)
+    assert list(out) == ["", "few-fixes;short-span", "", "few-fixes;short-span", "",
+                         "few-fixes"]
+    # the same rows under a run made before the relative rules (absolute 6 h, 120 fixes)
+    old = default_params()
+    for key in ("min_span_fraction", "min_fix_fraction"):
+        del old["flags"][key]
+    old["flags"]["min_span_hours"] = 6.0
+    out = flag_strings(_cols(span_s=span, allowed_s=hours * 3600, expected=expected,
+                             n_used=used), old)
+    assert list(out) == ["short-span", "short-span", "", "short-span", "", ""]
+
+
+def test_height_mismatch_needs_the_difference_beyond_its_own_sigma() -> None:
+    p = default_params()  # height_tol 6 m and height_z 3
+    out = flag_strings(_cols(dh=np.array([7.0, 7.0, -9.0]),
+                             dh_sigma=np.array([2.0, 3.0, 2.9])), p)
+    assert list(out) == ["height-mismatch", "", "height-mismatch"]

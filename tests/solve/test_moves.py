@@ -1,4 +1,5 @@
-"""Move detection on Gauss–Markov clouds (thresholds: common practice, no source)."""
+"""The hour-block move detection of runs made before the scan (``flags.move_method =
+"blocks"``), on Gauss–Markov clouds (thresholds: common practice, no source)."""
 
 from __future__ import annotations
 
@@ -8,7 +9,9 @@ from archive.seeds.gnss_errors import gauss_markov
 from archive.solve.moves import detect_moves
 from archive.solve.params import default_params
 
-P = default_params()["flags"]
+# the parameters of that time: hour blocks, 6 h a side, 4 standard errors
+P = default_params()["flags"] | {"move_block_min": 60.0, "move_min_hours": 6.0,
+                                 "move_z": 4.0}
 
 
 def _clouds(k: int, n: int, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:

@@ -65,9 +65,10 @@ def test_cloud_hdop_gives_unrated_fixes_the_typical_hdop_of_their_cloud():
 def test_flag_when_most_used_fixes_lack_quality():
     n = 4
     cols = {"n_used": np.array([100, 100, 100, 0]), "span_s": np.full(n, 1e6),
+            "allowed_s": np.full(n, 1e6), "expected": np.full(n, 100.0),
             "unit_scale": np.ones(n), "moved": np.zeros(n, bool),
             "dist_preplot": np.zeros(n), "dist_nearest": np.full(n, 50.0),
-            "dh": np.zeros(n), "off_model": np.zeros(n, bool),
+            "dh": np.zeros(n), "dh_sigma": np.ones(n), "off_model": np.zeros(n, bool),
             "kind": np.array(["logged"] * n, dtype=object),
             "n_no_quality": np.array([0, 50, 51, 0])}
     flags = flag_strings(cols, default_params())

@@ -19,7 +19,7 @@ def test_defaults_carry_the_published_constants() -> None:
     assert p["estimate"]["tukey_c"] == 4.685
     assert p["estimate"]["estimator"] == "huber"
     assert p["estimate"]["reject_quantile"] == 0.999
-    assert p["uncertainty"]["method"] == "batch"
+    assert p["uncertainty"]["method"] == "pooled"
     assert p["uncertainty"]["batch_hours"] >= 1.0  # hours, not minutes (methods §4)
 
 
@@ -65,3 +65,31 @@ def test_unreadable_files_name_the_file(tmp_path: Path) -> None:
         load_params(f)
     with pytest.raises(UsageError):
         resolve_params({"uncertainty": {"min_batches": 1}})
+
+
+def test_a_manifest_without_the_newer_parameters_reads_as_its_own_time() -> None:
+    from archive.solve.params import BEFORE, setting
+
+    new = default_params()
+    old = {sec: {k: v for k, v in keys.items() if (sec, k) not in BEFORE}
+           for sec, keys in new.items()}
+    assert setting(new, "flags", "move_method") == "scan"
+    assert setting(new, "flags", "move_deliver") == "each"
+    assert setting(old, "flags", "move_method") == "blocks"  # hour blocks, 6 h a side
+    assert setting(old, "flags", "move_deliver") == "last"  # the last part delivered
+    assert setting(old, "flags", "min_span_fraction") is None  # the absolute span rule
+    assert setting(old, "window", "margin_fallback") is False
+    for sec, key in BEFORE:  # every parameter read that way is a real parameter now
+        assert key in new[sec]
+
+
+@pytest.mark.parametrize("override, message", [
+    ({"flags": {"move_method": "hours"}}, "flags.move_method 'hours' is unknown"),
+    ({"flags": {"move_deliver": "first"}}, "flags.move_deliver 'first' is unknown"),
+    ({"flags": {"min_span_fraction": 1.5}}, "flags.min_span_fraction must be between 0 and 1"),
+    ({"flags": {"move_min_hours": 0.0}}, "flags.move_min_hours must be positive"),
+    ({"uncertainty": {"method": "student"}}, "uncertainty.method 'student' is unknown"),
+])
+def test_the_new_parameters_are_checked(override: dict, message: str) -> None:
+    with pytest.raises(UsageError, match=message):
+        resolve_params(override)

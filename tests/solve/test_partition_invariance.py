@@ -1,6 +1,8 @@
-"""A station's solution must not depend on which other nodes it is solved with: the run
-is cut into node partitions (and spread over Dask workers), so solving all nodes at once
-and node by node must give the same bits."""
+"""A run's positions must not depend on how its nodes were partitioned: the run is cut into
+node partitions (and spread over Dask workers), so solving all nodes at once and node by
+node must give the same bits. Every cloud is solved on its own; the pooled error model
+behind the uncertainty is fitted once the partitions are combined, on all the run's rows in
+the run's order (:func:`archive.solve.run._combine`)."""
 
 from __future__ import annotations
 
@@ -9,32 +11,46 @@ import pyarrow.compute as pc
 
 from archive.solve.engine import solve_fixes
 from archive.solve.params import default_params
+from archive.solve.pooled import WORK
+from archive.solve.run import MANIFEST_FORMAT, SORT_KEYS, _combine
 from archive.store.hashing import table_digest
-
-KEYS = [("line", "ascending"), ("point", "ascending"), ("index", "ascending"),
-        ("node", "ascending"), ("part", "ascending")]
 
 
 def _sorted(t: pa.Table) -> pa.Table:
-    return t.take(pc.sort_indices(t, sort_keys=KEYS)).combine_chunks()
+    return t.take(pc.sort_indices(t, sort_keys=SORT_KEYS)).combine_chunks()
 
 
 def test_solving_node_by_node_equals_solving_all_at_once(small_sim):
     sim = small_sim
     p = default_params()
+    manifest = {"format": MANIFEST_FORMAT, "params": p,
+                "survey": {"crs_epsg": sim.meta["epsg"]}}
     # unlogged-cluster detection looks at whole tracks of one node, so it is per node too
-    together = solve_fixes(sim.fixes, sim.deployments, sim.stations, p, sim.meta["epsg"])
+    together = solve_fixes(sim.fixes, sim.deployments, sim.stations, p, sim.meta["epsg"],
+                           finish=False).positions
     parts = []
     for node in pc.unique(sim.deployments["node"]).to_pylist():
         fx = sim.fixes.filter(pc.equal(sim.fixes["node"], node))
         dep = sim.deployments.filter(pc.equal(sim.deployments["node"], node))
-        parts.append(solve_fixes(fx, dep, sim.stations, p, sim.meta["epsg"]).positions)
+        parts.append(solve_fixes(fx, dep, sim.stations, p, sim.meta["epsg"],
+                                 used=_used(sim), finish=False).positions)
+    logged = [t.filter(pc.equal(t["kind"], "logged")) for t in (together, *parts)]
+    together, parts = logged[0], logged[1:]
     one_by_one = _sorted(pa.concat_tables(parts))
-    together = _sorted(together.positions)
-    logged = pc.equal(together["kind"], "logged")
-    together = together.filter(logged)
-    one_by_one = one_by_one.filter(pc.equal(one_by_one["kind"], "logged"))
-    assert together.num_rows == one_by_one.num_rows > 0
-    for name in together.column_names:
-        assert together[name].equals(one_by_one[name]), name
-    assert table_digest(together) == table_digest(one_by_one)
+    assert set(WORK) <= set(together.column_names)
+    # every cloud's own columns, before the pooled model
+    raw_a, raw_b = _sorted(together), one_by_one
+    assert raw_a.num_rows == raw_b.num_rows > 0
+    for name in raw_a.column_names:
+        assert raw_a[name].equals(raw_b[name]), name
+    # the finished run, whatever the partitions
+    a, _ = _combine([together], manifest)
+    b, _ = _combine(parts, manifest)
+    assert not set(WORK) & set(a.column_names)
+    assert table_digest(a) == table_digest(b)
+
+
+def _used(sim):
+    from archive.solve.parts import used_indices
+
+    return used_indices(sim.deployments, sim.stations)

@@ -7,6 +7,7 @@ import os
 import stat
 from datetime import timedelta
 
+import numpy as np
 import pyarrow.compute as pc
 import pytest
 from sqlalchemy import select
@@ -65,9 +66,15 @@ def test_positions_carry_heights_uncertainty_and_flags(sim_arc, small_sim) -> No
     # model height 240 + 0.002·(E - west edge): |dh| stays small for these simulated nodes
     assert all(abs(d) < 3 for d in pos["dh"])
     assert all(s > 0.2 for s in pos["sigma_h"])
-    # 95 % radius between the circular-normal factors of the larger and smaller sigma
-    for se, sn, r95 in zip(pos["sigma_e"], pos["sigma_n"], pos["r95"], strict=True):
-        assert 1.9599 * max(se, sn) <= r95 <= 2.4478 * max(se, sn)
+    # 95 % radius between the circular-normal factors of the larger and smaller sigma, times
+    # the coverage factor of its degrees of freedom (archive.solve.noise.coverage_factor)
+    from archive.solve.noise import coverage_factor
+
+    for se, sn, r95, dof in zip(pos["sigma_e"], pos["sigma_n"], pos["r95"], pos["dof"],
+                                strict=True):
+        k = float(np.sqrt(coverage_factor(np.array([dof]))[0]))
+        assert 1.0 <= k < 1.5 and dof >= 1
+        assert 1.9599 * k * max(se, sn) <= r95 <= 2.4478 * k * max(se, sn)
 
 
 def test_recompute_is_bit_identical_and_detects_altered_inputs(sim_arc) -> None:
@@ -157,3 +164,33 @@ def test_errors_say_what_to_do(survey_arc) -> None:
         get_run(survey_arc, sid)
     with pytest.raises(UsageError, match="too short"):
         get_run(survey_arc, sid, "ab")
+
+
+def test_parameters_of_an_older_run_solve_as_they_did(small_sim) -> None:
+    """A manifest written before the pooled uncertainty, the move scan and the delivery of
+    each part names none of their parameters: it solves with batch means and the normal
+    quantile, the hour-block detector, and delivers the later part for the whole stay."""
+    from archive.solve.engine import solve_fixes
+    from archive.solve.params import BEFORE, default_params
+    from archive.solve.run import MANIFEST_FORMAT, _combine
+
+    old = {sec: {k: v for k, v in keys.items() if (sec, k) not in BEFORE}
+           for sec, keys in default_params().items()}
+    old["uncertainty"] |= {"method": "batch", "floor": 0.3}
+    old["flags"] |= {"min_span_hours": 6.0, "move_min_hours": 6.0, "move_block_min": 60.0,
+                     "move_z": 4.0}
+    sim = small_sim
+    out = solve_fixes(sim.fixes, sim.deployments, sim.stations, old, sim.meta["epsg"],
+                      finish=False).positions
+    pos = out.to_pydict()
+    moved = [k for k, f in enumerate(pos["flags"]) if "moved" in f.split(";")]
+    assert sorted(pos["part"][k] for k in moved) == [1, 2]
+    for k in moved:  # only the later part is delivered, under the occupation's index
+        assert pos["delivered"][k] == (pos["part"][k] == 2)
+    later = next(k for k in moved if pos["part"][k] == 2)
+    assert pos["point_index"][later] == pos["occupation"][later]
+    assert pos["held_from"][later] == pos["deployed"][later]
+    assert all(d is None for d in pos["dof"])  # the normal quantile
+    v2, _ = _combine([out], {"format": 2, "params": old,
+                             "survey": {"crs_epsg": sim.meta["epsg"]}})
+    assert "point_index" not in v2.column_names and MANIFEST_FORMAT == 3

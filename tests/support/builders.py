@@ -100,7 +100,8 @@ def positions_table(final: pa.Table, flags: list[str] | None = None,
         "nearest_line": nan, "nearest_point": nan, "dist_nearest": nan,
         "estimator": ["huber"] * n, "flags": flags or [""] * n,
         "occupation": d["index"], "deployed": d["deployed"], "retrieved": d["retrieved"],
-        "from_margins": [False] * n,
+        "from_margins": [False] * n, "point_index": d["index"], "held_from": d["deployed"],
+        "held_to": d["retrieved"], "dof": nan,
     }
     cols["n_no_quality"] = [0] * n
     return pa.table(cols, schema=POSITION_SCHEMA)

@@ -34,10 +34,16 @@ def positions_table(rows: Sequence[dict]) -> pa.Table:
         "index": 1, "occupation": 1, "deployed": T0 - timedelta(minutes=30),
         "retrieved": T0 + timedelta(days=3, minutes=30), "from_margins": False,
     }
+    # a delivered row holds for its occupation's window under the occupation's index
+    same = {"point_index": "occupation", "held_from": "deployed", "held_to": "retrieved"}
     defaults["n_no_quality"] = 0
     cols = {}
     for f in POSITION_SCHEMA:
-        vals = [r.get(f.name, defaults.get(f.name)) for r in rows]
+        if f.name in same:
+            vals = [r.get(f.name, r.get(same[f.name], defaults[same[f.name]])
+                          if r.get("delivered", True) else None) for r in rows]
+        else:
+            vals = [r.get(f.name, defaults.get(f.name)) for r in rows]
         cols[f.name] = pa.array(vals, type=f.type) if n else pa.array([], type=f.type)
     return pa.table(cols, schema=POSITION_SCHEMA)
 
