@@ -63,6 +63,13 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
         for m in res.merges:
             if not m["merged"]:
                 text += f"\n    {station_text(m['line'], m['point'])} kept apart: {m['reason']}"
+    if res.awaiting:
+        text += (f"\n  held back {res.n_awaiting} deployment(s) awaiting harvest (no log of "
+                 "their node loaded yet; the next solve after loading positions them):")
+        for a in res.awaiting[:20]:
+            text += f"\n    {station_text(a['line'], a['point'], a['index'], a['node'])}"
+        if res.n_awaiting > 20:
+            text += f"\n    ... and {res.n_awaiting - 20} more (--json lists every one)"
     for w in res.warnings:
         text += f"\n  warning: {w}"
     emit(state, d, text)

@@ -75,10 +75,17 @@ class DeliveryResult:
     allowed_flags: bool = False
     warnings: list[str] = field(default_factory=list)
     merges: list[dict[str, Any]] = field(default_factory=list)
+    # deployments held back: no log of their node was loaded yet (awaiting harvest)
+    awaiting: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def n_awaiting(self) -> int:
+        """Deployments held back as awaiting harvest."""
+        return len(self.awaiting)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain data for printing."""
-        return asdict(self)
+        return asdict(self) | {"n_awaiting": self.n_awaiting}
 
 
 def _flag_refusal(final: pa.Table, flags: dict[str, int], run: Run) -> Refused:
@@ -203,7 +210,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         run=run, run_manifest=manifest, edits=edits, edit_set_hash=edit_hash,
         unapplied=unapplied, inputs=inputs,
         raw_files=raw_files, final=final,
-        final_hash=final_hash, merge=merge_occupations, merges=built.merges)
+        final_hash=final_hash, merge=merge_occupations, merges=built.merges,
+        awaiting=built.awaiting)
     delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(
         arc, survey_id, facts, lambda anchor: write(final, replace(ctx, anchor=anchor)),
         final_size, target, lineage_path)
@@ -216,7 +224,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         n_stations=facts.n_stations, n_records=final.num_rows,
         edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
         unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
-        merges=built.merges)
+        merges=built.merges, awaiting=built.awaiting)
 
 
 def _require_inputs(arc: Archive, manifest: dict[str, Any],
