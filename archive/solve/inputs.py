@@ -208,12 +208,17 @@ def _utc_us(t: Any) -> int:
     return (t - EPOCH) // timedelta(microseconds=1)
 
 
-def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> list[Partition]:
-    """Node partitions of at most about ``limit`` fixes (a node is never split)."""
+def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES, *,
+               skip: set[str] | None = None) -> list[Partition]:
+    """Node partitions of at most about ``limit`` fixes (a node is never split); the nodes
+    of ``skip`` (solved in an earlier run, :mod:`archive.solve.reuse`) are left out."""
+    skip = skip or set()
     by_node: dict[str, list[tuple[str, int]]] = {}
     for node, h, n in inp.fix_files:
-        by_node.setdefault(node, []).append((h, n))
+        if node not in skip:
+            by_node.setdefault(node, []).append((h, n))
     dep_nodes = np.array(inp.deployments["node"].to_pylist(), dtype=object)
+    skipped = np.array([n in skip for n in dep_nodes], dtype=bool)  # one per record
     out: list[Partition] = []
     cur_nodes: list[str] = []
     cur_h: list[str] = []
@@ -239,7 +244,7 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
     if cur_nodes or not out:
         flush()
     solved = set(by_node)
-    lonely = np.array([n not in solved for n in dep_nodes], dtype=bool)
+    lonely = np.array([n not in solved for n in dep_nodes], dtype=bool) & ~skipped
     if lonely.any():  # deployments whose node has no fixes: unoccupied rows
         out.append(Partition([], [], 0, inp.deployments.filter(pa.array(lonely, pa.bool_()))))
     return out
