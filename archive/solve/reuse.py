@@ -183,3 +183,12 @@ def changed_nodes(old: Iterable[tuple[str, str]], new: dict[str, str]) -> dict[s
     return {"changed": sorted(n for n in new if n in before and before[n] != new[n]),
             "added": sorted(n for n in new if n not in before),
             "removed": sorted(n for n in before if n not in new)}
+
+
+def solved_by(arc: Archive, run: Run, nodes: Iterable[str]) -> dict[str, str]:
+    """node -> id of the run whose solve made that node's rows in ``run``: the run itself,
+    or the earlier run its rows were reused from (runs without result keys: itself)."""
+    table = run_keys(arc, run)
+    known = (dict(zip(table["node"].to_pylist(), table["solved_by"].to_pylist(), strict=True))
+             if table is not None else {})
+    return {str(n): known.get(str(n), run.id) for n in nodes}

@@ -271,6 +271,11 @@ def station_solution(arc: Archive, survey_id: int, line: float, point: float,
                          hint="check the line and point numbers, or choose a run with --run")
     n_occ = len({r["occupation"] for r in rows if r["occupation"] is not None})
     screen = run_manifest(arc, run)["params"].get("screen", {})
+    from archive.solve.reuse import solved_by
+
+    by = solved_by(arc, run, {r["node"] for r in rows})
+    for r in rows:
+        r["solved_by"] = by[str(r["node"])]  # an earlier run when its rows were reused
     # runs made before the parameter existed accepted every fix that passed the screen
     return {"run": run.id, "n_occupations": n_occ, "rows": rows,
             "no_quality": screen.get("no_quality", "accept")}

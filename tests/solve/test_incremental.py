@@ -10,9 +10,12 @@ the one record the corrected deployment log changes), not from the solver's keys
 from __future__ import annotations
 
 import csv
+import json
 from datetime import datetime, timedelta
 from pathlib import Path
 
+import pyarrow as pa
+import pyarrow.compute as pc
 import pytest
 
 from archive.ingest.load import load_fix_files
@@ -21,6 +24,7 @@ from archive.solve.reuse import run_keys
 from archive.solve.run import get_run, recompute, run_manifest, run_positions, solve_survey
 from archive.store.hashing import table_digest
 from archive.survey.inputs import load_input
+from tests.support.cli import invoke
 from tests.support.scenarios import harvest_in_progress
 
 pytestmark = pytest.mark.slow
@@ -43,7 +47,7 @@ def _corrected_log(src: Path, dst: Path, node: str) -> None:
         w.writerows(rows)
 
 
-def test_second_solve_reuses_unchanged_nodes_bit_for_bit(tmp_path):
+def test_second_solve_reuses_unchanged_nodes_bit_for_bit(tmp_path, runner):
     arc, sid, sc, loaded, waiting = harvest_in_progress(tmp_path, seed=11, every=2)
     first = solve_survey(arc, sid)
     assert first.summary["reuse"]["nodes_reused"] == 0
@@ -75,4 +79,27 @@ def test_second_solve_reuses_unchanged_nodes_bit_for_bit(tmp_path):
     assert reproduce(arc, second.run_id, sid)["identical"] is True
     # the manifest says nothing of the reuse: it is the from-scratch manifest
     assert "reuse" not in run_manifest(arc, run) and "results" not in run_manifest(arc, run)
+
+    # show and trace name the run a reused node's rows came from
+    pos = stored.filter(pc.and_(pc.equal(stored["kind"], "logged"),
+                                pc.invert(pc.is_in(stored["node"],
+                                                   value_set=pa.array(sorted(solved_again))))))
+    line, point = pos["line"][0].as_py(), pos["point"][0].as_py()
+    node = pos["node"][0].as_py()
+    r = invoke(runner, arc.root, "show", str(line), str(point), "--node", node, "--json")
+    assert r.exit_code == 0, r.stderr
+    assert {row["solved_by"] for row in json.loads(r.output)["rows"]} == {first.run_id}
+    r = invoke(runner, arc.root, "show", str(line), str(point), "--node", node)
+    assert f"solved in  run {first.run_id[:12]}" in r.output
+    r = invoke(runner, arc.root, "trace", str(line), str(point), "--node", node)
+    assert r.exit_code == 0, r.stderr
+    assert f"solved in earlier run {first.run_id[:12]}, inputs unchanged" in r.output
+    fresh = sorted(solved_again)[0]
+    r = invoke(runner, arc.root, "show", *_station_of(stored, fresh), "--node", fresh, "--json")
+    assert {row["solved_by"] for row in json.loads(r.output)["rows"]} == {second.run_id}
     arc.close()
+
+
+def _station_of(table: pa.Table, node: str) -> tuple[str, str]:
+    rows = table.filter(pc.equal(table["node"], node))
+    return str(rows["line"][0].as_py()), str(rows["point"][0].as_py())
