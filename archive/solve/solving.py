@@ -182,3 +182,10 @@ def _orthometric(survey: dict[str, Any]):
         return gnss_orthometric(lon, lat, h_ell, h_msl, sep, conv)
 
     return orth
+
+
+def combine(tables: list[pa.Table], manifest: dict[str, Any]
+            ) -> tuple[pa.Table, dict[str, Any]]:
+    """Partitions' unfinished rows as the run's finished positions (:func:`unfinished_rows`
+    then :func:`finish_rows`)."""
+    return finish_rows(unfinished_rows(tables, manifest), manifest)
