@@ -26,11 +26,10 @@ from archive.solve.inputs import (
     partitions,
     solve_threads,
 )
+from archive.solve.schema import SORT_KEYS as RUN_ORDER
 from archive.store.archive import Archive
 
-SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
-             ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
-             ("part", "ascending")]
+SORT_KEYS = RUN_ORDER
 
 
 def solve_inputs(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
