@@ -72,12 +72,15 @@ def _flags_text(counts: dict[str, int]) -> str:
                    "Workers must reach the object store (S3, or a shared folder).")
 @click.option("--workers", type=click.IntRange(1, 1024), default=None,
               help="Solve node partitions on a local Dask cluster of N processes.")
+@click.option("--from-scratch", is_flag=True,
+              help="Solve every node, reusing nothing of earlier runs (the run is the same "
+                   "bit for bit; this only costs time).")
 @survey_option
 @output_options
 @pass_state
 def solve(state: CliState, params_file: str | None, label: str, stations: str | None,
           nodes: str | None, scheduler: str | None, workers: int | None,
-          survey_name: str | None) -> None:
+          from_scratch: bool, survey_name: str | None) -> None:
     """Solve one position per deployment and record the run."""
     from archive.solve.params import load_params
     from archive.solve.run import solve_survey
@@ -87,15 +90,21 @@ def solve(state: CliState, params_file: str | None, label: str, stations: str | 
     node_list = [n.strip() for n in nodes.split(",") if n.strip()] if nodes else None
     res = solve_survey(state.archive(write=True), sid, overrides, label=label,
                        stations=_stations(stations), nodes=node_list, progress=Bar(state),
-                       scheduler=scheduler, workers=workers)
+                       scheduler=scheduler, workers=workers, incremental=not from_scratch)
     d = res.as_dict()
 
     def text() -> str:
         head = "solved run" if res.created else "same inputs and parameters as run"
         s = res.summary
+        reuse = s.get("reuse") or {}
+        reused = (f"  nodes solved {reuse['nodes_solved']}, reused from earlier runs "
+                  f"{reuse['nodes_reused']} (their inputs unchanged)\n"
+                  if res.created and reuse.get("nodes_reused") else "")
+        waiting = (f"  awaiting harvest {s['n_awaiting']} deployment(s): no log of their node "
+                   "loaded yet (held back from deliveries)\n" if s.get("n_awaiting") else "")
         return (f"{head} {res.run_id}\n"
                 f"  positions {res.n_positions} ({s.get('n_delivered', '?')} to deliver), "
-                f"flagged {res.n_flagged}\n{_flags_text(res.flag_counts)}\n"
+                f"flagged {res.n_flagged}\n{reused}{waiting}{_flags_text(res.flag_counts)}\n"
                 f"next: nodekeep show LINE POINT, nodekeep qc")
 
     emit(state, d, text)
