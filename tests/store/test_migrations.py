@@ -102,4 +102,4 @@ def test_the_fast_schema_check_knows_the_scripts_head():
     """The revision an archive is checked against without alembic is the scripts' head."""
     from archive.store import migrate
 
-    assert migrate.HEAD == migrate.head_revision()
+    assert migrate.head_revision() == migrate.HEAD
