@@ -23,6 +23,7 @@ COMMANDS: dict[str, str] = {
     "survey": "archive.cli.survey:survey",
     "history": "archive.cli.history:history",
     "verify": "archive.cli.verify:verify",
+    "status": "archive.cli.status:status",
     "load": "archive.cli.main:load",
     "logs": "archive.cli.fixes:logs",
     "fixes": "archive.cli.fixes:fixes",

@@ -56,6 +56,10 @@ DEFAULT_TOLERANCE = 0.001
 """Metres: below this a position or height counts as unchanged (floating-point noise of a
 recomputation, far below any delivered precision)."""
 
+DEFAULT_SHIFT = 0.10
+"""Metres: a delivered position that moved less than this since the last delivery is not
+counted as moved by ``nodekeep status`` (its ``--shift``)."""
+
 REASONS = ("new", "position", "height", "flags", "node", "time", "edited")
 
 
