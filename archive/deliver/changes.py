@@ -138,25 +138,27 @@ def compare_final(previous: pa.Table, current: pa.Table, since: int,
     for m in masks.values():
         changed |= m
     rows = joined["row"].to_numpy()[changed]
+    sub = joined[changed]
+    cols = {c: sub[c].astype(object).where(sub[c].notna(), None).tolist()
+            for c in ("line", "point", "index", "node", "flags", "flags_was", "node_was",
+                      "source", "source_was")}
+    picked = {k: m[changed] for k, m in masks.items()}
     records = []
-    for i in np.flatnonzero(changed):  # one entry per changed record, not per fix
-        r = joined.iloc[i]
+    for j, i in enumerate(np.flatnonzero(changed)):  # one entry per changed record, not per fix
         entry: dict[str, Any] = {
-            "line": float(r["line"]), "point": float(r["point"]), "index": int(r["index"]),
-            "node": None if pd.isna(r["node"]) else str(r["node"]),
-            "reasons": [k for k, m in masks.items() if m[i]]}
+            "line": float(cols["line"][j]), "point": float(cols["point"][j]),
+            "index": int(cols["index"][j]), "node": cols["node"][j],
+            "reasons": [k for k, m in picked.items() if m[j]]}
         if moved[i] and np.isfinite(shift[i]):
             entry["shift_m"] = round(float(shift[i]), 4)
         if height[i] and np.isfinite(dh[i]):
             entry["height_change_m"] = round(float(dh[i]), 4)
         if flags[i]:
-            entry["flags_was"] = r["flags_was"]
-            entry["flags"] = r["flags"]
+            entry["flags_was"], entry["flags"] = cols["flags_was"][j], cols["flags"][j]
         if node[i]:
-            entry["node_was"] = r["node_was"]
+            entry["node_was"] = cols["node_was"][j]
         if edited[i]:
-            entry["source_was"] = r["source_was"]
-            entry["source"] = r["source"]
+            entry["source_was"], entry["source"] = cols["source_was"][j], cols["source"][j]
         records.append(entry)
     gone = old.merge(new[KEY], on=KEY, how="left", indicator=True)
     gone = gone[gone["_merge"] == "left_only"]

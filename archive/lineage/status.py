@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import func, select
+from sqlalchemy import func, select, text
 
 from archive import __version__
 from archive.deliver.changes import DEFAULT_SHIFT, compare_final
@@ -75,13 +75,17 @@ def _inputs(arc: Archive, survey_id: int) -> dict[str, InputVersion]:
 
 
 def _log_windows(arc: Archive, survey_id: int) -> pd.DataFrame:
-    with arc.session() as s:
-        rows = s.execute(select(RawFile.node, RawFile.t_first, RawFile.t_last, RawFile.n_fixes)
-                         .where(RawFile.survey_id == survey_id,
-                                RawFile.fixes_hash.is_not(None))).all()
-    frame = pd.DataFrame(rows, columns=["node", "t_first", "t_last", "n_fixes"])
+    """Node and first/last fix time of every parsed log, read in one query as plain values
+    (times converted once, vectorised: tens of thousands of logs in a few tens of ms)."""
+    query = text("SELECT node, t_first, t_last, n_fixes FROM raw_files "
+                 "WHERE survey_id = :sid AND fixes_hash IS NOT NULL")
+    names = ["node", "t_first", "t_last", "n_fixes"]
+    with arc.engine.connect() as conn:
+        rows = conn.execute(query, {"sid": survey_id}).all()
+    columns = list(zip(*rows, strict=True)) if rows else [()] * len(names)
+    frame = pd.DataFrame({n: list(c) for n, c in zip(names, columns, strict=True)})
     for c in ("t_first", "t_last"):
-        frame[c] = pd.to_datetime(frame[c], utc=True)
+        frame[c] = pd.to_datetime(frame[c], utc=True, format="ISO8601")
     return frame
 
 
