@@ -117,3 +117,23 @@ def test_status_over_two_evenings(evening, runner):
     assert "0 deployment(s) of 0 node(s) awaiting harvest" in text
     assert f"1 logged node(s) without a deployment: {STRAY}" in text
     assert f"--changed-since {res.delivery_id}' writes those 1 record(s)" in text
+
+
+def test_status_counts_on_both_catalogs(any_arc, tmp_path):
+    """The catalog counts and harvest state agree on SQLite and PostgreSQL (times come back
+    as text from one and as timestamps from the other)."""
+    from archive.seeds.scenario import generate
+
+    sc = generate(tmp_path / "scenario", seed=53, size="small")
+    logs = sorted((sc.out_dir / "logs").iterdir())[:5]
+    sid = create_survey(any_arc, sc.survey_name, f"EPSG:{sc.epsg}").id
+    load_input(any_arc, sid, "stations", sc.preplot)
+    load_input(any_arc, sid, "deployments", sc.deployments)
+    load_fix_files(any_arc, sid, logs, workers=1)
+    st = survey_status(any_arc, sid)
+    deployments = pd.read_csv(sc.deployments, dtype={"node": str})
+    loaded = {p.stem for p in logs}
+    assert st.loaded["logs"] == 5 and st.loaded["fixes"] == _fixes_in_tables(any_arc, sid)
+    assert st.awaiting_harvest["deployments"] == int((~deployments["node"].isin(loaded)).sum())
+    assert st.nodes_without_deployment["nodes"] == 0
+    assert st.run is None and "no run yet: 'nodekeep solve' makes one" in st.notes
