@@ -88,6 +88,13 @@ def deliver(state: CliState, run_ref: str | None, fmt: str, to: str, recipient: 
         for r in ch["removed"][:10]:
             text += (f"\n    no longer delivered: {station_text(r['line'], r['point'], r['index'])}"
                      f" (node {r['node']})")
+    if res.awaiting:
+        text += (f"\n  held back {res.n_awaiting} deployment(s) awaiting harvest (no log of "
+                 "their node loaded yet; the next solve after loading positions them):")
+        for a in res.awaiting[:20]:
+            text += f"\n    {station_text(a['line'], a['point'], a['index'], a['node'])}"
+        if res.n_awaiting > 20:
+            text += f"\n    ... and {res.n_awaiting - 20} more (--json lists every one)"
     for w in res.warnings:
         text += f"\n  warning: {w}"
     emit(state, d, text)

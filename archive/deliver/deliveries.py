@@ -77,10 +77,17 @@ class DeliveryResult:
     warnings: list[str] = field(default_factory=list)
     merges: list[dict[str, Any]] = field(default_factory=list)
     changes: dict[str, Any] | None = None  # what changed since an earlier delivery, if asked
+    # deployments held back: no log of their node was loaded yet (awaiting harvest)
+    awaiting: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def n_awaiting(self) -> int:
+        """Deployments held back as awaiting harvest."""
+        return len(self.awaiting)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain data for printing."""
-        return asdict(self)
+        return asdict(self) | {"n_awaiting": self.n_awaiting}
 
 
 def _flag_refusal(final: pa.Table, flags: dict[str, int], run: Run) -> Refused:
@@ -215,6 +222,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         unapplied=unapplied, inputs=inputs,
         raw_files=raw_files, final=final,
         final_hash=final_hash, merge=merge_occupations, merges=built.merges,
+        awaiting=built.awaiting,
         changes=changes.as_dict() if changes is not None else None)
     delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(
         arc, survey_id, facts, lambda anchor: write(final, replace(ctx, anchor=anchor)),
@@ -228,7 +236,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         n_stations=facts.n_stations, n_records=final.num_rows,
         edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
         unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
-        merges=built.merges, changes=changes.as_dict() if changes is not None else None)
+        merges=built.merges, awaiting=built.awaiting,
+        changes=changes.as_dict() if changes is not None else None)
 
 
 def _require_inputs(arc: Archive, manifest: dict[str, Any],

@@ -264,6 +264,29 @@ class Final:
 
     table: pa.Table
     merges: list[dict[str, Any]] = field(default_factory=list)
+    awaiting: list[dict[str, Any]] = field(default_factory=list)  # held back, see below
+
+
+def awaiting_harvest(positions: pa.Table, final: pa.Table) -> list[dict[str, Any]]:
+    """The run's deployments awaiting harvest (rows of ``kind`` "awaiting": no loaded log
+    of the node covered them) that the final positions do not hold: what a delivery holds
+    back. Each names the station, the occupation's point index, the node and its window.
+    An occupation an edit gave a position (set-position) is delivered, not held back."""
+    if "kind" not in positions.column_names:
+        return []
+    wait = positions.filter(pc.equal(positions["kind"], "awaiting"))
+    if wait.num_rows == 0:
+        return []
+    have = set(zip(final["line"].to_pylist(), final["point"].to_pylist(),
+                   final["occupation"].to_pylist(), strict=True))
+    out = []
+    for r in wait.select(["line", "point", "occupation", "node", "deployed",
+                          "retrieved"]).to_pylist():  # one entry per deployment, not per fix
+        if (r["line"], r["point"], r["occupation"]) not in have:
+            out.append({"line": r["line"], "point": r["point"], "index": r["occupation"],
+                        "node": r["node"], "deployed": r["deployed"],
+                        "retrieved": r["retrieved"]})
+    return out
 
 
 def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None, *,
@@ -304,7 +327,7 @@ def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None =
 
             table, merges = merge_occupations(table, survey_crs(epsg).unit_factor, height_at)
             table = _sorted(_with_lonlat(table, epsg))
-    return Final(table, merges)
+    return Final(table, merges, awaiting_harvest(positions, table))
 
 
 def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,

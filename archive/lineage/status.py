@@ -93,26 +93,31 @@ def harvest_state(arc: Archive, survey_id: int, deployments_hash: str | None
                   ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """(deployments awaiting harvest, logged nodes without a deployment).
 
-    A deployment awaits harvest when no loaded log of its node has fixes inside its window
-    [deployed, retrieved] (retrieved blank: still in the ground); a logged node without a
-    deployment is a node with loaded logs that the deployment log never names. Catalog
-    times only (each log's first and last fix), no fix table."""
+    A deployment awaits harvest when no loaded log of its node overlaps its window
+    (:func:`archive.survey.harvest.covered`, the rule the solver holds such deployments back
+    by); a logged node without a deployment is a node with loaded logs that the deployment
+    log never names. Catalog times only (each log's first and last fix), no fix table."""
+    from archive.survey.harvest import OPEN, covered
     from archive.survey.occupations import with_occupations
+    from archive.times import us_array
 
     logs = _log_windows(arc, survey_id)
+    columns = ["node", "line", "point", "occupation", "deployed", "retrieved"]
     if deployments_hash is None:
-        dep = pd.DataFrame(columns=["node", "line", "point", "occupation", "deployed",
-                                    "retrieved"])
+        dep = pd.DataFrame(columns=columns)
+        hit = np.zeros(0, dtype=bool)
     else:
-        dep = with_occupations(arc.objects.read_table(deployments_hash)).select(
-            ["node", "line", "point", "occupation", "deployed", "retrieved"]).to_pandas()
-    dep["row"] = np.arange(len(dep))
-    pairs = dep.merge(logs, on="node", how="inner")
-    end = pairs["retrieved"].fillna(pd.Timestamp.max.tz_localize("UTC"))
-    covers = (pairs["t_first"] <= end) & (pairs["t_last"] >= pairs["deployed"])
-    covered = set(pairs.loc[covers.to_numpy(dtype=bool), "row"])
-    awaiting = dep[~dep["row"].isin(covered)].drop(columns=["row"])
-    awaiting = awaiting.sort_values(["deployed", "line", "point"])
+        table = with_occupations(arc.objects.read_table(deployments_hash)).select(columns)
+        log_us = {c: logs[c].dt.as_unit("us").astype("int64").to_numpy()
+                  for c in ("t_first", "t_last")}
+        unknown = (logs["t_first"].isna() | logs["t_last"].isna()).to_numpy()
+        hit = covered(np.array(table["node"].to_pylist(), dtype=object),
+                      us_array(table["deployed"], OPEN), us_array(table["retrieved"], OPEN),
+                      logs["node"].to_numpy(dtype=object),
+                      np.where(unknown, OPEN, log_us["t_first"]),
+                      np.where(unknown, OPEN, log_us["t_last"]))
+        dep = table.to_pandas()
+    awaiting = dep[~hit].sort_values(["deployed", "line", "point"])
     by_node = logs.groupby("node").agg(logs=("n_fixes", "size"), fixes=("n_fixes", "sum"),
                                        first=("t_first", "min"), last=("t_last", "max"))
     orphans = by_node[~by_node.index.isin(set(dep["node"]))].reset_index()

@@ -86,6 +86,11 @@ def test_status_over_two_evenings(evening, runner):
     stations = {(r["line"], r["point"]) for r in flagged.select(["line", "point"]).to_pylist()}
     assert st.review["stations"] == len(stations)
 
+    # the first evening's delivery holds back what is still in the ground
+    day1 = deliver(arc, sid, first_run, "csv", base / "day1.csv",
+                   "Harrow Basin Energy processing", allow_flags=True)
+    assert {a["node"] for a in day1.awaiting} == held
+
     # the second evening: the rest is harvested
     load_fix_files(arc, sid, [later])
     st = survey_status(arc, sid)
@@ -94,6 +99,15 @@ def test_status_over_two_evenings(evening, runner):
     assert f"{HELD} log(s) loaded since" in st.run["inputs_changed"]
 
     run_id = solve_survey(arc, sid).run_id
+    st = survey_status(arc, sid)
+    assert st.delivery["since"]["new"] == len(expected_awaiting)
+    # the evening's incremental delivery: what was held back yesterday comes as new records
+    day2 = deliver(arc, sid, run_id, "csv", base / "day2.csv", "Harrow Basin Energy processing",
+                   allow_flags=True, changed_since=day1.delivery_id)
+    new = {(c["node"], c["line"], c["point"]) for c in day2.changes["records"]
+           if c["reasons"] == ["new"]}
+    assert new == {(str(r.node), float(r.line), float(r.point))
+                   for r in expected_awaiting.itertuples()}
     res = deliver(arc, sid, run_id, "csv", base / "day.csv", "Harrow Basin Energy processing",
                   allow_flags=True)
     row = next(r for r in run_occupations(arc, get_run(arc, sid, run_id)).to_pylist()
