@@ -142,7 +142,7 @@ def compare_final(previous: pa.Table, current: pa.Table, since: int,
     cols = {c: sub[c].astype(object).where(sub[c].notna(), None).tolist()
             for c in ("line", "point", "index", "node", "flags", "flags_was", "node_was",
                       "source", "source_was")}
-    picked = {k: m[changed] for k, m in masks.items()}
+    picked = {k: m[changed].tolist() for k, m in masks.items()}
     records = []
     for j, i in enumerate(np.flatnonzero(changed)):  # one entry per changed record, not per fix
         entry: dict[str, Any] = {

@@ -19,7 +19,7 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import func, select, text
+from sqlalchemy import func, select
 
 from archive import __version__
 from archive.deliver.changes import DEFAULT_SHIFT, compare_final
@@ -74,14 +74,25 @@ def _inputs(arc: Archive, survey_id: int) -> dict[str, InputVersion]:
     return {r.kind: r for r in rows}
 
 
+def _plain_rows(arc: Archive, sql: str) -> list[tuple[Any, ...]]:
+    """Rows of ``sql`` as plain tuples from the database driver (no per-row result objects:
+    ten times faster on the tens of thousands of rows of a month's logs). ``sql`` takes no
+    parameters; callers put only integers into it."""
+    with arc.engine.connect() as conn:
+        cursor = conn.connection.driver_connection.cursor()
+        try:
+            cursor.execute(sql)
+            return list(cursor.fetchall())
+        finally:
+            cursor.close()
+
+
 def _log_windows(arc: Archive, survey_id: int) -> pd.DataFrame:
     """Node and first/last fix time of every parsed log, read in one query as plain values
     (times converted once, vectorised: tens of thousands of logs in a few tens of ms)."""
-    query = text("SELECT node, t_first, t_last, n_fixes FROM raw_files "
-                 "WHERE survey_id = :sid AND fixes_hash IS NOT NULL")
     names = ["node", "t_first", "t_last", "n_fixes"]
-    with arc.engine.connect() as conn:
-        rows = conn.execute(query, {"sid": survey_id}).all()
+    rows = _plain_rows(arc, "SELECT node, t_first, t_last, n_fixes FROM raw_files WHERE "
+                            f"survey_id = {int(survey_id)} AND fixes_hash IS NOT NULL")
     columns = list(zip(*rows, strict=True)) if rows else [()] * len(names)
     frame = pd.DataFrame({n: list(c) for n, c in zip(names, columns, strict=True)})
     for c in ("t_first", "t_last"):
@@ -149,9 +160,9 @@ def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, Input
             was = versions.get(kind)
             changes.append(f"{kind} v{was if was is not None else '-'} -> "
                            f"v{now.version if now is not None else '-'}")
-    with arc.session() as s:
-        fixes = set(s.scalars(select(RawFile.fixes_hash).where(
-            RawFile.survey_id == survey_id, RawFile.fixes_hash.is_not(None))).all())
+    fixes = {r[0] for r in _plain_rows(
+        arc, f"SELECT fixes_hash FROM raw_files WHERE survey_id = {int(survey_id)} "
+             "AND fixes_hash IS NOT NULL")}
     used = set(ins.get("fixes") or [])
     if (manifest.get("selection") or {}).get("stations") or \
             (manifest.get("selection") or {}).get("nodes"):
