@@ -157,8 +157,8 @@ def main() -> None:
     cli = time.perf_counter() - t
     doc = json.loads(out.stdout)
     baseline = grown["fixes"] / read_rate
-    print(f"grown archive: {grown['stations']:,} stations, {st.loaded['logs']:,} logs, "
-          f"{st.loaded['fixes']:,} fixes (status agrees: {doc['loaded']['fixes'] == st.loaded['fixes']})")
+    print(f"grown archive: {grown['stations']:,} stations, {st.loaded['n_logs']:,} logs, "
+          f"{st.loaded['n_fixes']:,} fixes (status agrees: {doc['loaded']['n_fixes'] == st.loaded['n_fixes']})")
     print(f"status, library call: {lib:.3f} s")
     print(f"status, command line (fresh process): {cli:.3f} s (goal < 1 s)")
     print(f"baseline, counting by reading fix tables at {read_rate / 1e6:.1f} M fixes/s: "

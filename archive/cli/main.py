@@ -159,3 +159,7 @@ def load() -> None:
 def main(argv: list[str] | None = None) -> None:
     """Console entry point."""
     cli.main(args=argv, prog_name="nodekeep")
+
+
+if __name__ == "__main__":
+    main()

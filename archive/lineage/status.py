@@ -17,14 +17,13 @@ from dataclasses import asdict, dataclass, field
 from datetime import datetime
 from typing import Any
 
-import numpy as np
-import pandas as pd
 from sqlalchemy import func, select
 
 from archive import __version__
 from archive.deliver.changes import DEFAULT_SHIFT, compare_final
 from archive.store.archive import Archive
-from archive.store.models import Delivery, InputVersion, RawFile, Run, Survey
+from archive.store.models import Delivery, InputVersion, Run, Survey
+from archive.survey.status import harvest_status, plain_rows
 
 LIST_LIMIT = 20
 """How many deployments, nodes or stations a list keeps (the counts are always whole)."""
@@ -49,21 +48,6 @@ class SurveyStatus:
         return asdict(self)
 
 
-def _loaded(arc: Archive, survey_id: int) -> dict[str, Any]:
-    with arc.session() as s:
-        row = s.execute(select(
-            func.count(RawFile.id), func.count(func.distinct(RawFile.node)),
-            func.coalesce(func.sum(RawFile.n_fixes), 0), func.coalesce(func.sum(RawFile.n_valid), 0),
-            func.coalesce(func.sum(RawFile.size), 0), func.max(RawFile.received_at),
-            func.min(RawFile.t_first), func.max(RawFile.t_last),
-        ).where(RawFile.survey_id == survey_id)).one()
-        unparsed = s.scalar(select(func.count(RawFile.id)).where(
-            RawFile.survey_id == survey_id, RawFile.fixes_hash.is_(None))) or 0
-    return {"logs": int(row[0]), "nodes": int(row[1]), "fixes": int(row[2]),
-            "usable_fixes": int(row[3]), "bytes": int(row[4]), "last_received": row[5],
-            "first_fix": row[6], "last_fix": row[7], "logs_without_fixes": int(unparsed)}
-
-
 def _inputs(arc: Archive, survey_id: int) -> dict[str, InputVersion]:
     with arc.session() as s:
         newest = select(InputVersion.kind, func.max(InputVersion.version).label("v")) \
@@ -72,74 +56,6 @@ def _inputs(arc: Archive, survey_id: int) -> dict[str, InputVersion]:
             newest, (InputVersion.kind == newest.c.kind) & (InputVersion.version == newest.c.v))
             .where(InputVersion.survey_id == survey_id).order_by(InputVersion.kind)).all()
     return {r.kind: r for r in rows}
-
-
-def _plain_rows(arc: Archive, sql: str) -> list[tuple[Any, ...]]:
-    """Rows of ``sql`` as plain tuples from the database driver (no per-row result objects:
-    ten times faster on the tens of thousands of rows of a month's logs). ``sql`` takes no
-    parameters; callers put only integers into it."""
-    with arc.engine.connect() as conn:
-        cursor = conn.connection.driver_connection.cursor()
-        try:
-            cursor.execute(sql)
-            return list(cursor.fetchall())
-        finally:
-            cursor.close()
-
-
-def _log_windows(arc: Archive, survey_id: int) -> pd.DataFrame:
-    """Node and first/last fix time of every parsed log, read in one query as plain values
-    (times converted once, vectorised: tens of thousands of logs in a few tens of ms)."""
-    names = ["node", "t_first", "t_last", "n_fixes"]
-    rows = _plain_rows(arc, "SELECT node, t_first, t_last, n_fixes FROM raw_files WHERE "
-                            f"survey_id = {int(survey_id)} AND fixes_hash IS NOT NULL")
-    columns = list(zip(*rows, strict=True)) if rows else [()] * len(names)
-    frame = pd.DataFrame({n: list(c) for n, c in zip(names, columns, strict=True)})
-    for c in ("t_first", "t_last"):
-        frame[c] = pd.to_datetime(frame[c], utc=True, format="ISO8601")
-    return frame
-
-
-def harvest_state(arc: Archive, survey_id: int, deployments_hash: str | None
-                  ) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """(deployments awaiting harvest, logged nodes without a deployment).
-
-    A deployment awaits harvest when no loaded log of its node overlaps its window
-    (:func:`archive.survey.harvest.covered`, the rule the solver holds such deployments back
-    by); a logged node without a deployment is a node with loaded logs that the deployment
-    log never names. Catalog times only (each log's first and last fix), no fix table."""
-    from archive.survey.harvest import OPEN, covered
-    from archive.survey.occupations import with_occupations
-    from archive.times import us_array
-
-    logs = _log_windows(arc, survey_id)
-    columns = ["node", "line", "point", "occupation", "deployed", "retrieved"]
-    if deployments_hash is None:
-        dep = pd.DataFrame(columns=columns)
-        hit = np.zeros(0, dtype=bool)
-    else:
-        table = with_occupations(arc.objects.read_table(deployments_hash)).select(columns)
-        log_us = {c: logs[c].dt.as_unit("us").astype("int64").to_numpy()
-                  for c in ("t_first", "t_last")}
-        unknown = (logs["t_first"].isna() | logs["t_last"].isna()).to_numpy()
-        hit = covered(np.array(table["node"].to_pylist(), dtype=object),
-                      us_array(table["deployed"], OPEN), us_array(table["retrieved"], OPEN),
-                      logs["node"].to_numpy(dtype=object),
-                      np.where(unknown, OPEN, log_us["t_first"]),
-                      np.where(unknown, OPEN, log_us["t_last"]))
-        dep = table.to_pandas()
-    awaiting = dep[~hit].sort_values(["deployed", "line", "point"])
-    by_node = logs.groupby("node").agg(logs=("n_fixes", "size"), fixes=("n_fixes", "sum"),
-                                       first=("t_first", "min"), last=("t_last", "max"))
-    orphans = by_node[~by_node.index.isin(set(dep["node"]))].reset_index()
-    return awaiting, orphans
-
-
-def _records(frame: pd.DataFrame) -> list[dict[str, Any]]:
-    out = frame.head(LIST_LIMIT).astype(object).where(frame.head(LIST_LIMIT).notna(), None)
-    return [{k: (v.to_pydatetime() if isinstance(v, pd.Timestamp) else
-                 v.item() if isinstance(v, np.generic) else v) for k, v in r.items()}
-            for r in out.to_dict("records")]
 
 
 def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, InputVersion]
@@ -160,7 +76,7 @@ def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, Input
             was = versions.get(kind)
             changes.append(f"{kind} v{was if was is not None else '-'} -> "
                            f"v{now.version if now is not None else '-'}")
-    fixes = {r[0] for r in _plain_rows(
+    fixes = {r[0] for r in plain_rows(
         arc, f"SELECT fixes_hash FROM raw_files WHERE survey_id = {int(survey_id)} "
              "AND fixes_hash IS NOT NULL")}
     used = set(ins.get("fixes") or [])
@@ -218,8 +134,7 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     current = _inputs(arc, survey_id)
     inputs = [{"kind": k, "version": v.version, "rows": v.n_rows, "name": v.original_name,
                "loaded_at": v.created_at} for k, v in current.items()]
-    dep = current.get("deployments")
-    awaiting, orphans = harvest_state(arc, survey_id, dep.table_hash if dep else None)
+    harvest = harvest_status(arc, survey_id)
     notes: list[str] = []
     run_info = review = delivery = None
     if run is not None:
@@ -248,12 +163,13 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
         notes.append("no run yet: 'nodekeep solve' makes one")
     if last is None:
         notes.append("nothing delivered yet")
+    awaiting, orphans = harvest["awaiting"], harvest["nodes_without_deployment"]
     return SurveyStatus(
-        survey=sdict, loaded=_loaded(arc, survey_id), inputs=inputs,
-        awaiting_harvest={"deployments": int(len(awaiting)),
-                          "nodes": int(awaiting["node"].nunique()),
-                          "list": _records(awaiting)},
-        nodes_without_deployment={"nodes": int(len(orphans)), "list": _records(orphans)},
+        survey=sdict, loaded=harvest["counts"], inputs=inputs,
+        awaiting_harvest={"deployments": len(awaiting),
+                          "nodes": len({a["node"] for a in awaiting}),
+                          "list": awaiting[:LIST_LIMIT]},
+        nodes_without_deployment={"nodes": len(orphans), "list": orphans[:LIST_LIMIT]},
         run=run_info, review=review, delivery=delivery, notes=notes)
 
 
@@ -267,26 +183,27 @@ def status_text(st: SurveyStatus) -> str:
 
     ld = st.loaded
     lines = [f"survey    {st.survey['name']} ({st.survey['crs']})",
-             f"loaded    {ld['logs']} log(s) from {ld['nodes']} node(s), {ld['fixes']:,} fixes "
-             f"({ld['usable_fixes']:,} usable), fixes {_when(ld['first_fix'])} to "
-             f"{_when(ld['last_fix'])}; last received {_when(ld['last_received'])}"]
-    if ld["logs_without_fixes"]:
-        lines.append(f"          {ld['logs_without_fixes']} log(s) hold no usable fix "
-                     "('nodekeep logs' says why)")
+             f"loaded    {ld['n_logs']} log(s) from {ld['n_nodes']} node(s), "
+             f"{ld['n_fixes']:,} fixes ({ld['n_usable_fixes']:,} usable), fixes "
+             f"{_when(ld['first_fix'])} to {_when(ld['last_fix'])}; last received "
+             f"{_when(ld['last_received'])}"]
+    if ld["n_logs"] > ld["n_logs_with_fixes"]:
+        lines.append(f"          {ld['n_logs'] - ld['n_logs_with_fixes']} log(s) hold no "
+                     "usable fix ('nodekeep logs' says why)")
     lines.append("inputs    " + (", ".join(f"{i['kind']} v{i['version']} ({i['rows']} rows)"
                                            for i in st.inputs) or "none loaded"))
     aw = st.awaiting_harvest
     lines.append(f"harvest   {aw['deployments']} deployment(s) of {aw['nodes']} node(s) "
                  "awaiting harvest (no loaded log covers the window)")
     for d in aw["list"]:
-        lines.append(f"            node {d['node']} at {station_text(d['line'], d['point'], d['occupation'])}"
+        lines.append(f"            node {d['node']} at {station_text(d['line'], d['point'], d['index'])}"
                      f", deployed {_when(d['deployed'])}, "
                      + (f"retrieved {_when(d['retrieved'])}" if d["retrieved"] else "still out"))
     if aw["deployments"] > len(aw["list"]):
         lines.append(f"            ... and {aw['deployments'] - len(aw['list'])} more (--json)")
     nw = st.nodes_without_deployment
     lines.append(f"          {nw['nodes']} logged node(s) without a deployment"
-                 + (": " + ", ".join(f"{n['node']} ({n['logs']} log(s), {n['fixes']:,} fixes)"
+                 + (": " + ", ".join(f"{n['node']} ({n['n_logs']} log(s), {n['n_fixes']:,} fixes)"
                                      for n in nw["list"]) if nw["list"] else ""))
     if st.run:
         r = st.run

@@ -32,7 +32,31 @@ from archive.survey.inputs import require_input
 from archive.survey.occupations import EPOCH, with_occupations
 from archive.times import us_array
 
-PARTITION_FIXES = 4_000_000
+PARTITION_FIXES = 1_000_000
+"""Most fixes of one partition: its arrays and working copies take about 500 bytes a fix,
+and :func:`solve_threads` partitions are in flight at once."""
+MIN_PARTITION_FIXES = 200_000  # below this a partition's fixed costs dominate
+
+
+def solve_threads() -> int:
+    """Partitions solved at once in one process: the cores this process may use, at most
+    2 (each partition in flight holds its fixes in memory), or ``NODEKEEP_SOLVE_THREADS``."""
+    import os
+
+    env = os.environ.get("NODEKEEP_SOLVE_THREADS", "").strip()
+    if env.isdigit() and int(env) > 0:
+        return int(env)
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else \
+        (os.cpu_count() or 1)
+    return max(1, min(cores, 2))
+
+
+def partition_limit(total: int, threads: int | None = None) -> int:
+    """Fixes per partition for a solve of ``total`` fixes: enough partitions to keep
+    every thread busy (two per thread), none above :data:`PARTITION_FIXES`."""
+    threads = threads or solve_threads()
+    share = -(-total // (2 * threads)) if total else 0
+    return min(PARTITION_FIXES, max(MIN_PARTITION_FIXES, share))
 
 
 @dataclass
@@ -208,11 +232,15 @@ def _utc_us(t: Any) -> int:
     return (t - EPOCH) // timedelta(microseconds=1)
 
 
-def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES, *,
+def partitions(arc: Archive, inp: SolveInputs, limit: int | None = None, *,
                skip: set[str] | None = None) -> list[Partition]:
-    """Node partitions of at most about ``limit`` fixes (a node is never split); the nodes
-    of ``skip`` (solved in an earlier run, :mod:`archive.solve.reuse`) are left out."""
+    """Node partitions of at most about ``limit`` fixes (a node is never split; by default
+    :func:`partition_limit` of the fixes to solve); the nodes of ``skip`` (solved in an
+    earlier run, :mod:`archive.solve.reuse`) are left out."""
     skip = skip or set()
+    if limit is None:
+        limit = partition_limit(sum(n or 0 for node, _, n in inp.fix_files
+                                    if node not in skip))
     by_node: dict[str, list[tuple[str, int]]] = {}
     for node, h, n in inp.fix_files:
         if node not in skip:
@@ -270,7 +298,8 @@ def load_fix_arrays(arc: Any, hashes: list[str]) -> FixArrays:
     (:func:`archive.solve.fixarrays.read_fix_arrays`); ``arc`` has the ``objects`` store."""
     if not hashes:
         return fix_arrays(empty_fixes())
-    return read_fix_arrays([arc.objects.parquet_file(h) for h in hashes])
+    return read_fix_arrays([arc.objects.parquet_file(h, read_dictionary=["raw_hash"])
+                            for h in hashes])
 
 
 def check_objects(arc: Archive, manifest: dict[str, Any], *, rehash: bool = True) -> None:

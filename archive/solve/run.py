@@ -15,7 +15,7 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -24,14 +24,18 @@ from sqlalchemy import select
 from archive import __version__
 from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
-from archive.solve.inputs import SolveInputs, check_objects, survey_inputs
-from archive.solve.params import resolve_params
 from archive.solve.schema import FLAGS
-from archive.solve.solving import SORT_KEYS as SOLVE_SORT_KEYS
-from archive.solve.solving import solve_inputs
+from archive.solve.schema import SORT_KEYS as RUN_ORDER
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
 from archive.store.models import Run, utcnow
+
+if TYPE_CHECKING:
+    from archive.solve.inputs import SolveInputs
+
+# The solver itself (archive.solve.inputs, .solving and the engine under them: numba, scipy,
+# pandas) is imported by the functions that solve, so that commands which only read runs
+# start in a fraction of a second.
 
 MANIFEST_FORMAT = 3
 """Format 3: positions carry each row's delivered point index, the time it holds and the
@@ -39,7 +43,7 @@ degrees of freedom of its uncertainty (``POSITION_SCHEMA``). Format 2 runs (occu
 last part of a moved node delivered) are recomputed in ``POSITION_SCHEMA_V2``, format 1 runs
 (solved before occupations were numbered) in ``POSITION_SCHEMA_V1``."""
 
-SORT_KEYS = SOLVE_SORT_KEYS  # the run's row order (archive.solve.solving)
+SORT_KEYS = RUN_ORDER  # the run's row order
 
 
 @dataclass
@@ -108,6 +112,10 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
     cluster of that many processes) fan the node partitions out; the positions, and so the
     run, are the same bit for bit.
     """
+    from archive.solve.inputs import survey_inputs
+    from archive.solve.params import resolve_params
+    from archive.solve.solving import solve_inputs
+
     progress = progress or NoProgress()
     resolved = resolve_params(params or {})
     selection = _selection(stations, nodes)
@@ -220,6 +228,9 @@ def recompute(arc: Archive, run_id: str) -> pa.Table:
         raise IntegrityError(f"the manifest object {run.manifest_hash} of run {run.id[:12]} "
                              "is missing or altered", hint="run 'nodekeep verify'")
     manifest = run_manifest(arc, run)
+    from archive.solve.inputs import check_objects, survey_inputs
+    from archive.solve.solving import solve_inputs
+
     check_objects(arc, manifest)
     inp = survey_inputs(arc, run.survey_id, manifest["selection"], manifest=manifest)
     table, _, _ = solve_inputs(arc, manifest, inp, NoProgress())

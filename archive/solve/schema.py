@@ -134,3 +134,9 @@ FLAGS = {
     "quality-unknown": "most used fixes carry no quality information (RMC/GLL only): "
                        "weighted by the cloud's own spread",
 }
+
+
+SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
+             ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
+             ("part", "ascending")]
+"""The order of a run's positions rows."""

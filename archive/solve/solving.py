@@ -19,12 +19,17 @@ import pyarrow.compute as pc
 from archive.edits.spans import manifest_spans
 from archive.progress import Progress
 from archive.solve.engine import solve_fixes
-from archive.solve.inputs import Partition, SolveInputs, load_fix_arrays, partitions
+from archive.solve.inputs import (
+    Partition,
+    SolveInputs,
+    load_fix_arrays,
+    partitions,
+    solve_threads,
+)
+from archive.solve.schema import SORT_KEYS as RUN_ORDER
 from archive.store.archive import Archive
 
-SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
-             ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
-             ("part", "ascending")]
+SORT_KEYS = RUN_ORDER
 
 
 def solve_inputs(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
@@ -59,16 +64,34 @@ def solve_inputs(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
 def _map_local(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
                parts: list[Partition], progress: Progress
                ) -> list[tuple[pa.Table, dict[str, Any]]]:
-    dem = inp.open_dem(arc)
-    sampler = _height_sampler(dem, manifest["survey"]["crs_epsg"])
-    out = []
-    try:
+    """Solve the partitions in this process, on up to :func:`solve_threads` threads at
+    once (the kernels, numpy and Parquet decoding release the GIL; each thread opens the
+    elevation model for itself, a raster handle is not shared between threads)."""
+    epsg = manifest["survey"]["crs_epsg"]
+
+    def one(part: Partition) -> tuple[pa.Table, dict[str, Any]]:
+        dem = inp.open_dem(arc)
+        try:
+            return _solve_part(arc, part, inp, manifest, _height_sampler(dem, epsg))
+        finally:
+            if dem is not None:
+                dem.close()
+
+    threads = min(solve_threads(), len(parts))
+    if threads <= 1:
+        out = []
         for part in parts:
-            out.append(_solve_part(arc, part, inp, manifest, sampler))
+            out.append(one(part))
             progress.advance(part.n_fixes, f"{len(part.nodes)} nodes")
-    finally:
-        if dem is not None:
-            dem.close()
+        return out
+    from concurrent.futures import ThreadPoolExecutor
+
+    with ThreadPoolExecutor(max_workers=threads) as pool:
+        futures = [pool.submit(one, part) for part in parts]
+        out = []
+        for part, fut in zip(parts, futures, strict=True):  # in partition order
+            out.append(fut.result())
+            progress.advance(part.n_fixes, f"{len(part.nodes)} nodes")
     return out
 
 

@@ -72,8 +72,8 @@ def test_status_over_two_evenings(evening, runner):
 
     st = survey_status(arc, sid)
     n_logs = len(list((base / "first").iterdir()))
-    assert st.loaded["logs"] == n_logs and st.loaded["nodes"] == n_logs
-    assert st.loaded["fixes"] == _fixes_in_tables(arc, sid)
+    assert st.loaded["n_logs"] == n_logs and st.loaded["n_nodes"] == n_logs
+    assert st.loaded["n_fixes"] == _fixes_in_tables(arc, sid)
     expected_awaiting = deployments[deployments["node"].isin(held)]
     assert st.awaiting_harvest["deployments"] == len(expected_awaiting)
     assert {d["node"] for d in st.awaiting_harvest["list"]} == held
@@ -147,7 +147,7 @@ def test_status_counts_on_both_catalogs(any_arc, tmp_path):
     st = survey_status(any_arc, sid)
     deployments = pd.read_csv(sc.deployments, dtype={"node": str})
     loaded = {p.stem for p in logs}
-    assert st.loaded["logs"] == 5 and st.loaded["fixes"] == _fixes_in_tables(any_arc, sid)
+    assert st.loaded["n_logs"] == 5 and st.loaded["n_fixes"] == _fixes_in_tables(any_arc, sid)
     assert st.awaiting_harvest["deployments"] == int((~deployments["node"].isin(loaded)).sum())
     assert st.nodes_without_deployment["nodes"] == 0
     assert st.run is None and "no run yet: 'nodekeep solve' makes one" in st.notes
