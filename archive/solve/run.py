@@ -27,6 +27,7 @@ from archive.edits.spans import manifest_spans
 from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
 from archive.solve.engine import solve_fixes
+from archive.solve.flags import count_flags
 from archive.solve.inputs import (
     Partition,
     SolveInputs,
@@ -35,8 +36,8 @@ from archive.solve.inputs import (
     partitions,
     survey_inputs,
 )
+from archive.solve.occupancy import run_occupations
 from archive.solve.params import resolve_params
-from archive.solve.schema import FLAGS
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
 from archive.store.models import Run, utcnow
@@ -234,16 +235,11 @@ def _orthometric(survey: dict[str, Any]):
     return orth
 
 
-def _counts(table: pa.Table) -> tuple[int, dict[str, int]]:
-    flags = table["flags"].to_pylist()
-    counts = {k: 0 for k in FLAGS}
-    n_flagged = 0
-    for f in flags:  # one entry per position row, not per fix
-        if f:
-            n_flagged += 1
-            for key in f.split(";"):
-                counts[key] = counts.get(key, 0) + 1
-    return n_flagged, {k: v for k, v in counts.items() if v}
+def _counts(table: pa.Table) -> tuple[int, dict[str, int], dict[str, Any]]:
+    """Flagged stations, stations per flag and the summary's counts (:func:`count_flags`)."""
+    c = count_flags(table)
+    return c.n_flagged, c.per_flag, {"n_stations": c.n_stations, "n_unlogged": c.n_unlogged,
+                                     "flag_unit": "stations"}
 
 
 def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = None, *,
@@ -265,15 +261,17 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
     with arc.session() as s:
         existing = s.get(Run, run_id)
     if existing is not None:
-        n_flagged = existing.n_flagged
-        summary = json.loads(existing.summary or "{}")
-        return RunResult(run_id, False, existing.n_positions, n_flagged,
-                         summary.get("flag_counts", {}), summary)
+        # counted again from the table: runs recorded before flags were counted per
+        # station stored counts of rows
+        n_flagged, flag_counts, counted = _counts(run_occupations(arc, existing))
+        summary = json.loads(existing.summary or "{}") | counted | {
+            "n_flagged": n_flagged, "flag_counts": flag_counts}
+        return RunResult(run_id, False, existing.n_positions, n_flagged, flag_counts, summary)
     table, stats = _solve(arc, manifest, inp, progress, scheduler=scheduler, workers=workers)
-    n_flagged, flag_counts = _counts(table)
+    n_flagged, flag_counts, counted = _counts(table)
     delivered = table.filter(table["delivered"])
     summary = {"n_positions": table.num_rows, "n_delivered": delivered.num_rows,
-               "n_flagged": n_flagged, "flag_counts": flag_counts,
+               "n_flagged": n_flagged, "flag_counts": flag_counts, **counted,
                "estimator": resolved["estimate"]["estimator"],
                "uncertainty": resolved["uncertainty"]["method"],
                "dem": inp.dem_hash is not None, **stats}
