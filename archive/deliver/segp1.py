@@ -92,7 +92,8 @@ def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str
 
 def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]:
     """Exactly 20 H records: survey, datum/spheroid, projection and parameters, units, time
-    basis, what position is mapped, producing run, edit set and the ledger anchor.
+    basis, what position is mapped, producing run, edit set, the ledger anchor and where
+    the flags and decisions of each record are (the lineage manifest).
 
     Each record is ``Hnn`` and free text in columns 5-80: ``description: data``, long data
     continuing on the next record indented by two spaces; projection
@@ -135,6 +136,7 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
     ]
     if ctx.anchor is not None:
         items.append((ANCHOR_LABEL, ctx.anchor.text()))
+    items.append(("Flags, decisions", "per record in this file's .lineage.json"))
     lines: list[str] = []
     for desc, data in items:
         first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)
