@@ -20,6 +20,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from archive.edits.decided import (
     FlagState,
@@ -187,9 +188,11 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     unit = survey_crs(epsg).unit_factor
     st = station_flags(table)
     flagged = st[st["flags"] != ""]
-    rows = table.to_pandas()
+    # the delivered rows of the flagged stations (every part of a moved node)
+    rows = table.filter(pc.fill_null(table["delivered"], False)).to_pandas()
     rows["occupation"] = rows["occupation"].fillna(rows["index"]).astype("int64")
-    rows = rows[rows["delivered"].astype(bool) & (rows["kind"] == "logged")]
+    rows = rows[rows["kind"] == "logged"].merge(
+        flagged[["line", "point", "occupation"]], on=["line", "point", "occupation"])
     groups = {k: g for k, g in rows.groupby(["line", "point", "occupation"], sort=False)}
     stations = []
     for r in flagged.itertuples(index=False):  # one per flagged station, not per fix
