@@ -26,21 +26,33 @@ def fresh_same_day(tmp_path):
     arc.close()
 
 
-@pytest.fixture
-def many_flags(tmp_path):
-    """A synthetic run of 2,000 stations, every 10th flagged wide-spread (200 stations), with
-    its preplot, stored as the solver stores runs."""
-    from archive.store.archive import Archive
+def _spread(arc, base):
+    """A synthetic run of 2,000 stations, every 10th flagged wide-spread (200 stations),
+    with its preplot and check points, stored as the solver stores runs."""
     from archive.survey.surveys import create_survey
     from tests.support.qc_archive import store_input, store_run
     from tests.support.qc_tables import synthetic_spread
 
     positions, control, stations = synthetic_spread(20, 100, flagged_every=10)
-    arc = Archive.init(tmp_path / "archive", actor="tester")
     sv = create_survey(arc, "Kestrel Flats 3D", "EPSG:32614", client="Harrow Basin Energy",
                        contractor="Bluestem Geophysical crew 7")
     store_input(arc, sv.id, "stations", stations)
     store_input(arc, sv.id, "control", control)
     store_run(arc, sv.id, positions, label="synthetic")
-    yield arc, sv.id, positions, tmp_path
+    return arc, sv.id, positions, base
+
+
+@pytest.fixture
+def many_flags(tmp_path):
+    """:func:`_spread` on a SQLite archive."""
+    from archive.store.archive import Archive
+
+    arc = Archive.init(tmp_path / "archive", actor="tester")
+    yield _spread(arc, tmp_path)
     arc.close()
+
+
+@pytest.fixture
+def many_flags_any(any_arc, tmp_path):
+    """:func:`_spread` on each catalog backend."""
+    return _spread(any_arc, tmp_path)

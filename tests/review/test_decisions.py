@@ -143,8 +143,8 @@ def test_an_evening_review_travels_to_the_report_a_new_run_and_deliveries(
     assert verify_archive(arc).ok
 
 
-def test_two_hundred_decisions_in_one_transaction(many_flags) -> None:
-    arc, sid, positions, base = many_flags
+def test_two_hundred_decisions_in_one_transaction(many_flags_any) -> None:
+    arc, sid, positions, base = many_flags_any
     waiting = load_review(arc, sid).waiting("wide-spread")
     assert len(waiting) == 200
     edits0, events0 = _count(arc, Edit), _count(arc, LedgerEvent)
