@@ -17,7 +17,6 @@ from typing import Any
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-from scipy.spatial import cKDTree
 
 from archive.solve.params import setting
 from archive.solve.schema import FLAGS
@@ -62,6 +61,8 @@ def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
     out["dist_preplot"] = np.hypot(east - out["preplot_e"], north - out["preplot_n"]) * unit_factor
     fin = np.isfinite(east) & np.isfinite(north)
     if fin.any():
+        from scipy.spatial import cKDTree  # imported when solving, not by readers of counts
+
         k = min(2, len(st_key))
         dist, idx = cKDTree(np.column_stack([st_e, st_n])).query(
             np.column_stack([east[fin], north[fin]]), k=k)

@@ -26,7 +26,6 @@ from archive import __version__
 from archive.edits.spans import manifest_spans
 from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
-from archive.solve.engine import solve_fixes
 from archive.solve.flags import count_flags
 from archive.solve.inputs import (
     Partition,
@@ -137,6 +136,9 @@ def _height_sampler(dem: Any, epsg: int):
 def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[str, Any],
                 sampler: Any) -> tuple[pa.Table, dict[str, Any]]:
     """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from."""
+    # the engine (scipy, compiled kernels) is imported when solving, not by every reader of runs
+    from archive.solve.engine import solve_fixes
+
     survey = manifest["survey"]
     fixes = load_fix_arrays(holder, part.fix_hashes)
     out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
