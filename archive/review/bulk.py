@@ -137,6 +137,14 @@ def read_decisions(path: str | Path, review: Review) -> list[Planned]:
                          expected="a UTF-8 CSV file") from None
     reader = csv.reader(io.StringIO(text, newline=""))
     try:
+        return _read_rows(name, reader, review)
+    except csv.Error as exc:  # a NUL byte, a field beyond the size limit
+        raise InputError(name, f"not readable as CSV ({exc})", line=reader.line_num,
+                         expected="comma-separated text (RFC 4180)") from None
+
+
+def _read_rows(name: str, reader: Any, review: Review) -> list[Planned]:
+    try:
         header = [h.strip().lower() for h in next(reader)]
     except StopIteration:
         raise InputError(name, "the file is empty", line=1,
