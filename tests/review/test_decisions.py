@@ -248,3 +248,29 @@ def test_csv_of_decisions_never_crashes_on_garbage(many_flags) -> None:
             assert planned and all(p.decision in ("accept", "reject") for p in planned)
 
     check()
+
+
+def test_segp1_says_where_the_review_is_without_losing_a_header_that_fitted() -> None:
+    """SEG-P1 has 20 header records (SEG, "Recommended standards for the exchange of
+    positional data", Geophysics 1983; the count of 20 from memory, as the writer states it):
+    the review pointer takes a record of its own where
+    one is free, else joins the 'Produced' record, so no CRS that fitted before is refused."""
+    import pytest
+
+    from archive.deliver.segp1 import header_records
+    from archive.errors import Refused
+    from archive.store.ledger import Anchor
+    from tests.support.delivery_tables import context
+
+    prec = {"easting": 1, "northing": 1, "height": 1}
+    # 32614 UTM 14N (Transverse Mercator), 2277 NAD83 / Texas Central (ftUS) (Lambert 2SP,
+    # long parameters), 2193 NZGD2000 / New Zealand Transverse Mercator 2000
+    for epsg, own in ((32614, True), (2277, False), (2193, False)):
+        recs = header_records(context(crs_epsg=epsg, anchor=Anchor(12, "c" * 64)), prec)
+        assert len(recs) == 20 and all(len(r) == 80 for r in recs)
+        pointer = [r for r in recs if ".lineage.json" in r]
+        assert len(pointer) == 1
+        assert pointer[0][4:].startswith("Flags, decisions:" if own else "Produced:")
+    # 6473 (Kentucky Single Zone ftUS) needed 21 records before the pointer: still refused
+    with pytest.raises(Refused):
+        header_records(context(crs_epsg=6473, anchor=Anchor(12, "c" * 64)), prec)
