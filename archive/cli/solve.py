@@ -66,8 +66,9 @@ def solve_text(head: str, run_id: str, n_positions: int, summary: dict[str, Any]
     n_st = summary.get("n_stations")
     of = f" of {n_st}" if n_st is not None else ""
     unlogged = summary.get("n_unlogged") or 0
-    extra = (f"\n  {unlogged} stationary cluster(s) with no logged deployment (not stations: "
-             "check the deployment log)" if unlogged else "")
+    extra = (f"\n  {'unlogged':<16} {unlogged:>5}  stationary cluster(s) with no logged "
+             "deployment, counted apart: no station (check the deployment log)"
+             if unlogged else "")
     return (f"{head} {run_id}\n"
             f"  positions {n_positions} ({summary.get('n_delivered', '?')} to deliver)\n"
             f"  flagged {n_flagged}{of} stations (a station is one occupation of a node; "
