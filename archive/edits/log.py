@@ -72,26 +72,33 @@ def record_edits(arc: Archive, survey_id: int, specs: list[EditSpec], *,
                 live[_live_key(e.kind, e.line, e.point, e.point_index,
                                json.loads(e.payload or "{}"))] = e.id
         now = utcnow()
+        pending: dict[tuple[Any, ...], Edit] = {}  # added in this batch, id not yet known
         for sp in specs:
             key = _live_key(sp.kind, sp.line, sp.point, sp.index, sp.payload)
             supersedes = sp.supersedes
             if supersedes is None and sp.kind in AUTO_SUPERSEDE:
+                if key in pending:  # replaces an edit of this same batch: its id is needed
+                    tx.flush()
+                    live[key] = pending.pop(key).id
                 supersedes = live.get(key)
             edit = Edit(survey_id=survey_id, kind=sp.kind, line=float(sp.line),
                         point=float(sp.point), point_index=int(sp.index),
                         payload=canonical_json(sp.payload).decode("utf-8"), reason=sp.reason,
                         supersedes=supersedes, created_at=now, created_by=arc.actor)
             tx.add(edit)
-            tx.flush()
             if sp.kind in AUTO_SUPERSEDE:
-                live[key] = edit.id
+                pending[key] = edit
+            out.append(edit)
+        tx.flush()  # every id at once
+        events = []
+        for sp, edit in zip(specs, out, strict=True):
             event = {"edit": edit.id, "kind": sp.kind,
                      "station": [edit.line, edit.point, int(sp.index)], "payload": sp.payload,
-                     "reason": sp.reason, "supersedes": supersedes}
+                     "reason": sp.reason, "supersedes": edit.supersedes}
             if batch is not None:
                 event["batch"] = batch
-            arc.log(tx, f"edit.{sp.kind}", event, survey_id=survey_id, rows=[edit])
-            out.append(edit)
+            events.append((f"edit.{sp.kind}", event, survey_id, [edit]))
+        arc.log_many(tx, events)
     return out
 
 

@@ -253,7 +253,7 @@ def decide(arc: Archive, survey_id: int, *, run_ref: str | None = None,
         raise UsageError("give either a CSV file of decisions or one decision for a filter",
                          hint="e.g. 'nodekeep review decide --csv FILE' or "
                               "'nodekeep review decide --flag moved --accept --reason TEXT'")
-    review = load_review(arc, survey_id, run_ref)
+    review = load_review(arc, survey_id, run_ref, figures=False)
     if csv_path is not None:
         if flag is not None or reason is not None:
             raise UsageError("a CSV file brings its own flags and reasons",

@@ -176,9 +176,10 @@ def figures_text(station: Station, flags: list[str] | None = None) -> str:
 
 
 def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
-                positions: pa.Table | None = None) -> Review:
+                positions: pa.Table | None = None, figures: bool = True) -> Review:
     """The flagged stations of a run (the newest by default) with their open and decided
-    flags, the figures behind them and the last decision on each (see module doc)."""
+    flags, the figures behind them (left empty without ``figures``: deciding needs none)
+    and the last decision on each (see module doc)."""
     run = get_run(arc, survey_id, run_ref)
     table = positions if positions is not None else run_occupations(arc, run)
     with arc.session() as s:
@@ -193,7 +194,10 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     rows["occupation"] = rows["occupation"].fillna(rows["index"]).astype("int64")
     rows = rows[rows["kind"] == "logged"].merge(
         flagged[["line", "point", "occupation"]], on=["line", "point", "occupation"])
-    groups = {k: g for k, g in rows.groupby(["line", "point", "occupation"], sort=False)}
+    by = ["line", "point", "occupation"]
+    window = rows.groupby(by, sort=False).agg(deployed=("deployed", "min"),
+                                              retrieved=("retrieved", "max"))
+    groups = ({k: g for k, g in rows.groupby(by, sort=False)} if figures else {})
     stations = []
     for r in flagged.itertuples(index=False):  # one per flagged station, not per fix
         key = (float(r.line), float(r.point), int(r.occupation))
@@ -201,16 +205,17 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
         stations.append(Station(
             line=key[0], point=key[1], index=key[2], node=str(r.node), flags=flags,
             state=split_flags(flags, in_force.get(key, [])),
-            deployed=_when(groups[key]["deployed"].min()),
-            retrieved=_when(groups[key]["retrieved"].max()),
-            figures=_figures(groups[key], flags, unit), last=last.get(key)))
+            deployed=_when(window.at[key, "deployed"]),
+            retrieved=_when(window.at[key, "retrieved"]),
+            figures=_figures(groups[key], flags, unit) if figures else {},
+            last=last.get(key)))
     review = Review(run.id, survey_id, stations)
-    review.counts = _counts(review, table)
+    review.counts = _counts(review, table, st)
     return review
 
 
-def _counts(review: Review, table: pa.Table) -> dict[str, Any]:
-    c = count_flags(table)
+def _counts(review: Review, table: pa.Table, st: Any) -> dict[str, Any]:
+    c = count_flags(table, st)
     open_per: dict[str, int] = {}
     for s in review.stations:
         for f in s.state.open:

@@ -173,9 +173,10 @@ def station_flags(table: pa.Table) -> pd.DataFrame:
     return grouped.reset_index()
 
 
-def count_flags(table: pa.Table) -> FlagCounts:
-    """The review flags of a positions table counted per station (:class:`FlagCounts`)."""
-    st = station_flags(table)
+def count_flags(table: pa.Table, stations: pd.DataFrame | None = None) -> FlagCounts:
+    """The review flags of a positions table counted per station (:class:`FlagCounts`);
+    ``stations``: its :func:`station_flags`, when the caller has them already."""
+    st = station_flags(table) if stations is None else stations
     per: dict[str, int] = {}
     for text in st["flags"]:
         for f in text.split(";") if text else ():

@@ -274,3 +274,19 @@ def test_segp1_says_where_the_review_is_without_losing_a_header_that_fitted() ->
     # 6473 (Kentucky Single Zone ftUS) needed 21 records before the pointer: still refused
     with pytest.raises(Refused):
         header_records(context(crs_epsg=6473, anchor=Anchor(12, "c" * 64)), prec)
+
+
+def test_a_batch_that_names_one_flag_twice_keeps_the_later_in_force(many_flags) -> None:
+    from archive.edits.log import EditSpec, record_edits
+
+    arc, sid, positions, base = many_flags
+    st = load_review(arc, sid).waiting()[0]
+    specs = [EditSpec("ack-flag", st.line, st.point, st.index, {"flag": "wide-spread"}, r)
+             for r in ("first look", "second look")]
+    first, second = record_edits(arc, sid, specs)
+    assert first.supersedes is None and second.supersedes == first.id
+    assert [e["id"] for e in list_edits(arc, sid)] == [second.id]
+    with arc.session() as s:
+        seqs = list(s.scalars(select(LedgerEvent.seq).order_by(LedgerEvent.seq)))
+    assert seqs == list(range(1, len(seqs) + 1))  # one chain, no gap
+    assert verify_archive(arc).ok
