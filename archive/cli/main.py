@@ -35,6 +35,7 @@ COMMANDS: dict[str, str] = {
     "show": "archive.cli.solve:show",
     "edit": "archive.cli.edit:edit",
     "edits": "archive.cli.edit:edits",
+    "review": "archive.cli.review:review",
     "deliver": "archive.cli.deliver:deliver",
     "trace": "archive.cli.lineage:trace",
     "reproduce": "archive.cli.lineage:reproduce",

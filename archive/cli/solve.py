@@ -60,6 +60,22 @@ def _flags_text(counts: dict[str, int]) -> str:
     return "\n".join(f"  {k:<16} {counts[k]:>5}  {FLAGS.get(k, '')}" for k in counts)
 
 
+def solve_text(head: str, run_id: str, n_positions: int, summary: dict[str, Any],
+               n_flagged: int, flag_counts: dict[str, int]) -> str:
+    """The readable result of a solve: positions, then flags counted per station."""
+    n_st = summary.get("n_stations")
+    of = f" of {n_st}" if n_st is not None else ""
+    unlogged = summary.get("n_unlogged") or 0
+    extra = (f"\n  {'unlogged':<16} {unlogged:>5}  stationary cluster(s) with no logged "
+             "deployment, counted apart: no station (check the deployment log)"
+             if unlogged else "")
+    return (f"{head} {run_id}\n"
+            f"  positions {n_positions} ({summary.get('n_delivered', '?')} to deliver)\n"
+            f"  flagged {n_flagged}{of} stations (a station is one occupation of a node; "
+            f"each flag below counts stations too)\n{_flags_text(flag_counts)}{extra}\n"
+            f"next: nodekeep review list, nodekeep show LINE POINT, nodekeep qc")
+
+
 @click.command()
 @click.option("--params", "params_file", type=click.Path(dir_okay=False), default=None,
               metavar="FILE.toml", help="Parameters overriding the defaults ('nodekeep params').")
@@ -90,15 +106,9 @@ def solve(state: CliState, params_file: str | None, label: str, stations: str | 
                        scheduler=scheduler, workers=workers)
     d = res.as_dict()
 
-    def text() -> str:
-        head = "solved run" if res.created else "same inputs and parameters as run"
-        s = res.summary
-        return (f"{head} {res.run_id}\n"
-                f"  positions {res.n_positions} ({s.get('n_delivered', '?')} to deliver), "
-                f"flagged {res.n_flagged}\n{_flags_text(res.flag_counts)}\n"
-                f"next: nodekeep show LINE POINT, nodekeep qc")
-
-    emit(state, d, text)
+    head = "solved run" if res.created else "same inputs and parameters as run"
+    emit(state, d, lambda: solve_text(head, res.run_id, res.n_positions, res.summary,
+                                      res.n_flagged, res.flag_counts))
 
 
 @click.command()

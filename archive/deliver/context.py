@@ -26,6 +26,10 @@ TIME_COLUMN = "deployed"
 POSITION_MAPPED = "receiver (node) as solved from its GNSS fixes"
 ANCHOR_LABEL = "Ledger anchor"
 """The header label of the anchor (:class:`archive.store.ledger.Anchor`) in SPS and SEG-P1."""
+DECISIONS_TEXT = ("per record in the lineage manifest beside this file (its name + "
+                  "'.lineage.json'): occupations[].flags, .flags_acknowledged, .decisions "
+                  "-> edits[] (kind, reason, by, at)")
+"""Where SPS and SEG-P1 files, which have no column for them, say flags and decisions are."""
 CAUTION = ("positions for seismic processing; not a certified or legal survey, not for "
            "boundaries, construction or safety setbacks")
 

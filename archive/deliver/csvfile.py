@@ -15,7 +15,9 @@ a plain number) get a leading apostrophe, as OWASP recommends against CSV inject
 (:func:`archive.store.outfiles.spreadsheet_column`); numbers, negative ones included, are
 written as numbers. ``anchor_event`` and
 ``anchor_after`` repeat the delivery's ledger anchor the same way
-(:class:`archive.store.ledger.Anchor`).
+(:class:`archive.store.ledger.Anchor`). Last come the review decisions of each record
+(:data:`archive.deliver.decisions.DECISION_COLUMNS`: flags people accepted, what was decided,
+the edit ids, by whom, when and why), when the table carries them.
 """
 
 from __future__ import annotations
@@ -25,6 +27,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from archive.deliver.context import DeliveryContext, check_unique_keys
+from archive.deliver.decisions import DECISION_COLUMNS
 from archive.store.outfiles import spreadsheet_column
 
 CSV_COLUMNS = (
@@ -56,6 +59,10 @@ def csv_table(table: pa.Table, ctx: DeliveryContext, *, anchor: bool = True) -> 
     if anchor and ctx.anchor is not None:
         cols += [pa.array([ctx.anchor.event] * n, pa.int64()), pa.array([ctx.anchor.after] * n)]
         names += ["anchor_event", "anchor_after"]
+    for name in DECISION_COLUMNS:  # added after the columns readers already know
+        if name in table.column_names:
+            cols.append(spreadsheet_column(table.column(name)))
+            names.append(name)
     return pa.table(cols, names=names)
 
 

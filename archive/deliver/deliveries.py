@@ -36,6 +36,7 @@ from sqlalchemy import func, select
 from archive import __version__
 from archive.deliver.changes import DEFAULT_TOLERANCE, changes_since
 from archive.deliver.context import DeliveryContext, station_label
+from archive.deliver.decisions import with_decisions
 from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
 from archive.deliver.manifest import DeliveryFacts, lineage_manifest, manifest_bytes
@@ -225,7 +226,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         awaiting=built.awaiting,
         changes=changes.as_dict() if changes is not None else None)
     delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(
-        arc, survey_id, facts, lambda anchor: write(final, replace(ctx, anchor=anchor)),
+        arc, survey_id, facts,
+        lambda anchor: write(with_decisions(final, edits), replace(ctx, anchor=anchor)),
         final_size, target, lineage_path)
     _move_into_place(arc, survey_id, delivery_id,
                      [(tmp_file, target), (tmp_lineage, lineage_path)])

@@ -41,6 +41,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.edits.kinds import POSITION_FLAGS
 from archive.edits.log import edit_set
 from archive.solve.run import run_manifest
 from archive.store.archive import Archive
@@ -93,9 +94,6 @@ FINAL_SCHEMA = pa.schema(
 
 Key = tuple[float, float, int]
 
-# Review flags that describe the solver's position; a set-position replaces that solution.
-POSITION_FLAGS = frozenset({"few-fixes", "short-span", "wide-spread", "moved", "far-from-plan",
-                            "nearer-other", "unoccupied"})
 HeightAt = Callable[[float, float], float | None]
 
 

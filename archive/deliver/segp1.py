@@ -90,9 +90,20 @@ def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str
     return text, decimals
 
 
+def _free_lines(items: list[tuple[str, str]]) -> list[str]:
+    """``description: data`` texts over 76 columns, long data continuing indented."""
+    lines: list[str] = []
+    for desc, data in items:
+        first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)
+        lines.append(first)
+        lines += [f"  {p}" for p in wrap_data(" ".join(rest), FREE_WIDTH - 2)] if rest else []
+    return lines
+
+
 def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]:
     """Exactly 20 H records: survey, datum/spheroid, projection and parameters, units, time
-    basis, what position is mapped, producing run, edit set and the ledger anchor.
+    basis, what position is mapped, producing run, edit set, the ledger anchor and where
+    the flags and decisions of each record are (the lineage manifest).
 
     Each record is ``Hnn`` and free text in columns 5-80: ``description: data``, long data
     continuing on the next record indented by two spaces; projection
@@ -135,11 +146,12 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
     ]
     if ctx.anchor is not None:
         items.append((ANCHOR_LABEL, ctx.anchor.text()))
-    lines: list[str] = []
-    for desc, data in items:
-        first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)
-        lines.append(first)
-        lines += [f"  {p}" for p in wrap_data(" ".join(rest), FREE_WIDTH - 2)] if rest else []
+    lines = _free_lines([*items, ("Flags, decisions", "per record in this file's .lineage.json")])
+    if len(lines) > N_HEADER:  # no record left for the review pointer: it joins "Produced"
+        produced_at = next(i for i, (d, _) in enumerate(items) if d == "Produced")
+        items[produced_at] = ("Produced", f"{produced} nodekeep {ctx.code_version}; review: "
+                                          ".lineage.json")
+        lines = _free_lines(items)
     if len(lines) > N_HEADER:
         raise Refused(f"{FORMAT}: the header statements need {len(lines)} records, the format "
                       f"has {N_HEADER} (long CRS name, parameters or survey text)",

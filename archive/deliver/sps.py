@@ -20,6 +20,7 @@ import pyarrow as pa
 
 from archive.deliver.context import (
     ANCHOR_LABEL,
+    DECISIONS_TEXT,
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
@@ -102,6 +103,7 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
     ]
     if ctx.anchor is not None:  # where the delivery sits in the archive's ledger
         recs.append(("H26", ANCHOR_LABEL, ctx.anchor.text()))
+    recs.append(("H26", "Flags and decisions", DECISIONS_TEXT))
     recs.append(("H26", "Not a certified survey", "for seismic processing, not legal/setback use"))
     return [line for r in recs for line in header_lines(*r, continuation_item="H26")]
 

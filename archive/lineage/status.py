@@ -6,8 +6,8 @@ Everything here comes from the catalog and from small tables (the deployment log
 newest run's positions, the delivered final tables); no fix table is read, so the answer
 stays well under a second on an archive of 10^8 fixes (bench/status.py).
 
-Counts of review flags are **stations** (line, point) whose delivered record still carries
-the flag unacknowledged, the way ``solve`` and ``qc`` count them.
+Counts of review flags are **stations** (occupations), counted the one way ``solve``, ``qc``
+and ``review`` count them (:func:`archive.review.queue.review_counts`).
 """
 
 from __future__ import annotations
@@ -21,6 +21,7 @@ from sqlalchemy import func, select
 
 from archive import __version__
 from archive.deliver.changes import DEFAULT_SHIFT, compare_final
+from archive.review.queue import review_counts
 from archive.store.archive import Archive
 from archive.store.models import Delivery, InputVersion, Run, Survey
 from archive.survey.status import harvest_status, plain_rows
@@ -96,24 +97,6 @@ def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, Input
     return changes
 
 
-def flag_stations(final: Any) -> dict[str, Any]:
-    """Stations of a final-positions table with unacknowledged flags, and per flag (each
-    count is of stations: a station whose two occupations carry it counts once)."""
-    frame = final.select(["line", "point", "flags", "flags_acknowledged"]).to_pandas()
-    open_ = frame[frame["flags"] != ""]
-    per: dict[str, int] = {}
-    exploded = open_.assign(flag=open_["flags"].str.split(";")).explode("flag")
-    exploded = exploded[exploded["flag"] != ""]
-    for flag, group in exploded.groupby("flag"):
-        per[str(flag)] = int(group[["line", "point"]].drop_duplicates().shape[0])
-    decided = frame[frame["flags_acknowledged"] != ""][["line", "point"]].drop_duplicates()
-    stations = open_[["line", "point"]].drop_duplicates()
-    return {"stations": int(len(stations)), "flags": dict(sorted(per.items())),
-            "acknowledged_stations": int(len(decided)),
-            "examples": [{"line": float(r.line), "point": float(r.point), "flags": r.flags}
-                         for r in open_.head(LIST_LIMIT).itertuples(index=False)]}
-
-
 def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
                   ) -> SurveyStatus:
     """Where survey ``survey_id`` stands (see module doc). ``shift``: metres a delivered
@@ -143,7 +126,7 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
                     "positions": run.n_positions, "runs": int(n_runs),
                     "inputs_changed": behind, "up_to_date": not behind}
         final = final_positions(arc, survey_id, run)
-        review = flag_stations(final) | {"run": run.id}
+        review = review_counts(arc, survey_id, run.id) | {"run": run.id}
         if last is not None:
             state = delivered_state(arc, last)
             ch = compare_final(state, final, last.id, tolerance=shift)
@@ -214,10 +197,10 @@ def status_text(st: SurveyStatus) -> str:
                      + f"): {r['positions']} positions; {state}")
     if st.review:
         rv = st.review
-        per = ", ".join(f"{k} {v}" for k, v in rv["flags"].items())
-        lines.append(f"review    {rv['stations']} station(s) wait for review"
+        per = ", ".join(f"{k} {v}" for k, v in rv["open_per_flag"].items())
+        lines.append(f"review    {rv['n_waiting']} station(s) wait for review"
                      + (f" ({per}; counted by station)" if per else "")
-                     + f"; {rv['acknowledged_stations']} with acknowledged flags")
+                     + f"; {rv['n_decided']} decided ('nodekeep review list' shows them)")
     if st.delivery:
         d, since = st.delivery, st.delivery["since"]
         lines.append(f"delivery  #{d['id']} {d['format']} {d['file_name']} to {d['recipient']} "

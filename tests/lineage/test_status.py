@@ -80,11 +80,14 @@ def test_status_over_two_evenings(evening, runner):
     assert [n["node"] for n in st.nodes_without_deployment["list"]] == [STRAY]
     assert st.run["id"] == first_run and st.run["up_to_date"]
     assert st.delivery is None and "nothing delivered yet" in st.notes
-    # review counts are stations whose delivered record carries an open flag
+    # review counts are stations (occupations: both parts of a moved node are one) whose
+    # delivered record carries a flag, none decided yet
     occ = run_occupations(arc, get_run(arc, sid, first_run))
-    flagged = occ.filter(pc.and_(occ["delivered"], pc.not_equal(occ["flags"], "")))
-    stations = {(r["line"], r["point"]) for r in flagged.select(["line", "point"]).to_pylist()}
-    assert st.review["stations"] == len(stations)
+    flagged = occ.filter(pc.and_(pc.and_(occ["delivered"], pc.equal(occ["kind"], "logged")),
+                                 pc.not_equal(occ["flags"], "")))
+    stations = {(r["line"], r["point"], r["occupation"])
+                for r in flagged.select(["line", "point", "occupation"]).to_pylist()}
+    assert st.review["n_waiting"] == len(stations) > 0 and st.review["n_decided"] == 0
 
     # the first evening's delivery holds back what is still in the ground
     day1 = deliver(arc, sid, first_run, "csv", base / "day1.csv",
