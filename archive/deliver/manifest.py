@@ -51,6 +51,8 @@ class DeliveryFacts:
     final_hash: str
     merge: bool
     merges: list[dict[str, Any]]
+    # records whose height is not in the delivery's datum: [{"record", "datum"}]
+    other_datum: list[dict[str, str]] = field(default_factory=list)
     anchor: Anchor | None = None  # known once the delivery holds the ledger's write lock
     chain: list[str] = field(default_factory=list)  # short hashes of the events before it
 
@@ -106,6 +108,7 @@ def lineage_manifest(f: DeliveryFacts, delivery_id: int) -> dict[str, Any]:
                             "rows": f.final.num_rows},
         "occupations": occupations_of(f.final),
         "merges": f.merges,
+        "heights": {"datum": f.heights_datum, "other_datum": f.other_datum},
         **({"ledger": ledger_section(f.anchor, f.chain)} if f.anchor is not None else {}),
         "code_version": __version__,
         "caution": CAUTION,
