@@ -259,8 +259,19 @@ def _window(d: dict[str, Any]) -> str:
     return f"{start} to {end}" if d.get("deployed") is not None else "window not recorded"
 
 
+def _held_text(d: dict[str, Any]) -> str:
+    """' (the file holds E .. N .. H ..)' for a format that rounds, else ''."""
+    held = d.get("as_delivered") or {}
+    places = held.get("decimals")
+    if not places:
+        return ""
+    return " (the file holds " + " ".join(
+        f"{k} {held[n]:.{places[n]}f}" if held.get(n) is not None else f"{k} -"
+        for k, n in (("E", "easting"), ("N", "northing"), ("H", "height"))) + ")"
+
+
 def _record_text(d: dict[str, Any]) -> str:
-    return (f"E {_f(d['easting'])} N {_f(d['northing'])} H {_f(d['height'])} "
+    return (f"E {_f(d['easting'])} N {_f(d['northing'])} H {_f(d['height'])}{_held_text(d)} "
             f"(source {d['source']}) in delivery {d['id']} ({d['format']}, {d['file_name']}, "
             f"to {d['recipient']}, {_when(d['created_at'])}, sha256 {d['file_hash'][:16]}…)")
 
@@ -304,7 +315,7 @@ def _where_text(w: dict[str, Any]) -> str:
         for e in reversed(o["history"][:-1]):
             out.append(f"  earlier (index {o['index']}): delivery {e['id']} ({e['format']}, "
                        f"{e['file_name']}, {_when(e['created_at'])}): E {_f(e['easting'])} "
-                       f"N {_f(e['northing'])} H {_f(e['height'])}")
+                       f"N {_f(e['northing'])} H {_f(e['height'])}{_held_text(e)}")
     return "\n".join(out)
 
 
