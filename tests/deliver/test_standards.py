@@ -108,7 +108,7 @@ def test_a_node_that_died_keeps_its_logged_window(survey):
     from lay-out to pickup, whether or not it logged all of it (it lay there); ``t_start``/
     ``t_end`` are the settled window the solver read, not the span of its fixes, and the
     flags say it stopped early. SPS/SEG-P1 day and time are the lay-out time."""
-    _arc, _sid, sc, _preplot, files = survey
+    arc, sid, sc, _preplot, files = survey
     died = next(p for p in sc.problems if p["kind"] == "died")
     log = {(float(r["line"]), float(r["point"]), r["node"]): r
            for r in _csv(sc.deployments)}
@@ -127,6 +127,10 @@ def test_a_node_that_died_keeps_its_logged_window(survey):
            if (s["line"], s["point"]) == (died["line"], died["point"])]
     laid = datetime.fromisoformat(logged["deployed_utc"].replace("Z", "+00:00"))
     assert sps[0]["time"] == laid.strftime("%H%M%S")  # SPS columns 75-80: lay-out time
+    later = log_end + (picked_up - log_end) / 2  # a shot after the node stopped logging
+    w = where(arc, sid, died["line"], died["point"], at=later)
+    assert w["delivered"]["node"] == died["node"]
+    assert any("logged only part of its stay" in n for n in w["notes"])
 
 
 def test_each_height_names_its_datum(survey):
