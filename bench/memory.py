@@ -31,6 +31,7 @@ import subprocess
 import sys
 import tempfile
 import time
+from datetime import datetime
 from pathlib import Path
 
 import numpy as np
@@ -127,9 +128,14 @@ def build(root: Path, n_fixes: int, seed: int = 7) -> dict:
                 "hdop": c["hdop"][j], "vdop": c["hdop"][j] * np.float32(1.4),
                 "raw_hash": pa.array(["0" * 64] * FIXES_PER_NODE),
                 "raw_line": np.arange(1, FIXES_PER_NODE + 1, dtype=np.int64),
+                "sentence": pa.array(["GGA"] * FIXES_PER_NODE),
+                "no_quality": np.zeros(FIXES_PER_NODE, dtype=bool),
+                "weeks_added": np.zeros(FIXES_PER_NODE, dtype=np.int16),
             }, schema=FIX_SCHEMA)
             raw = arc.objects.put_bytes(f"synthetic fixes of node {node}, seed {seed}\n".encode())
             puts.append((node, raw, arc.objects.put_table(table), int(valid.sum())))
+        t_first, t_last = (datetime.fromisoformat(f"{x.astype('datetime64[us]')}+00:00")
+                           for x in (c["time"][0, 0], c["time"][0, -1]))
         deployed_at += [c["deployed"]] * count
         retrieved_at += [c["retrieved"]] * count
         with arc.transaction() as tx:
@@ -141,7 +147,8 @@ def build(root: Path, n_fixes: int, seed: int = 7) -> dict:
                     node=node, format="synthetic", size=rs, received_at=utcnow(),
                     received_by=arc.actor, parser="bench-synthetic", n_lines=FIXES_PER_NODE,
                     n_accepted=FIXES_PER_NODE, n_rejected=0, n_ignored=0,
-                    n_fixes=FIXES_PER_NODE, n_valid=n_valid, fixes_hash=fh, details="{}")
+                    n_fixes=FIXES_PER_NODE, n_valid=n_valid, fixes_hash=fh, details="{}",
+                    t_first=t_first, t_last=t_last)
                 tx.add(row)
                 rows.append(row)
             tx.flush()
@@ -162,26 +169,28 @@ def solve(root: Path, partition_fixes: int | None, workers: int | None) -> dict:
     from archive.progress import NoProgress
     from archive.solve import inputs as solve_inputs
     from archive.solve import run as solve_run
+    from archive.solve import solving
     from archive.store.archive import Archive
     from archive.store.hashing import table_digest
 
     limit = partition_fixes or solve_inputs.PARTITION_FIXES
-    solve_run.partitions = lambda a, inp: solve_inputs.partitions(a, inp, limit=limit)
+    solving.partitions = lambda a, inp, skip=None: solve_inputs.partitions(
+        a, inp, limit=limit, skip=skip)
     arc = Archive.open(root, actor="bench")
     with arc.session() as s:
         sid = arc.survey(s).id
     inp = solve_inputs.survey_inputs(arc, sid, {"stations": None, "nodes": None})
-    n_parts = len(solve_run.partitions(arc, inp))
+    n_parts = len(solving.partitions(arc, inp))
     del inp
     before = _rss_mb()
     t0 = time.perf_counter()
-    res = solve_run.solve_survey(arc, sid, workers=workers)
+    res = solve_run.solve_survey(arc, sid, workers=workers, incremental=False)
     same = True
     if not res.created:  # solved before (same manifest): solve its manifest again, unrecorded
         run = solve_run.get_run(arc, sid, res.run_id)
         manifest = solve_run.run_manifest(arc, run)
         inp = solve_inputs.survey_inputs(arc, sid, manifest["selection"], manifest=manifest)
-        table, _ = solve_run._solve(arc, manifest, inp, NoProgress(), workers=workers)
+        table, _, _ = solving.solve_inputs(arc, manifest, inp, NoProgress(), workers=workers)
         same = table_digest(table) == run.positions_digest  # vs the first, recorded solve
     seconds = time.perf_counter() - t0
     arc.close()

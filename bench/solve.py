@@ -1,6 +1,7 @@
 """Benchmark of the solver: segment reductions against a pandas groupby-apply baseline.
 
     python -m bench.solve [--deployments 400] [--hours 24] [--large 20000000] [--workers 2]
+                          [--cli 3000000]
 
 1. The estimator stage (robust Huber centre by IRLS with MAD scale and chi-square rejection,
    then batch-means covariance) on every deployment at once with
@@ -19,6 +20,10 @@
    (streaming by node partition; each worker runs the kernels on one thread, the pool
    fills the cores), printing the time, the rate and the peak memory of parent and
    largest worker.
+3. With ``--cli N``: a generated archive of about N fixes (one fix table per node, as the
+   loader stores them) solved by ``nodekeep solve`` in a fresh process, from scratch, and by
+   the engine alone on the same partitions with the arrays already in memory: both rates,
+   their ratio, the command's start-up time and peak memory.
 """
 
 from __future__ import annotations
@@ -29,6 +34,7 @@ import resource
 import tempfile
 import time
 from concurrent.futures import ProcessPoolExecutor
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -234,6 +240,70 @@ def large(total: int, workers: int, per_node: int = 8640, nodes_per_group: int =
     print(f"  peak RSS: parent {self_rss:,.0f} MB, largest worker {child_rss:,.0f} MB")
 
 
+# -- part 3: the same work through the command line -------------------------------------
+
+def _engine_seconds(root: str) -> tuple[float, int]:
+    """Seconds of the engine alone on the archive's partitions (fix arrays read before the
+    clock starts; the kernels on this process's threads), and the fixes solved."""
+    from archive.solve import inputs as solve_inputs
+    from archive.store.archive import Archive
+
+    arc = Archive.open(root, actor="bench")
+    with arc.session() as s:
+        sid = arc.survey(s).id
+    inp = solve_inputs.survey_inputs(arc, sid, {"stations": None, "nodes": None})
+    parts = solve_inputs.partitions(arc, inp)
+    loaded = [(solve_inputs.load_fix_arrays(arc, p.fix_hashes), p) for p in parts]
+    n = sum(len(fx) for fx, _ in loaded)
+    solve_fixes(loaded[0][0], loaded[0][1].deployments, inp.stations, default_params(),
+                EPSG, used=inp.used, finish=False)  # kernels loaded before the clock
+    t0 = time.perf_counter()
+    for fx, p in loaded:
+        solve_fixes(fx, p.deployments, inp.stations, default_params(), EPSG, used=inp.used,
+                    finish=False)
+    took = time.perf_counter() - t0
+    arc.close()
+    return took, n
+
+
+def _command(*args: str) -> float:
+    import subprocess
+    import sys
+
+    t0 = time.perf_counter()
+    subprocess.run([sys.executable, "-m", "archive.cli.main", *args], check=True,
+                   stdout=subprocess.DEVNULL)
+    return time.perf_counter() - t0
+
+
+def cli(total: int) -> None:
+    """Part 3: a generated survey of about ``total`` fixes (``bench.memory``'s archive, a
+    fix table per node) solved by ``nodekeep solve`` in a fresh process, from scratch,
+    beside the engine alone on the same partitions; both rates and their ratio, the
+    command's start-up time and its peak memory."""
+    import shutil
+
+    from bench.memory import build
+
+    with tempfile.TemporaryDirectory(prefix="nodekeep-bench-") as tmp:
+        root = os.path.join(tmp, "arc")
+        built = build(Path(root), total)
+        print(f"\ncommand line: {built['fixes']:,} fixes of {built['nodes']:,} nodes, "
+              f"{built['nodes']:,} fix tables")
+        start = min(_command("solve", "--help") for _ in range(3))
+        eng, n = _engine_seconds(root)
+        fresh = os.path.join(tmp, "fresh")
+        shutil.copytree(root, fresh)
+        took = _command("-A", fresh, "solve", "--quiet")
+        peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    print(f"  start-up ('nodekeep solve --help'): {start:.2f} s")
+    print(f"  engine alone : {n / eng:>12,.0f} fixes/s ({eng:.2f} s, arrays in memory)")
+    print(f"  nodekeep solve: {n / took:>12,.0f} fixes/s ({took:.2f} s from scratch: start-up, "
+          "catalog, reading, solving, storing)")
+    print(f"  ratio command/engine: {eng / took:.2f}; peak RSS of the command "
+          f"{peak:,.0f} MB ({peak * 2**20 / n:,.0f} bytes a fix)")
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--deployments", type=int, default=400)
@@ -244,6 +314,9 @@ def main() -> None:
     ap.add_argument("--threads", type=int, default=kernels.get_threads(),
                     help="threads of the compiled kernels in part 1")
     ap.add_argument("--skip-compare", action="store_true", help="only the large run")
+    ap.add_argument("--cli", type=int, default=0, metavar="N",
+                    help="also solve a generated survey of about N fixes through "
+                         "'nodekeep solve' beside the engine alone")
     args = ap.parse_args()
     kernels.set_threads(args.threads)
     if not args.skip_compare:
@@ -252,6 +325,8 @@ def main() -> None:
         compare(args.deployments * 12, args.hours / 12)
     if args.large:
         large(args.large, args.workers)
+    if args.cli:
+        cli(args.cli)
 
 
 if __name__ == "__main__":

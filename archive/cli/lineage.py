@@ -54,7 +54,7 @@ def _edits_text(edits: list[dict[str, Any]]) -> list[str]:
             + ("" if e.get("in_force", True) else " (no longer in force)") for e in edits]
 
 
-def _occupation_text(o: dict[str, Any]) -> list[str]:
+def _occupation_text(o: dict[str, Any], run_id: str = "") -> list[str]:
     out = [f"occupation index {o['index']}: node {o['node']}, {_window(o)}"]
     d = o["delivery"]
     if d:
@@ -72,7 +72,9 @@ def _occupation_text(o: dict[str, Any]) -> list[str]:
                    f"N {_f(s['northing'])} r95 {_f(s['r95'], '{:.2f}')} m, window "
                    f"{_when(s['t_start'])} to {_when(s['t_end'])}, flags {s['flags'] or 'none'}"
                    + (_delivered_as(s) if s["delivered"] else "")
-                   + (" (from the settle-margin fixes)" if s.get("from_margins") else ""))
+                   + (" (from the settle-margin fixes)" if s.get("from_margins") else "")
+                   + (f"; solved in earlier run {s['solved_by'][:12]}, inputs unchanged"
+                      if s.get("solved_by") and s["solved_by"] != run_id else ""))
     fx = o["fixes"]
     out.append("  fixes in its window, all parts: "
                + (", ".join(f"{k} {v}" for k, v in fx.items()) or "none"))
@@ -97,7 +99,7 @@ def _station_text(t: dict[str, Any]) -> str:
            + (" (each delivered under its own point index)" if len(occs) > 1 else "")]
     out += _run_text(t["run"])
     for o in occs:
-        out += _occupation_text(o)
+        out += _occupation_text(o, t["run"].get("id", ""))
     out.append(f"edits ({len(t['edits'])}):")
     out += _edits_text(t["edits"])
     return "\n".join(out)

@@ -23,6 +23,7 @@ COMMANDS: dict[str, str] = {
     "survey": "archive.cli.survey:survey",
     "history": "archive.cli.history:history",
     "verify": "archive.cli.verify:verify",
+    "status": "archive.cli.status:status",
     "load": "archive.cli.main:load",
     "logs": "archive.cli.fixes:logs",
     "fixes": "archive.cli.fixes:fixes",
@@ -158,3 +159,7 @@ def load() -> None:
 def main(argv: list[str] | None = None) -> None:
     """Console entry point."""
     cli.main(args=argv, prog_name="nodekeep")
+
+
+if __name__ == "__main__":
+    main()

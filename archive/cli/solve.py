@@ -141,6 +141,11 @@ def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int,
         out.append(f"{n_occupations} occupations (one delivered record each, under its own "
                    "point index); choose one with --index N or --node SERIAL")
     for r in rows:
+        if r["kind"] == "awaiting":
+            out.append(f"station {station_text(r['line'], r['point'])} occupation index "
+                       f"{r['occupation']}  node {r['node']}  awaiting harvest: no log of "
+                       "the node loaded yet covers its deployment (held back from deliveries)")
+            continue
         occ = (f"occupation index {r['occupation']} (preplot index {r['index']})"
                if r["occupation"] is not None else f"preplot index {r['index']}")
         held = (f"  deployed   {r['deployed']} .. "
@@ -160,6 +165,8 @@ def _show_text(run_id: str, rows: list[dict[str, Any]], n_occupations: int,
             f"station {station_text(r['line'], r['point'])} {occ}  node {r['node']}  "
             f"{r['kind']} part {r['part']}{delivered}",
             *([held] if held else []),
+            *([f"  solved in  run {r['solved_by'][:12]} (this node's inputs unchanged since; "
+               "its rows reused)"] if r.get("solved_by", run_id) != run_id else []),
             f"  window     {r['t_start']} .. {r['t_end']}{margins}",
             f"  position   E {_fmt(r['easting'], 3)}  N {_fmt(r['northing'], 3)}  "
             f"lat {_fmt(r['lat'], 8)}  lon {_fmt(r['lon'], 8)}",

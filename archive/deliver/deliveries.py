@@ -34,6 +34,7 @@ import pyarrow as pa
 from sqlalchemy import func, select
 
 from archive import __version__
+from archive.deliver.changes import DEFAULT_TOLERANCE, changes_since
 from archive.deliver.context import DeliveryContext, other_datum_stations, station_label
 from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
@@ -75,10 +76,18 @@ class DeliveryResult:
     allowed_flags: bool = False
     warnings: list[str] = field(default_factory=list)
     merges: list[dict[str, Any]] = field(default_factory=list)
+    changes: dict[str, Any] | None = None  # what changed since an earlier delivery, if asked
+    # deployments held back: no log of their node was loaded yet (awaiting harvest)
+    awaiting: list[dict[str, Any]] = field(default_factory=list)
+
+    @property
+    def n_awaiting(self) -> int:
+        """Deployments held back as awaiting harvest."""
+        return len(self.awaiting)
 
     def as_dict(self) -> dict[str, Any]:
         """Plain data for printing."""
-        return asdict(self)
+        return asdict(self) | {"n_awaiting": self.n_awaiting}
 
 
 def _flag_refusal(final: pa.Table, flags: dict[str, int], run: Run) -> Refused:
@@ -151,12 +160,17 @@ def _move_into_place(arc: Archive, survey_id: int, delivery_id: int,
 
 def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str | Path,
             recipient: str, note: str = "", allow_flags: bool = False,
-            force: bool = False, merge_occupations: bool = False) -> DeliveryResult:
+            force: bool = False, merge_occupations: bool = False,
+            changed_since: int | None = None,
+            tolerance: float = DEFAULT_TOLERANCE) -> DeliveryResult:
     """Deliver the final positions of a run (plus edits in force) as ``fmt`` to ``to``.
 
     One record per occupation, under its own point index; with ``merge_occupations`` the
     occupations of a station that cannot be told apart are delivered as one position
     (:mod:`archive.deliver.merge`), and the lineage says what was merged and what was not.
+    With ``changed_since`` (a delivery id) only the records that are new or changed since
+    that delivery are written (:mod:`archive.deliver.changes`); the lineage manifest lists
+    each with its reasons, and the records that delivery held which are no longer delivered.
     """
     write = writer(fmt)
     recipient = (recipient or "").strip()
@@ -181,6 +195,10 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         raise Refused(f"run {run.id[:12]} with the edits in force leaves no station to deliver",
                       hint="check the run ('nodekeep show') and the reject edits "
                            "('nodekeep edits')")
+    changes = None
+    if changed_since is not None:
+        changes = changes_since(arc, survey_id, changed_since, final, tolerance)
+        final = changes.table
     flags = unacknowledged_flags(final)
     if flags and not allow_flags:
         raise _flag_refusal(final, flags, run)
@@ -209,7 +227,9 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         unapplied=unapplied, inputs=inputs,
         raw_files=raw_files, final=final,
         final_hash=final_hash, merge=merge_occupations, merges=built.merges,
-        other_datum=other_datum)
+        other_datum=other_datum,
+        awaiting=built.awaiting,
+        changes=changes.as_dict() if changes is not None else None)
     delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(
         arc, survey_id, facts, lambda anchor: write(final, replace(ctx, anchor=anchor)),
         final_size, target, lineage_path)
@@ -222,7 +242,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         n_stations=facts.n_stations, n_records=final.num_rows,
         edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
         unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
-        merges=built.merges)
+        merges=built.merges, awaiting=built.awaiting,
+        changes=changes.as_dict() if changes is not None else None)
 
 
 def _require_inputs(arc: Archive, manifest: dict[str, Any],
@@ -275,7 +296,9 @@ def _record(arc: Archive, survey_id: int, f: DeliveryFacts,
                              "allowed_flags": bool(f.allow_flags),
                              "unacknowledged_flags": f.flags,
                              "merge_occupations": bool(f.merge),
-                             "merged_stations": sum(1 for m in f.merges if m["merged"])},
+                             "merged_stations": sum(1 for m in f.merges if m["merged"]),
+                             **({"changed_since": f.changes["delivery"],
+                                 "changes": f.changes["counts"]} if f.changes else {})},
                             survey_id=survey_id, rows=[row])
             if (event.seq, event.prev_hash) != (anchor.event, anchor.after):
                 raise RuntimeError(f"delivery {next_id}: its event {event.seq} is not the "

@@ -76,7 +76,8 @@ def _solution_row(r: dict[str, Any]) -> dict[str, Any]:
     return _position(r) | {"part": r["part"], "delivered": r["delivered"], "node": r["node"],
                            "index": r.get("point_index"), "flags": r["flags"],
                            "t_start": r["t_start"], "t_end": r["t_end"],
-                           "from_margins": r["from_margins"]}
+                           "from_margins": r["from_margins"],
+                           "solved_by": r.get("solved_by")}
 
 
 def trace_station(arc: Archive, survey_id: int, line: float, point: float,
@@ -110,6 +111,11 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     cloud = None
     if solved:
         cloud = station_cloud(arc, run.id, line, point)
+    from archive.solve.reuse import solved_by
+
+    by = solved_by(arc, run, {r["node"] for r in solved})
+    for r in solved:
+        r["solved_by"] = by[str(r["node"])]  # an earlier run when its rows were reused
     keys = sorted({int(r["occupation"]) for r in solved if r["occupation"] is not None}
                   | {o["index"] for o in delivered})
     occupations = []

@@ -237,7 +237,7 @@ def _rows(found: stages.WindowSet, parts: stages.Parts, st: dict[str, np.ndarray
                   else np.full(parts.n_rows, np.nan)), "span_s": span, "spread": spread, **pre,
         "estimator": np.full(parts.n_rows, params["estimate"]["estimator"], dtype=object),
         "flags": flags,
-        "occupation": np.where(kind == "logged", w.occupation[rw], 0),
+        "occupation": np.where(kind != "unlogged", w.occupation[rw], 0),
         "deployed": w.deployed[rw], "retrieved": w.retrieved[rw],
         "from_margins": found.from_margins[rw],
         "dof": np.full(parts.n_rows, np.nan),  # the normal quantile (batch, ar1)

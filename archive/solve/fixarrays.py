@@ -142,21 +142,68 @@ def fix_arrays(table: pa.Table) -> FixArrays:
                    _no_quality(table))
 
 
-def read_fix_arrays(files: list[pq.ParquetFile]) -> FixArrays:
+READ_COLUMNS = ("node", "time", "raw_line", "valid", "no_quality", "raw_hash", *FLOATS)
+BATCH_ROWS = 1 << 20  # fixes read and converted together
+READERS = 4  # files read at once
+
+
+def _batches(files: list[pq.ParquetFile], rows: int) -> list[list[pq.ParquetFile]]:
+    """The files in order, grouped into runs of about ``rows`` fixes (a file never split)."""
+    out: list[list[pq.ParquetFile]] = [[]]
+    n = 0
+    for f in files:
+        if out[-1] and n + f.metadata.num_rows > rows:
+            out.append([])
+            n = 0
+        out[-1].append(f)
+        n += f.metadata.num_rows
+    return out
+
+
+def _read_one(f: pq.ParquetFile) -> tuple[pa.Table, pa.ChunkedArray]:
+    """The solver's columns of one file, conformed, and its ``raw_hash`` column
+    dictionary-encoded (read so when the file was opened with ``read_dictionary``: the
+    64-character hash repeated on every fix is never spelled out)."""
+    have = set(f.schema_arrow.names)
+    t = f.read(columns=[c for c in READ_COLUMNS if c in have], use_threads=False)
+    rh = t["raw_hash"]
+    if not pa.types.is_dictionary(rh.type):
+        rh = pc.dictionary_encode(rh)
+    return conform_fixes(t.drop_columns(["raw_hash"])), rh
+
+
+def _read_batch(files: list[pq.ParquetFile]) -> tuple[pa.Table, list[pa.Array]]:
+    """:func:`_read_one` of these files, concatenated in order; several files are read at
+    once (a small file's read is mostly waiting, and releases the GIL)."""
+    if len(files) < 4:
+        got = [_read_one(f) for f in files]
+    else:
+        from concurrent.futures import ThreadPoolExecutor
+
+        with ThreadPoolExecutor(max_workers=READERS) as pool:
+            got = list(pool.map(_read_one, files))
+    chunks = [c.cast(pa.dictionary(pa.int32(), pa.string())) for _, rh in got
+              for c in rh.chunks]
+    return pa.concat_tables([t for t, _ in got]), chunks
+
+
+def read_fix_arrays(files: list[pq.ParquetFile], batch_rows: int = BATCH_ROWS) -> FixArrays:
     """:func:`fix_arrays` of the fix tables of ``files`` concatenated in the order given,
-    read one file at a time into arrays sized from the files' metadata: the whole table
-    never sits in memory beside its arrays (at 1 s logging it would be as large again).
-    ``raw_hash`` is kept dictionary-encoded, one chunk per file."""
+    read in batches of about ``batch_rows`` fixes (only the columns the solver uses), each
+    batch converted to numpy once, into arrays sized from the files' metadata: the whole
+    table never sits in memory beside its arrays (at 1 s logging it would be as large
+    again), and a survey of many small logs is not converted file by file.
+    ``raw_hash`` is kept dictionary-encoded."""
     n = sum(f.metadata.num_rows for f in files)
     t_raw = np.empty(n, dtype=np.int64)
     raw_line = np.empty(n, dtype=np.int64)
     valid = np.empty(n, dtype=bool)
     unrated = np.empty(n, dtype=bool)
-    local = np.empty(n, dtype=np.int64)  # node code among the names of its own file
+    local = np.empty(n, dtype=np.int64)  # node code among the names of its own batch
     floats = {name: np.empty(n, dtype=np.float64) for name in FLOATS}
-    chunks, file_names, at = [], [], 0
-    for f in files:
-        t = conform_fixes(f.read())  # every version of the fix table read alike
+    chunks, batch_names, at = [], [], 0
+    for group in _batches(files, batch_rows):
+        t, hashes = _read_batch(group)
         m = t.num_rows
         t_raw[at:at + m] = pc.cast(t["time"], pa.int64()).to_numpy(zero_copy_only=False)
         raw_line[at:at + m] = t["raw_line"].to_numpy()
@@ -167,15 +214,15 @@ def read_fix_arrays(files: list[pq.ParquetFile]) -> FixArrays:
         names = pc.unique(t["node"]).to_pylist()
         local[at:at + m] = pc.index_in(t["node"], value_set=pa.array(names, pa.string())
                                        ).to_numpy(zero_copy_only=False)
-        file_names.append((at, at + m, names))
-        chunks.extend(pc.dictionary_encode(t["raw_hash"]).chunks)
+        batch_names.append((at, at + m, names))
+        chunks.extend(hashes)
         at += m
         del t
-        pa.default_memory_pool().release_unused()  # the decoding buffers of that file
-    names = sorted({x for _, _, ns in file_names for x in ns})
+        pa.default_memory_pool().release_unused()  # the decoding buffers of that batch
+    names = sorted({x for _, _, ns in batch_names for x in ns})
     lookup = {x: i for i, x in enumerate(names)}
     codes = np.empty(n, dtype=np.int64)
-    for a, b, ns in file_names:  # one entry per file, not per fix
+    for a, b, ns in batch_names:  # one entry per batch, not per fix
         codes[a:b] = np.array([lookup[x] for x in ns], dtype=np.int64)[local[a:b]]
     del local
     raw_hash = (pa.chunked_array(chunks) if chunks

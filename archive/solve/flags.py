@@ -110,8 +110,9 @@ def flag_strings(cols: dict[str, np.ndarray], p: dict[str, Any]) -> np.ndarray:
         "quality-unknown": occupied & (unrated > unrated_share * used),
     }
     assert list(tests) == list(FLAGS)
+    waiting = cols["kind"] == "awaiting"  # nothing solved, nothing to review yet
     out = np.full(len(used), "", dtype=object)
     for key, hit in tests.items():
-        hit = np.asarray(hit, dtype=bool)
+        hit = np.asarray(hit, dtype=bool) & ~waiting
         out[hit] = np.where(out[hit] == "", key, out[hit] + ";" + key)
     return out

@@ -11,7 +11,9 @@ once while memory stays bounded.
 from __future__ import annotations
 
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass, field
+from datetime import UTC, timedelta
 from typing import Any
 
 import numpy as np
@@ -27,9 +29,34 @@ from archive.solve.parts import used_indices
 from archive.store.archive import Archive
 from archive.store.models import InputVersion, RawFile, Survey
 from archive.survey.inputs import require_input
-from archive.survey.occupations import with_occupations
+from archive.survey.occupations import EPOCH, with_occupations
+from archive.times import us_array
 
-PARTITION_FIXES = 4_000_000
+PARTITION_FIXES = 1_000_000
+"""Most fixes of one partition: its arrays and working copies take about 500 bytes a fix,
+and :func:`solve_threads` partitions are in flight at once."""
+MIN_PARTITION_FIXES = 200_000  # below this a partition's fixed costs dominate
+
+
+def solve_threads() -> int:
+    """Partitions solved at once in one process: the cores this process may use, at most
+    2 (each partition in flight holds its fixes in memory), or ``NODEKEEP_SOLVE_THREADS``."""
+    import os
+
+    env = os.environ.get("NODEKEEP_SOLVE_THREADS", "").strip()
+    if env.isdigit() and int(env) > 0:
+        return int(env)
+    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else \
+        (os.cpu_count() or 1)
+    return max(1, min(cores, 2))
+
+
+def partition_limit(total: int, threads: int | None = None) -> int:
+    """Fixes per partition for a solve of ``total`` fixes: enough partitions to keep
+    every thread busy (two per thread), none above :data:`PARTITION_FIXES`."""
+    threads = threads or solve_threads()
+    share = -(-total // (2 * threads)) if total else 0
+    return min(PARTITION_FIXES, max(MIN_PARTITION_FIXES, share))
 
 
 @dataclass
@@ -198,17 +225,21 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
                          hint="give stations as LINE:POINT, e.g. 1001:2001")
     nodes = set(deployments["node"].to_pylist()) | set(selection.get("nodes") or [])
     with arc.session() as s:
-        q = select(RawFile.node, RawFile.fixes_hash, RawFile.n_fixes).where(
-            RawFile.survey_id == survey_id, RawFile.fixes_hash.is_not(None))
+        q = select(RawFile.node, RawFile.fixes_hash, RawFile.n_fixes, RawFile.t_first,
+                   RawFile.t_last).where(RawFile.survey_id == survey_id,
+                                         RawFile.fixes_hash.is_not(None))
         rows = s.execute(q.order_by(RawFile.node, RawFile.id)).all()
     if manifest is not None:
         wanted = set(manifest["inputs"]["fixes"])
-        files = [(n, h, c) for n, h, c in rows if h in wanted]
+        rows = [r for r in rows if r[1] in wanted]
+        files = [(n, h, c) for n, h, c, _, _ in rows]
         missing = wanted - {h for _, h, _ in files}
         files += [("", h, 0) for h in sorted(missing)]  # read them anyway: same result
     else:
         restrict = keys is not None or bool(selection.get("nodes"))
-        files = [(n, h, c) for n, h, c in rows if not restrict or n in nodes]
+        rows = [r for r in rows if not restrict or r[0] in nodes]
+        files = [(n, h, c) for n, h, c, _, _ in rows]
+    deployments = with_coverage(deployments, rows)
     datum = json.loads(dem_v.meta or "{}").get("vertical_datum", "") if dem_v else ""
     retired = ((json.loads(dep_v.meta or "{}").get("occupations") or {}).get("retired") or []
                if dep_v else [])
@@ -222,12 +253,48 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
         used=used_indices(dep_all, stations, retired))
 
 
-def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> list[Partition]:
-    """Node partitions of at most about ``limit`` fixes (a node is never split)."""
+def with_coverage(deployments: pa.Table, logs: Sequence[Any]) -> pa.Table:
+    """``deployments`` with a ``covered`` column: a loaded log of the node overlaps the
+    deployment's window (:func:`archive.survey.harvest.covered`; ``logs`` are catalog rows
+    (node, fixes hash, fixes, first fix time, last fix time) of the raw files solved)."""
+    from archive.survey.harvest import OPEN, covered
+
+    def us(t: Any) -> int:
+        return OPEN if t is None else _utc_us(t)
+
+    flag = covered(np.array(deployments["node"].to_pylist(), dtype=object),
+                   us_array(deployments["deployed"], OPEN),
+                   us_array(deployments["retrieved"], OPEN),
+                   np.array([r[0] for r in logs], dtype=object),
+                   np.array([us(r[3]) for r in logs], dtype=np.int64),
+                   np.array([us(r[4]) for r in logs], dtype=np.int64))
+    if "covered" in deployments.column_names:
+        deployments = deployments.drop_columns(["covered"])
+    return deployments.append_column("covered", pa.array(flag, pa.bool_()))
+
+
+def _utc_us(t: Any) -> int:
+    """A catalog time (aware, or naive UTC from SQLite) as integer microseconds."""
+    if t.tzinfo is None:
+        t = t.replace(tzinfo=UTC)
+    return (t - EPOCH) // timedelta(microseconds=1)
+
+
+def partitions(arc: Archive, inp: SolveInputs, limit: int | None = None, *,
+               skip: set[str] | None = None) -> list[Partition]:
+    """Node partitions of at most about ``limit`` fixes (a node is never split; by default
+    :func:`partition_limit` of the fixes to solve); the nodes of ``skip`` (solved in an
+    earlier run, :mod:`archive.solve.reuse`) are left out."""
+    skip = skip or set()
+    if limit is None:
+        limit = partition_limit(sum(n or 0 for node, _, n in inp.fix_files
+                                    if node not in skip))
     by_node: dict[str, list[tuple[str, int]]] = {}
     for node, h, n in inp.fix_files:
-        by_node.setdefault(node, []).append((h, n))
+        if node not in skip:
+            by_node.setdefault(node, []).append((h, n))
     dep_nodes = np.array(inp.deployments["node"].to_pylist(), dtype=object)
+    skipped = np.array([n in skip for n in dep_nodes], dtype=bool)  # one per record
     out: list[Partition] = []
     cur_nodes: list[str] = []
     cur_h: list[str] = []
@@ -253,7 +320,7 @@ def partitions(arc: Archive, inp: SolveInputs, limit: int = PARTITION_FIXES) -> 
     if cur_nodes or not out:
         flush()
     solved = set(by_node)
-    lonely = np.array([n not in solved for n in dep_nodes], dtype=bool)
+    lonely = np.array([n not in solved for n in dep_nodes], dtype=bool) & ~skipped
     if lonely.any():  # deployments whose node has no fixes: unoccupied rows
         out.append(Partition([], [], 0, inp.deployments.filter(pa.array(lonely, pa.bool_()))))
     return out
@@ -279,7 +346,8 @@ def load_fix_arrays(arc: Any, hashes: list[str]) -> FixArrays:
     (:func:`archive.solve.fixarrays.read_fix_arrays`); ``arc`` has the ``objects`` store."""
     if not hashes:
         return fix_arrays(empty_fixes())
-    return read_fix_arrays([arc.objects.parquet_file(h) for h in hashes])
+    return read_fix_arrays([arc.objects.parquet_file(h, read_dictionary=["raw_hash"])
+                            for h in hashes])
 
 
 def check_objects(arc: Archive, manifest: dict[str, Any], *, rehash: bool = True) -> None:

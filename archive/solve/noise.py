@@ -44,8 +44,8 @@ from typing import Any
 import numpy as np
 from scipy.optimize import nnls
 from scipy.special import digamma, polygamma
-from scipy.stats import f as f_dist
 
+from archive.solve.quantiles import f_ppf
 from archive.solve.uncertainty import CHI2_2_95
 
 BLOCK0_S = 60.0  # shortest block, s
@@ -335,4 +335,4 @@ def coverage_factor(dof: np.ndarray) -> np.ndarray:
     """k² by which a covariance with ``dof`` effective degrees of freedom is expanded so its
     χ²₂ 95 % ellipse becomes the Hotelling one: 2·F₀.₉₅(2, ν)/χ²₂(0.95) (1 as ν → ∞)."""
     nu = np.minimum(np.asarray(dof, dtype=float), 1e7)
-    return np.where(np.isfinite(nu), 2 * f_dist.ppf(0.95, 2, nu) / CHI2_2_95, 1.0)
+    return np.where(np.isfinite(nu), 2 * f_ppf(0.95, 2, nu) / CHI2_2_95, 1.0)

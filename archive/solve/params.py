@@ -29,6 +29,9 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
         "settle_end_min": (30.0, "minutes dropped before the logged retrieval time"),
         "margin_fallback": (True, "solve from the settle margins when the settled window has "
                                   "no usable fix (a node that died just after lay-out)"),
+        "hold_unharvested": (True, "a deployment no loaded log of its node overlaps awaits "
+                                   "harvest: not solved, not flagged, held back from "
+                                   "deliveries (false: solved as unoccupied)"),
     },
     "screen": {
         "min_quality": (1, "lowest GGA fix quality kept (0 = no fix)"),
@@ -97,6 +100,7 @@ _SPEC: dict[str, dict[str, tuple[Any, str]]] = {
 # read through :func:`setting` with the value that gives the old behaviour.
 BEFORE: dict[tuple[str, str], Any] = {
     ("window", "margin_fallback"): False,
+    ("window", "hold_unharvested"): False,
     ("flags", "min_fix_fraction"): 0.0,
     ("flags", "min_span_fraction"): None,  # the absolute rule of flags.min_span_hours
     ("flags", "move_method"): "blocks",

@@ -5,7 +5,7 @@ finished only once all its rows are together: the solver leaves what each row gi
 model in working columns (:data:`WORK`, after the schema's), and :func:`finish` fits the
 model on the rows in the table's order, fills in the uncertainty columns and drops the
 working ones. :func:`archive.solve.engine.solve_fixes` finishes its own table; a run solved
-in node partitions finishes the combined one (:func:`archive.solve.run._combine`), so the
+in node partitions finishes the combined one (:func:`archive.solve.solving.finish_rows`), so the
 positions do not depend on how the nodes were partitioned.
 """
 

@@ -33,10 +33,10 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import chi2
 
 from archive.solve.estimators import ESTIMATORS
 from archive.solve.kernels import robust_segments, run_split
+from archive.solve.quantiles import chi2_ppf
 from archive.solve.segments import seg_median_reference, seg_starts, seg_sum
 
 MIN_SCALE = 1e-3  # m: a cloud of identical fixes still gets a usable scale
@@ -102,7 +102,7 @@ def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
     north = np.ascontiguousarray(xs[1], dtype=np.float64) if dim == 2 else np.zeros(n)
     hd = np.ascontiguousarray(hdop, dtype=np.float64)  # cleaned and inverted in the kernel
     starts, counts = seg_starts(np.asarray(seg), n_seg)
-    limit = float(np.sqrt(chi2.ppf(reject_quantile, dim))) if reject_quantile < 1.0 else np.inf
+    limit = float(np.sqrt(chi2_ppf(reject_quantile, dim))) if reject_quantile < 1.0 else np.inf
     mean = est.one_step
     centre = np.zeros((2, n_seg))
     scale = np.full(n_seg, MIN_SCALE)
@@ -112,7 +112,7 @@ def robust_centre(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
     run_split(robust_segments, counts, e, north, hd, starts, counts, est.kernel_code,
               float(huber_k), float(tukey_c), limit, 1 if mean else int(scale_updates),
               1 if mean else int(iterations), int(scale_sample or 0),
-              float(np.sqrt(chi2.ppf(0.5, dim))), MIN_SCALE, centre, scale, weight, rejected, r)
+              float(np.sqrt(chi2_ppf(0.5, dim))), MIN_SCALE, centre, scale, weight, rejected, r)
     return RobustResult(centre=list(centre[:dim]), scale=scale, weight=weight, rejected=rejected, r=r)
 
 
@@ -158,7 +158,7 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
 
     hd = _clean_hdop(hdop)
     prior = 1.0 / (hd * hd)
-    median_unit = np.sqrt(chi2.ppf(0.5, dim))
+    median_unit = np.sqrt(chi2_ppf(0.5, dim))
     centre = [seg_median_reference(x, seg, n_seg, scale_sample) for x in xs]
     centre = [np.where(np.isfinite(c), c, 0.0) for c in centre]
     active = np.ones(len(seg), dtype=bool)
@@ -168,7 +168,7 @@ def _robust_block(xs: Sequence[np.ndarray], hdop: np.ndarray, seg: np.ndarray, n
         s = seg_median_reference(z[idx], seg[idx], n_seg, scale_sample) / median_unit
         return np.maximum(np.nan_to_num(s, nan=MIN_SCALE), MIN_SCALE)
 
-    limit = np.sqrt(chi2.ppf(reject_quantile, dim)) if reject_quantile < 1.0 else np.inf
+    limit = np.sqrt(chi2_ppf(reject_quantile, dim)) if reject_quantile < 1.0 else np.inf
     rounds = 1 if est.one_step else scale_updates
     steps = 1 if est.one_step else iterations
     scale = np.full(n_seg, MIN_SCALE)

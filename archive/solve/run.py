@@ -15,31 +15,27 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from dataclasses import dataclass, field
-from types import SimpleNamespace
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import pyarrow as pa
 import pyarrow.compute as pc
 from sqlalchemy import select
 
 from archive import __version__
-from archive.edits.spans import manifest_spans
 from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
-from archive.solve.engine import solve_fixes
-from archive.solve.inputs import (
-    Partition,
-    SolveInputs,
-    check_objects,
-    load_fix_arrays,
-    partitions,
-    survey_inputs,
-)
-from archive.solve.params import resolve_params
 from archive.solve.schema import FLAGS
+from archive.solve.schema import SORT_KEYS as RUN_ORDER
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
 from archive.store.models import Run, utcnow
+
+if TYPE_CHECKING:
+    from archive.solve.inputs import SolveInputs
+
+# The solver itself (archive.solve.inputs, .solving and the engine under them: numba, scipy,
+# pandas) is imported by the functions that solve, so that commands which only read runs
+# start in a fraction of a second.
 
 MANIFEST_FORMAT = 3
 """Format 3: positions carry each row's delivered point index, the time it holds and the
@@ -47,9 +43,7 @@ degrees of freedom of its uncertainty (``POSITION_SCHEMA``). Format 2 runs (occu
 last part of a moved node delivered) are recomputed in ``POSITION_SCHEMA_V2``, format 1 runs
 (solved before occupations were numbered) in ``POSITION_SCHEMA_V1``."""
 
-SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
-             ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
-             ("part", "ascending")]
+SORT_KEYS = RUN_ORDER  # the run's row order
 
 
 @dataclass
@@ -93,147 +87,6 @@ def build_manifest(inp: SolveInputs, params: dict[str, Any], selection: dict[str
     }
 
 
-def _solve(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
-           progress: Progress, *, scheduler: str | None = None,
-           workers: int | None = None) -> tuple[pa.Table, dict[str, Any]]:
-    """Solve the manifest's inputs partition by partition (nodes), sorted as one table.
-
-    With a Dask ``scheduler`` address or a number of local ``workers``, the partitions are
-    solved on Dask by :func:`solve_partition` (see :mod:`archive.scale.distributed`).
-    """
-    if scheduler or workers:
-        return _solve_distributed(arc, manifest, inp, progress, scheduler, workers)
-    dem = inp.open_dem(arc)
-    sampler = _height_sampler(dem, manifest["survey"]["crs_epsg"])
-    tables, stats = [], {}
-    parts = partitions(arc, inp)
-    progress.start(sum(p.n_fixes for p in parts), "fixes", "solving")
-    try:
-        for part in parts:
-            pos, st = _solve_part(arc, part, inp, manifest, sampler)
-            tables.append(pos)
-            _add_stats(stats, st)
-            progress.advance(part.n_fixes, f"{len(part.nodes)} nodes")
-    finally:
-        progress.close()
-        if dem is not None:
-            dem.close()
-    table, more = _combine(tables, manifest)
-    return table, stats | more
-
-
-def _height_sampler(dem: Any, epsg: int):
-    """The elevation model sampled at survey-CRS coordinates (None without a model)."""
-    if dem is None:
-        return None
-
-    def sampler(x, y):
-        return dem.sample(x, y, epsg)
-
-    return sampler
-
-
-def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[str, Any],
-                sampler: Any) -> tuple[pa.Table, dict[str, Any]]:
-    """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from."""
-    survey = manifest["survey"]
-    fixes = load_fix_arrays(holder, part.fix_hashes)
-    out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
-                      survey["crs_epsg"], excludes=manifest_spans(manifest["edits"]),
-                      sampler=sampler, orthometric=_orthometric(survey),
-                      detect_unlogged=inp.detect_unlogged, used=inp.used, finish=False)
-    pos = out.positions
-    if inp.station_keys is not None:
-        pos = inp.keep_selected(pos)
-    return pos, out.stats
-
-
-def _add_stats(total: dict[str, Any], more: dict[str, Any]) -> None:
-    for k, v in more.items():
-        total[k] = total.get(k, 0) + v
-
-
-def _combine(tables: list[pa.Table], manifest: dict[str, Any]
-             ) -> tuple[pa.Table, dict[str, Any]]:
-    """The partitions' positions as one table in the run's sort order, in the schema of
-    the manifest's format (format 1 runs have no occupation columns, format 2 runs none of
-    the part and uncertainty columns of format 3) and without the columns its parameters
-    predate (:func:`~archive.solve.schema.conform_positions`). With the pooled uncertainty
-    the error model is fitted here, on every row of the run at once
-    (:mod:`archive.solve.pooled`); it goes to the run summary."""
-    from archive.solve.pooled import WORK, finish
-    from archive.solve.schema import (
-        POSITION_SCHEMA,
-        POSITION_SCHEMA_V1,
-        POSITION_SCHEMA_V2,
-        conform_positions,
-    )
-
-    table = pa.concat_tables(tables) if tables else POSITION_SCHEMA.empty_table()
-    table = conform_positions(table, manifest["params"])
-    table = table.take(pc.sort_indices(table, sort_keys=SORT_KEYS)).combine_chunks()
-    more: dict[str, Any] = {}
-    if all(c in table.column_names for c in WORK):
-        table, model = finish(table, manifest["params"], manifest["survey"]["crs_epsg"])
-        more["noise_model"] = model.as_dict()
-    fmt = manifest.get("format", 1)
-    if fmt < 3:
-        schema = POSITION_SCHEMA_V1 if fmt < 2 else POSITION_SCHEMA_V2
-        table = table.select(schema.names).cast(schema)
-    return table, more
-
-
-def solve_partition(part: Partition, shared: tuple[str, SolveInputs, dict[str, Any]]
-                    ) -> tuple[pa.Table, dict[str, Any]]:
-    """Solve one node partition anywhere (a Dask worker): ``shared`` is (object store URL,
-    inputs, manifest). Reads the store read-only and opens the elevation model by hash."""
-    from archive.store.objects import ObjectStore
-
-    objects_url, inp, manifest = shared
-    holder = SimpleNamespace(objects=ObjectStore(objects_url, read_only=True))
-    dem = inp.open_dem(holder)
-    try:
-        return _solve_part(holder, part, inp, manifest,
-                           _height_sampler(dem, manifest["survey"]["crs_epsg"]))
-    finally:
-        if dem is not None:
-            dem.close()
-
-
-def _solve_distributed(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
-                       progress: Progress, scheduler: str | None, workers: int | None
-                       ) -> tuple[pa.Table, dict[str, Any]]:
-    from archive.scale.distributed import map_partitions
-
-    parts = partitions(arc, inp)
-    progress.start(sum(p.n_fixes for p in parts), "fixes", "solving")
-    try:
-        results = map_partitions(solve_partition, parts, shared=(arc.objects_url, inp, manifest),
-                                 scheduler=scheduler, workers=workers,
-                                 weights=[p.n_fixes for p in parts], progress=progress)
-    finally:
-        progress.close()
-    stats: dict[str, Any] = {}
-    for _, st in results:
-        _add_stats(stats, st)
-    table, more = _combine([pos for pos, _ in results], manifest)
-    return table, stats | more
-
-
-def _orthometric(survey: dict[str, Any]):
-    try:
-        from archive.survey.heights import gnss_orthometric
-    except ImportError:
-        return None
-    conv = SimpleNamespace(height_mode=survey.get("height_mode", "gga"),
-                           height_param=survey.get("height_param", ""))
-
-    def orth(lon, lat, h_ell, h_msl, sep):
-        return gnss_orthometric(lon, lat, h_ell, h_msl, sep, conv)
-
-    return orth
-
-
 def _counts(table: pa.Table) -> tuple[int, dict[str, int]]:
     flags = table["flags"].to_pylist()
     counts = {k: 0 for k in FLAGS}
@@ -249,13 +102,20 @@ def _counts(table: pa.Table) -> tuple[int, dict[str, int]]:
 def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = None, *,
                  label: str = "", stations: Sequence[tuple[float, float]] | None = None,
                  nodes: Sequence[str] | None = None, progress: Progress | None = None,
-                 scheduler: str | None = None, workers: int | None = None) -> RunResult:
+                 scheduler: str | None = None, workers: int | None = None,
+                 incremental: bool = True) -> RunResult:
     """Solve the survey's deployments (or a selection) and record the run; see module doc.
 
-    ``scheduler`` (a Dask address, ``tcp://HOST:PORT``) or ``workers`` (a local Dask
+    A solve of the whole survey reuses, node by node, the rows of earlier runs whose inputs
+    for that node are unchanged (:mod:`archive.solve.reuse`; ``incremental=False`` solves
+    every node); the run is the same bit for bit either way. ``scheduler`` (a Dask address, ``tcp://HOST:PORT``) or ``workers`` (a local Dask
     cluster of that many processes) fan the node partitions out; the positions, and so the
     run, are the same bit for bit.
     """
+    from archive.solve.inputs import survey_inputs
+    from archive.solve.params import resolve_params
+    from archive.solve.solving import solve_inputs
+
     progress = progress or NoProgress()
     resolved = resolve_params(params or {})
     selection = _selection(stations, nodes)
@@ -269,14 +129,29 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
         summary = json.loads(existing.summary or "{}")
         return RunResult(run_id, False, existing.n_positions, n_flagged,
                          summary.get("flag_counts", {}), summary)
-    table, stats = _solve(arc, manifest, inp, progress, scheduler=scheduler, workers=workers)
+    reuse = None
+    if incremental and selection == _selection(None, None):
+        from archive.solve.reuse import find_reuse, result_keys
+
+        reuse = find_reuse(arc, survey_id, result_keys(inp, manifest))
+    table, stats, unfinished = solve_inputs(
+        arc, manifest, inp, progress, scheduler=scheduler, workers=workers,
+        skip=reuse.nodes if reuse else None, reused=reuse.rows if reuse else None)
     n_flagged, flag_counts = _counts(table)
     delivered = table.filter(table["delivered"])
     summary = {"n_positions": table.num_rows, "n_delivered": delivered.num_rows,
                "n_flagged": n_flagged, "flag_counts": flag_counts,
+               "n_awaiting": int(pc.sum(pc.equal(table["kind"], "awaiting")).as_py() or 0),
                "estimator": resolved["estimate"]["estimator"],
                "uncertainty": resolved["uncertainty"]["method"],
                "dem": inp.dem_hash is not None, **stats}
+    more_objects: list[tuple[str, int, str]] = []
+    if reuse is not None:
+        from archive.solve.reuse import store_results
+
+        summary["results"], more_objects = store_results(arc, unfinished, reuse, run_id)
+        summary["reuse"] = reuse.summary()
+    del unfinished
     m_bytes = canonical_json(manifest)
     m_hash, m_size = arc.objects.put_bytes(m_bytes)
     p_hash, p_size = arc.objects.put_table(table)
@@ -290,6 +165,7 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
             return RunResult(run_id, False, table.num_rows, n_flagged, flag_counts, summary)
         arc.register_object(tx, m_hash, m_size, "manifest")
         arc.register_object(tx, p_hash, p_size, "positions")
+        arc.register_objects(tx, more_objects)
         tx.add(run)
         arc.log(tx, "solve.run", {"run": run_id, "manifest": m_hash, "positions": p_hash,
                                   "digest": run.positions_digest, "label": label,
@@ -352,9 +228,12 @@ def recompute(arc: Archive, run_id: str) -> pa.Table:
         raise IntegrityError(f"the manifest object {run.manifest_hash} of run {run.id[:12]} "
                              "is missing or altered", hint="run 'nodekeep verify'")
     manifest = run_manifest(arc, run)
+    from archive.solve.inputs import check_objects, survey_inputs
+    from archive.solve.solving import solve_inputs
+
     check_objects(arc, manifest)
     inp = survey_inputs(arc, run.survey_id, manifest["selection"], manifest=manifest)
-    table, _ = _solve(arc, manifest, inp, NoProgress())
+    table, _, _ = solve_inputs(arc, manifest, inp, NoProgress())
     return table
 
 
@@ -403,6 +282,11 @@ def station_solution(arc: Archive, survey_id: int, line: float, point: float,
                          hint="check the line and point numbers, or choose a run with --run")
     n_occ = len({r["occupation"] for r in rows if r["occupation"] is not None})
     screen = run_manifest(arc, run)["params"].get("screen", {})
+    from archive.solve.reuse import solved_by
+
+    by = solved_by(arc, run, {r["node"] for r in rows})
+    for r in rows:
+        r["solved_by"] = by[str(r["node"])]  # an earlier run when its rows were reused
     # runs made before the parameter existed accepted every fix that passed the screen
     return {"run": run.id, "n_occupations": n_occ, "rows": rows,
             "no_quality": screen.get("no_quality", "accept")}

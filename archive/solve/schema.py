@@ -5,7 +5,8 @@ station, see :mod:`archive.survey.occupations`); a node that moved during its
 deployment gives one row per part, and ``delivered`` marks the rows to deliver: every part,
 each under its own ``point_index`` and for its own time (``held_from``/``held_to``), or only
 the last part in runs made before parts were delivered (``flags.move_deliver``). Unlogged stationary clusters get rows with ``kind = "unlogged"`` and no node
-window from the log. Easting/northing (and preplot_e/preplot_n) are in the survey CRS's
+window from the log; a deployment no loaded log of its node covers yet gets one row with
+``kind = "awaiting"`` (awaiting harvest: no position, no flags, never delivered). Easting/northing (and preplot_e/preplot_n) are in the survey CRS's
 unit, which may be feet; sigmas, ellipse axes, r95, spread and the distances dist_preplot and
 dist_nearest are always metres (grid distances converted with the CRS's unit factor).
 """
@@ -21,7 +22,7 @@ _POSITION_FIELDS_V1 = [
     pa.field("point", pa.float64(), nullable=False),
     pa.field("index", pa.int8(), nullable=False),
     pa.field("node", pa.string(), nullable=False),
-    pa.field("kind", pa.string(), nullable=False),  # "logged" | "unlogged"
+    pa.field("kind", pa.string(), nullable=False),  # "logged" | "unlogged" | "awaiting"
     pa.field("part", pa.int8(), nullable=False),  # 0 whole window, 1.. parts after a move
     pa.field("delivered", pa.bool_(), nullable=False),  # this row is the one to deliver
     pa.field("t_start", UTC_TIME),  # window used (after settle margins)
@@ -133,3 +134,9 @@ FLAGS = {
     "quality-unknown": "most used fixes carry no quality information (RMC/GLL only): "
                        "weighted by the cloud's own spread",
 }
+
+
+SORT_KEYS = [("kind", "ascending"), ("line", "ascending"), ("point", "ascending"),
+             ("index", "ascending"), ("node", "ascending"), ("t_start", "ascending"),
+             ("part", "ascending")]
+"""The order of a run's positions rows."""

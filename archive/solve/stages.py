@@ -87,6 +87,11 @@ def find_windows(s: Screened, deployments: Any, stations: dict[str, np.ndarray],
         margins = (settled == 0) & (whole > 0)
         logged.start = np.where(margins, raw_s, logged.start)
         logged.end = np.where(margins, raw_e, logged.end)
+    if (setting(params, "window", "hold_unharvested") and len(logged)
+            and "covered" in deployments.column_names):
+        # no loaded log of the node overlaps the deployment: it awaits harvest
+        waiting = ~deployments["covered"].to_numpy(zero_copy_only=False).astype(bool)
+        logged.kind = np.where(waiting, "awaiting", logged.kind).astype(object)
     windows = logged
     if detect_unlogged and len(s.fx):
         inside = inside_any(s.fx, logged.code, raw_s, raw_e)

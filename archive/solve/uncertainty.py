@@ -28,12 +28,12 @@ from functools import lru_cache
 
 import numpy as np
 from scipy.special import ndtr
-from scipy.stats import chi2
 
 from archive.solve.kernels import batch_segments, run_split
+from archive.solve.quantiles import chi2_ppf
 from archive.solve.segments import seg_starts, seg_sum
 
-CHI2_2_95 = float(chi2.ppf(0.95, 2))  # 5.991465
+CHI2_2_95 = float(chi2_ppf(0.95, 2))  # 5.991465
 
 
 def ar1_mean_variance(sigma2: np.ndarray | float, rho: np.ndarray | float,

@@ -195,13 +195,17 @@ class ObjectStore:
             self._verified[h] = stamp
         return data
 
-    def parquet_file(self, h: str) -> pq.ParquetFile:
-        """A ParquetFile over a stored, checked Parquet object (for streaming by row group)."""
+    def parquet_file(self, h: str, read_dictionary: list[str] | None = None
+                     ) -> pq.ParquetFile:
+        """A ParquetFile over a stored, checked Parquet object (for streaming by row group);
+        the columns of ``read_dictionary`` are read dictionary-encoded."""
         self.ensure_intact(h)
         try:
             if self.root is not None:
-                return pq.ParquetFile(str(self.root / fanout(h)), memory_map=True)
-            return pq.ParquetFile(self._fs.open_input_file(self.location(h)))
+                return pq.ParquetFile(str(self.root / fanout(h)), memory_map=True,
+                                      read_dictionary=read_dictionary)
+            return pq.ParquetFile(self._fs.open_input_file(self.location(h)),
+                                  read_dictionary=read_dictionary)
         except (pa.ArrowException, OSError) as exc:
             raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
 

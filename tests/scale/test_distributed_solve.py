@@ -14,6 +14,7 @@ import pytest
 
 from archive.solve import inputs as solve_inputs
 from archive.solve import run as solve_run
+from archive.solve import solving
 from archive.store.archive import Archive
 from archive.store.hashing import table_digest
 from archive.store.verify import verify_archive
@@ -33,10 +34,11 @@ def test_solve_on_two_dask_workers_is_bit_identical(tmp_path, small_scenario, ru
     root = tmp_path / "arc"
     arc = Archive.init(root, actor="office")
     survey_id = populate(arc, small_scenario, n_logs=12)
-    monkeypatch.setattr(solve_run, "partitions",
-                        lambda a, inp: solve_inputs.partitions(a, inp, limit=PART_FIXES))
+    monkeypatch.setattr(solving, "partitions",
+                        lambda a, inp, skip=None: solve_inputs.partitions(a, inp, limit=PART_FIXES,
+                                                                          skip=skip))
     inp = solve_inputs.survey_inputs(arc, survey_id, {"stations": None, "nodes": None})
-    parts = solve_run.partitions(arc, inp)
+    parts = solving.partitions(arc, inp)
     assert len([p for p in parts if p.nodes]) >= 3
     try:
         with LocalCluster(n_workers=2, threads_per_worker=1, processes=False,

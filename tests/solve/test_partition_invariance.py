@@ -2,7 +2,7 @@
 node partitions (and spread over Dask workers), so solving all nodes at once and node by
 node must give the same bits. Every cloud is solved on its own; the pooled error model
 behind the uncertainty is fitted once the partitions are combined, on all the run's rows in
-the run's order (:func:`archive.solve.run._combine`)."""
+the run's order (:func:`archive.solve.solving.combine`)."""
 
 from __future__ import annotations
 
@@ -12,7 +12,8 @@ import pyarrow.compute as pc
 from archive.solve.engine import solve_fixes
 from archive.solve.params import default_params
 from archive.solve.pooled import WORK
-from archive.solve.run import MANIFEST_FORMAT, SORT_KEYS, _combine
+from archive.solve.run import MANIFEST_FORMAT, SORT_KEYS
+from archive.solve.solving import combine
 from archive.store.hashing import table_digest
 
 
@@ -44,8 +45,8 @@ def test_solving_node_by_node_equals_solving_all_at_once(small_sim):
     for name in raw_a.column_names:
         assert raw_a[name].equals(raw_b[name]), name
     # the finished run, whatever the partitions
-    a, _ = _combine([together], manifest)
-    b, _ = _combine(parts, manifest)
+    a, _ = combine([together], manifest)
+    b, _ = combine(parts, manifest)
     assert not set(WORK) & set(a.column_names)
     assert table_digest(a) == table_digest(b)
 

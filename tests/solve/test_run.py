@@ -172,7 +172,8 @@ def test_parameters_of_an_older_run_solve_as_they_did(small_sim) -> None:
     quantile, the hour-block detector, and delivers the later part for the whole stay."""
     from archive.solve.engine import solve_fixes
     from archive.solve.params import BEFORE, default_params
-    from archive.solve.run import MANIFEST_FORMAT, _combine
+    from archive.solve.run import MANIFEST_FORMAT
+    from archive.solve.solving import combine
 
     old = {sec: {k: v for k, v in keys.items() if (sec, k) not in BEFORE}
            for sec, keys in default_params().items()}
@@ -191,6 +192,6 @@ def test_parameters_of_an_older_run_solve_as_they_did(small_sim) -> None:
     assert pos["point_index"][later] == pos["occupation"][later]
     assert pos["held_from"][later] == pos["deployed"][later]
     assert all(d is None for d in pos["dof"])  # the normal quantile
-    v2, _ = _combine([out], {"format": 2, "params": old,
+    v2, _ = combine([out], {"format": 2, "params": old,
                              "survey": {"crs_epsg": sim.meta["epsg"]}})
     assert "point_index" not in v2.column_names and MANIFEST_FORMAT == 3

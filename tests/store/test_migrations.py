@@ -96,3 +96,10 @@ def test_a_library_upgrade_is_ledgered(tmp_path):
                 .seq == ev.seq
     finally:
         arc.close()
+
+
+def test_the_fast_schema_check_knows_the_scripts_head():
+    """The revision an archive is checked against without alembic is the scripts' head."""
+    from archive.store import migrate
+
+    assert migrate.head_revision() == migrate.HEAD

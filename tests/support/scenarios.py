@@ -35,3 +35,28 @@ def scenario_archive(base: Path, *, seed: int, size: str = "small", control: boo
     load_fix_files(arc, sid, [sc.out_dir / "logs"])
     run_id = solve_survey(arc, sid).run_id if solve else None
     return arc, sid, run_id, sc
+
+
+def harvest_in_progress(base: Path, *, seed: int, size: str = "small", every: int = 2
+                        ) -> tuple[Archive, int, Any, list[Path], list[Path]]:
+    """A generated scenario mid-survey: the preplot and the whole deployment log loaded,
+    the logs of every ``every``-th node (in order of their file names) harvested and loaded,
+    the rest still in the ground. Returns (archive, survey id, scenario, logs loaded, logs
+    not yet loaded)."""
+    from archive.seeds.scenario import generate
+
+    from archive.ingest.load import load_fix_files
+    from archive.survey.inputs import load_input
+    from archive.survey.surveys import create_survey
+
+    sc = generate(base / "scenario", seed=seed, size=size)
+    arc = Archive.init(base / "archive", actor="tester")
+    sid = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
+                        vertical_datum=sc.vertical_datum, client=sc.client,
+                        contractor=sc.contractor).id
+    load_input(arc, sid, "stations", sc.preplot)
+    load_input(arc, sid, "deployments", sc.deployments)
+    logs = sorted((sc.out_dir / "logs").glob("*.nmea"))
+    loaded, waiting = logs[::every], [p for i, p in enumerate(logs) if i % every]
+    load_fix_files(arc, sid, loaded, workers=1)
+    return arc, sid, sc, loaded, waiting
