@@ -81,8 +81,10 @@ def solve_text(head: str, run_id: str, n_positions: int, summary: dict[str, Any]
               metavar="FILE.toml", help="Parameters overriding the defaults ('nodekeep params').")
 @click.option("--label", default="", help="A note kept with the run.")
 @click.option("--stations", default=None, metavar="LINE:POINT,...",
-              help="Solve only these stations.")
-@click.option("--nodes", default=None, metavar="SERIAL,...", help="Solve only these nodes.")
+              help="Solve only these stations of the deployment log (an unknown one is "
+                   "refused, nothing recorded).")
+@click.option("--nodes", default=None, metavar="SERIAL,...", help="Solve only these nodes of the deployment log (an unknown serial is "
+                   "refused, nothing recorded).")
 @click.option("--scheduler", default=None, metavar="tcp://HOST:PORT", envvar="NODEKEEP_SCHEDULER",
               help="Solve node partitions on this Dask scheduler (default: $NODEKEEP_SCHEDULER). "
                    "Workers must reach the object store (S3, or a shared folder).")

@@ -35,7 +35,7 @@ from sqlalchemy import func, select
 
 from archive import __version__
 from archive.deliver.changes import DEFAULT_TOLERANCE, changes_since
-from archive.deliver.context import DeliveryContext, station_label
+from archive.deliver.context import DeliveryContext, other_datum_stations, station_label
 from archive.deliver.decisions import with_decisions
 from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
@@ -208,11 +208,16 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         survey = s.get(Survey, survey_id)
     produced = utcnow()
     heights_datum = _heights_datum(arc, survey, manifest)
+    run_survey = manifest.get("survey") if isinstance(manifest.get("survey"), dict) else {}
     ctx = DeliveryContext(
         survey=survey.name, crs_epsg=survey.crs_epsg, client=survey.client,
         contractor=survey.contractor, area=survey.area, vertical_datum=heights_datum,
         run_id=run.id, edit_set_hash=edit_hash, edit_ids=tuple(e.id for e in edits),
-        code_version=__version__, produced_at=produced)
+        code_version=__version__, produced_at=produced,
+        height_mode=str(run_survey.get("height_mode") or survey.height_mode or "gga"),
+        height_param=str(run_survey.get("height_param") or survey.height_param or ""))
+    other_datum = [{"record": name, "datum": ctx.gnss_datum}
+                   for name in other_datum_stations(final, ctx)]
 
     final_hash, final_size = arc.objects.put_table(final)
     facts = DeliveryFacts(
@@ -223,6 +228,7 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         unapplied=unapplied, inputs=inputs,
         raw_files=raw_files, final=final,
         final_hash=final_hash, merge=merge_occupations, merges=built.merges,
+        other_datum=other_datum,
         awaiting=built.awaiting,
         changes=changes.as_dict() if changes is not None else None)
     delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(

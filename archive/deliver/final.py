@@ -43,7 +43,7 @@ import pyarrow.compute as pc
 
 from archive.edits.kinds import POSITION_FLAGS
 from archive.edits.log import edit_set
-from archive.solve.run import run_manifest
+from archive.solve.run import manifest_inputs, run_manifest
 from archive.store.archive import Archive
 from archive.store.models import Run
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
@@ -57,6 +57,7 @@ FINAL_SCHEMA = pa.schema(
         pa.field("point", pa.float64(), nullable=False),
         pa.field("index", pa.int8(), nullable=False),  # delivered point index (occupation)
         pa.field("station_index", pa.int8(), nullable=False),  # the preplot station's index
+        pa.field("code", pa.string()),  # the preplot station's point code (SPS columns 25-26)
         pa.field("node", pa.string()),
         # the time the position holds: the occupation's logged window, cut at the move for
         # each part of a moved node
@@ -89,7 +90,7 @@ FINAL_SCHEMA = pa.schema(
         pa.field("occupation", pa.int8()),
         pa.field("part", pa.int8()),
     ],
-    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "3"},
+    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "4"},
 )
 
 Key = tuple[float, float, int]
@@ -330,7 +331,28 @@ def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None =
 
             table, merges = merge_occupations(table, survey_crs(epsg).unit_factor, height_at)
             table = _sorted(_with_lonlat(table, epsg))
+    stations_hash = manifest_inputs(run_manifest(arc, run)).get("stations")
+    if stations_hash:
+        table = with_point_codes(table, arc.objects.read_table(stations_hash))
     return Final(table, merges, awaiting_harvest(positions, table))
+
+
+def with_point_codes(table: pa.Table, stations: pa.Table) -> pa.Table:
+    """The final table with ``code`` set to the preplot's point code of each record's
+    station (line, point, preplot index), so a delivery keeps what the preplot said about
+    the point (SPS rev 2.1 columns 25-26); null where the preplot has none."""
+    if "code" not in stations.column_names or table.num_rows == 0:
+        return table
+    if "kind" in stations.column_names:  # receiver points; a source point keeps its own code
+        stations = stations.filter(pc.equal(stations["kind"], "R"))
+    codes = {(float(a), float(b), int(c)): k for a, b, c, k in zip(
+        stations["line"].to_pylist(), stations["point"].to_pylist(),
+        stations["index"].to_pylist(), stations["code"].to_pylist(), strict=True) if k}
+    keys = zip(table["line"].to_pylist(), table["point"].to_pylist(),
+               table["station_index"].to_pylist(), strict=True)
+    values = pa.array([codes.get((float(a), float(b), int(c))) for a, b, c in keys], pa.string())
+    return table.set_column(table.schema.get_field_index("code"), FINAL_SCHEMA.field("code"),
+                            values)
 
 
 def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,

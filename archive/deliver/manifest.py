@@ -52,6 +52,8 @@ class DeliveryFacts:
     final_hash: str
     merge: bool
     merges: list[dict[str, Any]]
+    # records whose height is not in the delivery's datum: [{"record", "datum"}]
+    other_datum: list[dict[str, str]] = field(default_factory=list)
     awaiting: list[dict[str, Any]] = field(default_factory=list)  # held back: not harvested
     changes: dict[str, Any] | None = None  # an incremental delivery: what changed since which
     anchor: Anchor | None = None  # known once the delivery holds the ledger's write lock
@@ -117,6 +119,7 @@ def lineage_manifest(f: DeliveryFacts, delivery_id: int) -> dict[str, Any]:
                             "rows": f.final.num_rows},
         "occupations": occupations_of(f.final, f.edits),
         "merges": f.merges,
+        "heights": {"datum": f.heights_datum, "other_datum": f.other_datum},
         # deployments held back because their node's log was not loaded yet
         "awaiting_harvest": {"count": len(f.awaiting), "deployments": f.awaiting},
         **({"changed_since": f.changes} if f.changes is not None else {}),
