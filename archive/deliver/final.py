@@ -47,7 +47,6 @@ from archive.solve.run import manifest_inputs, run_manifest
 from archive.store.archive import Archive
 from archive.store.models import Run
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
-from archive.survey.dem import open_dem
 
 UTC_TIME = pa.timestamp("us", tz="UTC")
 
@@ -314,6 +313,8 @@ def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None =
     sampler = None
     if merge or any(e.kind == "set-position" for e in edits):
         dem_version = (run_manifest(arc, run).get("input_versions") or {}).get("dem")
+        from archive.survey.dem import open_dem  # rasterio loads only when a height is sampled
+
         sampler = open_dem(arc, survey_id, dem_version) if dem_version is not None else None
     with contextlib.ExitStack() as stack:
         height_at = None
