@@ -22,7 +22,7 @@ def summary_text(d: dict) -> str:
         f"logs, {d['n_fixes']:,} fixes, {d['n_rejected_lines']} lines rejected)",
         f"  archive    {d['archive_dir']}",
         f"  run        {d['run_id'][:12]}  ({d['n_delivered']} records delivered: one per "
-        f"occupation, one per part of a moved node; {d['n_flagged']} flagged)",
+        f"occupation, one per part of a moved node; {d['n_flagged']} stations flagged)",
         f"  occupied   {d['n_reoccupied']} stations more than once ({d['n_occupations']} "
         f"occupations of {d['n_stations']} stations, each delivered under its own point "
         "index)",

@@ -231,28 +231,49 @@ def diff(state: CliState, run_a: str, run_b: str, threshold: float, station: str
                   station=where, index=index, node=node)
 
     def text() -> str:
-        s = d["summary"]
-        out = [f"{d['run_a'][:12]} -> {d['run_b'][:12]}: {s['n_common']} occupations in both "
-               "runs (paired by line, point and point index)"]
-        if s.get("n_compared"):
-            out.append(f"horizontal movement (m): mean {s['mean']:.3f}, median "
-                       f"{s['median']:.3f}, 95th percentile {s['p95']:.3f}, rms "
-                       f"{s['rms']:.3f}, max {s['max']:.3f}")
-        out.append(f"{len(d['beyond'])} occupation(s) moved more than {threshold:g} m")
-        if d["beyond"]:
-            out.append(table([(f"{b['line']:g}", f"{b['point']:g}", b["index"],
-                               b.get("node") or "", f"{b['de']:+.3f}", f"{b['dn']:+.3f}",
-                               f"{b['moved']:.3f}", _f(b["dh"], "{:+.3f}"))
-                              for b in d["beyond"][:200]],
-                             ["line", "point", "idx", "node", "dE", "dN", "moved", "dH"]))
-        for what in ("added", "removed"):
-            st = d[what]
-            out.append(f"{what}: {len(st)}" + (": " + ", ".join(
-                station_text(x["line"], x["point"], x["index"]) for x in st[:50])
-                if st else ""))
-        return "\n".join(out)
+        return _diff_text(d, threshold)
 
     emit(state, d, text)
+
+
+def _keys(rows: list[dict[str, Any]], limit: int = 50) -> str:
+    names = [station_text(x["line"], x["point"], x["index"])
+             + (f" (node {x['node']})" if x.get("node") else "") for x in rows[:limit]]
+    return ", ".join(names) + (f" and {len(rows) - limit} more" if len(rows) > limit else "")
+
+
+def _diff_text(d: dict[str, Any], threshold: float) -> str:
+    """The readable form of a run comparison."""
+    s = d["summary"]
+    out = [f"{d['run_a'][:12]} -> {d['run_b'][:12]}: {s['n_common']} occupations in both "
+           "runs (paired by line, point and point index), "
+           f"{s['n_compared']} with a position in both"]
+    if s.get("n_compared"):
+        out.append(f"horizontal movement (m): mean {s['mean']:.3f}, median "
+                   f"{s['median']:.3f}, 95th percentile {s['p95']:.3f}, rms "
+                   f"{s['rms']:.3f}, max {s['max']:.3f}")
+    out.append(f"{len(d['beyond'])} occupation(s) moved more than {threshold:g} m")
+    if d["beyond"]:
+        out.append(table([(f"{b['line']:g}", f"{b['point']:g}", b["index"],
+                           b.get("node") or "", f"{b['de']:+.3f}", f"{b['dn']:+.3f}",
+                           f"{b['moved']:.3f}", _f(b["dh"], "{:+.3f}"))
+                          for b in d["beyond"][:200]],
+                         ["line", "point", "idx", "node", "dE", "dN", "moved", "dH"]))
+    for key, what in (("lost_position", "lost their position (none in the second run)"),
+                      ("gained_position", "gained a position (none in the first run)")):
+        if d[key]:
+            out.append(f"{len(d[key])} {what}: {_keys(d[key])}")
+    if d["reassigned"]:
+        out.append(f"{len(d['reassigned'])} re-assigned (another node or occupation): "
+                   + ", ".join(f"{station_text(r['line'], r['point'], r['index'])} node "
+                               f"{r['node_a']} -> {r['node_b']}"
+                               + (f", occupation {r['occupation_a']} -> {r['occupation_b']}"
+                                  if r["occupation_a"] != r["occupation_b"] else "")
+                               for r in d["reassigned"][:50]))
+    for key, what in (("added", "gained (second run only)"),
+                      ("removed", "lost (first run only)")):
+        out.append(f"{what}: {len(d[key])}" + (f": {_keys(d[key])}" if d[key] else ""))
+    return "\n".join(out)
 
 
 def _window(d: dict[str, Any]) -> str:
@@ -261,8 +282,19 @@ def _window(d: dict[str, Any]) -> str:
     return f"{start} to {end}" if d.get("deployed") is not None else "window not recorded"
 
 
+def _held_text(d: dict[str, Any]) -> str:
+    """' (the file holds E .. N .. H ..)' for a format that rounds, else ''."""
+    held = d.get("as_delivered") or {}
+    places = held.get("decimals")
+    if not places:
+        return ""
+    return " (the file holds " + " ".join(
+        f"{k} {held[n]:.{places[n]}f}" if held.get(n) is not None else f"{k} -"
+        for k, n in (("E", "easting"), ("N", "northing"), ("H", "height"))) + ")"
+
+
 def _record_text(d: dict[str, Any]) -> str:
-    return (f"E {_f(d['easting'])} N {_f(d['northing'])} H {_f(d['height'])} "
+    return (f"E {_f(d['easting'])} N {_f(d['northing'])} H {_f(d['height'])}{_held_text(d)} "
             f"(source {d['source']}) in delivery {d['id']} ({d['format']}, {d['file_name']}, "
             f"to {d['recipient']}, {_when(d['created_at'])}, sha256 {d['file_hash'][:16]}…)")
 
@@ -306,7 +338,7 @@ def _where_text(w: dict[str, Any]) -> str:
         for e in reversed(o["history"][:-1]):
             out.append(f"  earlier (index {o['index']}): delivery {e['id']} ({e['format']}, "
                        f"{e['file_name']}, {_when(e['created_at'])}): E {_f(e['easting'])} "
-                       f"N {_f(e['northing'])} H {_f(e['height'])}")
+                       f"N {_f(e['northing'])} H {_f(e['height'])}{_held_text(e)}")
     return "\n".join(out)
 
 

@@ -36,9 +36,11 @@ def qc_text(d: dict[str, Any]) -> str:
     """The readable form of a qc result (``QcResult.as_dict()``)."""
     from archive.qc.check import summary_rows
 
+    fc = d.get("flag_counts") or {}
+    stations = f" ({fc['n_stations']} stations)" if fc.get("n_stations") is not None else ""
     head = (f"run {d['run'][:12]} of {d['survey']} ({d['crs']}): {d['n_delivered']} delivered "
-            f"stations, {d['n_flagged']} flagged; {d['n_check_points']} check points, "
-            f"{d['n_checked']} matched")
+            f"records{stations}, {d['n_flagged']} flagged stations; {d['n_check_points']} "
+            f"check points, {d['n_checked']} matched")
     rows = [(label, _pct(a) if unit == "fraction" else _m(a),
              _pct(b) if unit == "fraction" else _m(b))
             for label, a, b, unit in summary_rows(d)]

@@ -60,13 +60,40 @@ def _flags_text(counts: dict[str, int]) -> str:
     return "\n".join(f"  {k:<16} {counts[k]:>5}  {FLAGS.get(k, '')}" for k in counts)
 
 
+def solve_text(head: str, run_id: str, n_positions: int, summary: dict[str, Any],
+               n_flagged: int, flag_counts: dict[str, int]) -> str:
+    """The readable result of a solve: positions, what was reused and what awaits harvest,
+    then flags counted per station."""
+    n_st = summary.get("n_stations")
+    of = f" of {n_st}" if n_st is not None else ""
+    unlogged = summary.get("n_unlogged") or 0
+    extra = (f"\n  {'unlogged':<16} {unlogged:>5}  stationary cluster(s) with no logged "
+             "deployment, counted apart: no station (check the deployment log)"
+             if unlogged else "")
+    reuse = summary.get("reuse") or {}
+    reused = (f"  nodes solved {reuse['nodes_solved']}, reused from earlier runs "
+              f"{reuse['nodes_reused']} (their inputs unchanged)\n"
+              if reuse.get("nodes_reused") else "")
+    waiting = (f"  awaiting harvest {summary['n_awaiting']} deployment(s): no log of their "
+               "node loaded yet (held back from deliveries)\n"
+               if summary.get("n_awaiting") else "")
+    return (f"{head} {run_id}\n"
+            f"  positions {n_positions} ({summary.get('n_delivered', '?')} to deliver)\n"
+            f"{reused}{waiting}"
+            f"  flagged {n_flagged}{of} stations (a station is one occupation of a node; "
+            f"each flag below counts stations too)\n{_flags_text(flag_counts)}{extra}\n"
+            f"next: nodekeep review list, nodekeep show LINE POINT, nodekeep qc")
+
+
 @click.command()
 @click.option("--params", "params_file", type=click.Path(dir_okay=False), default=None,
               metavar="FILE.toml", help="Parameters overriding the defaults ('nodekeep params').")
 @click.option("--label", default="", help="A note kept with the run.")
 @click.option("--stations", default=None, metavar="LINE:POINT,...",
-              help="Solve only these stations.")
-@click.option("--nodes", default=None, metavar="SERIAL,...", help="Solve only these nodes.")
+              help="Solve only these stations of the deployment log (an unknown one is "
+                   "refused, nothing recorded).")
+@click.option("--nodes", default=None, metavar="SERIAL,...", help="Solve only these nodes of the deployment log (an unknown serial is "
+                   "refused, nothing recorded).")
 @click.option("--scheduler", default=None, metavar="tcp://HOST:PORT", envvar="NODEKEEP_SCHEDULER",
               help="Solve node partitions on this Dask scheduler (default: $NODEKEEP_SCHEDULER). "
                    "Workers must reach the object store (S3, or a shared folder).")
@@ -93,21 +120,9 @@ def solve(state: CliState, params_file: str | None, label: str, stations: str | 
                        scheduler=scheduler, workers=workers, incremental=not from_scratch)
     d = res.as_dict()
 
-    def text() -> str:
-        head = "solved run" if res.created else "same inputs and parameters as run"
-        s = res.summary
-        reuse = s.get("reuse") or {}
-        reused = (f"  nodes solved {reuse['nodes_solved']}, reused from earlier runs "
-                  f"{reuse['nodes_reused']} (their inputs unchanged)\n"
-                  if res.created and reuse.get("nodes_reused") else "")
-        waiting = (f"  awaiting harvest {s['n_awaiting']} deployment(s): no log of their node "
-                   "loaded yet (held back from deliveries)\n" if s.get("n_awaiting") else "")
-        return (f"{head} {res.run_id}\n"
-                f"  positions {res.n_positions} ({s.get('n_delivered', '?')} to deliver), "
-                f"flagged {res.n_flagged}\n{reused}{waiting}{_flags_text(res.flag_counts)}\n"
-                f"next: nodekeep show LINE POINT, nodekeep qc")
-
-    emit(state, d, text)
+    head = "solved run" if res.created else "same inputs and parameters as run"
+    emit(state, d, lambda: solve_text(head, res.run_id, res.n_positions, res.summary,
+                                      res.n_flagged, res.flag_counts))
 
 
 @click.command()

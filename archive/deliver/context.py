@@ -18,6 +18,7 @@ import pyarrow.compute as pc
 from archive.errors import Refused
 from archive.store.ledger import Anchor
 from archive.survey.crs import crs_from_epsg
+from archive.survey.heights import gnss_height_datum
 from archive.survey.keys import station_text
 
 # Which instant the day-of-year / time fields of SPS and SEG-P1 records hold.
@@ -26,6 +27,10 @@ TIME_COLUMN = "deployed"
 POSITION_MAPPED = "receiver (node) as solved from its GNSS fixes"
 ANCHOR_LABEL = "Ledger anchor"
 """The header label of the anchor (:class:`archive.store.ledger.Anchor`) in SPS and SEG-P1."""
+DECISIONS_TEXT = ("per record in the lineage manifest beside this file (its name + "
+                  "'.lineage.json'): occupations[].flags, .flags_acknowledged, .decisions "
+                  "-> edits[] (kind, reason, by, at)")
+"""Where SPS and SEG-P1 files, which have no column for them, say flags and decisions are."""
 CAUTION = ("positions for seismic processing; not a certified or legal survey, not for "
            "boundaries, construction or safety setbacks")
 
@@ -88,11 +93,32 @@ class DeliveryContext:
     code_version: str = ""
     produced_at: datetime | None = None
     anchor: Anchor | None = None  # the delivery's place in the ledger, stated in the header
+    # how the run turned GNSS heights into the model's datum (archive.survey.heights)
+    height_mode: str = "gga"
+    height_param: str = ""
 
     @property
     def crs(self) -> CrsFacts:
         """pyproj facts of the survey CRS."""
         return crs_facts(self.crs_epsg)
+
+    @property
+    def gnss_datum(self) -> str:
+        """What a GNSS height (a station off the elevation model) is measured from."""
+        return gnss_height_datum(self.height_mode, self.height_param, self.vertical_datum)
+
+
+def height_datums(table: pa.Table, ctx: DeliveryContext) -> np.ndarray:
+    """The vertical datum of each record's height: the delivery's (the elevation model's)
+    unless the height is a GNSS one, whose datum the survey's height mode gives."""
+    gnss = text_column(table, "height_source") == "gnss"
+    return np.where(gnss, ctx.gnss_datum, ctx.vertical_datum).astype(str)
+
+
+def other_datum_stations(table: pa.Table, ctx: DeliveryContext) -> list[str]:
+    """'1001/5002 index 1' for each record whose height is not in the delivery's datum."""
+    rows = np.flatnonzero(height_datums(table, ctx) != ctx.vertical_datum)
+    return [station_label(table, int(i)).removeprefix("station ") for i in rows]
 
 
 def station_label(table: pa.Table, i: int) -> str:

@@ -8,14 +8,18 @@ the point index it is delivered under, ``station_index`` the preplot station's,
 ``deployed``/``retrieved`` its logged window (``retrieved`` empty while the node is still
 out), ``t_start``/``t_end`` the fixes used; ``merged`` lists the indices merged into the row
 (``deliver --merge-occupations``). The file is UTF-8. The ``crs`` and
-``vertical_datum`` columns repeat the survey's EPSG code and vertical datum on every row so
-the file cannot be separated from what its numbers mean. Text cells that a spreadsheet would
+``vertical_datum`` columns give the survey's EPSG code and the datum of each row's height on
+every row so the file cannot be separated from what its numbers mean: the delivery's
+(elevation model's) datum, or for a GNSS height (a station off the model) the datum the
+survey's height mode gives it. Text cells that a spreadsheet would
 run as a formula (beginning with ``=``, ``+``, ``-``, ``@``, tab or carriage return, and not
 a plain number) get a leading apostrophe, as OWASP recommends against CSV injection
 (:func:`archive.store.outfiles.spreadsheet_column`); numbers, negative ones included, are
 written as numbers. ``anchor_event`` and
 ``anchor_after`` repeat the delivery's ledger anchor the same way
-(:class:`archive.store.ledger.Anchor`).
+(:class:`archive.store.ledger.Anchor`). Last come the review decisions of each record
+(:data:`archive.deliver.decisions.DECISION_COLUMNS`: flags people accepted, what was decided,
+the edit ids, by whom, when and why), when the table carries them.
 """
 
 from __future__ import annotations
@@ -24,7 +28,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
-from archive.deliver.context import DeliveryContext, check_unique_keys
+from archive.deliver.context import DeliveryContext, check_unique_keys, height_datums
+from archive.deliver.decisions import DECISION_COLUMNS
 from archive.store.outfiles import spreadsheet_column
 
 CSV_COLUMNS = (
@@ -51,11 +56,16 @@ def csv_table(table: pa.Table, ctx: DeliveryContext, *, anchor: bool = True) -> 
         names.append(name)
     n = table.num_rows
     cols += [pa.array([f"EPSG:{ctx.crs_epsg}"] * n),
-             spreadsheet_column(pa.array([ctx.vertical_datum] * n, pa.string()))]
+             spreadsheet_column(pa.array(height_datums(table, ctx).tolist() if n else [],
+                                         pa.string()))]
     names += ["crs", "vertical_datum"]
     if anchor and ctx.anchor is not None:
         cols += [pa.array([ctx.anchor.event] * n, pa.int64()), pa.array([ctx.anchor.after] * n)]
         names += ["anchor_event", "anchor_after"]
+    for name in DECISION_COLUMNS:  # added after the columns readers already know
+        if name in table.column_names:
+            cols.append(spreadsheet_column(table.column(name)))
+            names.append(name)
     return pa.table(cols, names=names)
 
 

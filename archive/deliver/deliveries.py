@@ -34,7 +34,9 @@ import pyarrow as pa
 from sqlalchemy import func, select
 
 from archive import __version__
-from archive.deliver.context import DeliveryContext, station_label
+from archive.deliver.changes import DEFAULT_TOLERANCE, changes_since
+from archive.deliver.context import DeliveryContext, other_datum_stations, station_label
+from archive.deliver.decisions import with_decisions
 from archive.deliver.final import build_final, unacknowledged_flags
 from archive.deliver.formats import writer
 from archive.deliver.manifest import DeliveryFacts, lineage_manifest, manifest_bytes
@@ -75,6 +77,7 @@ class DeliveryResult:
     allowed_flags: bool = False
     warnings: list[str] = field(default_factory=list)
     merges: list[dict[str, Any]] = field(default_factory=list)
+    changes: dict[str, Any] | None = None  # what changed since an earlier delivery, if asked
     # deployments held back: no log of their node was loaded yet (awaiting harvest)
     awaiting: list[dict[str, Any]] = field(default_factory=list)
 
@@ -158,12 +161,17 @@ def _move_into_place(arc: Archive, survey_id: int, delivery_id: int,
 
 def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str | Path,
             recipient: str, note: str = "", allow_flags: bool = False,
-            force: bool = False, merge_occupations: bool = False) -> DeliveryResult:
+            force: bool = False, merge_occupations: bool = False,
+            changed_since: int | None = None,
+            tolerance: float = DEFAULT_TOLERANCE) -> DeliveryResult:
     """Deliver the final positions of a run (plus edits in force) as ``fmt`` to ``to``.
 
     One record per occupation, under its own point index; with ``merge_occupations`` the
     occupations of a station that cannot be told apart are delivered as one position
     (:mod:`archive.deliver.merge`), and the lineage says what was merged and what was not.
+    With ``changed_since`` (a delivery id) only the records that are new or changed since
+    that delivery are written (:mod:`archive.deliver.changes`); the lineage manifest lists
+    each with its reasons, and the records that delivery held which are no longer delivered.
     """
     write = writer(fmt)
     recipient = (recipient or "").strip()
@@ -188,6 +196,10 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         raise Refused(f"run {run.id[:12]} with the edits in force leaves no station to deliver",
                       hint="check the run ('nodekeep show') and the reject edits "
                            "('nodekeep edits')")
+    changes = None
+    if changed_since is not None:
+        changes = changes_since(arc, survey_id, changed_since, final, tolerance)
+        final = changes.table
     flags = unacknowledged_flags(final)
     if flags and not allow_flags:
         raise _flag_refusal(final, flags, run)
@@ -196,11 +208,16 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         survey = s.get(Survey, survey_id)
     produced = utcnow()
     heights_datum = _heights_datum(arc, survey, manifest)
+    run_survey = manifest.get("survey") if isinstance(manifest.get("survey"), dict) else {}
     ctx = DeliveryContext(
         survey=survey.name, crs_epsg=survey.crs_epsg, client=survey.client,
         contractor=survey.contractor, area=survey.area, vertical_datum=heights_datum,
         run_id=run.id, edit_set_hash=edit_hash, edit_ids=tuple(e.id for e in edits),
-        code_version=__version__, produced_at=produced)
+        code_version=__version__, produced_at=produced,
+        height_mode=str(run_survey.get("height_mode") or survey.height_mode or "gga"),
+        height_param=str(run_survey.get("height_param") or survey.height_param or ""))
+    other_datum = [{"record": name, "datum": ctx.gnss_datum}
+                   for name in other_datum_stations(final, ctx)]
 
     final_hash, final_size = arc.objects.put_table(final)
     facts = DeliveryFacts(
@@ -211,9 +228,12 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         unapplied=unapplied, inputs=inputs,
         raw_files=raw_files, final=final,
         final_hash=final_hash, merge=merge_occupations, merges=built.merges,
-        awaiting=built.awaiting)
+        other_datum=other_datum,
+        awaiting=built.awaiting,
+        changes=changes.as_dict() if changes is not None else None)
     delivery_id, facts, manifest_hash, (tmp_file, tmp_lineage) = _record(
-        arc, survey_id, facts, lambda anchor: write(final, replace(ctx, anchor=anchor)),
+        arc, survey_id, facts,
+        lambda anchor: write(with_decisions(final, edits), replace(ctx, anchor=anchor)),
         final_size, target, lineage_path)
     _move_into_place(arc, survey_id, delivery_id,
                      [(tmp_file, target), (tmp_lineage, lineage_path)])
@@ -224,7 +244,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         n_stations=facts.n_stations, n_records=final.num_rows,
         edit_ids=[e.id for e in edits], edit_set_hash=edit_hash, recipient=recipient,
         unacknowledged_flags=flags, allowed_flags=bool(allow_flags), warnings=warnings,
-        merges=built.merges, awaiting=built.awaiting)
+        merges=built.merges, awaiting=built.awaiting,
+        changes=changes.as_dict() if changes is not None else None)
 
 
 def _require_inputs(arc: Archive, manifest: dict[str, Any],
@@ -277,7 +298,9 @@ def _record(arc: Archive, survey_id: int, f: DeliveryFacts,
                              "allowed_flags": bool(f.allow_flags),
                              "unacknowledged_flags": f.flags,
                              "merge_occupations": bool(f.merge),
-                             "merged_stations": sum(1 for m in f.merges if m["merged"])},
+                             "merged_stations": sum(1 for m in f.merges if m["merged"]),
+                             **({"changed_since": f.changes["delivery"],
+                                 "changes": f.changes["counts"]} if f.changes else {})},
                             survey_id=survey_id, rows=[row])
             if (event.seq, event.prev_hash) != (anchor.event, anchor.after):
                 raise RuntimeError(f"delivery {next_id}: its event {event.seq} is not the "

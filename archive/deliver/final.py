@@ -41,12 +41,12 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
+from archive.edits.kinds import POSITION_FLAGS
 from archive.edits.log import edit_set
-from archive.solve.run import run_manifest
+from archive.solve.run import manifest_inputs, run_manifest
 from archive.store.archive import Archive
 from archive.store.models import Run
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
-from archive.survey.dem import open_dem
 
 UTC_TIME = pa.timestamp("us", tz="UTC")
 
@@ -56,6 +56,7 @@ FINAL_SCHEMA = pa.schema(
         pa.field("point", pa.float64(), nullable=False),
         pa.field("index", pa.int8(), nullable=False),  # delivered point index (occupation)
         pa.field("station_index", pa.int8(), nullable=False),  # the preplot station's index
+        pa.field("code", pa.string()),  # the preplot station's point code (SPS columns 25-26)
         pa.field("node", pa.string()),
         # the time the position holds: the occupation's logged window, cut at the move for
         # each part of a moved node
@@ -88,14 +89,11 @@ FINAL_SCHEMA = pa.schema(
         pa.field("occupation", pa.int8()),
         pa.field("part", pa.int8()),
     ],
-    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "3"},
+    metadata={"nodekeep.table": "final_positions", "nodekeep.schema_version": "4"},
 )
 
 Key = tuple[float, float, int]
 
-# Review flags that describe the solver's position; a set-position replaces that solution.
-POSITION_FLAGS = frozenset({"few-fixes", "short-span", "wide-spread", "moved", "far-from-plan",
-                            "nearer-other", "unoccupied"})
 HeightAt = Callable[[float, float], float | None]
 
 
@@ -103,29 +101,45 @@ def _key(line: Any, point: Any, index: Any) -> Key:
     return (float(line), float(point), int(index))
 
 
-def _delivered_rows(positions: pa.Table) -> dict[str, list[Any]]:
-    """The delivered rows of every occupation as columns of FINAL_SCHEMA: ``index`` the
-    point index each is delivered under (the occupation's, or a part's own), ``station_index``
-    the preplot station's, ``occupation`` the occupation's, ``deployed``/``retrieved`` the
-    time the position holds."""
+def _delivered_table(positions: pa.Table) -> pa.Table:
+    """The delivered rows of every occupation as a FINAL_SCHEMA table, before edits:
+    ``index`` the point index each is delivered under (the occupation's, or a part's own),
+    ``station_index`` the preplot station's, ``occupation`` the occupation's,
+    ``deployed``/``retrieved`` the time the position holds. Column by column, no row
+    leaves Arrow."""
     dl = positions.filter(pc.equal(positions["delivered"], True))
-    cols = {name: dl.column(name).to_pylist() if name in dl.column_names
-            else [None] * dl.num_rows for name in FINAL_SCHEMA.names}
-    cols["station_index"] = dl.column("index").to_pylist()
-    if "occupation" in dl.column_names:
-        cols["occupation"] = [o if o is not None else i for o, i in
-                              zip(dl.column("occupation").to_pylist(), cols["station_index"],
-                                  strict=True)]
-    else:
-        cols["occupation"] = list(cols["station_index"])
-    cols["index"] = list(cols["occupation"])
+    n = dl.num_rows
+    cols: dict[str, Any] = {}
+    for name in FINAL_SCHEMA.names:
+        cols[name] = (dl.column(name) if name in dl.column_names
+                      else pa.nulls(n, FINAL_SCHEMA.field(name).type))
+    cols["station_index"] = dl.column("index")
+    occupation = (pc.coalesce(dl.column("occupation"), dl.column("index"))
+                  if "occupation" in dl.column_names else dl.column("index"))
+    cols["occupation"] = occupation
+    cols["index"] = occupation
     if "point_index" in dl.column_names:
-        cols["index"] = [p if p is not None else o for p, o in
-                         zip(dl.column("point_index").to_pylist(), cols["occupation"],
-                             strict=True)]
-        cols["deployed"] = dl.column("held_from").to_pylist()
-        cols["retrieved"] = dl.column("held_to").to_pylist()
-    return cols
+        cols["index"] = pc.coalesce(dl.column("point_index"), occupation)
+        cols["deployed"] = dl.column("held_from")
+        cols["retrieved"] = dl.column("held_to")
+    cols["flags"] = pc.fill_null(cols["flags"], "") if "flags" in dl.column_names \
+        else pa.array([""] * n, pa.string())
+    for name, value in (("flags_acknowledged", ""), ("source", "solver"), ("merged", ""),
+                        ("windows", "")):
+        cols[name] = pa.array([value] * n, pa.string())
+    return pa.table({name: pc.cast(cols[name], FINAL_SCHEMA.field(name).type)
+                     for name in FINAL_SCHEMA.names}, schema=FINAL_SCHEMA)
+
+
+def _new_record(key: Key) -> dict[str, Any]:
+    """The record a set-position adds for an occupation the run did not position."""
+    row: dict[str, Any] = {name: None for name in FINAL_SCHEMA.names}
+    row["line"], row["point"], row["index"] = key
+    row["station_index"] = row["occupation"] = key[2]
+    row["part"] = 0
+    row["flags"] = row["flags_acknowledged"] = row["merged"] = row["windows"] = ""
+    row["source"], row["n_used"], row["n_rejected"] = "", 0, 0
+    return row
 
 
 def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
@@ -136,99 +150,88 @@ def apply_edits(delivered: pa.Table, edits: list[Any], epsg: int, *,
     :func:`archive.solve.occupancy.upgrade_positions`); an edit names one occupation by its
     delivered point index. ``height_at(easting, northing)`` samples the run's elevation
     model (None when the run had none or the point is off the model); it re-derives the
-    height of a set position.
+    height of a set position. Only the records edits name become Python rows; the rest stay
+    columns (a 20,000-station survey with a handful of edits costs milliseconds).
     """
-    cols = _delivered_rows(delivered)
-    n = len(cols["line"])
-    cols["flags_acknowledged"] = [""] * n
-    cols["source"] = ["solver"] * n
-    cols["merged"] = [""] * n
-    cols["windows"] = [""] * n
-    cols["flags"] = [f or "" for f in cols["flags"]]
+    table = _delivered_table(delivered)
+    keys = [_key(*e) for e in {(e.line, e.point, e.point_index) for e in edits}]
     # an edit names an occupation: it acts on every record of it (both parts of a moved node)
-    rows: dict[Key, list[int]] = {}
-    for i, key in enumerate(zip(cols["line"], cols["point"], cols["occupation"], strict=True)):
-        rows.setdefault(_key(*key), []).append(i)
+    touched: list[int] = []
+    if keys:
+        wanted = pa.table({"line": [k[0] for k in keys], "point": [k[1] for k in keys],
+                           "occupation": pa.array([k[2] for k in keys], pa.int8())})
+        marked = table.select(["line", "point", "occupation"]).append_column(
+            "_row", pa.array(np.arange(table.num_rows)))
+        hit = marked.join(wanted, ["line", "point", "occupation"], join_type="inner")
+        touched = sorted(hit["_row"].to_pylist())
+    rows = table.take(pa.array(touched, pa.int64())).to_pylist() if touched else []
+    by_key: dict[Key, list[dict[str, Any]]] = {}
+    for r in rows:
+        by_key.setdefault(_key(r["line"], r["point"], r["occupation"]), []).append(r)
     rejected: set[Key] = set()
-    dropped: set[int] = set()
-    node_kept: set[int] = set()
 
-    def row_of(key: Key, create: bool) -> list[int]:
-        if key in rows:
-            return rows[key]
-        if not create:
-            return []
-        for name in cols:
-            cols[name].append(None)
-        i = len(cols["line"]) - 1
-        cols["line"][i], cols["point"][i], cols["index"][i] = key
-        cols["station_index"][i] = cols["occupation"][i] = key[2]
-        cols["part"][i] = 0
-        cols["flags"][i], cols["flags_acknowledged"][i], cols["merged"][i] = "", "", ""
-        cols["windows"][i] = ""
-        cols["source"][i], cols["n_used"][i], cols["n_rejected"][i] = "", 0, 0
-        rows[key] = [i]
-        return rows[key]
+    def records(key: Key, create: bool) -> list[dict[str, Any]]:
+        if key in by_key or not create:
+            return by_key.get(key, [])
+        by_key[key] = [_new_record(key)]
+        return by_key[key]
 
-    def one_position(found: list[int]) -> int:
+    def one_position(found: list[dict[str, Any]]) -> dict[str, Any]:
         """A set position is one place for the whole occupation: the parts of a moved node
         become its first record, for the whole stay, under the occupation's index."""
-        first = min(found, key=lambda i: (cols["part"][i] or 0))
+        first = min(found, key=lambda r: (r["part"] or 0))
         if len(found) > 1:
-            last = max(found, key=lambda i: (cols["part"][i] or 0))
-            cols["retrieved"][first] = cols["retrieved"][last]
-            cols["index"][first], cols["part"][first] = cols["occupation"][first], 0
-            dropped.update(i for i in found if i != first)
+            last = max(found, key=lambda r: (r["part"] or 0))
+            first["retrieved"] = last["retrieved"]
+            first["index"], first["part"] = first["occupation"], 0
             found[:] = [first]
         return first
 
-    def mark(i: int, edit_id: int) -> None:
+    def mark(r: dict[str, Any], edit_id: int) -> None:
         tag = f"edit:{edit_id}"
-        old = cols["source"][i]
-        cols["source"][i] = tag if old in ("", "solver") else f"{old};{tag}"
+        old = r["source"]
+        r["source"] = tag if old in ("", "solver") else f"{old};{tag}"
 
+    node_kept: list[dict[str, Any]] = []
     for e in sorted(edits, key=lambda e: (e.kind != "set-position", e.id)):
         key = _key(e.line, e.point, e.point_index)
         p = json.loads(e.payload or "{}")
         if e.kind == "reject-station":
             rejected.add(key)
         elif e.kind == "set-position":
-            i = one_position(row_of(key, create=True))
-            cols["easting"][i], cols["northing"][i] = p["easting"], p["northing"]
-            cols["sigma_e"][i], cols["sigma_n"][i] = p.get("sigma_e"), p.get("sigma_n")
-            cols["corr_en"][i], cols["r95"][i] = None, None
-            cols["n_used"][i], cols["n_rejected"][i] = 0, 0
-            cols["t_start"][i], cols["t_end"][i] = None, None
-            cols["flags"][i] = ";".join(f for f in cols["flags"][i].split(";")
-                                        if f and f not in POSITION_FLAGS)
-            cols["height"][i], cols["height_source"][i] = _set_height(p, height_at)
-            if cols["node"][i]:
-                node_kept.add(i)
-            mark(i, e.id)
+            r = one_position(records(key, create=True))
+            r["easting"], r["northing"] = p["easting"], p["northing"]
+            r["sigma_e"], r["sigma_n"] = p.get("sigma_e"), p.get("sigma_n")
+            r["corr_en"], r["r95"] = None, None
+            r["n_used"], r["n_rejected"] = 0, 0
+            r["t_start"], r["t_end"] = None, None
+            r["flags"] = ";".join(f for f in r["flags"].split(";")
+                                  if f and f not in POSITION_FLAGS)
+            r["height"], r["height_source"] = _set_height(p, height_at)
+            if r["node"] and all(r is not k for k in node_kept):
+                node_kept.append(r)
+            mark(r, e.id)
         elif e.kind == "set-height":
             # a height alone gives no position: applied once one exists
-            for i in row_of(key, create=False):
-                cols["height"][i], cols["height_source"][i] = p["height"], p["source"]
-                mark(i, e.id)
+            for r in records(key, create=False):
+                r["height"], r["height_source"] = p["height"], p["source"]
+                mark(r, e.id)
         elif e.kind == "ack-flag":
-            for i in row_of(key, create=False):
-                flags = [f for f in cols["flags"][i].split(";") if f]
+            for r in records(key, create=False):
+                flags = [f for f in r["flags"].split(";") if f]
                 if p["flag"] in flags:
                     flags.remove(p["flag"])
-                    acked = [f for f in cols["flags_acknowledged"][i].split(";") if f]
-                    cols["flags_acknowledged"][i] = ";".join([*acked, p["flag"]])
-                    cols["flags"][i] = ";".join(flags)
-    for i in node_kept:
-        cols["source"][i] += ";node:deployed"
-    table = pa.table({n: pa.array(cols[n], FINAL_SCHEMA.field(n).type)
-                      for n in FINAL_SCHEMA.names}, schema=FINAL_SCHEMA)
-    if rejected or dropped:
-        keep = np.array([_key(a, b, c) not in rejected and i not in dropped
-                         for i, (a, b, c) in enumerate(zip(cols["line"], cols["point"],
-                                                           cols["occupation"], strict=True))],
-                        bool)
-        table = table.filter(pa.array(keep))
-    return _sorted(_with_lonlat(table, epsg))
+                    acked = [f for f in r["flags_acknowledged"].split(";") if f]
+                    r["flags_acknowledged"] = ";".join([*acked, p["flag"]])
+                    r["flags"] = ";".join(flags)
+    for r in node_kept:
+        r["source"] += ";node:deployed"
+    keep = np.ones(table.num_rows, dtype=bool)
+    keep[touched] = False  # replaced by their edited rows (or dropped parts) below
+    edited = [r for key, found in by_key.items() if key not in rejected for r in found]
+    out = pa.concat_tables([table.filter(pa.array(keep)),
+                            pa.Table.from_pylist(edited, schema=FINAL_SCHEMA)])
+    return _sorted(_with_lonlat(out, epsg))
 
 
 def _set_height(payload: dict[str, Any], height_at: HeightAt | None,
@@ -310,6 +313,8 @@ def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None =
     sampler = None
     if merge or any(e.kind == "set-position" for e in edits):
         dem_version = (run_manifest(arc, run).get("input_versions") or {}).get("dem")
+        from archive.survey.dem import open_dem  # rasterio loads only when a height is sampled
+
         sampler = open_dem(arc, survey_id, dem_version) if dem_version is not None else None
     with contextlib.ExitStack() as stack:
         height_at = None
@@ -327,7 +332,28 @@ def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None =
 
             table, merges = merge_occupations(table, survey_crs(epsg).unit_factor, height_at)
             table = _sorted(_with_lonlat(table, epsg))
+    stations_hash = manifest_inputs(run_manifest(arc, run)).get("stations")
+    if stations_hash:
+        table = with_point_codes(table, arc.objects.read_table(stations_hash))
     return Final(table, merges, awaiting_harvest(positions, table))
+
+
+def with_point_codes(table: pa.Table, stations: pa.Table) -> pa.Table:
+    """The final table with ``code`` set to the preplot's point code of each record's
+    station (line, point, preplot index), so a delivery keeps what the preplot said about
+    the point (SPS rev 2.1 columns 25-26); null where the preplot has none."""
+    if "code" not in stations.column_names or table.num_rows == 0:
+        return table
+    if "kind" in stations.column_names:  # receiver points; a source point keeps its own code
+        stations = stations.filter(pc.equal(stations["kind"], "R"))
+    codes = {(float(a), float(b), int(c)): k for a, b, c, k in zip(
+        stations["line"].to_pylist(), stations["point"].to_pylist(),
+        stations["index"].to_pylist(), stations["code"].to_pylist(), strict=True) if k}
+    keys = zip(table["line"].to_pylist(), table["point"].to_pylist(),
+               table["station_index"].to_pylist(), strict=True)
+    values = pa.array([codes.get((float(a), float(b), int(c))) for a, b, c in keys], pa.string())
+    return table.set_column(table.schema.get_field_index("code"), FINAL_SCHEMA.field("code"),
+                            values)
 
 
 def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,

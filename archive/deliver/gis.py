@@ -2,7 +2,10 @@
 
 GeoJSON: a FeatureCollection of Points in WGS 84 longitude/latitude (RFC 7946 §4 allows no
 other CRS), computed from the delivered grid coordinates with pyproj; the grid easting and
-northing stay in the properties together with the survey's EPSG code. GeoPackage: one point
+northing stay in the properties together with the survey's EPSG code. A third coordinate is
+written only where it is a height above the WGS 84 ellipsoid (RFC 7946 §3.1.1 and §4), from
+the survey's constant separation or geoid grid; the orthometric height and its datum stay in
+the properties. GeoPackage: one point
 layer ``receivers`` in the survey's projected CRS, every attribute of the CSV.
 """
 
@@ -20,6 +23,7 @@ from archive.deliver.context import DeliveryContext, check_unique_keys, column
 from archive.deliver.csvfile import csv_table
 from archive.errors import Refused
 from archive.survey.crs import WGS84_GEOGRAPHIC, transformer
+from archive.survey.heights import geoid_separation
 
 LAYER = "receivers"
 
@@ -44,24 +48,46 @@ def wgs84_lonlat(table: pa.Table, ctx: DeliveryContext) -> tuple[np.ndarray, np.
     return np.asarray(lon), np.asarray(lat)
 
 
+def ellipsoidal_heights(table: pa.Table, ctx: DeliveryContext, lon: np.ndarray,
+                        lat: np.ndarray) -> tuple[np.ndarray, np.ndarray, str]:
+    """(h, N, what) for RFC 7946's optional third coordinate: h = H + N, a height above the
+    WGS 84 ellipsoid, where the run's height mode gives a path N from the delivered
+    (orthometric) heights' datum to the ellipsoid: a constant separation or a PROJ geoid grid
+    installed on this machine. NaN where there is none (``gga``: each receiver's built-in
+    geoid ties its own altitude, not the elevation model's datum; off a grid)."""
+    height = column(table, "height")
+    sep = geoid_separation(lon, lat, ctx.height_mode, ctx.height_param)
+    if sep is None:
+        return (np.full(len(height), np.nan), np.full(len(height), np.nan),
+                "none: the survey's heights follow the receivers' own geoid (GGA), which "
+                "gives no path from the elevation model's datum to the WGS 84 ellipsoid")
+    what = (f"h = H + N, N = {ctx.height_param} m (constant separation)"
+            if ctx.height_mode == "constant" else
+            f"h = H + N, N from geoid grid {ctx.height_param} (PROJ)")
+    return height + sep, sep, what
+
+
 def write_geojson(table: pa.Table, ctx: DeliveryContext) -> bytes:
-    """RFC 7946 FeatureCollection (UTF-8), coordinates [lon, lat, height] to 1e-9 degree."""
+    """RFC 7946 FeatureCollection (UTF-8): [lon, lat] to 1e-9 degree, and a third value only
+    where it is a height above the WGS 84 ellipsoid (RFC 7946 §4); the orthometric height
+    and its datum are the properties ``height`` and ``vertical_datum``."""
     check_unique_keys(table, "GeoJSON")
     lon, lat = wgs84_lonlat(table, ctx)
-    height = column(table, "height")
+    h_ell, sep, what = ellipsoidal_heights(table, ctx, lon, lat)
     props = csv_table(table, ctx, anchor=False).to_pylist()
     features = []
     for i, p in enumerate(props):  # one feature per station: JSON needs Python objects
         coords = [round(float(lon[i]), 9), round(float(lat[i]), 9)]
-        if np.isfinite(height[i]):
-            coords.append(float(height[i]))
+        if np.isfinite(h_ell[i]):
+            coords.append(float(h_ell[i]))
+            p["geoid_separation"] = float(sep[i])
         features.append({"type": "Feature", "geometry": {"type": "Point", "coordinates": coords},
                          "properties": p})
     doc = {
         "type": "FeatureCollection",
         "nodekeep": {"survey": ctx.survey, "grid_crs": f"EPSG:{ctx.crs_epsg}",
-                     "vertical_datum": ctx.vertical_datum, "run": ctx.run_id,
-                     "edit_set": ctx.edit_set_hash}
+                     "vertical_datum": ctx.vertical_datum, "ellipsoidal_height": what,
+                     "run": ctx.run_id, "edit_set": ctx.edit_set_hash}
         | ({"ledger_anchor": ctx.anchor.as_dict()} if ctx.anchor is not None else {}),
         "features": features,
     }

@@ -16,6 +16,7 @@ import pyarrow as pa
 
 from archive import __version__
 from archive.deliver.context import CAUTION
+from archive.deliver.decisions import by_occupation
 from archive.edits.log import edit_dict
 from archive.store.hashing import table_digest
 from archive.store.ledger import SHORT_HASH, Anchor, row_digest
@@ -51,7 +52,10 @@ class DeliveryFacts:
     final_hash: str
     merge: bool
     merges: list[dict[str, Any]]
+    # records whose height is not in the delivery's datum: [{"record", "datum"}]
+    other_datum: list[dict[str, str]] = field(default_factory=list)
     awaiting: list[dict[str, Any]] = field(default_factory=list)  # held back: not harvested
+    changes: dict[str, Any] | None = None  # an incremental delivery: what changed since which
     anchor: Anchor | None = None  # known once the delivery holds the ledger's write lock
     chain: list[str] = field(default_factory=list)  # short hashes of the events before it
 
@@ -62,19 +66,27 @@ class DeliveryFacts:
                            strict=True)))
 
 
-def occupations_of(final: pa.Table) -> list[dict[str, Any]]:
+def occupations_of(final: pa.Table, edits: list[Edit] | None = None) -> list[dict[str, Any]]:
     """The delivered occupations of every station (line, point); a part of a node that
     moved during its stay also names its ``part`` (1 before the move, 2 after) and the
-    ``occupation`` it belongs to."""
+    ``occupation`` it belongs to. Each names its open review ``flags``, the flags people
+    accepted and the ids of the deciding ``edits`` (listed in full under ``edits``)."""
     cols = ["line", "point", "index", "station_index", "node", "deployed", "retrieved",
             "merged"]
-    extra = [c for c in ("occupation", "part") if c in final.column_names]
+    extra = [c for c in ("occupation", "part", "flags", "flags_acknowledged")
+             if c in final.column_names]
+    decided = by_occupation(edits or [])
     stations: dict[tuple[float, float], list[dict[str, Any]]] = {}
     for r in final.select(cols + extra).to_pylist():  # one entry per delivered record
         occ = {k: r[k] for k in cols[2:]}
         occ["merged"] = [int(i) for i in r["merged"].split(";")] if r["merged"] else []
         if r.get("part") in (1, 2):
             occ |= {"part": r["part"], "occupation": r["occupation"]}
+        occ["flags"] = [f for f in (r.get("flags") or "").split(";") if f]
+        occ["flags_acknowledged"] = [f for f in (r.get("flags_acknowledged") or "").split(";")
+                                     if f]
+        o = r.get("occupation") if r.get("occupation") is not None else r["index"]
+        occ["decisions"] = [e.id for e in decided.get((r["line"], r["point"], int(o)), [])]
         stations.setdefault((r["line"], r["point"]), []).append(occ)
     return [{"line": k[0], "point": k[1], "occupations": v} for k, v in stations.items()]
 
@@ -105,10 +117,12 @@ def lineage_manifest(f: DeliveryFacts, delivery_id: int) -> dict[str, Any]:
         "raw_files": f.raw_files,
         "final_positions": {"hash": f.final_hash, "digest": table_digest(f.final),
                             "rows": f.final.num_rows},
-        "occupations": occupations_of(f.final),
+        "occupations": occupations_of(f.final, f.edits),
         "merges": f.merges,
+        "heights": {"datum": f.heights_datum, "other_datum": f.other_datum},
         # deployments held back because their node's log was not loaded yet
         "awaiting_harvest": {"count": len(f.awaiting), "deployments": f.awaiting},
+        **({"changed_since": f.changes} if f.changes is not None else {}),
         **({"ledger": ledger_section(f.anchor, f.chain)} if f.anchor is not None else {}),
         "code_version": __version__,
         "caution": CAUTION,

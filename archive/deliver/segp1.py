@@ -34,6 +34,7 @@ from archive.deliver.context import (
     digit_indices,
     fixed_field,
     numbers_text,
+    other_datum_stations,
     station_label,
     time_fields,
 )
@@ -79,20 +80,49 @@ def reshoot_codes(index: np.ndarray) -> np.ndarray:
     return np.where(idx == 1, " ", np.char.mod("%d", idx))
 
 
+# Field widths of the grid and elevation values (SEG 1983 data record: F8, F8, F5).
+WIDTHS = {"easting": 8, "northing": 8, "height": 5}
+
+
+def grid_decimals(values: np.ndarray, width: int) -> int:
+    """Decimals one field of the file is written with: one (0.1 unit, the precision of the
+    SPS grid fields) when every value of the file fits ``width`` columns with it, else
+    none (whole units)."""
+    v = np.asarray(values, dtype=np.float64)
+    v = v[np.isfinite(v)]
+    one = np.char.str_len(np.char.mod("%.1f", v)) if v.size else np.zeros(0)
+    return 1 if (one <= width).all() else 0
+
+
+def decimals(table: pa.Table) -> dict[str, int]:
+    """The decimals a SEG-P1 file of this table writes for easting, northing and height."""
+    return {name: grid_decimals(column(table, name), width) for name, width in WIDTHS.items()}
+
+
 def _grid(table: pa.Table, values: np.ndarray, width: int, label: str, cols: str,
           ) -> tuple[np.ndarray, int]:
     """Format with one decimal when every value fits, else whole metres (refuse otherwise)."""
-    v = values[np.isfinite(values)]
-    one = np.char.str_len(np.char.mod("%.1f", v)) if v.size else np.zeros(0)
-    decimals = 1 if (one <= width).all() else 0
+    decimals = grid_decimals(values, width)
     text = fixed_field(values, f"%{width}.{decimals}f", width, table=table, field_name=label,
                        fmt_name=FORMAT, columns=cols, suggest=SUGGEST)
     return text, decimals
 
 
-def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]:
+def _free_lines(items: list[tuple[str, str]]) -> list[str]:
+    """``description: data`` texts over 76 columns, long data continuing indented."""
+    lines: list[str] = []
+    for desc, data in items:
+        first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)
+        lines.append(first)
+        lines += [f"  {p}" for p in wrap_data(" ".join(rest), FREE_WIDTH - 2)] if rest else []
+    return lines
+
+
+def header_records(ctx: DeliveryContext, precision: dict[str, int],
+                   n_other_datum: int = 0) -> list[str]:
     """Exactly 20 H records: survey, datum/spheroid, projection and parameters, units, time
-    basis, what position is mapped, producing run, edit set and the ledger anchor.
+    basis, what position is mapped, producing run, edit set, the ledger anchor and where
+    the flags and decisions of each record are (the lineage manifest).
 
     Each record is ``Hnn`` and free text in columns 5-80: ``description: data``, long data
     continuing on the next record indented by two spaces; projection
@@ -125,7 +155,9 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
         ("Grid units", f"{unit}; precision E {prec('easting')}, N {prec('northing')}"),
         ("Latitude/longitude", f"EPSG:{crs.geographic_epsg} {crs.geographic_name}, "
                                "DDMMSSss 0.01 sec"),
-        ("Elevation", f"{ctx.vertical_datum or 'datum not stated'}, {hprec()}"),
+        ("Elevation", f"{ctx.vertical_datum or 'datum not stated'}, {hprec()}"
+                      + (f"; {n_other_datum} record(s) GNSS height in another datum "
+                         "(lineage 'heights')" if n_other_datum else "")),
         ("Time basis", TIME_BASIS),
         ("Reshoot code col 26", "occupation's point index, blank = 1"),
         ("Position mapped", POSITION_MAPPED),
@@ -135,11 +167,12 @@ def header_records(ctx: DeliveryContext, precision: dict[str, int]) -> list[str]
     ]
     if ctx.anchor is not None:
         items.append((ANCHOR_LABEL, ctx.anchor.text()))
-    lines: list[str] = []
-    for desc, data in items:
-        first, *rest = wrap_data(ascii_text(f"{desc}: {data}", desc), FREE_WIDTH)
-        lines.append(first)
-        lines += [f"  {p}" for p in wrap_data(" ".join(rest), FREE_WIDTH - 2)] if rest else []
+    lines = _free_lines([*items, ("Flags, decisions", "per record in this file's .lineage.json")])
+    if len(lines) > N_HEADER:  # no record left for the review pointer: it joins "Produced"
+        produced_at = next(i for i, (d, _) in enumerate(items) if d == "Produced")
+        items[produced_at] = ("Produced", f"{produced} nodekeep {ctx.code_version}; decisions: "
+                                          ".lineage.json")
+        lines = _free_lines(items)
     if len(lines) > N_HEADER:
         raise Refused(f"{FORMAT}: the header statements need {len(lines)} records, the format "
                       f"has {N_HEADER} (long CRS name, parameters or survey text)",
@@ -206,5 +239,5 @@ def data_records(table: pa.Table, ctx: DeliveryContext) -> tuple[list[str], dict
 def write_segp1(table: pa.Table, ctx: DeliveryContext) -> bytes:
     """The whole SEG-P1 file: 20 header records then one data record per station."""
     records, precision = data_records(table, ctx)
-    lines = header_records(ctx, precision) + records
+    lines = header_records(ctx, precision, len(other_datum_stations(table, ctx))) + records
     return ("\n".join(lines) + "\n").encode("ascii", errors="replace")

@@ -20,12 +20,14 @@ import pyarrow as pa
 
 from archive.deliver.context import (
     ANCHOR_LABEL,
+    DECISIONS_TEXT,
     POSITION_MAPPED,
     TIME_BASIS,
     DeliveryContext,
     column,
     digit_indices,
     fixed_field,
+    other_datum_stations,
     station_label,
     text_column,
     time_fields,
@@ -96,14 +98,30 @@ def header_records(ctx: DeliveryContext, table: pa.Table | None = None) -> list[
                                          "part of a node that moved during its stay; the "
                                          "lineage manifest gives each one's node and window"),
         ("H26", "Units and precision", f"E/N {crs.unit} to 0.1, elevation metre to 0.1"),
+        *_other_datum_records(ctx, table),
         ("H26", "Producing run", ctx.run_id),
         ("H26", "Edit set", ctx.edit_set_hash),
         ("H26", "Edit ids in force", ",".join(str(i) for i in ctx.edit_ids) or "none"),
     ]
     if ctx.anchor is not None:  # where the delivery sits in the archive's ledger
         recs.append(("H26", ANCHOR_LABEL, ctx.anchor.text()))
+    recs.append(("H26", "Flags and decisions", DECISIONS_TEXT))
     recs.append(("H26", "Not a certified survey", "for seismic processing, not legal/setback use"))
     return [line for r in recs for line in header_lines(*r, continuation_item="H26")]
+
+
+def _other_datum_records(ctx: DeliveryContext, table: pa.Table | None
+                         ) -> list[tuple[str, str, str]]:
+    """H26 records naming the records whose height is not in the H17 datum (a GNSS height
+    where the elevation model has no value) and the datum it is in."""
+    if table is None or table.num_rows == 0:
+        return []
+    names = other_datum_stations(table, ctx)
+    if not names:
+        return []
+    which = "every record" if len(names) == table.num_rows else ", ".join(names)
+    return [("H26", "Heights not in H17 datum",
+             f"{len(names)} record(s), GNSS height, {ctx.gnss_datum}: {which}")]
 
 
 def _date_span(table: pa.Table | None) -> str:

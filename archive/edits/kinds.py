@@ -35,3 +35,8 @@ AUTO_SUPERSEDE = ("set-position", "set-height", "reject-station", "ack-flag")
 
 FINAL_KINDS = ("set-position", "set-height", "reject-station", "ack-flag")
 """Kinds the final positions apply; exclude spans act at the solve and come from the run."""
+
+POSITION_FLAGS = frozenset({"few-fixes", "short-span", "wide-spread", "moved", "far-from-plan",
+                            "nearer-other", "unoccupied"})
+"""Review flags that describe the solver's position: a ``set-position`` replaces that
+solution, and so decides them."""

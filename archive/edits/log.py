@@ -11,6 +11,7 @@ with its ``edit.<kind>`` ledger event.
 from __future__ import annotations
 
 import json
+from dataclasses import dataclass
 from datetime import datetime
 from typing import Any
 
@@ -38,28 +39,75 @@ def edits_in_force(session: Session, survey_id: int, *, as_of: datetime | None =
     return live
 
 
+@dataclass
+class EditSpec:
+    """One edit to record: its kind, the occupation it names, payload and reason."""
+
+    kind: str
+    line: float
+    point: float
+    index: int
+    payload: dict[str, Any]
+    reason: str
+    supersedes: int | None = None
+
+
+def _live_key(kind: str, line: float, point: float, index: int,
+              payload: dict[str, Any]) -> tuple[Any, ...]:
+    """What a new edit of ``kind`` replaces: the same occupation (and flag, for acks)."""
+    flag = payload.get("flag") if kind == "ack-flag" else None
+    return (kind, float(line), float(point), int(index), flag)
+
+
+def record_edits(arc: Archive, survey_id: int, specs: list[EditSpec], *,
+                 batch: dict[str, Any] | None = None) -> list[Edit]:
+    """Insert edits in ONE transaction, each superseding what it replaces, each with its own
+    ``edit.<kind>`` ledger event (``batch``, when given, is added to every event's payload
+    so the events of one review session can be found together). All or nothing."""
+    out: list[Edit] = []
+    with arc.transaction() as tx:
+        live: dict[tuple[Any, ...], int] = {}
+        if any(sp.supersedes is None and sp.kind in AUTO_SUPERSEDE for sp in specs):
+            for e in edits_in_force(tx, survey_id, kinds=AUTO_SUPERSEDE):
+                live[_live_key(e.kind, e.line, e.point, e.point_index,
+                               json.loads(e.payload or "{}"))] = e.id
+        now = utcnow()
+        pending: dict[tuple[Any, ...], Edit] = {}  # added in this batch, id not yet known
+        for sp in specs:
+            key = _live_key(sp.kind, sp.line, sp.point, sp.index, sp.payload)
+            supersedes = sp.supersedes
+            if supersedes is None and sp.kind in AUTO_SUPERSEDE:
+                if key in pending:  # replaces an edit of this same batch: its id is needed
+                    tx.flush()
+                    live[key] = pending.pop(key).id
+                supersedes = live.get(key)
+            edit = Edit(survey_id=survey_id, kind=sp.kind, line=float(sp.line),
+                        point=float(sp.point), point_index=int(sp.index),
+                        payload=canonical_json(sp.payload).decode("utf-8"), reason=sp.reason,
+                        supersedes=supersedes, created_at=now, created_by=arc.actor)
+            tx.add(edit)
+            if sp.kind in AUTO_SUPERSEDE:
+                pending[key] = edit
+            out.append(edit)
+        tx.flush()  # every id at once
+        events = []
+        for sp, edit in zip(specs, out, strict=True):
+            event = {"edit": edit.id, "kind": sp.kind,
+                     "station": [edit.line, edit.point, int(sp.index)], "payload": sp.payload,
+                     "reason": sp.reason, "supersedes": edit.supersedes}
+            if batch is not None:
+                event["batch"] = batch
+            events.append((f"edit.{sp.kind}", event, survey_id, [edit]))
+        arc.log_many(tx, events)
+    return out
+
+
 def record_edit(arc: Archive, survey_id: int, kind: str, line: float, point: float,
                 index: int, payload: dict[str, Any], reason: str, *,
                 supersedes: int | None = None) -> Edit:
     """Insert one edit, superseding what it replaces, with its ledger event."""
-    with arc.transaction() as tx:
-        if supersedes is None and kind in AUTO_SUPERSEDE:
-            for live in edits_in_force(tx, survey_id, kinds=(kind,)):
-                same = (live.line, live.point, live.point_index) == (line, point, index)
-                if same and (kind != "ack-flag"
-                             or json.loads(live.payload).get("flag") == payload.get("flag")):
-                    supersedes = live.id
-        edit = Edit(survey_id=survey_id, kind=kind, line=float(line), point=float(point),
-                    point_index=int(index), payload=canonical_json(payload).decode("utf-8"),
-                    reason=reason, supersedes=supersedes, created_at=utcnow(),
-                    created_by=arc.actor)
-        tx.add(edit)
-        tx.flush()
-        arc.log(tx, f"edit.{kind}",
-                {"edit": edit.id, "kind": kind, "station": [edit.line, edit.point, index],
-                 "payload": payload, "reason": reason, "supersedes": supersedes},
-                survey_id=survey_id, rows=[edit])
-    return edit
+    return record_edits(arc, survey_id, [EditSpec(kind, line, point, index, payload, reason,
+                                                  supersedes)])[0]
 
 
 def edit_dict(e: Edit, *, in_force: bool | None = None) -> dict[str, Any]:

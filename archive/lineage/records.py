@@ -17,6 +17,7 @@ from typing import Any
 from sqlalchemy import select
 
 from archive.deliver.deliveries import delivery_dict
+from archive.deliver.precision import as_delivered, file_decimals
 from archive.store.archive import Archive
 from archive.store.models import Delivery
 from archive.survey.keys import rows_at
@@ -76,12 +77,14 @@ def station_records(arc: Archive, survey_id: int, line: float, point: float, *,
         if not rows:
             continue
         legacy = "station_index" not in table.column_names
+        places = file_decimals(d.format, table)
         if legacy and d.run_id not in solved:
             solved[d.run_id] = _legacy_lookup(arc, d.run_id, line, point)
         for r in rows:  # one entry per delivered record of the station
             rec = _tie_legacy(r, solved[d.run_id]) if legacy else r
             out.append(delivery_dict(d) | {
-                "record": {k: rec.get(k) for k in RECORD_KEYS}, "legacy": legacy})
+                "record": {k: rec.get(k) for k in RECORD_KEYS}, "legacy": legacy,
+                "as_delivered": as_delivered(rec, places)})
     return out
 
 

@@ -94,6 +94,10 @@ def where(arc: Archive, survey_id: int, line: float, point: float, index: int | 
         rec = chosen["delivered"]["record"]
         moved = {f for f in ((rec.get("flags") or "") + ";"
                              + (rec.get("flags_acknowledged") or "")).split(";") if f}
+        if moment is not None and ({"short-span", "few-fixes"} & moved):
+            notes.append("the node logged only part of its stay (short-span or few-fixes): "
+                         "its position holds for the whole logged window, whether it "
+                         "recorded at that moment is for its seismic data to say")
         if "moved" in moved and rec.get("part") not in (1, 2):
             notes.append("the node moved during this occupation: the delivered position is "
                          "where it stood at the end ('nodekeep trace' shows each part)")

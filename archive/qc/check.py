@@ -6,12 +6,12 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from archive.errors import UsageError
 from archive.qc.notes import DEFAULT_TOLERANCE, notes_for_output
 from archive.qc.sources import InputInfo, RunData, load_run_data
 from archive.qc.stats import Comparison, compare, delivered
+from archive.solve.flags import FlagCounts, count_flags
 from archive.store.archive import Archive
 from archive.survey.schema import CONTROL_SCHEMA
 
@@ -29,6 +29,7 @@ class QcResult:
     n_check_points: int
     comparison: Comparison
     notes: list[str] = field(default_factory=list)
+    flag_counts: FlagCounts | None = None  # flags counted per station, as solve counts them
 
     @property
     def n_checked(self) -> int:
@@ -42,7 +43,9 @@ class QcResult:
             "survey": self.survey["name"], "crs": self.survey["crs"], "run": self.run["id"],
             "code_version": self.run["code_version"], "control": self.control.as_dict(),
             "tolerance_m": self.tolerance, "n_delivered": self.n_delivered,
-            "n_flagged": self.n_flagged, "n_check_points": self.n_check_points,
+            "n_flagged": self.n_flagged,
+            "flag_counts": self.flag_counts.as_dict() if self.flag_counts else None,
+            "n_check_points": self.n_check_points,
             "n_checked": self.n_checked, "sign": "position minus check point",
             "percentile": "numpy linear (Hyndman & Fan definition 7)",
             "solved": c.solved.as_dict(), "preplot": c.preplot.as_dict(),
@@ -70,7 +73,7 @@ def qc_of(data: RunData, tolerance: float = DEFAULT_TOLERANCE) -> QcResult:
     control = data.control if data.control is not None else CONTROL_SCHEMA.empty_table()
     comparison = compare(data.positions, control, data.stations, tolerance=tolerance)
     dl = delivered(data.positions)
-    n_flagged = int(pc.sum(pc.not_equal(dl["flags"], "")).as_py() or 0)
+    counts = count_flags(data.positions)
     notes = notes_for_output()
     if data.control is None:
         notes.insert(0, "No check points are loaded for this survey: load them with "
@@ -80,8 +83,9 @@ def qc_of(data: RunData, tolerance: float = DEFAULT_TOLERANCE) -> QcResult:
                         "(line, point, index).")
     return QcResult(
         survey=data.survey, run=data.run, control=data.inputs.get("control", InputInfo("control")),
-        tolerance=float(tolerance), n_delivered=dl.num_rows, n_flagged=n_flagged,
+        tolerance=float(tolerance), n_delivered=dl.num_rows, n_flagged=counts.n_flagged,
         n_check_points=control.num_rows, comparison=comparison, notes=notes,
+        flag_counts=counts,
     )
 
 

@@ -31,6 +31,8 @@ from archive.qc.review_list import (
     OCC_KEY,
     CloudReader,
     cloud_section,
+    decided_list,
+    decided_table,
     review_list,
     review_table,
     with_occupation,
@@ -187,7 +189,7 @@ def _figures(data: RunData, result: QcResult, review: Any, progress: Progress) -
     return figs
 
 
-def _verdict(result: QcResult, beyond_n: int) -> str:
+def _verdict(result: QcResult, beyond_n: int, n_waiting: int) -> str:
     """The tiles at the top: delivered, checked, accuracy, beyond tolerance, flagged."""
     s = result.comparison.solved.horizontal
     p = result.comparison.preplot.horizontal
@@ -198,7 +200,8 @@ def _verdict(result: QcResult, beyond_n: int) -> str:
              (f"{html.num(s.p95, '{:.2f}')} m",
               f"95th percentile, solved (preplot {html.num(p.p95, '{:.2f}')} m)"),
              (f"{beyond_n:,}", f"beyond {result.tolerance:g} m of their check point"),
-             (f"{result.n_flagged:,}", "flagged by the solver")]
+             (f"{result.n_flagged:,}", "stations flagged by the solver"),
+             (f"{n_waiting:,}", "flagged stations still waiting for a decision")]
     return '<div class="verdict">' + "".join(
         f'<div class="tile"><div class="v">{escape(v)}</div><div class="k">{escape(k)}</div></div>'
         for v, k in tiles) + "</div>"
@@ -212,16 +215,23 @@ LEGEND = ("<p>Symbols in every figure: fixes used, small grey dots; rejected fix
 
 def _page(data: RunData, result: QcResult, figs: list[str], review: Any, clouds_html: str,
           drawn: int, generated_at: datetime | None) -> str:
-    """The whole page: verdict, cautions, lineage, summary, figures, review, definitions."""
+    """The whole page: verdict, cautions, lineage, summary, figures, review (open flags,
+    then decided ones), definitions."""
     beyond_n = int(review["beyond"].sum()) if len(review) else 0
+    waiting = review[review["flags"] != ""][OCC_KEY].drop_duplicates() if len(review) else []
+    decided = decided_list(data)
     cautions = html.section("cautions", "Read this first", "<ul>" + "".join(
         f"<li>{escape(c)}</li>" for c in notes.CAUTIONS) + "</ul>", cls="caution")
     body = "".join([
-        _verdict(result, beyond_n), cautions, _lineage_section(data), _summary_section(result),
+        _verdict(result, beyond_n, len(waiting)), cautions, _lineage_section(data), _summary_section(result),
         _no_quality_section(data),
         html.section("figures", "Maps and distributions", LEGEND + "".join(figs)),
         html.section("review", f"Stations to review ({len(review):,})",
                      review_table(review, set(range(drawn))) + clouds_html),
+        html.section("decided", f"Decided flags ({len(decided):,})",
+                     "<p>Flags a person settled: accepted (acknowledged), the station "
+                     "rejected, or the solver's position replaced. They no longer wait for "
+                     "review.</p>" + decided_table(decided)),
         _definitions(),
     ])
     when = (generated_at or datetime.now(UTC)).strftime("%Y-%m-%d %H:%M UTC")
@@ -232,7 +242,8 @@ def _page(data: RunData, result: QcResult, figs: list[str], review: Any, clouds_
                 + (f"{sv['contractor']} · " if sv.get("contractor") else "")
                 + "not a certified survey")
     nav = [("cautions", "Cautions"), ("lineage", "Lineage"), ("summary", "Summary"),
-           ("figures", "Figures"), ("review", "Review"), ("definitions", "Definitions")]
+           ("figures", "Figures"), ("review", "Review"), ("decided", "Decided"),
+           ("definitions", "Definitions")]
     footer = (f"nodekeep {__version__} · generated {when} · read-only view of run "
               f"{data.run['id']}")
     return html.page(title, subtitle, nav, body, footer)

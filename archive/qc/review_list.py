@@ -1,8 +1,10 @@
 """The stations a reviewer should look at, as the report lists them and draws their clouds.
 
-A delivered occupation needs review when the solver flagged it or it lies farther than the qc
+A delivered occupation needs review when a flag of the solver is still open on it (no
+decision in force settles it, :mod:`archive.edits.decided`) or it lies farther than the qc
 tolerance from its RTK check point (reason ``beyond-check``); those beyond the tolerance come
-first, largest first, then the flagged ones by station.
+first, largest first, then the flagged ones by station. Flags people decided are listed
+apart (:func:`decided_list`), with the decision, who made it, when and why.
 """
 
 from __future__ import annotations
@@ -15,6 +17,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
+from archive.edits.decided import FlagState, split_flags
 from archive.errors import NodekeepError
 from archive.progress import Progress
 from archive.qc import html
@@ -40,6 +43,7 @@ def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
     df["dist_preplot"] = df["dist_preplot"].fillna(
         np.hypot(df["easting"] - df["preplot_e"], df["northing"] - df["preplot_n"]))
     df["beyond"] = df["dist"] > result.tolerance
+    df["flags"] = open_flags(df, data.decisions)
     df = df[(df["flags"] != "") | df["beyond"]].copy()
     df["reasons"] = np.where(df["beyond"], np.where(df["flags"] != "", BEYOND + ";" + df["flags"],
                                                     BEYOND), df["flags"])
@@ -47,6 +51,58 @@ def review_list(data: RunData, result: QcResult) -> pd.DataFrame:
     return df.sort_values(["_d", "line", "point", "occupation"],
                           ascending=[False, True, True, True],
                           kind="stable").reset_index(drop=True)
+
+
+def _states(df: pd.DataFrame, decisions: dict[Any, list[Any]]) -> list[FlagState]:
+    return [split_flags((f or "").split(";"), decisions.get((float(a), float(b), int(c)), []))
+            for a, b, c, f in zip(df["line"], df["point"], df["occupation"], df["flags"],
+                                  strict=True)]  # one per flagged record, not per fix
+
+
+def open_flags(df: pd.DataFrame, decisions: dict[Any, list[Any]]) -> list[str]:
+    """The flags of each row still open (no decision in force settles them)."""
+    if not decisions:
+        return list(df["flags"])
+    return [";".join(s.open) for s in _states(df, decisions)]
+
+
+def decided_list(data: RunData) -> pd.DataFrame:
+    """Flags of delivered stations that people decided: one row per station and decision
+    (flags, kind, actor, UTC time, reason, edit id), by station."""
+    cols = ["line", "point", "index", "occupation", "node", "flags", "decided", "decision",
+            "by", "at", "reason", "edit"]
+    pos = with_occupation(delivered(data.positions).select(
+        [c for c in ("line", "point", "index", "occupation", "node", "flags")
+         if c in data.positions.column_names]).to_pandas())
+    pos = pos[pos["flags"] != ""].drop_duplicates(OCC_KEY)
+    rows = []
+    for r, st in zip(pos.itertuples(index=False), _states(pos, data.decisions), strict=True):
+        by_edit: dict[int, list[str]] = {}
+        for f, d in st.decided.items():
+            by_edit.setdefault(d["edit"], []).append(f)
+        for d in st.decisions:
+            if d["edit"] in by_edit:
+                rows.append((r.line, r.point, r.index, r.occupation, r.node, r.flags,
+                             ";".join(by_edit[d["edit"]]), d["kind"], d["by"], d["at"],
+                             d["reason"], d["edit"]))
+    return pd.DataFrame(rows, columns=cols).sort_values(
+        ["line", "point", "occupation", "edit"], kind="stable").reset_index(drop=True)
+
+
+def decided_table(df: pd.DataFrame) -> str:
+    """The decided flags as an HTML table."""
+    if df.empty:
+        return "<p>No flag has been decided yet.</p>"
+    rows = [(station_text(r.line, r.point), r.occupation, r.node, r.decided.replace(";", ", "),
+             r.decision, r.by, r.at.strftime("%Y-%m-%d %H:%M:%S"), r.reason, r.edit)
+            for r in df.head(MAX_TABLE_ROWS).itertuples()]
+    more = (f'<p class="note">{len(df) - MAX_TABLE_ROWS:,} more decisions are not listed; '
+            "'nodekeep review list --all --json' lists every one.</p>"
+            if len(df) > MAX_TABLE_ROWS else "")
+    return ('<div class="scroll">' + html.table(
+        ["station (line / point)", "index", "node", "flags decided", "decision", "by",
+         "when (UTC)", "reason", "edit"], rows, numeric=(1, 8))
+        + "</div>" + more)
 
 
 OCC_KEY = ["line", "point", "index", "occupation"]

@@ -11,6 +11,7 @@ from typing import Any
 
 import pyarrow as pa
 
+from archive.edits.decided import in_force_by_occupation
 from archive.store.archive import Archive
 from archive.store.models import Survey
 
@@ -42,6 +43,9 @@ class RunData:
     control: pa.Table | None
     stations: pa.Table | None
     inputs: dict[str, InputInfo] = field(default_factory=dict)
+    # the deciding edits in force (acks, rejects, set positions and heights) by occupation
+    # (line, point, occupation index), as :mod:`archive.edits.decided` keys them
+    decisions: dict[tuple[float, float, int], list[Any]] = field(default_factory=dict)
 
 
 def survey_info(arc: Archive, survey_id: int) -> dict[str, Any]:
@@ -91,9 +95,12 @@ def load_run_data(arc: Archive, survey_id: int, run_ref: str | None = None) -> R
     manifest = run_manifest(arc, run)
     control_info, control = _input(arc, survey_id, "control")
     stations_info, stations = _input(arc, survey_id, "stations")
+    with arc.session() as s:
+        decisions = in_force_by_occupation(s, survey_id)
     return RunData(survey=survey, run=run_info(run), manifest=manifest, positions=positions,
                    control=control, stations=stations,
-                   inputs={"control": control_info, "stations": stations_info})
+                   inputs={"control": control_info, "stations": stations_info},
+                   decisions=decisions)
 
 
 def cloud_reader(arc: Archive, run_id: str):

@@ -1,1 +1,2 @@
-"""Review of a run's flags: the decisions that read a run (acknowledging a flag)."""
+"""Review of a run's flags: acknowledging one flag (``acknowledge``), the stations waiting
+for a decision and the flag counts (``queue``), bulk decisions (``bulk``)."""

@@ -4,14 +4,19 @@ Every flag is a vector test over all positions; the ``flags`` column joins the k
 apply with ";" in the fixed order of ``FLAGS``. The preplot checks use a k-d tree of the
 stations: distance to the position's own station, and the nearest *other* station (a
 position nearer another station than its own hints at a serial/station mix-up in the log).
+
+:func:`count_flags` is the one way flags are counted for people: per station (occupation),
+never per row (a node that moved has a row per part) nor per fix.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy.spatial import cKDTree
+import pandas as pd
+import pyarrow as pa
 
 from archive.solve.params import setting
 from archive.solve.schema import FLAGS
@@ -56,6 +61,8 @@ def preplot_checks(east: np.ndarray, north: np.ndarray, own_key: np.ndarray,
     out["dist_preplot"] = np.hypot(east - out["preplot_e"], north - out["preplot_n"]) * unit_factor
     fin = np.isfinite(east) & np.isfinite(north)
     if fin.any():
+        from scipy.spatial import cKDTree  # imported when solving, not by readers of counts
+
         k = min(2, len(st_key))
         dist, idx = cKDTree(np.column_stack([st_e, st_n])).query(
             np.column_stack([east[fin], north[fin]]), k=k)
@@ -116,3 +123,66 @@ def flag_strings(cols: dict[str, np.ndarray], p: dict[str, Any]) -> np.ndarray:
         hit = np.asarray(hit, dtype=bool) & ~waiting
         out[hit] = np.where(out[hit] == "", key, out[hit] + ";" + key)
     return out
+
+
+STATION_KEY = ("line", "point", "occupation")
+"""A station as review counts it: one occupation (a node's deployment there), keyed by its
+line, point and delivered point index; both parts of a node that moved are one station."""
+
+
+@dataclass(frozen=True)
+class FlagCounts:
+    """Review flags counted per station (occupation), the one way every command counts them.
+
+    ``n_stations`` stations have delivered rows; ``n_flagged`` of them carry at least one
+    flag on any of their delivered rows; ``per_flag`` counts, for each flag, the stations
+    carrying it (a station with two flags counts once in ``n_flagged`` and once under each
+    flag). Stationary clusters without a logged deployment are not stations: they are
+    counted apart in ``n_unlogged``.
+    """
+
+    n_stations: int
+    n_flagged: int
+    per_flag: dict[str, int]
+    n_unlogged: int
+
+    def as_dict(self) -> dict[str, Any]:
+        """Plain data (the unit is said, so no reader takes them for rows)."""
+        return {"unit": "stations (occupations)", "n_stations": self.n_stations,
+                "n_flagged": self.n_flagged, "per_flag": self.per_flag,
+                "n_unlogged": self.n_unlogged}
+
+
+def station_flags(table: pa.Table) -> pd.DataFrame:
+    """One row per station (occupation) with delivered rows: line, point, occupation, node
+    and its flags (the union over its delivered rows, in the order of ``FLAGS``)."""
+    cols = ["line", "point", "index", "node", "kind", "delivered", "flags"]
+    df = table.select([c for c in cols if c in table.column_names]).to_pandas()
+    df["occupation"] = (table["occupation"].to_pandas() if "occupation" in table.column_names
+                        else df["index"])
+    df["occupation"] = df["occupation"].fillna(df["index"]).astype("int64")
+    df = df[df["delivered"].astype(bool) & (df["kind"] == "logged")]
+    keys = list(STATION_KEY)
+    if df.empty:
+        return pd.DataFrame({k: pd.Series(dtype="float64") for k in keys}
+                            | {"node": pd.Series(dtype="object"),
+                               "flags": pd.Series(dtype="object")})
+    grouped = df.groupby(keys, sort=True).agg(node=("node", "first"), flags=("flags", ";".join))
+    order = {k: i for i, k in enumerate(FLAGS)}
+    grouped["flags"] = [";".join(sorted({f for f in s.split(";") if f}, key=order.get))
+                        for s in grouped["flags"]]
+    return grouped.reset_index()
+
+
+def count_flags(table: pa.Table, stations: pd.DataFrame | None = None) -> FlagCounts:
+    """The review flags of a positions table counted per station (:class:`FlagCounts`);
+    ``stations``: its :func:`station_flags`, when the caller has them already."""
+    st = station_flags(table) if stations is None else stations
+    per: dict[str, int] = {}
+    for text in st["flags"]:
+        for f in text.split(";") if text else ():
+            per[f] = per.get(f, 0) + 1
+    kind = table["kind"].to_pylist() if "kind" in table.column_names else []
+    return FlagCounts(n_stations=len(st), n_flagged=int((st["flags"] != "").sum()),
+                      per_flag={k: per[k] for k in FLAGS if k in per},
+                      n_unlogged=sum(1 for k in kind if k == "unlogged"))

@@ -145,6 +145,52 @@ def _select(dep: pa.Table, selection: dict[str, Any]) -> tuple[pa.Table, set | N
     return dep, keys
 
 
+def _names(items: list[str], limit: int = 8) -> str:
+    more = f" and {len(items) - limit} more" if len(items) > limit else ""
+    return ", ".join(items[:limit]) + more
+
+
+def check_selection(deployments: pa.Table, stations: pa.Table,
+                    selection: dict[str, Any]) -> None:
+    """Refuse a selection that names a station or a node the deployment log does not have,
+    or whose stations and nodes never met: :class:`UsageError` names every one, so a typo
+    never records an empty run."""
+    from archive.survey.keys import station_text
+
+    logged = set(zip(deployments["line"].to_pylist(), deployments["point"].to_pylist(),
+                     strict=True))
+    planned = set(zip(stations["line"].to_pylist(), stations["point"].to_pylist(),
+                      strict=True))
+    wanted = [(float(a), float(b)) for a, b in selection.get("stations") or []]
+    unknown = [k for k in wanted if k not in logged]
+    if unknown:
+        not_planned = [station_text(*k) for k in unknown if k not in planned]
+        not_laid = [station_text(*k) for k in unknown if k in planned]
+        what = "; ".join(
+            [f"not in the preplot: {_names(not_planned)}"] * bool(not_planned)
+            + [f"in the preplot but never deployed: {_names(not_laid)}"] * bool(not_laid))
+        raise UsageError(f"--stations: {len(unknown)} of {len(wanted)} station(s) cannot be "
+                         f"solved ({what})",
+                         hint="give stations of the deployment log as LINE:POINT "
+                              "('nodekeep inputs' shows the current deployment log)")
+    nodes = list(selection.get("nodes") or [])
+    known_nodes = set(deployments["node"].to_pylist())
+    missing = [n for n in nodes if n not in known_nodes]
+    if missing:
+        raise UsageError(f"--nodes: {len(missing)} of {len(nodes)} serial(s) are not in the "
+                         f"deployment log: {_names(missing)}",
+                         hint="give serials exactly as the deployment log has them "
+                              "('nodekeep logs' lists the nodes with logs)")
+    if wanted and nodes:
+        both = [(float(a), float(b)) in set(wanted) and n in set(nodes) for a, b, n in
+                zip(deployments["line"].to_pylist(), deployments["point"].to_pylist(),
+                    deployments["node"].to_pylist(), strict=True)]
+        if not any(both):
+            raise UsageError("--stations and --nodes select nothing together: none of these "
+                             "nodes was deployed at any of these stations",
+                             hint="give one of the two, or a node deployed at the station")
+
+
 def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
                   manifest: dict[str, Any] | None = None) -> SolveInputs:
     """The inputs of a solve: current versions, or those a ``manifest`` names."""
@@ -171,6 +217,8 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
     stations = arc.objects.read_table(st_hash)
     # occupations are numbered over the whole log, before any selection or partition
     dep_all = with_occupations(arc.objects.read_table(dep_hash))
+    if manifest is None:  # a recompute reads the selection its run recorded, as it was
+        check_selection(dep_all, stations, selection)
     deployments, keys = _select(dep_all, selection)
     if keys is not None and deployments.num_rows == 0:
         raise UsageError("none of the selected stations is in the deployment log",

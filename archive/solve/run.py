@@ -24,7 +24,7 @@ from sqlalchemy import select
 from archive import __version__
 from archive.errors import IntegrityError, UsageError
 from archive.progress import NoProgress, Progress
-from archive.solve.schema import FLAGS
+from archive.solve.flags import count_flags
 from archive.solve.schema import SORT_KEYS as RUN_ORDER
 from archive.store.archive import Archive
 from archive.store.hashing import canonical_hash, canonical_json, table_digest
@@ -87,16 +87,11 @@ def build_manifest(inp: SolveInputs, params: dict[str, Any], selection: dict[str
     }
 
 
-def _counts(table: pa.Table) -> tuple[int, dict[str, int]]:
-    flags = table["flags"].to_pylist()
-    counts = {k: 0 for k in FLAGS}
-    n_flagged = 0
-    for f in flags:  # one entry per position row, not per fix
-        if f:
-            n_flagged += 1
-            for key in f.split(";"):
-                counts[key] = counts.get(key, 0) + 1
-    return n_flagged, {k: v for k, v in counts.items() if v}
+def _counts(table: pa.Table) -> tuple[int, dict[str, int], dict[str, Any]]:
+    """Flagged stations, stations per flag and the summary's counts (:func:`count_flags`)."""
+    c = count_flags(table)
+    return c.n_flagged, c.per_flag, {"n_stations": c.n_stations, "n_unlogged": c.n_unlogged,
+                                     "flag_unit": "stations"}
 
 
 def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = None, *,
@@ -125,10 +120,14 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
     with arc.session() as s:
         existing = s.get(Run, run_id)
     if existing is not None:
-        n_flagged = existing.n_flagged
-        summary = json.loads(existing.summary or "{}")
-        return RunResult(run_id, False, existing.n_positions, n_flagged,
-                         summary.get("flag_counts", {}), summary)
+        from archive.solve.occupancy import run_occupations
+
+        # counted again from the table: runs recorded before flags were counted per
+        # station stored counts of rows
+        n_flagged, flag_counts, counted = _counts(run_occupations(arc, existing))
+        summary = json.loads(existing.summary or "{}") | counted | {
+            "n_flagged": n_flagged, "flag_counts": flag_counts}
+        return RunResult(run_id, False, existing.n_positions, n_flagged, flag_counts, summary)
     reuse = None
     if incremental and selection == _selection(None, None):
         from archive.solve.reuse import find_reuse, result_keys
@@ -137,10 +136,10 @@ def solve_survey(arc: Archive, survey_id: int, params: dict[str, Any] | None = N
     table, stats, unfinished = solve_inputs(
         arc, manifest, inp, progress, scheduler=scheduler, workers=workers,
         skip=reuse.nodes if reuse else None, reused=reuse.rows if reuse else None)
-    n_flagged, flag_counts = _counts(table)
+    n_flagged, flag_counts, counted = _counts(table)
     delivered = table.filter(table["delivered"])
     summary = {"n_positions": table.num_rows, "n_delivered": delivered.num_rows,
-               "n_flagged": n_flagged, "flag_counts": flag_counts,
+               "n_flagged": n_flagged, "flag_counts": flag_counts, **counted,
                "n_awaiting": int(pc.sum(pc.equal(table["kind"], "awaiting")).as_py() or 0),
                "estimator": resolved["estimate"]["estimator"],
                "uncertainty": resolved["uncertainty"]["method"],

@@ -309,6 +309,13 @@ class Archive:
         return ledger.append(session, actor=self.actor, action=action, payload=payload,
                              survey_id=survey_id, rows=rows)
 
+    def log_many(self, session: Session,
+                 events: list[tuple[str, dict[str, Any], int | None, list[Any] | None]],
+                 ) -> list[LedgerEvent]:
+        """Append many ledger events ``(action, payload, survey_id, rows)`` in order in
+        ``session``'s transaction, taking the writers' lock once (:func:`ledger.append_many`)."""
+        return ledger.append_many(session, actor=self.actor, events=events)
+
     def register_object(self, session: Session, h: str, size: int, kind: str) -> None:
         """Record in the catalog that object ``h`` is referenced (idempotent)."""
         values = {"hash": h, "size": size, "kind": kind, "created_at": utcnow()}

@@ -105,3 +105,37 @@ def gnss_orthometric(lon: Any, lat: Any, h_ell: Any, h_msl: Any, geoid_sep: Any,
         z = np.asarray(z, dtype=np.float64)
         out[ok] = np.where(np.isfinite(z) & (np.abs(z) < 1e30), z, np.nan)
     return out
+
+
+def geoid_separation(lon: Any, lat: Any, mode: str, param: str) -> np.ndarray | None:
+    """The separation N (ellipsoid minus the delivered heights' datum, metres) that the
+    survey's height mode defines at each point, so h = H + N is a height above the WGS 84
+    ellipsoid; None for ``gga``, whose separation is each receiver's own model and not a
+    path to the elevation model's datum. NaN outside a geoid grid."""
+    lo = np.atleast_1d(np.asarray(lon, dtype=np.float64))
+    la = np.atleast_1d(np.asarray(lat, dtype=np.float64))
+    if mode == "constant":
+        check_height_mode(mode, param)
+        return np.where(np.isfinite(lo) & np.isfinite(la), float(param), np.nan)
+    if mode != "grid":
+        return None
+    zero = np.zeros(lo.shape)
+    # the grid transformer maps h to h - N: from h = 0 it gives -N
+    return -gnss_orthometric(lo, la, zero, None, None, _Mode(mode, param))
+
+
+def gnss_height_datum(mode: str, param: str, model_datum: str) -> str:
+    """What a GNSS height delivered where the elevation model has no value is measured
+    from, in the survey's height mode (for the per-station datum of a delivery)."""
+    if mode == "constant":
+        return f"{model_datum or 'model datum'} via a constant separation of {param} m (GNSS)"
+    if mode == "grid":
+        return f"{model_datum or 'model datum'} via geoid grid {param} (GNSS)"
+    return "receiver's own geoid (GNSS GGA altitude), not the elevation model's datum"
+
+
+class _Mode:
+    """A height mode in the shape :func:`gnss_orthometric` reads (a Survey row's fields)."""
+
+    def __init__(self, height_mode: str, height_param: str) -> None:
+        self.height_mode, self.height_param = height_mode, height_param

@@ -174,9 +174,53 @@ def test_geojson_rfc7946_lonlat_from_pyproj():
     tr = Transformer.from_crs("EPSG:32614", "EPSG:4326", always_xy=True)
     for i, f in enumerate(doc["features"]):
         lon, lat = tr.transform(t.column("easting")[i].as_py(), t.column("northing")[i].as_py())
-        x, y, _z = f["geometry"]["coordinates"]
-        assert (x, y) == pytest.approx((lon, lat), abs=1e-9)  # RFC 7946 §3.1.1: lon first
+        # RFC 7946 §3.1.1: lon first. The survey's heights follow the receivers' own geoid
+        # (GGA): no path to the ellipsoid, so no third value (§4: it would have to be a
+        # height above the WGS 84 ellipsoid); the orthometric height stays a property.
+        x, y = f["geometry"]["coordinates"]
+        assert (x, y) == pytest.approx((lon, lat), abs=1e-9)
         assert f["properties"]["easting"] == t.column("easting")[i].as_py()
+        assert f["properties"]["height"] == t.column("height")[i].as_py()
+        assert f["properties"]["vertical_datum"] == "NAVD88 (model)"
+    assert doc["nodekeep"]["ellipsoidal_height"].startswith("none")
+
+
+def test_geojson_third_value_is_height_above_the_ellipsoid_constant():
+    """RFC 7946 §3.1.1 (third element: altitude) and §4 (height in metres above or below the
+    WGS 84 reference ellipsoid): with a constant separation N = 26.5 m, h = H + N."""
+    t = final_table(4)
+    doc = json.loads(write_geojson(t, context(height_mode="constant", height_param="26.5")))
+    for i, f in enumerate(doc["features"]):
+        assert len(f["geometry"]["coordinates"]) == 3
+        h = f["geometry"]["coordinates"][2]
+        assert h == pytest.approx(t.column("height")[i].as_py() + 26.5, abs=1e-9)
+        assert f["properties"]["height"] == t.column("height")[i].as_py()  # orthometric
+        assert f["properties"]["geoid_separation"] == 26.5
+
+
+def test_geojson_third_value_through_a_geoid_grid(tmp_path):
+    """h = H + N(lon, lat) with N read by PROJ from a geoid grid: N = -30 + 2(lon + 99) +
+    3(lat - 31) is linear, so bilinear interpolation gives it exactly; a station off the grid
+    gets two coordinates, never a guess (RFC 7946 §3.1.1: the third element is optional)."""
+    from tests.support.rasters import write_gtx
+
+    lats = 31.0 + 0.5 * np.arange(5)
+    lons = -99.0 + 0.5 * np.arange(5)
+    n_grid = -30 + 2 * (lons[None, :] + 99) + 3 * (lats[:, None] - 31)
+    grid = tmp_path / "kestrel_geoid.gtx"
+    write_gtx(grid, lats[0], lons[0], 0.5, 0.5, n_grid)
+    t = final_table(4)
+    far = t.column("easting").to_pylist()
+    far[3] = 900_000.0  # about 2.3 degrees further east: outside the grid
+    t = t.set_column(t.schema.get_field_index("easting"), "easting", pa.array(far))
+    doc = json.loads(write_geojson(t, context(height_mode="grid", height_param=str(grid))))
+    tr = Transformer.from_crs("EPSG:32614", "EPSG:4326", always_xy=True)
+    for i, f in enumerate(doc["features"][:3]):
+        lon, lat = tr.transform(t.column("easting")[i].as_py(), t.column("northing")[i].as_py())
+        n = -30 + 2 * (lon + 99) + 3 * (lat - 31)
+        assert f["geometry"]["coordinates"][2] == pytest.approx(
+            t.column("height")[i].as_py() + n, abs=1e-3)
+    assert len(doc["features"][3]["geometry"]["coordinates"]) == 2
 
 
 def test_gpkg_read_back_through_gdal(tmp_path):

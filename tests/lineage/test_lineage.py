@@ -3,6 +3,7 @@ solve: test_solver_runs.py)."""
 
 from __future__ import annotations
 
+import json
 from datetime import timedelta, timezone
 
 import numpy as np
@@ -121,3 +122,42 @@ def test_where_refuses_an_unknown_station(delivered):
     arc, sid, *_ = delivered
     with pytest.raises(UsageError, match=r"unknown station 1009/2001.*not in the preplot"):
         where(arc, sid, 1009, 2001)
+
+
+def test_diff_names_lost_positions_and_reassigned_records(survey_arc, tmp_path, runner):
+    """A record that lost its position is not 'no movement', and a key that now holds
+    another node is a re-assignment, not a common station."""
+    from tests.support.cli import invoke
+
+    sid, final, run_a, _ = delivery_archive(survey_arc, tmp_path, n=6)
+    pos = positions_table(final)
+    east = pos.column("easting").to_pylist()
+    north = pos.column("northing").to_pylist()
+    east[2] = north[2] = None  # 1001/2003: no position in the second run
+    nodes = pos.column("node").to_pylist()
+    nodes[4] = "N5999"  # 1002/2002: the serial put right in the log
+    pos_b = pos.set_column(pos.schema.get_field_index("easting"), "easting", pa.array(east))
+    pos_b = pos_b.set_column(pos.schema.get_field_index("northing"), "northing",
+                             pa.array(north))
+    pos_b = pos_b.set_column(pos.schema.get_field_index("node"), "node", pa.array(nodes))
+    f3 = add_raw_file(survey_arc, sid, "N5999", "N5999_h2.nmea", 31.7, -97.8)
+    run_b = make_run(survey_arc, pos_b, [f3], label="reprocessed")
+    d = diff_runs(survey_arc, run_a.id, run_b.id, threshold=0.5)
+    s = d["summary"]
+    assert (s["n_common"], s["n_compared"], s["n_lost_position"], s["n_reassigned"]) == (
+        6, 5, 1, 1)
+    assert s["max"] == 0.0  # the five compared did not move
+    assert d["lost_position"] == [{"line": 1001.0, "point": 2003.0, "index": 1,
+                                   "node": "N5002"}]
+    assert d["reassigned"] == [{"line": 1002.0, "point": 2002.0, "index": 1,
+                                "node_a": "N5004", "node_b": "N5999",
+                                "occupation_a": 1, "occupation_b": 1}]
+    res = invoke(runner, survey_arc.root, "diff", run_a.id[:8], run_b.id[:8])
+    assert res.exit_code == 0, res.stderr
+    assert "6 occupations in both runs (paired by line, point and point index), 5 with a " \
+           "position in both" in res.output
+    assert "1 lost their position (none in the second run): 1001/2003" in res.output
+    assert "1 re-assigned (another node or occupation): 1002/2002" in res.output
+    assert "node N5004 -> N5999" in res.output
+    res = invoke(runner, survey_arc.root, "diff", run_a.id[:8], run_b.id[:8], "--json")
+    assert json.loads(res.output)["summary"]["n_lost_position"] == 1

@@ -349,16 +349,16 @@ def test_connection_dropped_mid_write(tmp_path: Path, full_template, monkeypatch
 
     root = full_template.clone(tmp_path / "archive")
     before = counts(root)
-    real = ledger.append
+    real = ledger.append_many  # every ledger write goes through it, one event or many
 
     def dropped(session, **kw):
         session.execute(text("SELECT pg_terminate_backend(pg_backend_pid())"))
         return real(session, **kw)
 
-    monkeypatch.setattr(ledger, "append", dropped)
+    monkeypatch.setattr(ledger, "append_many", dropped)
     result = invoke(CliRunner(), root, "edit", "reject", "1001", "5003", "--reason",
                     "cable cut by a tractor")
-    monkeypatch.setattr(ledger, "append", real)
+    monkeypatch.setattr(ledger, "append_many", real)
     assert result.exit_code == ENVIRONMENT, result.output
     err = result.stderr.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("error: lost the connection to the catalog")

@@ -40,3 +40,20 @@ def test_solve_runs_show(runner, sim_arc, tmp_path) -> None:
     assert res.exit_code == 2 and "is not LINE:POINT" in res.stderr
     res = invoke(runner, arc.root, "show", "999", "1")
     assert res.exit_code == 2 and "is not in run" in res.stderr
+
+
+def test_unknown_selection_is_refused_and_records_nothing(runner, sim_arc) -> None:
+    """A serial or station the deployment log does not have is a typo, not an empty run."""
+    arc, _ = sim_arc
+    res = invoke(runner, arc.root, "solve", "--nodes", "KF05000,KF0NOPE,KF0GONE")
+    assert res.exit_code == 2
+    assert "2 of 3 serial(s) are not in the deployment log: KF0GONE, KF0NOPE" in res.stderr
+    res = invoke(runner, arc.root, "solve", "--stations", "1001:2001,999:1")
+    assert res.exit_code == 2
+    assert "1 of 2 station(s)" in res.stderr and "not in the preplot: 999/1" in res.stderr
+    res = invoke(runner, arc.root, "solve", "--stations", "1001:2001", "--nodes", "KF05001")
+    assert res.exit_code == 2 and "select nothing together" in res.stderr
+    res = invoke(runner, arc.root, "runs", "--json")
+    assert res.exit_code == 0 and json.loads(res.output) == []
+    res = invoke(runner, arc.root, "history", "--json")
+    assert "solve.run" not in res.output

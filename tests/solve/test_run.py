@@ -61,8 +61,13 @@ def test_positions_carry_heights_uncertainty_and_flags(sim_arc, small_sim) -> No
     assert set(pos["height_source"]) == {"model"}
     for f in pos["flags"]:
         assert all(k in FLAGS for k in f.split(";") if k)
-    assert res.flag_counts["moved"] == 2 and res.flag_counts["unlogged"] == 1
+    # flags count stations (occupations): the moved node has two rows and is one station;
+    # the unlogged cluster is no station and is counted apart
+    moved_rows = sum("moved" in f.split(";") for f in pos["flags"])
+    assert moved_rows == 2 and res.flag_counts["moved"] == 1
+    assert "unlogged" not in res.flag_counts and res.summary["n_unlogged"] == 1
     assert res.flag_counts["nearer-other"] >= 2
+    assert res.n_flagged <= res.summary["n_stations"] < res.n_positions
     # model height 240 + 0.002·(E - west edge): |dh| stays small for these simulated nodes
     assert all(abs(d) < 3 for d in pos["dh"])
     assert all(s > 0.2 for s in pos["sigma_h"])

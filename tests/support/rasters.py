@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import struct
 from pathlib import Path
 
 import numpy as np
@@ -39,3 +40,13 @@ def centres(transform: Affine, shape: tuple[int, int]) -> tuple[np.ndarray, np.n
     x = transform.c + (np.arange(cols) + 0.5) * transform.a
     y = transform.f + (np.arange(rows) + 0.5) * transform.e
     return x, y
+
+
+def write_gtx(path, lat0, lon0, dlat, dlon, values):
+    """A GTX vertical grid (NOAA VDatum layout, from memory: big-endian header of four
+    doubles - south latitude, west longitude, latitude and longitude spacing - then rows and
+    columns as int32, then float32 values row by row from the south)."""
+    rows, cols = values.shape
+    with open(path, "wb") as fh:
+        fh.write(struct.pack(">4d2i", lat0, lon0, dlat, dlon, rows, cols))
+        fh.write(values.astype(">f4").tobytes())

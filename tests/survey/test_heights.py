@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import struct
 from types import SimpleNamespace
 
 import numpy as np
@@ -11,6 +10,7 @@ import pytest
 from archive.errors import CRSProblem, UsageError
 from archive.survey.heights import check_height_mode, gnss_orthometric
 from archive.survey.surveys import create_survey
+from tests.support.rasters import write_gtx
 
 # NMEA GGA example (D. DePriest, "NMEA data", GGA example): altitude 545.4 m MSL,
 # geoid separation 46.9 m, so the ellipsoidal height is 545.4 + 46.9 = 592.3 m (GGA field 11
@@ -34,16 +34,6 @@ def test_constant_mode():
     # only the GGA pair known: h = altitude + separation, then minus the constant
     h2 = gnss_orthometric([LON], [LAT], None, [ALT], [SEP], survey("constant", "40"))
     assert h2[0] == pytest.approx(552.3)
-
-
-def write_gtx(path, lat0, lon0, dlat, dlon, values):
-    """A GTX vertical grid (NOAA VDatum layout, from memory: big-endian header of four
-    doubles - south latitude, west longitude, latitude and longitude spacing - then rows and
-    columns as int32, then float32 values row by row from the south)."""
-    rows, cols = values.shape
-    with open(path, "wb") as fh:
-        fh.write(struct.pack(">4d2i", lat0, lon0, dlat, dlon, rows, cols))
-        fh.write(values.astype(">f4").tobytes())
 
 
 def test_grid_mode_reads_the_grid_through_proj(tmp_path):
