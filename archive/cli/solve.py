@@ -62,15 +62,24 @@ def _flags_text(counts: dict[str, int]) -> str:
 
 def solve_text(head: str, run_id: str, n_positions: int, summary: dict[str, Any],
                n_flagged: int, flag_counts: dict[str, int]) -> str:
-    """The readable result of a solve: positions, then flags counted per station."""
+    """The readable result of a solve: positions, what was reused and what awaits harvest,
+    then flags counted per station."""
     n_st = summary.get("n_stations")
     of = f" of {n_st}" if n_st is not None else ""
     unlogged = summary.get("n_unlogged") or 0
     extra = (f"\n  {'unlogged':<16} {unlogged:>5}  stationary cluster(s) with no logged "
              "deployment, counted apart: no station (check the deployment log)"
              if unlogged else "")
+    reuse = summary.get("reuse") or {}
+    reused = (f"  nodes solved {reuse['nodes_solved']}, reused from earlier runs "
+              f"{reuse['nodes_reused']} (their inputs unchanged)\n"
+              if reuse.get("nodes_reused") else "")
+    waiting = (f"  awaiting harvest {summary['n_awaiting']} deployment(s): no log of their "
+               "node loaded yet (held back from deliveries)\n"
+               if summary.get("n_awaiting") else "")
     return (f"{head} {run_id}\n"
             f"  positions {n_positions} ({summary.get('n_delivered', '?')} to deliver)\n"
+            f"{reused}{waiting}"
             f"  flagged {n_flagged}{of} stations (a station is one occupation of a node; "
             f"each flag below counts stations too)\n{_flags_text(flag_counts)}{extra}\n"
             f"next: nodekeep review list, nodekeep show LINE POINT, nodekeep qc")
@@ -90,12 +99,15 @@ def solve_text(head: str, run_id: str, n_positions: int, summary: dict[str, Any]
                    "Workers must reach the object store (S3, or a shared folder).")
 @click.option("--workers", type=click.IntRange(1, 1024), default=None,
               help="Solve node partitions on a local Dask cluster of N processes.")
+@click.option("--from-scratch", is_flag=True,
+              help="Solve every node, reusing nothing of earlier runs (the run is the same "
+                   "bit for bit; this only costs time).")
 @survey_option
 @output_options
 @pass_state
 def solve(state: CliState, params_file: str | None, label: str, stations: str | None,
           nodes: str | None, scheduler: str | None, workers: int | None,
-          survey_name: str | None) -> None:
+          from_scratch: bool, survey_name: str | None) -> None:
     """Solve one position per deployment and record the run."""
     from archive.solve.params import load_params
     from archive.solve.run import solve_survey
@@ -105,7 +117,7 @@ def solve(state: CliState, params_file: str | None, label: str, stations: str | 
     node_list = [n.strip() for n in nodes.split(",") if n.strip()] if nodes else None
     res = solve_survey(state.archive(write=True), sid, overrides, label=label,
                        stations=_stations(stations), nodes=node_list, progress=Bar(state),
-                       scheduler=scheduler, workers=workers)
+                       scheduler=scheduler, workers=workers, incremental=not from_scratch)
     d = res.as_dict()
 
     head = "solved run" if res.created else "same inputs and parameters as run"

@@ -46,6 +46,8 @@ def test_half_harvested_survey_delivers_and_holds_back(tmp_path, runner):
     run = solve_survey(arc, sid)
     pos = run_positions(arc, get_run(arc, sid, run.run_id))
     wait = pos.filter(pc.equal(pos["kind"], "awaiting"))
+    r = invoke(runner, arc.root, "solve")  # the same run: the command says what awaits
+    assert f"awaiting harvest {wait.num_rows} deployment(s)" in r.output
     assert set(wait["node"].to_pylist()) == out_nodes
     assert set(zip(wait["line"].to_pylist(), wait["point"].to_pylist(),
                    wait["node"].to_pylist(), strict=True)) == expect_wait

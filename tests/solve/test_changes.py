@@ -20,8 +20,9 @@ from tests.support.scenarios import harvest_in_progress
 pytestmark = pytest.mark.slow
 
 
-def test_status_and_changes_through_a_harvest(tmp_path):
-    arc, sid, sc, loaded, waiting = harvest_in_progress(tmp_path, seed=23, every=3)
+def test_status_and_changes_through_a_harvest(tmp_path, db_url):
+    arc, sid, sc, loaded, waiting = harvest_in_progress(tmp_path, seed=23, every=3,
+                                                        db_url=db_url)
     with sc.deployments.open(newline="") as f:
         log = list(csv.DictReader(f))
     out_nodes = {p.stem for p in waiting}

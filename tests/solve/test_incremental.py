@@ -58,25 +58,29 @@ def test_second_solve_reuses_unchanged_nodes_bit_for_bit(tmp_path, runner):
     _corrected_log(sc.deployments, tmp_path / "deployments_v2.csv", corrected)
     load_input(arc, sid, "deployments", tmp_path / "deployments_v2.csv")
 
-    second = solve_survey(arc, sid)
-    assert second.created and second.run_id != first.run_id
-    reuse = second.summary["reuse"]
+    r = invoke(runner, arc.root, "solve")
+    assert r.exit_code == 0, r.stderr
+    second = get_run(arc, sid, r.output.split()[2])
+    assert second.id != first.run_id
+    reuse = json.loads(second.summary)["reuse"]
+    assert (f"nodes solved {reuse['nodes_solved']}, reused from earlier runs "
+            f"{reuse['nodes_reused']}") in r.output
     solved_again = {p.stem for p in more} | {corrected}
     assert reuse["nodes_solved"] == len(solved_again)
     assert reuse["reused_from"] == {first.run_id: reuse["nodes_reused"]}
     assert reuse["nodes_reused"] > 0
-    keys = run_keys(arc, get_run(arc, sid, second.run_id))
+    keys = run_keys(arc, get_run(arc, sid, second.id))
     mine = {n for n, by in zip(keys["node"].to_pylist(), keys["solved_by"].to_pylist(),
-                               strict=True) if by == second.run_id}
+                               strict=True) if by == second.id}
     assert mine == solved_again
 
     # the same positions as a from-scratch solve of the same inputs, bit for bit
-    run = get_run(arc, sid, second.run_id)
+    run = get_run(arc, sid, second.id)
     stored = run_positions(arc, run)
-    scratch = recompute(arc, second.run_id)
+    scratch = recompute(arc, second.id)
     assert table_digest(scratch) == table_digest(stored) == run.positions_digest
     assert scratch.equals(stored)
-    assert reproduce(arc, second.run_id, sid)["identical"] is True
+    assert reproduce(arc, second.id, sid)["identical"] is True
     # the manifest says nothing of the reuse: it is the from-scratch manifest
     assert "reuse" not in run_manifest(arc, run) and "results" not in run_manifest(arc, run)
 
@@ -96,7 +100,7 @@ def test_second_solve_reuses_unchanged_nodes_bit_for_bit(tmp_path, runner):
     assert f"solved in earlier run {first.run_id[:12]}, inputs unchanged" in r.output
     fresh = sorted(solved_again)[0]
     r = invoke(runner, arc.root, "show", *_station_of(stored, fresh), "--node", fresh, "--json")
-    assert {row["solved_by"] for row in json.loads(r.output)["rows"]} == {second.run_id}
+    assert {row["solved_by"] for row in json.loads(r.output)["rows"]} == {second.id}
     arc.close()
 
 

@@ -37,12 +37,13 @@ def scenario_archive(base: Path, *, seed: int, size: str = "small", control: boo
     return arc, sid, run_id, sc
 
 
-def harvest_in_progress(base: Path, *, seed: int, size: str = "small", every: int = 2
+def harvest_in_progress(base: Path, *, seed: int, size: str = "small", every: int = 2,
+                        db_url: str | None = None
                         ) -> tuple[Archive, int, Any, list[Path], list[Path]]:
     """A generated scenario mid-survey: the preplot and the whole deployment log loaded,
     the logs of every ``every``-th node (in order of their file names) harvested and loaded,
     the rest still in the ground. Returns (archive, survey id, scenario, logs loaded, logs
-    not yet loaded)."""
+    not yet loaded). ``db_url`` puts the catalog elsewhere (PostgreSQL)."""
     from archive.seeds.scenario import generate
 
     from archive.ingest.load import load_fix_files
@@ -50,7 +51,7 @@ def harvest_in_progress(base: Path, *, seed: int, size: str = "small", every: in
     from archive.survey.surveys import create_survey
 
     sc = generate(base / "scenario", seed=seed, size=size)
-    arc = Archive.init(base / "archive", actor="tester")
+    arc = Archive.init(base / "archive", db_url=db_url, actor="tester")
     sid = create_survey(arc, sc.survey_name, f"EPSG:{sc.epsg}",
                         vertical_datum=sc.vertical_datum, client=sc.client,
                         contractor=sc.contractor).id
