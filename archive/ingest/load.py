@@ -208,9 +208,7 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
             for _, task in tasks:
                 task["known_path"] = known_path
             if pool is None:
-                from concurrent.futures import ProcessPoolExecutor
-
-                pool = ProcessPoolExecutor(n_workers, mp_context=workers.context())
+                pool = workers.pool(n_workers)
             try:
                 futures = [(i, pool.submit(parse_file, t)) for i, t in tasks]
                 try:

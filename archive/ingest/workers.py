@@ -9,8 +9,11 @@ up what is loaded); :func:`archive.ingest.load.load_fix_files` takes them with
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
 import os
+import signal
+import sys
 from concurrent.futures import ProcessPoolExecutor
 
 _POOL: ProcessPoolExecutor | None = None
@@ -27,6 +30,38 @@ def context():
     return mp.get_context("fork" if "fork" in mp.get_all_start_methods() else "spawn")
 
 
+PR_SET_PDEATHSIG = 1  # Linux prctl(2) option: the signal sent when the parent ends
+
+
+def die_with_parent(parent: int) -> None:
+    """Have the kernel end this parsing process when the process that started it ends, by
+    any means (a loader killed mid-run otherwise leaves its parsing processes waiting on a
+    pipe nobody writes to, each holding a few hundred MB). Linux only (prctl(2)
+    PR_SET_PDEATHSIG); elsewhere they end when the pool's pipe closes. A parent already
+    gone when this runs ends the process at once."""
+    if sys.platform.startswith("linux"):
+        import ctypes
+
+        with contextlib.suppress(OSError, AttributeError):
+            ctypes.CDLL(None, use_errno=True).prctl(PR_SET_PDEATHSIG, int(signal.SIGKILL))
+    if os.getppid() != parent:
+        os._exit(1)
+
+
+def start(parent: int, warm_up: bool) -> None:
+    """Initializer of a parsing process: tie it to its parent, then (``warm_up``) load the
+    compiled reader."""
+    die_with_parent(parent)
+    if warm_up:
+        warm()
+
+
+def pool(n: int, warm_up: bool = False) -> ProcessPoolExecutor:
+    """``n`` parsing processes (started on demand) that end with the calling process."""
+    return ProcessPoolExecutor(n, mp_context=context(), initializer=start,
+                               initargs=(os.getpid(), warm_up))
+
+
 def warm() -> None:
     """Load the compiled reader by reading two sentences (DePriest's GGA and RMC examples)."""
     from archive.ingest.nmea import parse_nmea
@@ -39,7 +74,7 @@ def prestart(n: int) -> None:
     global _POOL, _SIZE
     if _POOL is not None or n < 1:
         return
-    _POOL = ProcessPoolExecutor(n, mp_context=context(), initializer=warm)
+    _POOL = pool(n, warm_up=True)
     _SIZE = n
     for _ in range(n):  # a process starts per task submitted, up to n
         _POOL.submit(os.getpid)

@@ -1,0 +1,48 @@
+"""A loader killed mid-run leaves no parsing process behind (they used to wait forever on
+a pipe nobody writes to, a few hundred MB each)."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import pytest
+
+PARENT = """
+import os, sys, time
+from archive.ingest import workers
+pool = workers.pool(2)
+pids = sorted(set(pool.submit(os.getpid).result() for _ in range(8)))
+futures = [pool.submit(time.sleep, 60) for _ in range(2)]  # both processes busy
+print(" ".join(map(str, pids)), flush=True)
+time.sleep(60)
+"""
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    with open(f"/proc/{pid}/stat") as fh:  # a zombie is gone for this purpose
+        return fh.read().split(")")[-1].split()[0] != "Z"
+
+
+@pytest.mark.skipif(not sys.platform.startswith("linux"), reason="prctl(2) is Linux only")
+def test_parsing_processes_end_with_a_killed_loader():
+    parent = subprocess.Popen([sys.executable, "-c", PARENT], stdout=subprocess.PIPE,
+                              text=True)
+    try:
+        pids = [int(p) for p in parent.stdout.readline().split()]
+        assert pids and all(_alive(p) for p in pids)
+        parent.send_signal(signal.SIGKILL)
+        parent.wait(10)
+        deadline = time.monotonic() + 10
+        while any(_alive(p) for p in pids) and time.monotonic() < deadline:
+            time.sleep(0.1)
+        assert not [p for p in pids if _alive(p)], "parsing processes outlived their loader"
+    finally:
+        parent.kill()
