@@ -198,6 +198,7 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     window = rows.groupby(by, sort=False).agg(deployed=("deployed", "min"),
                                               retrieved=("retrieved", "max"))
     groups = ({k: g for k, g in rows.groupby(by, sort=False)} if figures else {})
+    windows = window.to_dict("index")  # one look-up table, not a MultiIndex search a station
     stations = []
     for r in flagged.itertuples(index=False):  # one per flagged station, not per fix
         key = (float(r.line), float(r.point), int(r.occupation))
@@ -205,8 +206,8 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
         stations.append(Station(
             line=key[0], point=key[1], index=key[2], node=str(r.node), flags=flags,
             state=split_flags(flags, in_force.get(key, [])),
-            deployed=_when(window.at[key, "deployed"]),
-            retrieved=_when(window.at[key, "retrieved"]),
+            deployed=_when(windows[key]["deployed"]),
+            retrieved=_when(windows[key]["retrieved"]),
             figures=_figures(groups[key], flags, unit) if figures else {},
             last=last.get(key)))
     review = Review(run.id, survey_id, stations)

@@ -167,11 +167,18 @@ def station_flags(table: pa.Table) -> pd.DataFrame:
         return pd.DataFrame({k: pd.Series(dtype="float64") for k in keys}
                             | {"node": pd.Series(dtype="object"),
                                "flags": pd.Series(dtype="object")})
-    grouped = df.groupby(keys, sort=True).agg(node=("node", "first"), flags=("flags", ";".join))
+    df = df.assign(flags=df["flags"].fillna(""))
+    # most stations have one delivered row; only the parts of moved nodes need joining
+    several = df.duplicated(keys, keep=False).to_numpy()
+    parts = [df.loc[~several, [*keys, "node", "flags"]]]
+    if several.any():
+        parts.append(df[several].groupby(keys, sort=False).agg(
+            node=("node", "first"), flags=("flags", ";".join)).reset_index())
+    grouped = pd.concat(parts, ignore_index=True).sort_values(keys, ignore_index=True)
     order = {k: i for i, k in enumerate(FLAGS)}
     grouped["flags"] = [";".join(sorted({f for f in s.split(";") if f}, key=order.get))
                         for s in grouped["flags"]]
-    return grouped.reset_index()
+    return grouped
 
 
 def count_flags(table: pa.Table, stations: pd.DataFrame | None = None) -> FlagCounts:

@@ -94,7 +94,7 @@ def harvest_status(arc: Archive, survey_id: int) -> dict[str, Any]:
             awaiting.append({"line": r["line"], "point": r["point"], "index": r["occupation"],
                              "node": r["node"], "deployed": r["deployed"],
                              "retrieved": r["retrieved"]})
-    stray = ~np.isin(log_node, np.array(sorted(deployed_nodes), dtype=object))
+    stray = ~pd.Series(log_node, dtype=object).isin(deployed_nodes).to_numpy()  # hashed
     frame = pd.DataFrame({"node": log_node[stray], "n_fixes": log_fixes[stray]})
     orphans = frame.groupby("node").agg(n_logs=("n_fixes", "size"), n_fixes=("n_fixes", "sum"))
     counts |= {"n_deployments": dep.num_rows if dep is not None else 0,
