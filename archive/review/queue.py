@@ -190,7 +190,11 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     st = station_flags(table)
     flagged = st[st["flags"] != ""]
     # the delivered rows of the flagged stations (every part of a moved node)
-    rows = table.filter(pc.fill_null(table["delivered"], False)).to_pandas()
+    rows = table.filter(pc.fill_null(table["delivered"], False))
+    if not figures:  # the windows need these columns only
+        rows = rows.select([c for c in ("line", "point", "index", "occupation", "kind",
+                                        "deployed", "retrieved") if c in rows.column_names])
+    rows = rows.to_pandas()
     rows["occupation"] = rows["occupation"].fillna(rows["index"]).astype("int64")
     rows = rows[rows["kind"] == "logged"].merge(
         flagged[["line", "point", "occupation"]], on=["line", "point", "occupation"])
