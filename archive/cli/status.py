@@ -12,8 +12,8 @@ from archive.deliver.changes import DEFAULT_SHIFT
 @click.command()
 @click.option("--shift", type=click.FloatRange(min=0), default=DEFAULT_SHIFT, show_default=True,
               metavar="METRES",
-              help="A delivered position that moved less than this since the last delivery "
-                   "is not counted as moved.")
+              help="Of the delivered positions that moved since the last delivery, count "
+                   "apart those that moved more than this.")
 @survey_option
 @output_options
 @pass_state

@@ -92,13 +92,24 @@ class Changes:
                 "unchanged": self.unchanged, "counts": self.counts()}
 
 
-def _frame(table: pa.Table) -> pd.DataFrame:
+def _frame(table: pa.Table, *, dedupe: bool = False) -> pd.DataFrame:
+    """The compared columns of a final table; a column an older table lacks (deliveries
+    made before occupations had windows) is taken as empty. ``dedupe`` keeps the last
+    record of a key (older tables could hold two records under one key)."""
     import numpy as np
+    import pyarrow as pa
 
     cols = KEY + ["node", "easting", "northing", "height", "flags", "flags_acknowledged",
                   "source", "deployed", "retrieved"]
-    frame = table.select(cols).to_pandas()
-    frame["row"] = np.arange(len(frame))
+    have = set(table.column_names)
+    frame = table.select([c for c in cols if c in have]).to_pandas()
+    for c in cols:
+        if c not in have:
+            frame[c] = pa.nulls(table.num_rows).to_pandas()
+    frame = frame[cols]
+    if dedupe:
+        frame = frame.drop_duplicates(KEY, keep="last")
+    frame["row"] = np.arange(len(frame)) if not dedupe else frame.index.to_numpy()
     return frame
 
 
@@ -109,18 +120,21 @@ def _differs(a: pd.Series, b: pd.Series) -> np.ndarray:
 
 
 def compare_final(previous: pa.Table, current: pa.Table, since: int,
-                  tolerance: float = DEFAULT_TOLERANCE) -> Changes:
+                  tolerance: float = DEFAULT_TOLERANCE, unit_factor: float = 1.0) -> Changes:
     """Records of ``current`` that are new or changed against ``previous`` (both final
-    positions tables, :data:`archive.deliver.final.FINAL_SCHEMA`), with their reasons."""
+    positions tables, :data:`archive.deliver.final.FINAL_SCHEMA`), with their reasons.
+    ``tolerance`` is metres; ``unit_factor`` the metres in one unit of the survey CRS
+    (grid coordinates may be feet), heights being metres."""
     import numpy as np
     import pandas as pd
     import pyarrow as pa
 
-    old, new = _frame(previous), _frame(current)
+    old, new = _frame(previous, dedupe=True), _frame(current)
     joined = new.merge(old, on=KEY, how="left", suffixes=("", "_was"), indicator=True)
     is_new = (joined["_merge"] == "left_only").to_numpy()
-    shift = np.hypot(joined["easting"] - joined["easting_was"],
-                     joined["northing"] - joined["northing_was"]).to_numpy(dtype=float)
+    shift = unit_factor * np.hypot(
+        joined["easting"] - joined["easting_was"],
+        joined["northing"] - joined["northing_was"]).to_numpy(dtype=float)
     moved = ~is_new & ((shift > tolerance) | (_differs(joined["easting"].isna(),
                                                        joined["easting_was"].isna())))
     dh = (joined["height"] - joined["height_was"]).abs().to_numpy(dtype=float)
@@ -190,10 +204,27 @@ def overlay(base: pa.Table, update: pa.Table, removed: list[dict[str, Any]]) -> 
     return both.take(pc.sort_indices(both, [(k, "ascending") for k in KEY]))
 
 
+def merged_mode(arc: Archive, d: Delivery) -> bool:
+    """Whether delivery ``d`` merged indistinguishable occupations (its lineage says)."""
+    doc = json.loads(arc.objects.read_bytes(d.manifest_hash))
+    return bool((doc.get("delivery") or {}).get("merge_occupations"))
+
+
+def unit_factor_of(arc: Archive, survey_id: int) -> float:
+    """Metres in one unit of the survey's grid (1 for metres, 0.3048006 for US feet)."""
+    from archive.store.models import Survey
+    from archive.survey.crs import survey_crs
+
+    with arc.session() as s:
+        return float(survey_crs(s.get(Survey, survey_id).crs_epsg).unit_factor)
+
+
 def changes_since(arc: Archive, survey_id: int, delivery_id: int, final: pa.Table,
-                  tolerance: float = DEFAULT_TOLERANCE) -> Changes:
+                  tolerance: float = DEFAULT_TOLERANCE, *, merge: bool = False) -> Changes:
     """The records of ``final`` that are new or changed since delivery ``delivery_id`` of
-    the survey; :class:`Refused` when there are none (nothing to deliver)."""
+    the survey; :class:`Refused` when there are none (nothing to deliver), and
+    :class:`UsageError` when that delivery merged occupations and this one does not (or
+    the other way round): the records would not match the recipient's."""
     from archive.store.models import Delivery
 
     with arc.session() as s:
@@ -202,8 +233,14 @@ def changes_since(arc: Archive, survey_id: int, delivery_id: int, final: pa.Tabl
         raise UsageError(f"delivery {delivery_id} is not a delivery of this survey",
                          hint="'nodekeep status' names the latest delivery, 'nodekeep history' "
                               "lists every one (deliver events)")
+    if merged_mode(arc, earlier) != bool(merge):
+        was = "with" if not merge else "without"
+        raise UsageError(f"delivery {delivery_id} was made {was} --merge-occupations; the "
+                         "records of this one would not match those the recipient holds",
+                         hint=f"deliver the changes {was} --merge-occupations, as then")
     previous = delivered_state(arc, earlier)
-    changes = compare_final(previous, final, delivery_id, tolerance)
+    changes = compare_final(previous, final, delivery_id, tolerance,
+                            unit_factor_of(arc, survey_id))
     if changes.table.num_rows == 0:
         gone = (f"; {len(changes.removed)} record(s) of it are no longer delivered"
                 if changes.removed else "")
@@ -230,7 +267,11 @@ def delivered_state(arc: Archive, d: Delivery) -> pa.Table:
             break
         seen.add(d.id)
         with arc.session() as s:
-            d = s.get(Delivery, int(since["delivery"]))
+            base = s.get(Delivery, int(since["delivery"]))
+        if base is None:
+            raise UsageError(f"delivery {since['delivery']}, which delivery {d.id} was based "
+                             "on, is not in the catalog", hint="run 'nodekeep verify'")
+        d = base
     state = arc.objects.read_table(chain[-1][0].final_hash)
     for d, since in reversed(chain[:-1]):
         state = overlay(state, arc.objects.read_table(d.final_hash), since.get("removed", []))

@@ -198,7 +198,8 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
                            "('nodekeep edits')")
     changes = None
     if changed_since is not None:
-        changes = changes_since(arc, survey_id, changed_since, final, tolerance)
+        changes = changes_since(arc, survey_id, changed_since, final, tolerance,
+                                merge=merge_occupations)
         final = changes.table
     flags = unacknowledged_flags(final)
     if flags and not allow_flags:

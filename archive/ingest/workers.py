@@ -33,13 +33,16 @@ def context():
 PR_SET_PDEATHSIG = 1  # Linux prctl(2) option: the signal sent when the parent ends
 
 
-def die_with_parent(parent: int) -> None:
+def die_with_parent(parent: int, main_thread: bool = True) -> None:
     """Have the kernel end this parsing process when the process that started it ends, by
     any means (a loader killed mid-run otherwise leaves its parsing processes waiting on a
     pipe nobody writes to, each holding a few hundred MB). Linux only (prctl(2)
-    PR_SET_PDEATHSIG); elsewhere they end when the pool's pipe closes. A parent already
-    gone when this runs ends the process at once."""
-    if sys.platform.startswith("linux"):
+    PR_SET_PDEATHSIG). The kernel sends the signal when the *thread* that forked the
+    process ends, so it is asked for only when that thread was the main thread
+    (``main_thread``; the command line's case): a pool a library caller starts from a
+    short-lived thread keeps its processes. A parent already gone when this runs ends the
+    process at once."""
+    if main_thread and sys.platform.startswith("linux"):
         import ctypes
 
         with contextlib.suppress(OSError, AttributeError):
@@ -48,18 +51,22 @@ def die_with_parent(parent: int) -> None:
         os._exit(1)
 
 
-def start(parent: int, warm_up: bool) -> None:
+def start(parent: int, warm_up: bool, main_thread: bool = True) -> None:
     """Initializer of a parsing process: tie it to its parent, then (``warm_up``) load the
     compiled reader."""
-    die_with_parent(parent)
+    die_with_parent(parent, main_thread)
     if warm_up:
         warm()
 
 
 def pool(n: int, warm_up: bool = False) -> ProcessPoolExecutor:
-    """``n`` parsing processes (started on demand) that end with the calling process."""
+    """``n`` parsing processes (started on demand) that end with the calling process (when
+    called from the main thread, see :func:`die_with_parent`)."""
+    import threading
+
+    main = threading.current_thread() is threading.main_thread()
     return ProcessPoolExecutor(n, mp_context=context(), initializer=start,
-                               initargs=(os.getpid(), warm_up))
+                               initargs=(os.getpid(), warm_up, main))
 
 
 def warm() -> None:

@@ -20,7 +20,13 @@ from typing import Any
 from sqlalchemy import func, select
 
 from archive import __version__
-from archive.deliver.changes import DEFAULT_SHIFT, compare_final
+from archive.deliver.changes import (
+    DEFAULT_SHIFT,
+    DEFAULT_TOLERANCE,
+    compare_final,
+    merged_mode,
+    unit_factor_of,
+)
 from archive.review.queue import review_counts
 from archive.store.archive import Archive
 from archive.store.models import Delivery, InputVersion, Run, Survey
@@ -103,17 +109,18 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     position must have moved to count as moved since the last delivery."""
     from archive.deliver.changes import delivered_state
     from archive.deliver.final import final_positions
+    from archive.solve.run import get_run
 
     with arc.session() as s:
         survey = s.get(Survey, survey_id)
         sdict = {"id": survey.id, "name": survey.name, "crs": f"EPSG:{survey.crs_epsg}"}
-        run = s.scalars(select(Run).where(Run.survey_id == survey_id)
-                        .order_by(Run.created_at.desc(), Run.id.desc()).limit(1)).first()
+        any_run = s.scalar(select(func.count(Run.id)).where(Run.survey_id == survey_id))
         last = s.scalars(select(Delivery).where(Delivery.survey_id == survey_id)
                          .order_by(Delivery.id.desc()).limit(1)).first()
         n_deliveries = s.scalar(select(func.count(Delivery.id))
                                 .where(Delivery.survey_id == survey_id)) or 0
-        n_runs = s.scalar(select(func.count(Run.id)).where(Run.survey_id == survey_id)) or 0
+        n_runs = int(any_run or 0)
+    run = get_run(arc, survey_id, None) if n_runs else None  # the newest, as solve names it
     current = _inputs(arc, survey_id)
     inputs = [{"kind": k, "version": v.version, "rows": v.n_rows, "name": v.original_name,
                "loaded_at": v.created_at} for k, v in current.items()]
@@ -125,19 +132,25 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
         run_info = {"id": run.id, "label": run.label, "created_at": run.created_at,
                     "positions": run.n_positions, "runs": int(n_runs),
                     "inputs_changed": behind, "up_to_date": not behind}
-        final = final_positions(arc, survey_id, run)
         review = review_counts(arc, survey_id, run.id) | {"run": run.id}
         if last is not None:
-            state = delivered_state(arc, last)
-            ch = compare_final(state, final, last.id, tolerance=shift)
+            # the comparison 'deliver --changed-since' would make, in the delivery's own mode
+            merge = merged_mode(arc, last)
+            final = final_positions(arc, survey_id, run, merge=merge)
+            ch = compare_final(delivered_state(arc, last), final, last.id, DEFAULT_TOLERANCE,
+                               unit_factor_of(arc, survey_id))
             counts = ch.counts()
             delivery = {
                 "id": last.id, "format": last.format, "file_name": last.file_name,
                 "recipient": last.recipient, "at": last.created_at, "run": last.run_id,
-                "deliveries": int(n_deliveries), "shift_m": shift,
+                "merge_occupations": merge, "deliveries": int(n_deliveries),
+                "shift_m": shift, "tolerance_m": DEFAULT_TOLERANCE,
                 "since": {"records": len(ch.records), "new": counts.get("new", 0),
                           "moved": counts.get("position", 0),
-                          "height": counts.get("height", 0),
+                          "moved_beyond_shift": sum(1 for r in ch.records
+                                                    if r.get("shift_m", 0.0) > shift),
+                          "height": counts.get("height", 0), "node": counts.get("node", 0),
+                          "time": counts.get("time", 0),
                           "flags": counts.get("flags", 0), "edited": counts.get("edited", 0),
                           "removed": counts.get("removed", 0),
                           "unchanged": ch.unchanged},
@@ -205,9 +218,10 @@ def status_text(st: SurveyStatus) -> str:
         d, since = st.delivery, st.delivery["since"]
         lines.append(f"delivery  #{d['id']} {d['format']} {d['file_name']} to {d['recipient']} "
                      f"({_when(d['at'])}); since then: {since['new']} new, "
-                     f"{since['moved']} moved > {d['shift_m']:g} m, {since['height']} height, "
-                     f"{since['flags']} flags, {since['edited']} edited, "
-                     f"{since['removed']} no longer delivered")
+                     f"{since['moved']} moved ({since['moved_beyond_shift']} by more than "
+                     f"{d['shift_m']:g} m), {since['height']} other height, {since['node']} "
+                     f"other node, {since['time']} other time, {since['flags']} other flags, "
+                     f"{since['edited']} edited, {since['removed']} no longer delivered")
         if since["records"]:
             lines.append(f"          'nodekeep deliver ... --changed-since {d['id']}' writes "
                          f"those {since['records']} record(s)")

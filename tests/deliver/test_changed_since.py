@@ -131,3 +131,37 @@ def test_cli_changed_since(solved, runner):
     assert f"only what changed since delivery {d1}: 1 record(s)" in res.output
     assert "height changed" in res.output
     assert len((base / "c2.csv").read_text().splitlines()) == 2  # header + the one record
+
+
+def test_changes_since_a_merged_delivery_keep_its_mode(solved):
+    arc, sid, run_id, base, _ = solved
+    merged = deliver(arc, sid, run_id, "csv", base / "m1.csv", PROCESSING, allow_flags=True,
+                     merge_occupations=True)
+    with pytest.raises(UsageError, match="made with --merge-occupations"):
+        deliver(arc, sid, run_id, "csv", base / "m2.csv", PROCESSING, allow_flags=True,
+                changed_since=merged.delivery_id)
+    assert not (base / "m2.csv").exists()
+    with pytest.raises(Refused, match="nothing is new or changed"):  # same mode: same records
+        deliver(arc, sid, run_id, "csv", base / "m3.csv", PROCESSING, allow_flags=True,
+                changed_since=merged.delivery_id, merge_occupations=True)
+
+
+def test_older_tables_and_grids_in_feet(solved):
+    """A delivered table from before occupations had windows (no deployed/retrieved, two
+    records under one key) compares without error; a grid in US survey feet is compared in
+    metres (1 US ft = 1200/3937 m, the US survey foot's definition)."""
+    arc, sid, run_id, _base, _ = solved
+    cur = final_positions(arc, sid, get_run(arc, sid, run_id))
+    old = cur.drop_columns(["deployed", "retrieved"])
+    old = pa.concat_tables([old.slice(0, 1), old])  # a key twice, as older tables could
+    ch = compare_final(old, cur, since=1)
+    assert ch.table.num_rows == cur.num_rows  # every record: its window is new ("time")
+    assert all(r["reasons"] == ["time"] for r in ch.records)
+    east = cur.column("easting").to_numpy().copy()
+    east[0] += 1.0  # one grid unit
+    moved = cur.set_column(cur.schema.get_field_index("easting"), "easting", pa.array(east))
+    us_foot = 1200 / 3937
+    ch = compare_final(cur, moved, since=1, tolerance=0.31, unit_factor=us_foot)
+    assert ch.table.num_rows == 0  # 0.3048 m is under 0.31 m
+    ch = compare_final(cur, moved, since=1, tolerance=0.30, unit_factor=us_foot)
+    assert ch.records[0]["shift_m"] == pytest.approx(us_foot, abs=1e-4)

@@ -46,3 +46,27 @@ def test_parsing_processes_end_with_a_killed_loader():
         assert not [p for p in pids if _alive(p)], "parsing processes outlived their loader"
     finally:
         parent.kill()
+
+
+def test_a_pool_made_in_a_short_lived_thread_keeps_its_processes():
+    """The kernel's parent-death signal follows the thread that forked, so a pool a library
+    caller starts from a thread that then ends must still work."""
+    import threading
+
+    from archive.ingest import workers
+
+    made = {}
+
+    def make() -> None:
+        made["pool"] = workers.pool(2)
+        made["pids"] = {made["pool"].submit(os.getpid).result() for _ in range(4)}
+
+    t = threading.Thread(target=make)
+    t.start()
+    t.join()
+    time.sleep(0.5)
+    pool = made["pool"]
+    try:
+        assert {pool.submit(os.getpid).result(timeout=20) for _ in range(4)} <= made["pids"]
+    finally:
+        pool.shutdown()
