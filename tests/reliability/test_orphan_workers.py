@@ -67,6 +67,8 @@ def test_a_pool_made_in_a_short_lived_thread_keeps_its_processes():
     time.sleep(0.5)
     pool = made["pool"]
     try:
-        assert {pool.submit(os.getpid).result(timeout=20) for _ in range(4)} <= made["pids"]
+        # the same two processes still answer (a killed one would break the pool)
+        after = {pool.submit(os.getpid).result(timeout=20) for _ in range(8)}
+        assert len(after | made["pids"]) <= 2
     finally:
         pool.shutdown()
