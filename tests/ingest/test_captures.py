@@ -70,7 +70,7 @@ def test_capture_positions_agree_with_the_decoder(name):
     t, lat, lon = expected(name)
     res = read(name)
     ok = matched(res.fixes, t, lat, lon, time_of_day=name == "rmc_week_rollover")
-    # the floor is 98 % recovered; these excerpts hold no epoch nodekeep should miss
+    # the floor is 98 % recovered; these excerpts hold no epoch nodekeep should miss
     assert ok.mean() >= 0.98 and ok.all(), (name, np.flatnonzero(~ok))
     assert res.n_accepted + res.n_rejected + res.n_ignored == res.n_lines
 

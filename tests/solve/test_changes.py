@@ -1,4 +1,4 @@
-"""The integrator's questions, answered from the catalog and the runs' result keys: what
+"""The daily loop's questions, answered from the catalog and the runs' result keys: what
 awaits harvest, which logged nodes have no deployment, what changed since a run.
 
 Expected values come from the crew's own files (the deployment log CSV and the log file

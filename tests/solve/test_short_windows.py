@@ -5,7 +5,7 @@ something. One representative case each; the multi-seed calibration is ``bench/c
 
 Errors come from the solver tests' receiver model (``SOLVER_TEST_MODEL``: a 2 m, 30 min
 Gauss–Markov part, cited in archive.seeds.simulate); the targets (93-97 % coverage, moves
-found in at least 5 of 6 short deployments, at most 2 % false moves) are the issue's,
+found in at least 5 of 6 short deployments, at most 2 % false moves) are the project's goals,
 common practice, no source.
 """
 
