@@ -37,16 +37,9 @@ from typing import Any
 import numpy as np
 
 from archive.solve.moves import MoveResult
-from archive.solve.segments import expand_ranges, seg_median, seg_starts
+from archive.solve.segments import block_medians, expand_ranges, seg_starts
 
 LN4 = float(np.log(4.0))
-
-
-def _padded(values: np.ndarray, row: np.ndarray, col: np.ndarray, shape: tuple[int, int]
-            ) -> np.ndarray:
-    out = np.full(shape, np.nan)
-    out[row, col] = values
-    return out
 
 
 def _nanmedian(a: np.ndarray, axis: int, **kw: Any) -> np.ndarray:
@@ -77,29 +70,9 @@ def scan_moves(e: np.ndarray, n: np.ndarray, t_us: np.ndarray, seg: np.ndarray, 
         return MoveResult(split, step, zval)
     block = int(round(params["move_block_min"] * 60e6))
     starts, counts = seg_starts(seg, n_seg)
-    has = counts > 0
-    t0 = np.zeros(n_seg, dtype=np.int64)
-    t1 = np.zeros(n_seg, dtype=np.int64)
-    t0[has] = t_us[starts[has]]
-    t1[has] = t_us[starts[has] + counts[has] - 1]
-    nb = np.where(has, (t1 - t0) // block + 1, 0)
-    first = np.zeros(n_seg, dtype=np.int64)
-    if n_seg > 1:
-        np.cumsum(nb[:-1], out=first[1:])
-    gb = first[seg] + (t_us - t0[seg]) // block
-    total = int(nb.sum())
-    me = seg_median(e, gb, total, 256)
-    mn = seg_median(n, gb, total, 256)
-    per_block = np.bincount(gb, minlength=total)
-    typical = np.repeat(counts / np.maximum(nb, 1), nb)
-    thin = (per_block < 3) | (per_block < 0.25 * typical)
-    me[thin] = np.nan
-    mn[thin] = np.nan
-    width = int(nb.max())
-    brow = np.repeat(np.arange(n_seg), nb)
-    bcol = np.arange(total) - first[brow]
-    pe = _padded(me, brow, bcol, (n_seg, width))
-    pn = _padded(mn, brow, bcol, (n_seg, width))
+    bl = block_medians(e, n, t_us, seg, starts, counts, block, min_fixes=3)
+    pe, pn, t0, t1 = bl.pe, bl.pn, bl.t0, bl.t1
+    width = pe.shape[1]
     # 2. bursts out (Hampel identifier on the distance to the local median)
     dev = np.hypot(pe - _local_median(pe), pn - _local_median(pn))
     mad = _nanmedian(dev, axis=1, keepdims=True)

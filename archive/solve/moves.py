@@ -18,7 +18,7 @@ from typing import Any
 
 import numpy as np
 
-from archive.solve.segments import seg_median, seg_starts
+from archive.solve.segments import block_medians, seg_starts
 
 
 @dataclass
@@ -40,32 +40,9 @@ def detect_moves(e: np.ndarray, n: np.ndarray, t_us: np.ndarray, seg: np.ndarray
         return MoveResult(split, step, zval)
     block = int(params["move_block_min"] * 60e6)
     starts, counts = seg_starts(seg, n_seg)
-    has = counts > 0
-    t0 = np.zeros(n_seg, dtype=np.int64)
-    t0[has] = t_us[starts[has]]
-    t1 = np.zeros(n_seg, dtype=np.int64)
-    t1[has] = t_us[starts[has] + counts[has] - 1]
-    nb = np.where(has, (t1 - t0) // block + 1, 0)
-    first = np.zeros(n_seg, dtype=np.int64)
-    if n_seg > 1:
-        np.cumsum(nb[:-1], out=first[1:])
-    gb = first[seg] + (t_us - t0[seg]) // block
-    total = int(nb.sum())
-    me = seg_median(e, gb, total, 256)
-    mn = seg_median(n, gb, total, 256)
-    # a nearly empty block (the partial one at the end, a gap) has no robust median
-    per_block = np.bincount(gb, minlength=total)
-    typical = np.repeat(counts / np.maximum(nb, 1), nb)
-    thin = (per_block < 5) | (per_block < 0.25 * typical)
-    me[thin] = np.nan
-    mn[thin] = np.nan
-    width = int(nb.max())
-    pe = np.full((n_seg, width), np.nan)
-    pn = np.full((n_seg, width), np.nan)
-    row = np.repeat(np.arange(n_seg), nb)
-    col = np.arange(total) - first[row]
-    pe[row, col] = me
-    pn[row, col] = mn
+    bl = block_medians(e, n, t_us, seg, starts, counts, block, min_fixes=5)
+    pe, pn, t0, t1 = bl.pe, bl.pn, bl.t0, bl.t1
+    width = pe.shape[1]
     ok = np.isfinite(pe)
     cnt = np.cumsum(ok, axis=1).astype(float)
     se_ = np.cumsum(np.where(ok, pe, 0.0), axis=1)

@@ -16,6 +16,8 @@ to well under a millimetre, and its inverse is exact, so only the solved centre 
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
 
 from archive.solve.kernels import run_split, seg_medians
@@ -110,6 +112,54 @@ def seg_median_reference(values: np.ndarray, seg: np.ndarray, n_seg: int,
     b = starts[has] + counts[has] // 2
     out[has] = 0.5 * (v[a] + v[b])
     return out
+
+
+@dataclass
+class Blocks:
+    """The robust centre of every fixed-length time block of every segment, as a
+    (segments x blocks) grid: ``pe``/``pn`` the median east/north of each block (NaN for a
+    thin block or past the end of a shorter segment), ``t0``/``t1`` each segment's first
+    and last fix time (µs; 0 for an empty segment)."""
+
+    pe: np.ndarray
+    pn: np.ndarray
+    t0: np.ndarray
+    t1: np.ndarray
+
+
+def block_medians(e: np.ndarray, n: np.ndarray, t_us: np.ndarray, seg: np.ndarray,
+                  starts: np.ndarray, counts: np.ndarray, block: int, min_fixes: int
+                  ) -> Blocks:
+    """Blocks of ``block`` µs from each segment's first fix (:class:`Blocks`). A nearly
+    empty block (the partial one at the end, a gap: fewer than ``min_fixes`` fixes or under
+    a quarter of the segment's typical count) has no robust median and is NaN."""
+    n_seg = len(starts)
+    has = counts > 0
+    t0 = np.zeros(n_seg, dtype=np.int64)
+    t1 = np.zeros(n_seg, dtype=np.int64)
+    t0[has] = t_us[starts[has]]
+    t1[has] = t_us[starts[has] + counts[has] - 1]
+    nb = np.where(has, (t1 - t0) // block + 1, 0)
+    first = np.zeros(n_seg, dtype=np.int64)
+    if n_seg > 1:
+        np.cumsum(nb[:-1], out=first[1:])
+    gb = first[seg] + (t_us - t0[seg]) // block
+    total = int(nb.sum())
+    me = seg_median(e, gb, total, 256)
+    mn = seg_median(n, gb, total, 256)
+    per_block = np.bincount(gb, minlength=total)
+    typical = np.repeat(counts / np.maximum(nb, 1), nb)
+    thin = (per_block < min_fixes) | (per_block < 0.25 * typical)
+    me[thin] = np.nan
+    mn[thin] = np.nan
+    width = int(nb.max())
+    row = np.repeat(np.arange(n_seg), nb)
+    col = np.arange(total) - first[row]
+    pe = np.full((n_seg, width), np.nan)
+    pn = np.full((n_seg, width), np.nan)
+    pe[row, col] = me
+    pn[row, col] = mn
+    return Blocks(pe, pn, t0, t1)
 
 
 def radii(lat0_deg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
