@@ -257,12 +257,17 @@ class ObjectStore:
                 return self._put_local(stream)
             return self._put_remote(stream)
         except OSError as exc:
-            if exc.errno in STORAGE_ERRNOS:
-                raise StorageError(
-                    f"cannot write to the object store {self.url}: {exc.strerror}",
-                    hint="this write was not recorded; free space or make the folder "
-                         "writable and run the command again") from exc
+            self._refuse_storage(exc, "this write was not recorded")
             raise
+
+    def _refuse_storage(self, exc: OSError, what: str) -> None:
+        """Raise :class:`StorageError` (saying ``what`` of the write stands) when a failed
+        write is the storage refusing it (disk full, read-only, no permission); any other
+        error is the caller's to re-raise."""
+        if exc.errno in STORAGE_ERRNOS:
+            raise StorageError(f"cannot write to the object store {self.url}: {exc.strerror}",
+                               hint=f"{what}; free space or make the folder writable and run "
+                                    "the command again") from exc
 
     def _put_local(self, stream: BinaryIO) -> tuple[str, int]:
         tmpdir = self.root / "tmp"
@@ -324,11 +329,7 @@ class ObjectStore:
                 tmpdir = Path(tempfile.gettempdir())
             fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix=prefix)
         except OSError as exc:
-            if exc.errno in STORAGE_ERRNOS:
-                raise StorageError(
-                    f"cannot write to the object store {self.url}: {exc.strerror}",
-                    hint="nothing was recorded; free space or make the folder writable "
-                         "and run the command again") from exc
+            self._refuse_storage(exc, "nothing was recorded")
             raise
         os.close(fd)
         return Path(tmp)
@@ -360,11 +361,7 @@ class ObjectStore:
                 _fsync_dir(final.parent)
             return True
         except OSError as exc:
-            if exc.errno in STORAGE_ERRNOS:
-                raise StorageError(
-                    f"cannot write to the object store {self.url}: {exc.strerror}",
-                    hint="this write was not recorded; free space or make the folder "
-                         "writable and run the command again") from exc
+            self._refuse_storage(exc, "this write was not recorded")
             raise
         finally:
             with contextlib.suppress(FileNotFoundError):
