@@ -24,8 +24,10 @@ def plain(value: Any) -> Any:
     return value
 
 
-def input_tables(arc: Archive, survey_id: int, inputs: dict[str, Any]) -> list[dict[str, Any]]:
-    """The input versions a run read (matched by table or source hash), with who loaded them."""
+def matched_inputs(arc: Archive, survey_id: int, inputs: dict[str, Any]
+                   ) -> list[tuple[str, str, InputVersion | None]]:
+    """(kind, hash, the input version loaded with that table or source hash, or None) of
+    each input table a run read, in the order of the input kinds."""
     hashes = {k: inputs.get(k) for k in INPUT_KINDS.names() if isinstance(inputs.get(k), str)}
     if not hashes:
         return []
@@ -33,16 +35,20 @@ def input_tables(arc: Archive, survey_id: int, inputs: dict[str, Any]) -> list[d
         rows = s.scalars(select(InputVersion).where(
             InputVersion.survey_id == survey_id,
             or_(InputVersion.table_hash.in_(hashes.values()),
-                InputVersion.source_hash.in_(hashes.values())))).all()
-    out = []
-    for kind, h in hashes.items():
-        match = [r for r in rows if r.kind == kind and h in (r.table_hash, r.source_hash)]
-        r = match[0] if match else None
-        out.append({"kind": kind, "hash": h, "version": r.version if r else None,
-                    "name": r.original_name if r else None,
-                    "loaded_at": r.created_at if r else None,
-                    "loaded_by": r.created_by if r else None})
-    return out
+                InputVersion.source_hash.in_(hashes.values())))
+            .order_by(InputVersion.id)).all()
+    return [(kind, h, next((r for r in rows
+                            if r.kind == kind and h in (r.table_hash, r.source_hash)), None))
+            for kind, h in hashes.items()]
+
+
+def input_tables(arc: Archive, survey_id: int, inputs: dict[str, Any]) -> list[dict[str, Any]]:
+    """The input versions a run read (matched by table or source hash), with who loaded them."""
+    return [{"kind": kind, "hash": h, "version": r.version if r else None,
+             "name": r.original_name if r else None,
+             "loaded_at": r.created_at if r else None,
+             "loaded_by": r.created_by if r else None}
+            for kind, h, r in matched_inputs(arc, survey_id, inputs)]
 
 
 def run_summary(arc: Archive, run: Run) -> dict[str, Any]:

@@ -32,12 +32,12 @@ from urllib.parse import quote
 
 from prov.constants import PROV
 from prov.model import ProvDocument
-from sqlalchemy import or_, select
 
 from archive import __version__
+from archive.lineage.common import matched_inputs
 from archive.lineage.trace import delivery_of_file
 from archive.store.archive import Archive
-from archive.store.models import Delivery, InputVersion, Run
+from archive.store.models import Delivery, Run
 
 HASH_NS = "nih:sha-256;"
 """RFC 6920 §7 human-readable named information: ``nih:sha-256;`` + hex digest."""
@@ -213,19 +213,8 @@ def _input_loads(b: _Builder, arc: Archive, survey_id: int, inputs: dict[str, An
                  ) -> list[str]:
     """Each input table the run read (stations, deployments, elevation model), the file it
     was loaded from and the load; returns the tables' ids."""
-    hashes = {k: v for k, v in inputs.items() if k != "fixes" and isinstance(v, str)}
-    if not hashes:
-        return []
-    with arc.session() as s:
-        rows = s.scalars(select(InputVersion).where(
-            InputVersion.survey_id == survey_id,
-            or_(InputVersion.table_hash.in_(hashes.values()),
-                InputVersion.source_hash.in_(hashes.values())))
-            .order_by(InputVersion.id)).all()
     out = []
-    for kind, h in sorted(hashes.items()):
-        v = next((r for r in rows if r.kind == kind and h in (r.table_hash, r.source_hash)),
-                 None)
+    for kind, h, v in sorted(matched_inputs(arc, survey_id, inputs), key=lambda m: m[0]):
         table = b.entity(h, f"{kind} table" + (f" v{v.version}" if v else ""), "InputTable",
                          inputKind=kind, version=v.version if v else None)
         out.append(table)
