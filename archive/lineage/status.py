@@ -29,7 +29,8 @@ from archive.deliver.changes import (
 )
 from archive.review.queue import review_counts
 from archive.store.archive import Archive
-from archive.store.models import Delivery, InputVersion, Run, Survey
+from archive.store.models import Delivery, Run, Survey
+from archive.survey.inputs import list_inputs
 from archive.survey.status import harvest_status, plain_rows
 
 LIST_LIMIT = 20
@@ -55,17 +56,7 @@ class SurveyStatus:
         return asdict(self)
 
 
-def _inputs(arc: Archive, survey_id: int) -> dict[str, InputVersion]:
-    with arc.session() as s:
-        newest = select(InputVersion.kind, func.max(InputVersion.version).label("v")) \
-            .where(InputVersion.survey_id == survey_id).group_by(InputVersion.kind).subquery()
-        rows = s.scalars(select(InputVersion).join(
-            newest, (InputVersion.kind == newest.c.kind) & (InputVersion.version == newest.c.v))
-            .where(InputVersion.survey_id == survey_id).order_by(InputVersion.kind)).all()
-    return {r.kind: r for r in rows}
-
-
-def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, InputVersion]
+def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, dict[str, Any]]
                 ) -> list[str]:
     """What changed in the inputs since ``run`` was made (empty: it is up to date)."""
     from archive.edits.log import exclude_spans_in_force
@@ -78,11 +69,11 @@ def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, Input
     for kind, key in (("stations", "table_hash"), ("deployments", "table_hash"),
                       ("dem", "source_hash")):
         now = current.get(kind)
-        now_hash = getattr(now, key) if now is not None else None
+        now_hash = now[key] if now is not None else None
         if now_hash != ins.get(kind):
             was = versions.get(kind)
             changes.append(f"{kind} v{was if was is not None else '-'} -> "
-                           f"v{now.version if now is not None else '-'}")
+                           f"v{now['version'] if now is not None else '-'}")
     fixes = {r[0] for r in plain_rows(
         arc, f"SELECT fixes_hash FROM raw_files WHERE survey_id = {int(survey_id)} "
              "AND fixes_hash IS NOT NULL")}
@@ -121,9 +112,9 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
                                 .where(Delivery.survey_id == survey_id)) or 0
         n_runs = int(any_run or 0)
     run = get_run(arc, survey_id, None) if n_runs else None  # the newest, as solve names it
-    current = _inputs(arc, survey_id)
-    inputs = [{"kind": k, "version": v.version, "rows": v.n_rows, "name": v.original_name,
-               "loaded_at": v.created_at} for k, v in current.items()]
+    current = {v["kind"]: v for v in list_inputs(arc, survey_id)}
+    inputs = [{"kind": k, "version": v["version"], "rows": v["rows"], "name": v["name"],
+               "loaded_at": v["created_at"]} for k, v in current.items()]
     harvest = harvest_status(arc, survey_id)
     notes: list[str] = []
     run_info = review = delivery = None
