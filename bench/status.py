@@ -134,7 +134,6 @@ def main() -> None:
     from archive.lineage.status import survey_status
 
     sid = 1
-    t = time.perf_counter()
     from archive.solve.inputs import load_fix_tables
 
     with arc.session() as s:

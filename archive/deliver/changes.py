@@ -106,11 +106,8 @@ def _frame(table: pa.Table, *, dedupe: bool = False) -> pd.DataFrame:
     for c in cols:
         if c not in have:
             frame[c] = pa.nulls(table.num_rows).to_pandas()
-    frame = frame[cols]
-    if dedupe:
-        frame = frame.drop_duplicates(KEY, keep="last")
-    frame["row"] = np.arange(len(frame)) if not dedupe else frame.index.to_numpy()
-    return frame
+    frame = frame[cols].assign(row=np.arange(table.num_rows))
+    return frame.drop_duplicates(KEY, keep="last") if dedupe else frame
 
 
 def _differs(a: pd.Series, b: pd.Series) -> np.ndarray:
