@@ -12,17 +12,17 @@ from pathlib import Path
 
 import pytest
 
-from tests.reliability.harness import ArchiveTemplate, campaign
+from tests.reliability.harness import ArchiveTemplate, spread_campaign
 from tests.reliability.scenarios import core_writer
 
 
 @pytest.mark.slow
 def test_core_writer_killed_at_random(template: ArchiveTemplate, tmp_path: Path, backend: str):
     sc = core_writer()
-    result = campaign(sc.name, template, tmp_path / "trials", sc.argv_for, sc.result_of,
+    result = spread_campaign(sc.name, template, tmp_path / "trials", sc.argv_for, sc.result_of,
                       n=4, seed=7, backend=backend)
     summary = result.summary()
-    assert summary["trials"] == 4
+    assert summary["trials"] in (4, 8, 12)  # redrawn while all kills land in one phase
     bad = [t for t in result.trials if not t.ok]
     assert not bad, bad
     # the kills are spread: most of them land while the writer works

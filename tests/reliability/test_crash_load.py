@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.reliability.harness import ArchiveTemplate, campaign
+from tests.reliability.harness import ArchiveTemplate, spread_campaign
 from tests.reliability.logs import write_logs
 from tests.reliability.scenarios import load_fixes
 
@@ -24,7 +24,7 @@ def test_load_fixes_killed_at_random(template: ArchiveTemplate, tmp_path: Path, 
     logs = tmp_path / "logs"
     write_logs(logs, 4, 3000)
     sc = load_fixes(logs)
-    result = campaign(sc.name, template, tmp_path / "trials", sc.argv_for, sc.result_of,
+    result = spread_campaign(sc.name, template, tmp_path / "trials", sc.argv_for, sc.result_of,
                       n=TRIALS[backend], seed=11, backend=backend, rerun=sc.rerun)
     summary = result.summary()
     bad = [t for t in result.trials if not t.ok]

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.reliability.harness import ArchiveTemplate, campaign
+from tests.reliability.harness import ArchiveTemplate, spread_campaign
 from tests.reliability.scenarios import solve
 from tests.support.reliability import fill_archive
 
@@ -25,7 +25,7 @@ def test_solve_killed_at_random(scenario, tmp_path: Path, db_url: str | None, ba
                           db_url)
     sc = solve()
     try:
-        result = campaign(sc.name, tpl, tmp_path / "trials", sc.argv_for, sc.result_of,
+        result = spread_campaign(sc.name, tpl, tmp_path / "trials", sc.argv_for, sc.result_of,
                           n=TRIALS[backend], seed=13, backend=backend, rerun=sc.rerun)
     finally:
         tpl.cleanup()
