@@ -354,7 +354,7 @@ class Assembler:
         k = np.flatnonzero(keep)
         m = k.shape[0]
         if m == 0:
-            return FIX_STORAGE_SCHEMA.empty_table(), {}
+            return pa.Table.from_batches([], schema=FIX_STORAGE_SCHEMA), {}
         pr = pos[k]
         qr = qual[k]
         hq = qr >= 0

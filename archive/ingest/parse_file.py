@@ -23,6 +23,7 @@ from pathlib import Path
 from typing import Any
 
 from archive.errors import InputError, NodekeepError, StorageError
+from archive.ingest import workers
 from archive.ingest.formats import LogOptions, log_format
 from archive.store.objects import STORAGE_ERRNOS
 
@@ -205,6 +206,7 @@ def _parse(task: dict[str, Any], seen: dict[str, Any], written: list[str]) -> di
     if not store.exists(h):
         raw["tmp"] = _guard(_write_tmp, store, data, sync)
         written.append(raw["tmp"])
+    workers.ready()
     result = _parse_memory(task, data, h)
     return _finish(task, store, result, seen, written, sync)
 

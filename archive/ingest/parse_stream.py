@@ -20,6 +20,7 @@ from typing import Any
 
 import numpy as np
 
+from archive.ingest import workers
 from archive.ingest.parse_file import (
     PENDING_ROWS,
     TABLE_OPTIONS,
@@ -136,6 +137,7 @@ def parse_large(task: dict[str, Any], store, seen: dict[str, Any],
     written.append(raw_tmp)
     copier = _HashCopy(path, raw_tmp, sync)
     copier.start()
+    workers.ready()  # the copy runs while a new process loads the reader
     fixes_tmp = str(_guard(store.temporary))
     written.append(fixes_tmp)
     writer = _Writer(fixes_tmp)

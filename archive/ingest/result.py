@@ -108,11 +108,11 @@ def rejects_table(lines: np.ndarray, reasons: np.ndarray, texts: pa.Array) -> pa
 
 
 def empty_fixes() -> pa.Table:
-    return FIX_SCHEMA.empty_table()
+    return pa.Table.from_batches([], schema=FIX_SCHEMA)  # (empty_table() imports pandas)
 
 
 def empty_rejects() -> pa.Table:
-    return REJECT_SCHEMA.empty_table()
+    return pa.Table.from_batches([], schema=REJECT_SCHEMA)
 
 
 def _in_order(table: pa.Table) -> bool:

@@ -1,10 +1,12 @@
 """Processes that parse logs, started early so that their start-up overlaps the caller's.
 
-A new process needs about half a second before it reads its first byte: numba's runtime and
+A new process needs most of a second before it parses its first byte: numba's runtime and
 the cached compiled reader load on first use. :func:`prestart` forks the parsing processes
-at once and has each load the reader while the caller goes on (opening the catalog, looking
-up what is loaded); :func:`archive.ingest.load.load_fix_files` takes them with
-:func:`take`. Only the standard library is imported here, so calling it first costs nothing.
+at once and has each load the reader on a thread of its own while the caller goes on
+(opening the catalog, looking up what is loaded) and while the process hashes and copies
+its first file; :func:`archive.ingest.load.load_fix_files` takes them with :func:`take`.
+A parsing process never loads the catalog, pandas or scipy's linear algebra. Only the
+standard library is imported here, so calling it first costs nothing.
 """
 
 from __future__ import annotations
@@ -52,11 +54,56 @@ def die_with_parent(parent: int, main_thread: bool = True) -> None:
 
 
 def start(parent: int, warm_up: bool, main_thread: bool = True) -> None:
-    """Initializer of a parsing process: tie it to its parent, then (``warm_up``) load the
-    compiled reader."""
+    """Initializer of a parsing process: tie it to its parent, then (``warm_up``) import the
+    parsing code and load the compiled reader on a thread of its own, so that the process
+    takes its first task at once: the hash and raw copy of a file, which need no compiled
+    code, run while the reader loads, and the parse waits for it (:func:`ready`)."""
     die_with_parent(parent, main_thread)
     if warm_up:
+        import threading
+
+        import archive.ingest.parse_file  # what a task needs before the reader
+        import archive.ingest.parse_stream  # noqa: F401
+
+        global _WARMING
+        _WARMING = threading.Event()
+        threading.Thread(target=_warm_up, args=(_WARMING,), name="reader-warm-up",
+                         daemon=True).start()
+
+
+_WARMING = None  # set (a threading.Event) while a warm-up thread loads the reader
+
+
+def _warm_up(done) -> None:
+    try:
+        skip_blas_probe()
         warm()
+    except Exception:  # noqa: BLE001 - the parse meets the error again, per file
+        pass
+    finally:
+        done.set()
+
+
+def ready() -> None:
+    """Wait until this process's warm-up thread (if any) has loaded the reader: the code
+    that parses imports the reader's modules only after it, never beside it."""
+    if _WARMING is not None:
+        _WARMING.wait()
+
+
+def skip_blas_probe() -> None:
+    """Have numba skip its search for a BLAS library in this process (call it only in a
+    process that parses and never solves). numba imports ``scipy.linalg`` for it (about
+    0.4 s) when its first compiled function loads; the reader does no linear algebra
+    (numba treats a missing scipy as no BLAS: only ``np.dot``-style functions would be
+    compiled without it). No-op where numba's array functions are loaded already."""
+    if "numba.np.arraymath" in sys.modules or "scipy.linalg" in sys.modules:
+        return
+    sys.modules["scipy.linalg"] = None  # type: ignore[assignment]  # import raises ImportError
+    try:
+        import numba.np.arraymath  # noqa: F401
+    finally:
+        del sys.modules["scipy.linalg"]
 
 
 def pool(n: int, warm_up: bool = False) -> ProcessPoolExecutor:
