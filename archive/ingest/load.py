@@ -175,6 +175,9 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
     known = _known_hashes(arc, survey_id)
     set_known(known)
     tasks: list[tuple[int, dict[str, Any]]] = []
+    # Files read whole are not flushed one by one: the recorder flushes the store's file
+    # system once per batch, before the catalog records it (see _Recorder.flush).
+    deferred = arc.objects.can_sync_filesystem()
     for i, p in enumerate(files):
         o = outcomes[i]
         o.size = sizes[i]
@@ -193,8 +196,8 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
                           "node": o.node, "date": date.isoformat() if date else None,
                           "profile_path": str(profile_path) if profile_path else None,
                           "reference": [t.isoformat() for t in ref] if ref else None,
-                          "reference_text": ref_text}))
-    recorder = _Recorder(arc, survey_id, fmt, profile_hash, date, node_pattern)
+                          "reference_text": ref_text, "defer_sync": deferred}))
+    recorder = _Recorder(arc, survey_id, fmt, profile_hash, date, node_pattern, deferred)
     pool, n_workers = workers.take()
     if pool is None:
         n_workers = max(1, min(workers_wanted or os.cpu_count() or 1, len(tasks)))
@@ -262,11 +265,14 @@ class _Recorder:
     """Names the objects of parsed files and records the files in batched transactions."""
 
     def __init__(self, arc: Archive, survey_id: int, fmt: str, profile_hash: str | None,
-                 date: dt.date | None, node_pattern: str | None) -> None:
+                 date: dt.date | None, node_pattern: str | None,
+                 deferred: bool = False) -> None:
         self.arc, self.survey_id, self.fmt = arc, survey_id, fmt
+        self.deferred = deferred  # the parsing processes left the flushing to flush()
         self.profile_hash, self.date, self.node_pattern = profile_hash, date, node_pattern
         self.batch: list[tuple[FileOutcome, dict[str, Any]]] = []
         self.adopted: list[str] = []
+        self.pending: list[dict[str, Any]] = []  # objects to name at the next flush
         self.in_call: set[str] = set()
         self.started = time.monotonic()
         self.limit = 1  # files of the next transaction: doubles up to BATCH_FILES
@@ -294,23 +300,35 @@ class _Recorder:
             _discard(res)
             o.status, o.error = "failed", res["error"]
             return
-        try:
-            for obj in _objects(res):
-                if obj.get("tmp"):
-                    tmp, obj["tmp"] = obj["tmp"], None
-                    self.arc.objects.adopt(tmp, obj["hash"], obj["size"], sync_dir=False)
-                    self.adopted.append(obj["hash"])
-        except BaseException:
-            _discard(res)
-            raise
+        if self.deferred:  # named in flush(), once their bytes are durable
+            self.pending.extend(obj for obj in _objects(res) if obj.get("tmp"))
+        else:
+            try:
+                self._adopt([obj for obj in _objects(res) if obj.get("tmp")])
+            except BaseException:
+                _discard(res)
+                raise
         self.batch.append((o, res))
         if len(self.batch) >= self.limit or time.monotonic() - self.started > BATCH_SECONDS:
             self.flush()
             self.limit = min(2 * self.limit, BATCH_FILES)
 
+    def _adopt(self, objs: list[dict[str, Any]]) -> None:
+        """Name finished temporary objects (a rename each; their folders flushed later)."""
+        for obj in objs:
+            tmp, obj["tmp"] = obj["tmp"], None
+            self.arc.objects.adopt(tmp, obj["hash"], obj["size"], sync_dir=False)
+            self.adopted.append(obj["hash"])
+
     def discard(self) -> None:
-        """Forget the files not recorded yet (their named objects stay unreferenced)."""
+        """Forget the files not recorded yet (their named objects stay unreferenced, their
+        temporary files not named yet are removed)."""
         self.batch = []
+        for obj in self.pending:
+            if obj.get("tmp"):
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(obj["tmp"])
+        self.pending = []
 
     def flush(self) -> None:
         """Record the files taken so far, in one transaction."""
@@ -318,7 +336,19 @@ class _Recorder:
         if not self.batch:
             return
         arc = self.arc
-        arc.objects.sync_folders(self.adopted)
+        # the batch's objects (and their folders) made durable before the catalog names them
+        if self.deferred:
+            # bytes first, then names: a name never points at bytes a power loss could lose
+            arc.objects.sync_filesystem()
+            pending, self.pending = self.pending, []
+            try:
+                self._adopt(pending)
+            except BaseException:
+                self.pending = [obj for obj in pending if obj.get("tmp")]
+                raise
+            arc.objects.sync_filesystem()
+        else:
+            arc.objects.sync_folders(self.adopted)
         self.adopted = []
         batch, self.batch = self.batch, []
         done: list[tuple[FileOutcome, str, int | None]] = []
@@ -337,14 +367,23 @@ class _Recorder:
                 tx.execute(update(StoredObject).where(StoredObject.hash.in_(loaded_raw),
                                                       StoredObject.kind == "raw-failed")
                            .values(kind="raw"))
+            events: list[tuple[str, dict[str, Any], int | None, list[Any] | None]] = []
+            rows: list[tuple[FileOutcome, RawFile]] = []
             for o, res in batch:
                 if o.raw_hash in prior:
                     done.append((o, "already", prior[o.raw_hash]))
                 elif res["ok"]:
-                    done.append((o, "loaded", self._record(tx, o, res)))
+                    row, event = self._record(o, res)
+                    rows.append((o, row))
+                    events.append(event)
                 else:
-                    self._record_failure(tx, o, res)
+                    events.append(self._record_failure(tx, o, res))
                     done.append((o, "failed", None))
+            # the batch's rows in one flush, then its events in one append, in file order
+            tx.add_all([row for _, row in rows])
+            tx.flush()
+            arc.log_many(tx, events)
+            done.extend((o, "loaded", row.id) for o, row in rows)
         for o, status, row_id in done:
             o.status, o.raw_file_id = status, row_id
 
@@ -363,7 +402,10 @@ class _Recorder:
             self.profile_size = self.arc.objects.size(self.profile_hash)
         return self.profile_size
 
-    def _record(self, tx, o: FileOutcome, res: dict[str, Any]) -> int:
+    def _record(self, o: FileOutcome, res: dict[str, Any]
+                ) -> tuple[RawFile, tuple[str, dict[str, Any], int | None, list[Any] | None]]:
+        """The ``raw_files`` row of a parsed file and its ledger event (recorded by
+        :meth:`flush` with the rest of the batch)."""
         arc = self.arc
         for k in ("n_lines", "n_accepted", "n_rejected", "n_ignored", "n_fixes", "n_valid",
                   "t_first", "t_last", "rejects", "ignored", "notes"):
@@ -384,18 +426,16 @@ class _Recorder:
             rejects_hash=rejects["hash"] if rejects else None,
             details=json.dumps(details, sort_keys=True),
         )
-        tx.add(row)
-        tx.flush()
-        arc.log(tx, "load.fixes", {"raw": o.raw_hash, "name": Path(o.path).name,
-                                   "node": o.node, "format": self.fmt,
-                                   "fixes": fixes["hash"],
-                                   "rejects": rejects["hash"] if rejects else None,
-                                   "n_fixes": o.n_fixes, "n_rejected": o.n_rejected},
-                survey_id=self.survey_id, rows=[row])
-        return row.id
+        event = ("load.fixes", {"raw": o.raw_hash, "name": Path(o.path).name,
+                                "node": o.node, "format": self.fmt, "fixes": fixes["hash"],
+                                "rejects": rejects["hash"] if rejects else None,
+                                "n_fixes": o.n_fixes, "n_rejected": o.n_rejected},
+                 self.survey_id, [row])
+        return row, event
 
-    def _record_failure(self, tx, o: FileOutcome, res: dict[str, Any]) -> None:
-        """A file that did not parse: its raw bytes and a ledger event."""
+    def _record_failure(self, tx, o: FileOutcome, res: dict[str, Any]
+                        ) -> tuple[str, dict[str, Any], int | None, None]:
+        """A file that did not parse: its raw bytes registered, and its ledger event."""
         arc = self.arc
         o.error = res["error"]
         counts = res.get("counts") or {}
@@ -406,8 +446,8 @@ class _Recorder:
         if self.profile_hash:
             arc.register_object(tx, self.profile_hash, arc.objects.size(self.profile_hash),
                                 "profile")
-        arc.log(tx, "load.fixes.failed",
+        return ("load.fixes.failed",
                 {"raw": o.raw_hash, "name": Path(o.path).name, "node": o.node,
                  "format": self.fmt, "profile": self.profile_hash, "size": o.size,
                  "error": o.error, "counts": counts or None, "rejects": o.rejects},
-                survey_id=self.survey_id)
+                self.survey_id, None)

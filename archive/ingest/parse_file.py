@@ -197,6 +197,7 @@ def _parse(task: dict[str, Any], seen: dict[str, Any], written: list[str]) -> di
         from archive.ingest.parse_stream import parse_large
 
         return parse_large(task, store, seen, written)
+    sync = sync and not task.get("defer_sync", False)  # the loader flushes them in batches
     data = Path(path).read_bytes()
     h = hashlib.sha256(data).hexdigest()
     raw = {"tmp": None, "hash": h, "size": len(data)}

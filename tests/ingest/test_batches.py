@@ -44,11 +44,11 @@ def test_failure_inside_a_batch_rolls_back_the_whole_batch_only(survey_arc, harv
     calls = {"n": 0}
     real = load_mod._Recorder._record
 
-    def failing(self, tx, o, res):
+    def failing(self, o, res):
         calls["n"] += 1
         if calls["n"] == 3:  # batches hold 1, 2, 4 files: the 3rd file ends batch 2
             raise Boom("disk pulled")
-        return real(self, tx, o, res)
+        return real(self, o, res)
 
     monkeypatch.setattr(load_mod._Recorder, "_record", failing)
     with pytest.raises(Boom):
@@ -85,3 +85,79 @@ def test_batches_grow_and_every_file_gets_its_own_ledger_event(survey_arc, harve
     assert sizes == [1, 2, 4]  # the first file is committed at once, then batches double
     _, events, n_rows, _ = _state(survey_arc)
     assert n_rows == 7 and len(events) == 7
+
+
+def test_small_files_are_flushed_per_batch_bytes_before_names(survey_arc, harvest,
+                                                              monkeypatch):
+    """Files read whole are not flushed one by one: each batch flushes the store's file
+    system once before its objects are named and once after, and only then does the
+    catalog record them (a name never points at bytes a power loss could lose)."""
+    from archive.store.objects import ObjectStore
+
+    arc = survey_arc
+    if not arc.objects.can_sync_filesystem():
+        pytest.skip("needs a local store on Linux (syncfs)")
+    fsyncs = {"n": 0}
+    real_fsync = load_mod.os.fsync
+
+    def counting_fsync(fd):
+        fsyncs["n"] += 1
+        return real_fsync(fd)
+
+    seen: list[tuple[int, int, int]] = []  # (named objects, files recorded, tmp files)
+    real_sync = ObjectStore.sync_filesystem
+
+    def watching(self):
+        with arc.session() as s:
+            n_rows = s.scalar(select(func.count()).select_from(RawFile))
+        named = sum(1 for p in self.root.glob("??/??/*") if p.is_file())
+        seen.append((named, n_rows, len(list((self.root / "tmp").glob("put-*")))))
+        return real_sync(self)
+
+    monkeypatch.setattr("os.fsync", counting_fsync)
+    monkeypatch.setattr(ObjectStore, "sync_filesystem", watching)
+    monkeypatch.setattr(load_mod, "BATCH_SECONDS", 3600.0)
+    named_before = sum(1 for p in arc.objects.root.glob("??/??/*") if p.is_file())
+    rep = load_fix_files(arc, survey_id(arc), [harvest], workers=1)
+    assert [f.status for f in rep.files] == ["loaded"] * 7
+    # batches of 1, 2 and 4 files, two flushes each
+    assert len(seen) == 6
+    for k, n_files in enumerate([1, 2, 4]):
+        before, after = seen[2 * k], seen[2 * k + 1]
+        done = sum([1, 2, 4][:k])
+        assert before[1] == after[1] == done  # the catalog records the batch after both
+        assert before[2] == 2 * n_files  # raw copy and fixes table of each file, unnamed
+        assert after[0] == before[0] + 2 * n_files and after[2] == 0  # named between
+    assert seen[0][0] == named_before
+    assert fsyncs["n"] == 0  # no file flushed one by one (SQLite flushes through C)
+    assert verify_archive(arc).ok
+
+
+def test_a_failed_flush_records_nothing_of_its_batch(survey_arc, harvest, monkeypatch):
+    """The file system reporting a write error when the batch is flushed: a storage error,
+    nothing of that batch recorded or named, its temporary files removed; a second load
+    completes the job."""
+    from archive.errors import StorageError
+    from archive.store import objects as objects_mod
+
+    arc = survey_arc
+    if not arc.objects.can_sync_filesystem():
+        pytest.skip("needs a local store on Linux (syncfs)")
+    calls = {"n": 0}
+    real = objects_mod._syncfs()
+
+    def failing(fd):
+        calls["n"] += 1
+        return -1 if calls["n"] == 3 else real(fd)  # the first flush of the 2nd batch
+
+    monkeypatch.setattr(objects_mod, "_syncfs", lambda: failing)
+    with pytest.raises(StorageError, match="cannot write to the object store"):
+        load_fix_files(arc, survey_id(arc), [harvest], workers=1)
+    nodes, events, n_rows, rows = _state(arc)
+    assert nodes == ["KF-0000"] and n_rows == 1 and events == [rows[0].object_hash]
+    assert not list((arc.objects.root / "tmp").glob("put-*"))
+    assert verify_archive(arc).ok
+    monkeypatch.setattr(objects_mod, "_syncfs", lambda: real)
+    rep = load_fix_files(arc, survey_id(arc), [harvest], workers=1)
+    assert [f.status for f in rep.files] == ["already"] + ["loaded"] * 6
+    assert verify_archive(arc).ok
