@@ -144,7 +144,7 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
     used instead.
     """
     from archive.ingest import workers as _workers
-    from archive.ingest.parse_file import parse_file, set_known
+    from archive.ingest.parse_file import parse_file, parse_files, set_known
 
     workers_wanted, workers = workers, _workers
 
@@ -213,16 +213,19 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
             if pool is None:
                 pool = workers.pool(n_workers)
             try:
-                futures = [(i, pool.submit(parse_file, t)) for i, t in tasks]
+                futures = [(group, pool.submit(parse_files, [t for _, t in group]))
+                           for group in _groups(tasks, sizes, n_workers)]
                 try:
-                    for i, fut in futures:
-                        recorder.add(outcomes[i], fut.result())
-                        progress.advance(outcomes[i].size, Path(outcomes[i].path).name)
+                    for group, fut in futures:
+                        for (i, _), res in zip(group, fut.result(), strict=True):
+                            recorder.add(outcomes[i], res)
+                            progress.advance(outcomes[i].size, Path(outcomes[i].path).name)
                 except BaseException:
                     pool.shutdown(wait=True, cancel_futures=True)
                     for _, fut in futures:  # what the others left behind
                         if fut.done() and not fut.cancelled() and fut.exception() is None:
-                            _discard(fut.result())
+                            for res in fut.result():
+                                _discard(res)
                     raise
             finally:
                 pool.shutdown(wait=True)
@@ -236,6 +239,33 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
         set_known(frozenset())
     progress.close()
     return LoadReport(outcomes)
+
+
+GROUP_FILES = 16  # most files given to a parsing process at once
+GROUP_BYTES = 16 << 20
+
+
+def _groups(tasks: list[tuple[int, dict[str, Any]]], sizes: list[int], workers: int
+            ) -> list[list[tuple[int, dict[str, Any]]]]:
+    """The tasks in order, in runs of consecutive small files handed to a parsing process
+    together (a harvest is thousands of files of a few hundred kB: one at a time, the
+    round trips to the processes cost more than some of the parses, and the processes
+    wait on the loader between files). At most :data:`GROUP_FILES` files and
+    :data:`GROUP_BYTES` a run, and at least four runs per process while there are files
+    enough (the processes share the work); a file of :data:`GROUP_BYTES` or more alone."""
+    per = max(1, min(GROUP_FILES, len(tasks) // (4 * max(1, workers))))
+    out: list[list[tuple[int, dict[str, Any]]]] = []
+    run: list[tuple[int, dict[str, Any]]] = []
+    size = 0
+    for i, task in tasks:
+        if run and (len(run) >= per or size + sizes[i] > GROUP_BYTES):
+            out.append(run)
+            run, size = [], 0
+        run.append((i, task))
+        size += sizes[i]
+    if run:
+        out.append(run)
+    return out
 
 
 def _known_file(known: frozenset[str]) -> str:

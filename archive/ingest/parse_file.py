@@ -88,17 +88,7 @@ def _not_a_log(path: str, n_lines: int, counts: dict[str, int], fmt: str) -> Inp
 
 
 def _write_tmp(store, data: bytes | memoryview, sync: bool) -> str:
-    tmp = store.temporary()
-    try:
-        with open(tmp, "wb") as fh:
-            fh.write(data)
-            if sync:
-                fh.flush()
-                os.fsync(fh.fileno())
-    except BaseException:
-        _remove(str(tmp))
-        raise
-    return str(tmp)
+    return str(store.write_temporary(data, sync=sync))
 
 
 def _object_of(store, data: bytes, sync: bool) -> dict[str, Any]:
@@ -149,6 +139,12 @@ def parse_file(task: dict[str, Any]) -> dict[str, Any]:
     except Exception as exc:  # noqa: BLE001 - one broken file must not stop the others
         return _failed(task, f"could not be parsed ({type(exc).__name__}: {exc})", seen,
                        written)
+
+
+def parse_files(tasks: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """:func:`parse_file` of each task, in order (a run of small files handed to a parsing
+    process at once); never raises."""
+    return [parse_file(task) for task in tasks]
 
 
 def _remove(path: str) -> None:

@@ -322,19 +322,45 @@ class ObjectStore:
         process writes its raw copy and tables there, then :meth:`adopt` names them).
         On a local store it lies in the store's own ``tmp`` folder (same filesystem, so
         adopting is a rename); on a remote store in the system's temporary folder."""
+        fd, tmp = self._create_temporary(prefix)
+        os.close(fd)
+        return tmp
+
+    def write_temporary(self, data: bytes | memoryview, *, sync: bool = True) -> Path:
+        """A new temporary file (as :meth:`temporary`) holding ``data``, written through
+        the descriptor that created it and, with ``sync``, flushed to disk. A failed write
+        removes the file and raises (:class:`StorageError` when the storage refused it)."""
+        fd, tmp = self._create_temporary("put-")
+        try:
+            with open(fd, "wb", closefd=True) as fh:
+                fh.write(data)
+                if sync:
+                    fh.flush()
+                    os.fsync(fh.fileno())
+        except BaseException as exc:
+            with contextlib.suppress(FileNotFoundError):
+                os.unlink(tmp)
+            if isinstance(exc, OSError):
+                self._refuse_storage(exc, "nothing was recorded")
+            raise
+        return tmp
+
+    def _create_temporary(self, prefix: str) -> tuple[int, Path]:
         self._refuse_if_read_only()
         try:
             if self.root is not None:
                 tmpdir = self.root / "tmp"
-                tmpdir.mkdir(parents=True, exist_ok=True)
+                try:  # the folder is made when missing, not looked at for every file
+                    fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix=prefix)
+                except FileNotFoundError:
+                    tmpdir.mkdir(parents=True, exist_ok=True)
+                    fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix=prefix)
             else:
-                tmpdir = Path(tempfile.gettempdir())
-            fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix=prefix)
+                fd, tmp = tempfile.mkstemp(dir=tempfile.gettempdir(), prefix=prefix)
         except OSError as exc:
             self._refuse_storage(exc, "nothing was recorded")
             raise
-        os.close(fd)
-        return Path(tmp)
+        return fd, Path(tmp)
 
     def adopt(self, tmp: str | Path, h: str, size: int, *, sync_dir: bool = True) -> bool:
         """Make the finished temporary file ``tmp`` the object ``h`` (its SHA-256, computed
@@ -346,6 +372,7 @@ class ObjectStore:
         either way."""
         self._refuse_if_read_only()
         tmp = Path(tmp)
+        named = False
         try:
             if self.root is None:
                 with open(tmp, "rb") as fh:
@@ -356,9 +383,13 @@ class ObjectStore:
             final = self.root / fanout(h)
             if final.is_file():
                 return False
-            final.parent.mkdir(parents=True, exist_ok=True)
             os.chmod(tmp, stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
-            os.replace(tmp, final)
+            try:
+                os.replace(tmp, final)
+            except FileNotFoundError:  # its folder is new (made only when needed)
+                final.parent.mkdir(parents=True, exist_ok=True)
+                os.replace(tmp, final)
+            named = True
             if sync_dir:
                 _fsync_dir(final.parent)
             return True
@@ -366,8 +397,9 @@ class ObjectStore:
             self._refuse_storage(exc, "this write was not recorded")
             raise
         finally:
-            with contextlib.suppress(FileNotFoundError):
-                os.unlink(tmp)
+            if not named:
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(tmp)
 
     def sync_folders(self, hashes: list[str]) -> None:
         """Flush the folders of freshly adopted objects (once each), so their names survive

@@ -161,3 +161,34 @@ def test_a_failed_flush_records_nothing_of_its_batch(survey_arc, harvest, monkey
     rep = load_fix_files(arc, survey_id(arc), [harvest], workers=1)
     assert [f.status for f in rep.files] == ["already"] + ["loaded"] * 6
     assert verify_archive(arc).ok
+
+
+def test_small_files_go_to_the_parsing_processes_in_runs():
+    """Consecutive small files are handed to a parsing process together, in order, at
+    most GROUP_FILES and GROUP_BYTES a run, at least four runs per process, a file as large
+    as a run alone."""
+    groups = load_mod._groups
+    tasks = [(i, {"path": f"KF-{i:04d}.nmea"}) for i in range(100)]
+    runs = groups(tasks, [100_000] * 100, 2)
+    assert [i for run in runs for i, _ in run] == list(range(100))  # order kept
+    assert [len(r) for r in runs] == [12] * 8 + [4]  # 100 // (4 * 2) = 12 a run
+    runs = groups(tasks, [100_000] * 100, 1)
+    assert max(len(r) for r in runs) == load_mod.GROUP_FILES
+    assert [len(r) for r in groups(tasks[:3], [10] * 3, 2)] == [1, 1, 1]
+    sizes = [1_000_000] * 100
+    sizes[40] = load_mod.GROUP_BYTES + 1
+    runs = groups(tasks, sizes, 1)
+    assert [(i, _) for run in runs for i, _ in run] == tasks
+    assert [[i for i, _ in r] for r in runs if 40 in [i for i, _ in r]] == [[40]]
+    assert all(sum(sizes[i] for i, _ in r) <= load_mod.GROUP_BYTES for r in runs if len(r) > 1)
+
+
+def test_a_harvest_loaded_by_two_processes_records_every_file_in_order(survey_arc,
+                                                                        harvest):
+    rep = load_fix_files(survey_arc, survey_id(survey_arc), [harvest], workers=2)
+    assert [f.status for f in rep.files] == ["loaded"] * 7
+    nodes, events, n_rows, rows = _state(survey_arc)
+    assert nodes == [f"KF-{k:04d}" for k in range(7)]  # recorded in the order given
+    assert [r.id for r in rows] == sorted(r.id for r in rows)
+    assert events == sorted(r.object_hash for r in rows)
+    assert verify_archive(survey_arc).ok
