@@ -326,8 +326,9 @@ class Archive:
         session.execute(stmt)
 
     def register_objects(self, session: Session, items: list[tuple[str, int, str]]) -> None:
-        """:meth:`register_object` for many ``(hash, size, kind)`` at once, in one
-        statement (the first of a repeated hash wins, as with single calls)."""
+        """:meth:`register_object` for many ``(hash, size, kind)`` at once, one statement
+        run for all of them (the first of a repeated hash wins, as with single calls; the
+        statement is the same whatever their number, so it is compiled once)."""
         seen: dict[str, tuple[str, int, str]] = {}
         for h, size, kind in items:
             seen.setdefault(h, (h, size, kind))
@@ -337,7 +338,8 @@ class Archive:
         values = [{"hash": h, "size": size, "kind": kind, "created_at": now}
                   for h, size, kind in seen.values()]
         insert = pg_insert if self.engine.dialect.name == "postgresql" else sqlite_insert
-        session.execute(insert(StoredObject).values(values).on_conflict_do_nothing())
+        session.connection().execute(
+            insert(StoredObject.__table__).on_conflict_do_nothing(), values)
 
     def survey(self, session: Session, name: str | None = None) -> Survey:
         """The survey called ``name``, or the only survey when ``name`` is None."""
