@@ -28,6 +28,7 @@ from archive.ingest.nmea_chunks import (
     Assembler,
     Chunk,
     file_windows,
+    read_ahead,
     scan_window,
     windows_from_blocks,
     windows_from_memory,
@@ -86,7 +87,8 @@ def file_chunks_parallel(path: str | Path, *, node: str, raw_hash: str,
     lock); the same chunks as :func:`iter_chunks`, in order."""
     with open(path, "rb") as fh:
         checksummed = has_checksums(fh.read(1 << 20))
-    yield from _parallel(file_windows(path, size), node, raw_hash, date, checksummed, threads)
+    yield from _parallel(read_ahead(file_windows(path, size)), node, raw_hash, date,
+                         checksummed, threads)
 
 
 def iter_chunks_parallel(blocks: Iterable[bytes], *, node: str, raw_hash: str,

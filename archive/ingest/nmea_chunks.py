@@ -133,6 +133,53 @@ def windows_from_blocks(blocks: Iterable[bytes]) -> Iterator[tuple[bytes, bool]]
         block = nxt
 
 
+def read_ahead(windows: Iterator[tuple[memoryview, bool]], depth: int = 2
+               ) -> Iterator[tuple[memoryview, bool]]:
+    """The same windows, read by a thread of their own up to ``depth`` ahead of the
+    caller (reading a window is mostly a copy that releases the interpreter lock; the
+    thread that assembles chunks no longer waits for it). An error of the reading is
+    raised here, in order; closing this generator stops the thread."""
+    import queue
+    import threading
+
+    q: queue.Queue = queue.Queue(maxsize=depth)
+    stop = threading.Event()
+    end = object()
+
+    def put(item) -> bool:
+        while not stop.is_set():
+            try:
+                q.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def run() -> None:
+        try:
+            for w in windows:
+                if not put(w):
+                    return
+            put(end)
+        except BaseException as exc:  # noqa: BLE001 - raised in the consumer
+            put(exc)
+        finally:
+            close = getattr(windows, "close", None)
+            if close is not None:
+                close()  # the file, when the caller stopped early
+
+    thread = threading.Thread(target=run, name="nmea-read", daemon=True)
+    thread.start()
+    try:
+        while (item := q.get()) is not end:
+            if isinstance(item, BaseException):
+                raise item
+            yield item
+    finally:
+        stop.set()
+        thread.join()
+
+
 def file_windows(path, size: int) -> Iterator[tuple[memoryview, bool]]:
     """Windows of about ``size`` bytes of a file, read straight into their buffers (only
     the bytes after the last safe cut are copied into the next)."""

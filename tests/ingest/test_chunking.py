@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+import pytest
 from archive.seeds.nmea_write import write_nmea
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -74,3 +75,26 @@ def test_sort_fixes_matches_arrow_sort(seconds, shuffle, lines_down):
     t = t.set_column(t.schema.get_field_index("raw_line"), "raw_line", pa.array(lines))
     expected = t.sort_by([("time", "ascending"), ("raw_line", "ascending")])
     assert sort_fixes(t).equals(expected)
+
+
+def test_windows_read_ahead_are_the_windows_in_order_and_errors_arrive_in_order(tmp_path):
+    from archive.ingest.nmea_chunks import file_windows, read_ahead
+
+    path = tmp_path / "log.nmea"
+    path.write_bytes(b"".join(b"$GPTXT,%06d*00\r\n" % i for i in range(20_000)))
+    direct = [(bytes(w), f) for w, f in file_windows(path, 4096)]
+    ahead = [(bytes(w), f) for w, f in read_ahead(file_windows(path, 4096))]
+    assert ahead == direct and len(direct) > 50
+
+    def failing():
+        yield from file_windows(path, 4096)
+        raise OSError("the disk went away")
+
+    got = []
+    with pytest.raises(OSError, match="went away"):
+        for w, _ in read_ahead(failing()):
+            got.append(bytes(w))
+    assert got == [w for w, _ in direct]  # every window before the error
+    gen = read_ahead(file_windows(path, 4096))
+    next(gen)
+    gen.close()  # stopping early ends the reading thread
