@@ -266,14 +266,49 @@ def _engine_seconds(root: str) -> tuple[float, int]:
     return took, n
 
 
-def _command(*args: str) -> float:
+def _peak_mb(pid: int) -> float:
+    """The peak resident memory so far of a running process (its own image since exec,
+    Linux's VmHWM), 0 when unknown."""
+    try:
+        with open(f"/proc/{pid}/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return 0.0
+
+
+def _command(*args: str) -> tuple[float, float, float]:
+    """Run ``nodekeep ARGS`` in a fresh process: its wall seconds, CPU seconds (user +
+    system) and peak RSS in MB. The peak is the command's own, polled from /proc: the
+    rusage of a child counts the memory of this process at the fork (Linux keeps the
+    high-water mark across exec), which here holds the engine's arrays or the build's."""
     import subprocess
     import sys
 
     t0 = time.perf_counter()
-    subprocess.run([sys.executable, "-m", "archive.cli.main", *args], check=True,
-                   stdout=subprocess.DEVNULL)
-    return time.perf_counter() - t0
+    proc = subprocess.Popen([sys.executable, "-m", "archive.cli.main", *args],
+                            stdout=subprocess.DEVNULL)
+    peak = 0.0
+    while proc.poll() is None:
+        peak = max(peak, _peak_mb(proc.pid))
+        time.sleep(0.02)
+    took = time.perf_counter() - t0
+    if proc.returncode:
+        raise subprocess.CalledProcessError(proc.returncode, proc.args)
+    return took, _cpu_of_children(), peak
+
+
+_CHILD_CPU = [0.0]
+
+
+def _cpu_of_children() -> float:
+    """CPU seconds (user + system) of the children waited for since the last call."""
+    r = resource.getrusage(resource.RUSAGE_CHILDREN)
+    total = r.ru_utime + r.ru_stime
+    took, _CHILD_CPU[0] = total - _CHILD_CPU[0], total
+    return took
 
 
 def cli(total: int) -> None:
@@ -290,16 +325,16 @@ def cli(total: int) -> None:
         built = build(Path(root), total)
         print(f"\ncommand line: {built['fixes']:,} fixes of {built['nodes']:,} nodes, "
               f"{built['nodes']:,} fix tables")
-        start = min(_command("solve", "--help") for _ in range(3))
+        _cpu_of_children()  # the build's processes
+        start = min(_command("solve", "--help")[0] for _ in range(3))
         eng, n = _engine_seconds(root)
         fresh = os.path.join(tmp, "fresh")
         shutil.copytree(root, fresh)
-        took = _command("-A", fresh, "solve", "--quiet")
-        peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+        took, cpu, peak = _command("-A", fresh, "solve", "--quiet")
     print(f"  start-up ('nodekeep solve --help'): {start:.2f} s")
     print(f"  engine alone : {n / eng:>12,.0f} fixes/s ({eng:.2f} s, arrays in memory)")
     print(f"  nodekeep solve: {n / took:>12,.0f} fixes/s ({took:.2f} s from scratch: start-up, "
-          "catalog, reading, solving, storing)")
+          f"catalog, reading, solving, storing; {cpu:.2f} CPU seconds)")
     print(f"  ratio command/engine: {eng / took:.2f}; peak RSS of the command "
           f"{peak:,.0f} MB ({peak * 2**20 / n:,.0f} bytes a fix)")
 

@@ -126,6 +126,21 @@ def solve_fixes(fixes: pa.Table | FixArrays, deployments: pa.Table, stations: pa
     return SolveOutput(positions=positions, members=members, stats=stats)
 
 
+def warm_up() -> None:
+    """Load the compiled kernels from their on-disk cache (numba's first call of each):
+    called on a thread of its own while a solve reads its first fixes, so loading them
+    overlaps reading instead of following it. Solves nothing and returns nothing."""
+    from archive.solve.noise import row_noise
+    from archive.solve.robust import robust_centre
+
+    x = np.array([0.0, 1.0, 2.0])
+    seg = np.zeros(3, dtype=np.int64)
+    seg_median(x, seg, 1, 64)
+    robust_centre([x, x], np.ones(3), seg, 1)
+    row_noise(x, x, np.ones(3), np.ones(3), x, seg, 1)
+    batch_covariance(x, x, np.ones(3), x, seg, 1, batch_s=3600.0, min_batches=2)
+
+
 def _heights(s: stages.Screened, c: stages.Clouds, parts: stages.Parts,
              est: stages.Estimate, grid: stages.GridPositions, params: dict[str, Any],
              sampler: Sampler | None, orthometric: Orthometric | None) -> Heights:

@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 
 from archive.errors import UsageError
 from archive.ingest.overlap import first_epochs
-from archive.ingest.schema import FIX_SCHEMA, conform_fixes
+from archive.ingest.schema import FIX_SCHEMA
 
 TIME_BITS = 44  # 2^44 µs ≈ 203 days of fixes per survey
 MAX_NODES = 1 << (63 - TIME_BITS)
@@ -143,91 +143,124 @@ def fix_arrays(table: pa.Table) -> FixArrays:
 
 
 READ_COLUMNS = ("node", "time", "raw_line", "valid", "no_quality", "raw_hash", *FLOATS)
-BATCH_ROWS = 1 << 20  # fixes read and converted together
-READERS = 4  # files read at once
+DICTIONARY_COLUMNS = ["node", "raw_hash"]  # read dictionary-encoded: few distinct values
+READERS = 2  # files opened and decoded at once, per partition in flight
 
 
-def _batches(files: list[pq.ParquetFile], rows: int) -> list[list[pq.ParquetFile]]:
-    """The files in order, grouped into runs of about ``rows`` fixes (a file never split)."""
-    out: list[list[pq.ParquetFile]] = [[]]
-    n = 0
-    for f in files:
-        if out[-1] and n + f.metadata.num_rows > rows:
-            out.append([])
-            n = 0
-        out[-1].append(f)
-        n += f.metadata.num_rows
+_TYPES = {f.name: f.type for f in FIX_SCHEMA}
+
+
+def _columns(t: pa.Table) -> dict[str, pa.ChunkedArray]:
+    """The columns of a stored fix table by name, each in the type of the ingest contract
+    (the cast :func:`~archive.ingest.schema.conform_fixes` makes; the dictionary-encoded
+    ones as read)."""
+    out = {}
+    for name, col in zip(t.column_names, t.columns, strict=True):
+        want = _TYPES.get(name)
+        if want is not None and name not in DICTIONARY_COLUMNS and col.type != want:
+            col = col.cast(want)
+        out[name] = col
     return out
 
 
-def _read_one(f: pq.ParquetFile) -> tuple[pa.Table, pa.ChunkedArray]:
-    """The solver's columns of one file, conformed, and its ``raw_hash`` column
-    dictionary-encoded (read so when the file was opened with ``read_dictionary``: the
+def _node_codes(col: pa.ChunkedArray, out: np.ndarray) -> list[str]:
+    """Write each fix's index into the returned list of this table's node serials."""
+    index: dict[str, int] = {}
+    at = 0
+    for chunk in col.chunks:
+        if not pa.types.is_dictionary(chunk.type):
+            chunk = pc.dictionary_encode(chunk)
+        lut = np.array([index.setdefault(x, len(index)) for x in chunk.dictionary.to_pylist()],
+                       dtype=np.int64)
+        idx = chunk.indices.to_numpy(zero_copy_only=False)
+        out[at:at + len(chunk)] = lut[idx] if len(lut) else 0
+        at += len(chunk)
+    return list(index)
+
+
+def _into(col: pa.ChunkedArray | None, out: np.ndarray, fill: float | bool = np.nan) -> None:
+    """Write a column into ``out`` as :func:`_float` (floats, nulls NaN) or a boolean
+    conversion would, ``fill`` where the table lacks it: a chunk without nulls is copied
+    from its own buffer (a numpy view of it), one with nulls takes the general way."""
+    if col is None:
+        out[:] = fill
+        return
+    at = 0
+    for chunk in col.chunks:
+        m = len(chunk)
+        if chunk.null_count == 0:
+            view = chunk.to_numpy(zero_copy_only=False)  # a view but for booleans
+            out[at:at + m] = view.view(np.int64) if view.dtype.kind == "M" else view
+        elif out.dtype == np.float64:
+            out[at:at + m] = _float(chunk)
+        else:
+            out[at:at + m] = pc.fill_null(chunk, fill).to_numpy(zero_copy_only=False)
+        at += m
+
+
+class _Columns:
+    """The solver's columns of every fix of several tables, preallocated, each table
+    decoded straight into its own slice (so tables can be decoded on several threads)."""
+
+    def __init__(self, n: int) -> None:
+        self.t_raw = np.empty(n, dtype=np.int64)
+        self.raw_line = np.empty(n, dtype=np.int64)
+        self.valid = np.empty(n, dtype=bool)
+        self.unrated = np.empty(n, dtype=bool)
+        self.local = np.empty(n, dtype=np.int64)  # node code among its own table's serials
+        self.floats = {name: np.empty(n, dtype=np.float64) for name in FLOATS}
+
+    def fill(self, f: pq.ParquetFile, a: int, b: int) -> tuple[list[str], list[pa.Array]]:
+        """Decode the solver's columns of ``f`` into rows ``a:b``; the table's node serials
+        and its ``raw_hash`` chunks (dictionary-encoded)."""
+        have = set(f.metadata.schema.names)
+        t = _columns(f.read(columns=[c for c in READ_COLUMNS if c in have],
+                            use_threads=False))
+        _into(t["time"], self.t_raw[a:b])
+        _into(t["raw_line"], self.raw_line[a:b])
+        _into(t["valid"], self.valid[a:b], False)
+        _into(t.get("no_quality"), self.unrated[a:b], False)
+        for name in FLOATS:
+            _into(t.get(name), self.floats[name][a:b])
+        names = _node_codes(t["node"], self.local[a:b])
+        chunks = [c if pa.types.is_dictionary(c.type) else pc.dictionary_encode(c)
+                  for c in t["raw_hash"].chunks]
+        return names, [c.cast(pa.dictionary(pa.int32(), pa.string())) for c in chunks]
+
+
+def read_fix_arrays(files: list[pq.ParquetFile], readers: int = READERS) -> FixArrays:
+    """:func:`fix_arrays` of the fix tables of ``files`` concatenated in the order given
+    (open them with ``read_dictionary=DICTIONARY_COLUMNS``): only the columns the solver
+    uses are decoded, each file straight into its slice of arrays sized from the files'
+    metadata, ``readers`` files at once (Parquet decoding releases the interpreter's lock),
+    so the fix table itself is never built. ``raw_hash`` is kept dictionary-encoded (the
     64-character hash repeated on every fix is never spelled out)."""
-    have = set(f.schema_arrow.names)
-    t = f.read(columns=[c for c in READ_COLUMNS if c in have], use_threads=False)
-    rh = t["raw_hash"]
-    if not pa.types.is_dictionary(rh.type):
-        rh = pc.dictionary_encode(rh)
-    return conform_fixes(t.drop_columns(["raw_hash"])), rh
+    rows = np.cumsum([0] + [f.metadata.num_rows for f in files])
+    cols = _Columns(int(rows[-1]))
 
+    def fill(i: int) -> tuple[list[str], list[pa.Array]]:
+        return cols.fill(files[i], int(rows[i]), int(rows[i + 1]))
 
-def _read_batch(files: list[pq.ParquetFile]) -> tuple[pa.Table, list[pa.Array]]:
-    """:func:`_read_one` of these files, concatenated in order; several files are read at
-    once (a small file's read is mostly waiting, and releases the GIL)."""
-    if len(files) < 4:
-        got = [_read_one(f) for f in files]
+    if readers <= 1 or len(files) < 2:
+        got = [fill(i) for i in range(len(files))]
     else:
         from concurrent.futures import ThreadPoolExecutor
 
-        with ThreadPoolExecutor(max_workers=READERS) as pool:
-            got = list(pool.map(_read_one, files))
-    chunks = [c.cast(pa.dictionary(pa.int32(), pa.string())) for _, rh in got
-              for c in rh.chunks]
-    return pa.concat_tables([t for t, _ in got]), chunks
-
-
-def read_fix_arrays(files: list[pq.ParquetFile], batch_rows: int = BATCH_ROWS) -> FixArrays:
-    """:func:`fix_arrays` of the fix tables of ``files`` concatenated in the order given,
-    read in batches of about ``batch_rows`` fixes (only the columns the solver uses), each
-    batch converted to numpy once, into arrays sized from the files' metadata: the whole
-    table never sits in memory beside its arrays (at 1 s logging it would be as large
-    again), and a survey of many small logs is not converted file by file.
-    ``raw_hash`` is kept dictionary-encoded."""
-    n = sum(f.metadata.num_rows for f in files)
-    t_raw = np.empty(n, dtype=np.int64)
-    raw_line = np.empty(n, dtype=np.int64)
-    valid = np.empty(n, dtype=bool)
-    unrated = np.empty(n, dtype=bool)
-    local = np.empty(n, dtype=np.int64)  # node code among the names of its own batch
-    floats = {name: np.empty(n, dtype=np.float64) for name in FLOATS}
-    chunks, batch_names, at = [], [], 0
-    for group in _batches(files, batch_rows):
-        t, hashes = _read_batch(group)
-        m = t.num_rows
-        t_raw[at:at + m] = pc.cast(t["time"], pa.int64()).to_numpy(zero_copy_only=False)
-        raw_line[at:at + m] = t["raw_line"].to_numpy()
-        valid[at:at + m] = t["valid"].to_numpy(zero_copy_only=False).astype(bool)
-        unrated[at:at + m] = _no_quality(t)
-        for name in FLOATS:
-            floats[name][at:at + m] = _float(t[name])
-        names = pc.unique(t["node"]).to_pylist()
-        local[at:at + m] = pc.index_in(t["node"], value_set=pa.array(names, pa.string())
-                                       ).to_numpy(zero_copy_only=False)
-        batch_names.append((at, at + m, names))
-        chunks.extend(hashes)
-        at += m
-        del t
-        pa.default_memory_pool().release_unused()  # the decoding buffers of that batch
-    names = sorted({x for _, _, ns in batch_names for x in ns})
+        with ThreadPoolExecutor(max_workers=min(readers, len(files))) as pool:
+            got = list(pool.map(fill, range(len(files))))
+    names = sorted({x for ns, _ in got for x in ns})
     lookup = {x: i for i, x in enumerate(names)}
-    codes = np.empty(n, dtype=np.int64)
-    for a, b, ns in batch_names:  # one entry per batch, not per fix
-        codes[a:b] = np.array([lookup[x] for x in ns], dtype=np.int64)[local[a:b]]
-    del local
+    codes = np.empty(int(rows[-1]), dtype=np.int64)
+    for i, (ns, _) in enumerate(got):  # one entry per table, not per fix
+        a, b = int(rows[i]), int(rows[i + 1])
+        if b > a:
+            codes[a:b] = np.array([lookup[x] for x in ns], dtype=np.int64)[cols.local[a:b]]
+    chunks = [c for _, cs in got for c in cs]
     raw_hash = (pa.chunked_array(chunks) if chunks
                 else pa.chunked_array([], pa.dictionary(pa.int32(), pa.string())))
-    return _finish(names, codes, t_raw, raw_line, valid, floats, raw_hash, unrated)
+    pa.default_memory_pool().release_unused()  # the decoding buffers
+    return _finish(names, codes, cols.t_raw, cols.raw_line, cols.valid, cols.floats, raw_hash,
+                   cols.unrated)
 
 
 def _no_quality(table: pa.Table) -> np.ndarray:

@@ -342,21 +342,22 @@ def load_fix_tables(arc: Archive, hashes: list[str]) -> pa.Table:
 
 
 def load_fix_arrays(arc: Any, hashes: list[str]) -> FixArrays:
-    """The solver's arrays of these fix tables (in load order), read in batches
-    (:func:`archive.solve.fixarrays.read_fix_arrays`); ``arc`` has the ``objects`` store.
-    Each object is checked against its hash as it is opened, several at once."""
+    """The solver's arrays of these fix tables (in load order,
+    :func:`archive.solve.fixarrays.read_fix_arrays`); ``arc`` has the ``objects`` store.
+    Each object is read once into memory and checked against its hash on those bytes,
+    several at once."""
     if not hashes:
         return fix_arrays(empty_fixes())
+    from archive.solve.fixarrays import DICTIONARY_COLUMNS, READERS
+
+    def opened(h: str) -> Any:  # hashed as read (custody), GIL released
+        return arc.objects.parquet_in_memory(h, read_dictionary=DICTIONARY_COLUMNS)
+
+    if len(hashes) < 2:
+        return read_fix_arrays([opened(h) for h in hashes])
     from concurrent.futures import ThreadPoolExecutor
 
-    from archive.solve.fixarrays import READERS
-
-    def opened(h: str) -> Any:  # re-hashed against its name first (custody), GIL released
-        return arc.objects.parquet_file(h, read_dictionary=["raw_hash"])
-
-    if len(hashes) < 4:
-        return read_fix_arrays([opened(h) for h in hashes])
-    with ThreadPoolExecutor(max_workers=READERS) as pool:
+    with ThreadPoolExecutor(max_workers=min(READERS, len(hashes))) as pool:
         files = list(pool.map(opened, hashes))
     return read_fix_arrays(files)
 

@@ -75,11 +75,10 @@ def _runs(key: np.ndarray) -> np.ndarray:
     return np.flatnonzero(np.r_[True, key[1:] != key[:-1]])
 
 
-def row_noise(de: np.ndarray, dn: np.ndarray, hdop: np.ndarray, w: np.ndarray,
-              t_s: np.ndarray, row: np.ndarray, n_rows: int) -> RowNoise:
-    """Step 1 for every row at once: ``de, dn`` residuals (m) of the used fixes, their
-    ``hdop``, final weights ``w``, time ``t_s`` in seconds from their row's first fix and
-    ``row`` (non-decreasing; time-ordered within a row)."""
+def fix_sums_reference(de: np.ndarray, dn: np.ndarray, hdop: np.ndarray, w: np.ndarray,
+                       b0: np.ndarray, row: np.ndarray, n_rows: int) -> tuple[np.ndarray, ...]:
+    """numpy version of :func:`archive.solve.noise_sums.fix_sums` (same arguments and
+    results), the reference the tests hold the compiled one to."""
     n = np.bincount(row, minlength=n_rows).astype(np.float64)
     safe_n = np.maximum(n, 1.0)
     h = np.where(np.isfinite(hdop) & (hdop > 0), hdop, 1.0)
@@ -92,31 +91,67 @@ def row_noise(de: np.ndarray, dn: np.ndarray, hdop: np.ndarray, w: np.ndarray,
                          np.bincount(row, weights=zn * zn, minlength=n_rows),
                          np.bincount(row, weights=ze * zn, minlength=n_rows)]) / safe_n[:, None]
     sw = np.bincount(row, weights=w, minlength=n_rows)
-    hbar = np.where(sw > 0, np.bincount(row, weights=w * h, minlength=n_rows)
-                    / np.where(sw > 0, sw, 1.0), np.nan)
+    swh = np.bincount(row, weights=w * h, minlength=n_rows)
+    level = np.sqrt(np.maximum(0.5 * (q[:, 0] + q[:, 1]), 1e-300))
+    ue, un = ze / level[row], zn / level[row]
+    key = row.astype(np.int64) * (1 << 40) + b0
+    st = _runs(key)
+    bcnt = np.diff(np.r_[st, len(key)]).astype(np.float64)
+    if len(st) == 0:
+        return n, q, sw, swh, ue, un, st, st, bcnt, bcnt, bcnt
+    return (n, q, sw, swh, ue, un, row[st].astype(np.int64), b0[st], bcnt,
+            np.add.reduceat(ue, st), np.add.reduceat(un, st))
+
+
+def row_noise(de: np.ndarray, dn: np.ndarray, hdop: np.ndarray, w: np.ndarray,
+              t_s: np.ndarray, row: np.ndarray, n_rows: int, *,
+              compiled: bool = True) -> RowNoise:
+    """Step 1 for every row at once: ``de, dn`` residuals (m) of the used fixes, their
+    ``hdop``, final weights ``w``, time ``t_s`` in seconds from their row's first fix and
+    ``row`` (non-decreasing; time-ordered within a row). The sums over fixes and blocks are
+    compiled (:mod:`archive.solve.noise_sums`); with ``compiled`` false their numpy twins
+    (:func:`fix_sums_reference`, :func:`level_sums_reference`) give the same bits."""
+    if compiled:
+        from archive.solve.noise_sums import fix_sums as sums
+        from archive.solve.noise_sums import level_sums as levels
+    else:
+        sums, levels = fix_sums_reference, level_sums_reference
+
+    def f64(a: np.ndarray) -> np.ndarray:
+        return np.ascontiguousarray(a, dtype=np.float64)
+
+    row = np.ascontiguousarray(row, dtype=np.int64)
+    b0 = np.floor(np.asarray(t_s) / BLOCK0_S).astype(np.int64)
+    n, q, sw, swh, _, _, brow, bblk, bcnt, bse, bsn = sums(
+        f64(de), f64(dn), f64(hdop), f64(w), b0, row, n_rows)
+    hbar = np.where(sw > 0, swh / np.where(sw > 0, sw, 1.0), np.nan)
     span = np.zeros(n_rows)
     if len(row):
         first = _runs(row)
         last = np.r_[first[1:], len(row)] - 1
         span[row[first]] = t_s[last] - t_s[first]
-    level = np.sqrt(np.maximum(0.5 * (q[:, 0] + q[:, 1]), 1e-300))
-    ue, un = ze / level[row], zn / level[row]
     allan = np.zeros((n_rows, LEVELS))
     pairs = np.zeros((n_rows, LEVELS))
     white = np.zeros((n_rows, LEVELS))
     if len(row) == 0:
         return RowNoise(q, hbar, span, n, allan, pairs, white)
-    # level-0 blocks: runs of (row, minute) in the time-ordered fixes
-    b0 = np.floor(t_s / BLOCK0_S).astype(np.int64)
-    key = row.astype(np.int64) * (1 << 40) + b0
-    st = _runs(key)
-    brow, bblk = row[st], b0[st]
-    bcnt = np.diff(np.r_[st, len(key)]).astype(np.float64)
-    bse = np.add.reduceat(ue, st)
-    bsn = np.add.reduceat(un, st)
     # a row's usual fixes per minute: its fixes over its span (at least one per minute)
     per_min = n / np.maximum(span / BLOCK0_S, 1.0)
-    for j in range(LEVELS):
+    allan, pairs, white = levels(brow, bblk, bcnt, bse, bsn, span, per_min, n_rows, LEVELS,
+                                 BLOCK0_S)
+    return RowNoise(q, hbar, span, n, allan, pairs, white)
+
+
+def level_sums_reference(brow: np.ndarray, bblk: np.ndarray, bcnt: np.ndarray,
+                         bse: np.ndarray, bsn: np.ndarray, span: np.ndarray,
+                         per_min: np.ndarray, n_rows: int, levels: int, block0: float
+                         ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """numpy version of :func:`archive.solve.noise_sums.level_sums` (same arguments and
+    results), the reference the tests hold the compiled one to."""
+    allan = np.zeros((n_rows, levels))
+    pairs = np.zeros((n_rows, levels))
+    white = np.zeros((n_rows, levels))
+    for j in range(levels):
         if j:
             s = _runs(brow.astype(np.int64) * (1 << 40) + (bblk >> j))
             brow, bblk_j = brow[s], bblk[s] >> j
@@ -128,7 +163,7 @@ def row_noise(de: np.ndarray, dn: np.ndarray, hdop: np.ndarray, w: np.ndarray,
             bblk_j = bblk
         # a block must lie inside its row's span (the last, partial one is shorter, so its
         # mean varies more) and hold half its usual fixes (a gap in the log leaves it out)
-        inside = (bblk_j + 1) * (BLOCK0_S * (1 << j)) <= span[brow] + 1e-6
+        inside = (bblk_j + 1) * (block0 * (1 << j)) <= span[brow] + 1e-6
         full = inside & (bcnt >= 0.5 * per_min[brow] * (1 << j))
         ok = full[:-1] & full[1:] & (brow[1:] == brow[:-1]) & (bblk_j[1:] - bblk_j[:-1] == 1)
         if not ok.any():
@@ -140,7 +175,7 @@ def row_noise(de: np.ndarray, dn: np.ndarray, hdop: np.ndarray, w: np.ndarray,
         allan[:, j] = np.bincount(r, weights=d2[ok], minlength=n_rows)
         pairs[:, j] = np.bincount(r, minlength=n_rows)
         white[:, j] = np.bincount(r, weights=wh[ok], minlength=n_rows)
-    return RowNoise(q, hbar, span, n, allan, pairs, white)
+    return allan, pairs, white
 
 
 def gm_mean_variance(tau: np.ndarray, span: np.ndarray) -> np.ndarray:

@@ -181,6 +181,19 @@ def to_local(lat: np.ndarray, lon: np.ndarray, lat0: np.ndarray, lon0: np.ndarra
     return east, north
 
 
+def to_local_segments(lat: np.ndarray, lon: np.ndarray, lat0: np.ndarray, lon0: np.ndarray,
+                      seg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`to_local` of every element around the origin of its segment
+    (``lat0[seg], lon0[seg]``): the radii and the cosine of each origin are computed once
+    per segment, not once per element; the values are the same, element by element."""
+    m, n = radii(lat0)
+    cos0 = np.cos(np.radians(lat0))
+    dlon = (lon - lon0[seg] + 180.0) % 360.0 - 180.0
+    east = np.radians(dlon) * n[seg] * cos0[seg]
+    north = np.radians(lat - lat0[seg]) * m[seg]
+    return east, north
+
+
 def from_local(east: np.ndarray, north: np.ndarray, lat0: np.ndarray, lon0: np.ndarray
                ) -> tuple[np.ndarray, np.ndarray]:
     """Exact inverse of :func:`to_local`: metres east/north -> (lat, lon) degrees."""

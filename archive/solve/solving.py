@@ -10,6 +10,8 @@ partitioned, where they were solved, or which of them were solved in an earlier 
 
 from __future__ import annotations
 
+import threading
+from collections.abc import Callable
 from types import SimpleNamespace
 from typing import Any
 
@@ -18,7 +20,6 @@ import pyarrow.compute as pc
 
 from archive.edits.spans import manifest_spans
 from archive.progress import Progress
-from archive.solve.engine import solve_fixes
 from archive.solve.inputs import (
     Partition,
     SolveInputs,
@@ -61,18 +62,49 @@ def solve_inputs(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     return table, stats | more, unfinished
 
 
+def _engine_loader() -> Callable[[], None]:
+    """Start importing the engine (numba, scipy, pyproj) and loading its compiled kernels
+    on a thread of its own; returns a function that waits until that is done. The
+    partitions' fixes are read meanwhile: reading mostly runs outside the interpreter's
+    lock, importing inside it, so on two cores the two overlap. A thread solving waits
+    for the loader before it imports the engine itself (no two threads import it at
+    once)."""
+    failed: list[BaseException] = []
+
+    def load() -> None:
+        try:
+            from archive.solve.engine import warm_up
+
+            warm_up()
+        except Exception as exc:  # noqa: BLE001 - re-raised where the engine is needed
+            failed.append(exc)
+
+    thread = threading.Thread(target=load, name="nodekeep-engine-loader", daemon=True)
+    thread.start()
+
+    def wait() -> None:
+        thread.join()
+        if failed:
+            raise failed[0]
+
+    return wait
+
+
 def _map_local(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
                parts: list[Partition], progress: Progress
                ) -> list[tuple[pa.Table, dict[str, Any]]]:
     """Solve the partitions in this process, on up to :func:`solve_threads` threads at
     once (the kernels, numpy and Parquet decoding release the GIL; each thread opens the
-    elevation model for itself, a raster handle is not shared between threads)."""
+    elevation model for itself, a raster handle is not shared between threads). The
+    engine is loaded while the first partitions are read (:func:`_engine_loader`)."""
     epsg = manifest["survey"]["crs_epsg"]
+    engine_ready = _engine_loader()
 
     def one(part: Partition) -> tuple[pa.Table, dict[str, Any]]:
         dem = inp.open_dem(arc)
         try:
-            return _solve_part(arc, part, inp, manifest, _height_sampler(dem, epsg))
+            return _solve_part(arc, part, inp, manifest, _height_sampler(dem, epsg),
+                               engine_ready)
         finally:
             if dem is not None:
                 dem.close()
@@ -107,10 +139,16 @@ def _height_sampler(dem: Any, epsg: int):
 
 
 def _solve_part(holder: Any, part: Partition, inp: SolveInputs, manifest: dict[str, Any],
-                sampler: Any) -> tuple[pa.Table, dict[str, Any]]:
-    """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from."""
+                sampler: Any, engine_ready: Callable[[], None] | None = None
+                ) -> tuple[pa.Table, dict[str, Any]]:
+    """Solve one node partition; ``holder`` has the ``objects`` store to read fixes from.
+    ``engine_ready`` waits for the engine being loaded meanwhile (:func:`_engine_loader`)."""
     survey = manifest["survey"]
     fixes = load_fix_arrays(holder, part.fix_hashes)
+    if engine_ready is not None:
+        engine_ready()
+    from archive.solve.engine import solve_fixes
+
     out = solve_fixes(fixes, part.deployments, inp.stations, manifest["params"],
                       survey["crs_epsg"], excludes=manifest_spans(manifest["edits"]),
                       sampler=sampler, orthometric=_orthometric(survey),

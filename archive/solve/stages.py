@@ -26,7 +26,7 @@ from archive.solve.noise import RowNoise, row_noise
 from archive.solve.params import setting
 from archive.solve.robust import RobustResult, robust_centre
 from archive.solve.screen import cloud_hdop, mark_excluded, screen_codes
-from archive.solve.segments import from_local, seg_median, seg_starts, to_local
+from archive.solve.segments import from_local, seg_median, seg_starts, to_local_segments
 from archive.solve.uncertainty import (
     CentreCovariance,
     ar1_covariance,
@@ -144,7 +144,7 @@ def gather_clouds(s: Screened, w: WindowSet, cap: int) -> Clouds:
         lat0 = np.where(np.isfinite(lat0), lat0, seg_median(fx.lat[fix], window, n_win, cap))
         lon0 = np.where(np.isfinite(lon0), lon0, seg_median(fx.lon[fix], window, n_win, cap))
     lat0, lon0 = np.nan_to_num(lat0), np.nan_to_num(lon0)
-    east, north = to_local(fx.lat[fix], fx.lon[fix], lat0[window], lon0[window])
+    east, north = to_local_segments(fx.lat[fix], fx.lon[fix], lat0, lon0, window)
     return Clouds(n_win, fix, window, kept, lat0, lon0, east, north, fx.t_us[fix])
 
 

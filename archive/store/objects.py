@@ -211,6 +211,18 @@ class ObjectStore:
         except (pa.ArrowException, OSError) as exc:
             raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
 
+    def parquet_in_memory(self, h: str, read_dictionary: list[str] | None = None
+                          ) -> pq.ParquetFile:
+        """A ParquetFile over a stored Parquet object read once into memory and checked
+        against its hash on those very bytes (one pass over the object instead of a
+        re-hash and a second read); the columns of ``read_dictionary`` are read
+        dictionary-encoded. For objects of a few megabytes, read whole anyway."""
+        data = self.read_bytes(h)
+        try:
+            return pq.ParquetFile(pa.py_buffer(data), read_dictionary=read_dictionary)
+        except (pa.ArrowException, OSError) as exc:
+            raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
+
     def read_table(self, h: str, columns: list[str] | None = None) -> pa.Table:
         """Read a stored Parquet object, checked against its hash, as an Arrow table."""
         data = self.read_bytes(h)

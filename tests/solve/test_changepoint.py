@@ -9,12 +9,14 @@ practice, no source.
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pytest
 from archive.seeds.gnss_errors import ErrorModel, common_mode, node_errors
 from archive.seeds.simulate import SOLVER_TEST_MODEL
 
-from archive.solve.changepoint import scan_moves
+from archive.solve.changepoint import _local_median, scan_moves
 from archive.solve.params import default_params
 
 P = default_params()["flags"]
@@ -106,3 +108,19 @@ def test_a_move_near_the_end_is_found_when_it_shifts_the_last_hour() -> None:
     e = base_e + np.where(ts >= 4 * 3600 - 600, 20.0, 0.0)
     mv = scan_moves(e, n, t_us, np.zeros(m, np.int64), 1, P)
     assert mv.split_us[0] == -1
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_local_median_is_numpys_nanmedian_of_five(seed: int) -> None:
+    # numpy's nanmedian over the five columns around each one is the reference, to the bit
+    # (voids, signed zeros and infinities included)
+    rng = np.random.default_rng(seed)
+    a = rng.normal(0, 1, (20, 40)) * 10 ** rng.uniform(-3, 3)
+    a[rng.random(a.shape) < 0.1 * seed] = np.nan
+    a[rng.random(a.shape) < 0.05] = -0.0
+    a[rng.random(a.shape) < 0.02] = np.inf
+    pad = np.pad(a, ((0, 0), (2, 2)), constant_values=np.nan)
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        want = np.nanmedian(np.stack([pad[:, i:i + a.shape[1]] for i in range(5)]), axis=0)
+    assert _local_median(a).tobytes() == want.tobytes()
