@@ -11,25 +11,24 @@ from __future__ import annotations
 
 import contextlib
 import errno
-import functools
 import hashlib
 import io
 import os
 import stat
-import sys
 import tempfile
 import uuid
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import BinaryIO
-from urllib.parse import urlsplit
 
 import pyarrow as pa
 import pyarrow.fs as pafs
 import pyarrow.parquet as pq
 
 from archive.errors import IntegrityError, ObjectDamaged, ReadOnly, StorageError
+from archive.store import durable
 from archive.store.hashing import CHUNK, is_hash
+from archive.store.remote import remote_filesystem
 
 # errno values of a storage that refuses writes: disk full, quota, read-only, permission.
 STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
@@ -42,28 +41,6 @@ def fanout(h: str) -> str:
     if not is_hash(h):
         raise ValueError(f"not a SHA-256 hex digest: {h!r}")
     return f"{h[:2]}/{h[2:4]}/{h}"
-
-
-def remote_filesystem(url: str) -> tuple[pafs.FileSystem, str]:
-    """The pyarrow filesystem and base path of a non-local object store URL.
-
-    For ``s3://bucket/prefix`` on an S3-compatible service other than AWS, the endpoint
-    comes from ``AWS_ENDPOINT_URL_S3`` or ``AWS_ENDPOINT_URL`` (``http://host:port`` or
-    ``https://host``), the region from ``AWS_REGION`` or ``AWS_DEFAULT_REGION``; credentials
-    come from the AWS SDK's usual chain (``AWS_ACCESS_KEY_ID`` / ``AWS_SECRET_ACCESS_KEY`` /
-    ``AWS_SESSION_TOKEN``, then profile files and instance roles). Without an endpoint, or
-    when the URL carries its own query options, pyarrow resolves the URL itself.
-    """
-    parts = urlsplit(url)
-    endpoint = os.environ.get("AWS_ENDPOINT_URL_S3") or os.environ.get("AWS_ENDPOINT_URL")
-    if parts.scheme != "s3" or not endpoint or parts.query:
-        return pafs.FileSystem.from_uri(url)
-    ep = urlsplit(endpoint if "://" in endpoint else f"https://{endpoint}")
-    options: dict[str, str] = {"endpoint_override": ep.netloc, "scheme": ep.scheme or "https"}
-    region = os.environ.get("AWS_REGION") or os.environ.get("AWS_DEFAULT_REGION")
-    if region:
-        options["region"] = region
-    return pafs.S3FileSystem(**options), f"{parts.netloc}{parts.path}".rstrip("/")
 
 
 class ObjectStore:
@@ -305,7 +282,7 @@ class ObjectStore:
             final.parent.mkdir(parents=True, exist_ok=True)
             os.chmod(tmp, stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
             os.replace(tmp, final)
-            _fsync_dir(final.parent)
+            durable.fsync_dir(final.parent)
             return h, size
         except BaseException:
             with contextlib.suppress(FileNotFoundError):
@@ -403,7 +380,7 @@ class ObjectStore:
                 os.replace(tmp, final)
             named = True
             if sync_dir:
-                _fsync_dir(final.parent)
+                durable.fsync_dir(final.parent)
             return True
         except OSError as exc:
             self._refuse_storage(exc, "this write was not recorded")
@@ -416,75 +393,26 @@ class ObjectStore:
     def sync_folders(self, hashes: list[str]) -> None:
         """Flush the folders of freshly adopted objects (once each), so their names survive
         a power loss before the catalog records them."""
-        if self.root is None:
-            return
-        folders = sorted({(self.root / fanout(h)).parent for h in hashes})
-        if len(folders) < 4:
-            for folder in folders:
-                _fsync_dir(folder)
-            return
-        # Flushed side by side: the file system commits concurrent flushes together, which
-        # on a journalling file system is many times faster than one after the other.
-        from concurrent.futures import ThreadPoolExecutor
-
-        with ThreadPoolExecutor(min(16, len(folders)), thread_name_prefix="nodekeep-sync") as ex:
-            list(ex.map(_fsync_dir, folders))
-
+        if self.root is not None:
+            durable.fsync_folders({(self.root / fanout(h)).parent for h in hashes})
 
     def can_sync_filesystem(self) -> bool:
         """True when :meth:`sync_filesystem` can make this store durable in one call (a
-        local store on Linux, whose C library has ``syncfs``)."""
-        return self.root is not None and _syncfs() is not None
+        local store on Linux, see :func:`archive.store.durable.syncfs`)."""
+        return self.root is not None and durable.syncfs_available()
 
     def sync_filesystem(self) -> None:
-        """Make everything written so far to the store's file system durable, file data,
-        names and folders, whichever process wrote it, in one ``syncfs(2)`` call. A loader
-        writing thousands of small objects calls this once per batch, before the catalog
-        records them, instead of flushing every file and folder (each flush of a
-        journalling file system waits for a journal commit). It also flushes other data of
-        that file system, if there is any. :class:`StorageError` when the file system
-        reports a write error."""
-        fn = _syncfs()
-        if self.root is None or fn is None:
+        """Make everything written so far to the store's file system durable (file data,
+        names and folders, whichever process wrote them) in one call
+        (:func:`archive.store.durable.syncfs`). A loader writing thousands of small objects
+        calls this once per batch, before the catalog records them, instead of flushing
+        every file and folder. :class:`StorageError` when the file system reports a write
+        error."""
+        if self.root is None or not durable.syncfs_available():
             raise StorageError("flushing a whole file system needs a local store on Linux")
-        fd = os.open(self.root, os.O_RDONLY)
         try:
-            if fn(fd) != 0:
-                import ctypes
-
-                err = ctypes.get_errno() or errno.EIO
-                raise StorageError(f"cannot write to the object store {self.url}: "
-                                   f"{os.strerror(err)}",
-                                   hint="the files of this batch were not recorded; check "
-                                        "the disk and run the command again")
-        finally:
-            os.close(fd)
-
-
-@functools.cache
-def _syncfs():
-    """The C library's ``syncfs`` (Linux 2.6.39 and later), or None."""
-    if not sys.platform.startswith("linux"):
-        return None
-    import ctypes
-
-    try:
-        fn = ctypes.CDLL(None, use_errno=True).syncfs
-    except (OSError, AttributeError):
-        return None
-    fn.argtypes, fn.restype = [ctypes.c_int], ctypes.c_int
-    return fn
-
-
-def _fsync_dir(path: Path) -> None:
-    """Flush a directory entry so a rename survives a power loss (no-op where unsupported)."""
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
+            durable.syncfs(self.root)
+        except OSError as exc:
+            raise StorageError(f"cannot write to the object store {self.url}: {exc.strerror}",
+                               hint="the files of this batch were not recorded; check the "
+                                    "disk and run the command again") from exc

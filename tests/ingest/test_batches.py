@@ -138,7 +138,7 @@ def test_a_failed_flush_records_nothing_of_its_batch(survey_arc, harvest, monkey
     nothing of that batch recorded or named, its temporary files removed; a second load
     completes the job."""
     from archive.errors import StorageError
-    from archive.store import objects as objects_mod
+    from archive.store import durable as objects_mod
 
     arc = survey_arc
     if not arc.objects.can_sync_filesystem():
