@@ -192,3 +192,25 @@ def test_a_harvest_loaded_by_two_processes_records_every_file_in_order(survey_ar
     assert [r.id for r in rows] == sorted(r.id for r in rows)
     assert events == sorted(r.object_hash for r in rows)
     assert verify_archive(survey_arc).ok
+
+
+def test_without_syncfs_every_object_is_flushed_before_it_is_named(survey_arc, harvest,
+                                                                   monkeypatch):
+    """Where the file system cannot be flushed in one call (not Linux), each object is
+    flushed by the process that wrote it and the folders after the renames, as before."""
+    from archive.store import durable
+
+    monkeypatch.setattr(durable, "_syncfs", lambda: None)
+    assert not survey_arc.objects.can_sync_filesystem()
+    fsyncs = {"n": 0}
+    real_fsync = load_mod.os.fsync
+
+    def counting_fsync(fd):
+        fsyncs["n"] += 1
+        return real_fsync(fd)
+
+    monkeypatch.setattr("os.fsync", counting_fsync)
+    rep = load_fix_files(survey_arc, survey_id(survey_arc), [harvest], workers=1)
+    assert [f.status for f in rep.files] == ["loaded"] * 7
+    assert fsyncs["n"] >= 2 * 7  # each file's raw copy and fix table, then their folders
+    assert verify_archive(survey_arc).ok
