@@ -90,7 +90,7 @@ def load_fixes(state: CliState, paths: tuple[str, ...], fmt: str | None,
     finally:
         pool, _ = parsing.take()  # not taken when the load stopped before parsing
         if pool is not None:
-            pool.shutdown(wait=False, cancel_futures=True)
+            pool.shutdown(wait=True, cancel_futures=True)  # its processes hold nothing yet
     emit(state, report.as_dict(), lambda: _summary(report))
     if not report.ok:
         raise click.exceptions.Exit(1)
