@@ -261,11 +261,11 @@ class ObjectStore:
                                     "the command again") from exc
 
     def _put_local(self, stream: BinaryIO) -> tuple[str, int]:
-        tmpdir = self.root / "tmp"
-        tmpdir.mkdir(parents=True, exist_ok=True)
+        """A temporary file written and flushed as the stream is hashed, then named
+        (:meth:`adopt`, which removes it when the object is already stored)."""
         digest = hashlib.sha256()
         size = 0
-        fd, tmp = tempfile.mkstemp(dir=tmpdir, prefix="put-")
+        fd, tmp = self._create_temporary("put-")
         try:
             with os.fdopen(fd, "wb") as out:
                 while chunk := stream.read(CHUNK):
@@ -274,20 +274,13 @@ class ObjectStore:
                     out.write(chunk)
                 out.flush()
                 os.fsync(out.fileno())
-            h = digest.hexdigest()
-            final = self.root / fanout(h)
-            if final.is_file():
-                os.unlink(tmp)
-                return h, size
-            final.parent.mkdir(parents=True, exist_ok=True)
-            os.chmod(tmp, stat.S_IRUSR | stat.S_IRGRP | stat.S_IROTH)
-            os.replace(tmp, final)
-            durable.fsync_dir(final.parent)
-            return h, size
         except BaseException:
             with contextlib.suppress(FileNotFoundError):
                 os.unlink(tmp)
             raise
+        h = digest.hexdigest()
+        self.adopt(tmp, h, size)
+        return h, size
 
     def _put_remote(self, stream: BinaryIO) -> tuple[str, int]:
         digest = hashlib.sha256()
