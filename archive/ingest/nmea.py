@@ -24,16 +24,14 @@ import numpy as np
 import pyarrow as pa
 
 from archive.ingest.formats import LogOptions
-from archive.ingest.nmea_chunks import (
-    Assembler,
-    Chunk,
+from archive.ingest.nmea_chunks import Assembler, Chunk, scan_window
+from archive.ingest.nmea_epochs import new_carry
+from archive.ingest.nmea_windows import (
     file_windows,
     read_ahead,
-    scan_window,
     windows_from_blocks,
     windows_from_memory,
 )
-from archive.ingest.nmea_epochs import new_carry
 from archive.ingest.result import ParseResult, empty_fixes, empty_rejects, sort_fixes
 from archive.ingest.schema import FIX_SCHEMA
 

@@ -78,7 +78,7 @@ def test_sort_fixes_matches_arrow_sort(seconds, shuffle, lines_down):
 
 
 def test_windows_read_ahead_are_the_windows_in_order_and_errors_arrive_in_order(tmp_path):
-    from archive.ingest.nmea_chunks import file_windows, read_ahead
+    from archive.ingest.nmea_windows import file_windows, read_ahead
 
     path = tmp_path / "log.nmea"
     path.write_bytes(b"".join(b"$GPTXT,%06d*00\r\n" % i for i in range(20_000)))
