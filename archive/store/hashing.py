@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import math
 import re
 from datetime import date, datetime
 from pathlib import Path
@@ -64,24 +63,16 @@ def _default(value: Any) -> Any:
     raise TypeError(f"cannot write {type(value).__name__} as canonical JSON")
 
 
-def _check_floats(value: Any) -> None:
-    if isinstance(value, float) and not math.isfinite(value):
-        raise ValueError("canonical JSON cannot carry NaN or infinity; use null")
-    if isinstance(value, dict):
-        for v in value.values():
-            _check_floats(v)
-    elif isinstance(value, (list, tuple)):
-        for v in value:
-            _check_floats(v)
-
-
 def canonical_json(value: Any) -> bytes:
     """Canonical UTF-8 JSON bytes of ``value`` (sorted keys, compact, no NaN)."""
-    _check_floats(value)
-    return json.dumps(
-        value, sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=_default,
-        allow_nan=False,
-    ).encode("utf-8")
+    try:
+        text = json.dumps(value, sort_keys=True, separators=(",", ":"), ensure_ascii=False,
+                          default=_default, allow_nan=False)
+    except ValueError as exc:  # the encoder checks every float, nested or converted
+        if "float" in str(exc):
+            raise ValueError("canonical JSON cannot carry NaN or infinity; use null") from None
+        raise
+    return text.encode("utf-8")
 
 
 def canonical_hash(value: Any) -> str:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 from datetime import UTC, datetime
 
+import numpy as np
 import pyarrow as pa
 import pytest
 
@@ -22,6 +23,8 @@ def test_canonical_json_is_key_order_independent_and_compact():
 def test_canonical_json_refuses_nan_and_naive_time():
     with pytest.raises(ValueError):
         canonical_json({"x": float("nan")})
+    with pytest.raises(ValueError, match="NaN or infinity"):
+        canonical_json({"x": [{"y": (1.0, np.float64("-inf"))}]})
     with pytest.raises(TypeError):
         canonical_json({"t": datetime(2026, 1, 1)})  # noqa: DTZ001 - the point of the test
 
