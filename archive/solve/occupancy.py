@@ -17,7 +17,6 @@ from __future__ import annotations
 from typing import Any
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 
 from archive.solve.schema import POSITION_SCHEMA, POSITION_SCHEMA_V2
@@ -37,6 +36,8 @@ def _us(col: pa.ChunkedArray) -> np.ndarray:
 
 def _from_deployments(positions: pa.Table, deployments: pa.Table) -> dict[str, np.ndarray]:
     """Occupation columns of v1 rows, matched to the numbered deployment records."""
+    import pandas as pd  # runs of the first table version only
+
     dep = with_occupations(deployments)
     d = pd.DataFrame({
         "node": dep["node"].to_pylist(), "line": dep["line"].to_numpy(),
@@ -67,6 +68,8 @@ def _from_deployments(positions: pa.Table, deployments: pa.Table) -> dict[str, n
 def _from_rows(positions: pa.Table) -> dict[str, np.ndarray]:
     """Occupation columns numbered from the rows alone (a run without a deployments table):
     one occupation per station and node, in order of the rows' window starts."""
+    import pandas as pd  # runs of the first table version only
+
     n = positions.num_rows
     df = pd.DataFrame({
         "row": np.arange(n),

@@ -17,7 +17,7 @@ deployment as before.
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
+import pyarrow as pa
 
 OPEN = np.iinfo(np.int64).max  # a window or log without an end
 
@@ -28,21 +28,32 @@ def covered(dep_node: np.ndarray, dep_start: np.ndarray, dep_end: np.ndarray,
 
     Times are integer microseconds; ``dep_end`` is :data:`OPEN` (or larger) for a node still
     out, ``log_first``/``log_last`` are :data:`OPEN` for a log whose extent is unknown
-    (which covers every window of its node). Vectorised: one merge of deployments and logs
+    (which covers every window of its node). Vectorised: one join of deployments and logs
     on the node, so it costs (deployments x logs per node), never anything per fix.
     """
     n = len(dep_node)
     if n == 0 or len(log_node) == 0:
         return np.zeros(n, dtype=bool)
-    dep = pd.DataFrame({"row": np.arange(n), "node": np.asarray(dep_node, dtype=object),
-                        "d0": np.asarray(dep_start, dtype=np.int64),
-                        "d1": np.asarray(dep_end, dtype=np.int64)})
-    logs = pd.DataFrame({"node": np.asarray(log_node, dtype=object),
-                         "l0": np.asarray(log_first, dtype=np.int64),
-                         "l1": np.asarray(log_last, dtype=np.int64)})
-    m = dep.merge(logs, on="node", how="inner")
-    unknown = (m["l0"] == OPEN) | (m["l1"] == OPEN)
-    overlap = unknown | ((m["l0"] <= m["d1"]) & (m["l1"] >= m["d0"]))
+    dep = pa.table({"row": np.arange(n, dtype=np.int64), "node": _strings(dep_node),
+                    "d0": np.asarray(dep_start, dtype=np.int64),
+                    "d1": np.asarray(dep_end, dtype=np.int64)})
+    logs = pa.table({"node": _strings(log_node),
+                     "l0": np.asarray(log_first, dtype=np.int64),
+                     "l1": np.asarray(log_last, dtype=np.int64)})
+    m = dep.join(logs, keys="node", join_type="inner")
+    row = m["row"].to_numpy()
+    d0, d1 = m["d0"].to_numpy(), m["d1"].to_numpy()
+    l0, l1 = m["l0"].to_numpy(), m["l1"].to_numpy()
+    overlap = (l0 == OPEN) | (l1 == OPEN) | ((l0 <= d1) & (l1 >= d0))
     out = np.zeros(n, dtype=bool)
-    out[m.loc[overlap, "row"].to_numpy(dtype=np.int64)] = True
+    out[row[overlap]] = True
     return out
+
+
+def _strings(values: np.ndarray) -> pa.Array:
+    """Node names as an Arrow string column."""
+    values = np.asarray(values, dtype=object)
+    try:
+        return pa.array(values, pa.string())
+    except (pa.ArrowInvalid, pa.ArrowTypeError):  # names that are not text yet
+        return pa.array([None if v is None else str(v) for v in values], pa.string())

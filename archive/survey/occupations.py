@@ -43,7 +43,6 @@ from datetime import UTC, datetime, timedelta
 from typing import Any
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 
 from archive.survey.keys import station_mask, station_text
@@ -162,6 +161,13 @@ class Numbering:
     continued: np.ndarray  # bool, one per earlier occupation: matched by a record
 
 
+def station_codes(line: np.ndarray, point: np.ndarray) -> np.ndarray:
+    """One integer per record, the same for records of the same (line, point)."""
+    pairs = np.column_stack([np.asarray(line, dtype=np.float64),
+                             np.asarray(point, dtype=np.float64)])
+    return np.unique(pairs, axis=0, return_inverse=True)[1].reshape(-1)
+
+
 def number_occupations(rec: Records, earlier: Records | None = None,
                        earlier_occ: np.ndarray | None = None, *,
                        retired: np.ndarray | None = None,
@@ -182,8 +188,7 @@ def number_occupations(rec: Records, earlier: Records | None = None,
     continued = np.zeros(n_earlier, dtype=bool)
     if n == 0:
         return Numbering(out, continued)
-    key = pd.MultiIndex.from_arrays([rec.line, rec.point])
-    codes = pd.factorize(key)[0]
+    codes = station_codes(rec.line, rec.point)
     busy = np.bincount(codes)[codes] > 1
     groups_earlier: dict[tuple[float, float], list[int]] = {}
     if n_earlier:
@@ -305,8 +310,7 @@ def occupation_summary(table: pa.Table) -> dict[str, int]:
     """How many occupations, stations (line/point) occupied more than once, and top index."""
     if table.num_rows == 0:
         return {"occupations": 0, "reoccupied": 0, "max_index": 0}
-    key = pd.MultiIndex.from_arrays([table["line"].to_numpy(), table["point"].to_numpy()])
-    counts = np.bincount(pd.factorize(key)[0])
+    counts = np.bincount(station_codes(table["line"].to_numpy(), table["point"].to_numpy()))
     return {"occupations": table.num_rows, "reoccupied": int((counts > 1).sum()),
             "max_index": int(occupation_array(table).max())}
 

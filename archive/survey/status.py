@@ -11,10 +11,12 @@ deployment records, not with the fixes.
 
 from __future__ import annotations
 
+from datetime import datetime
 from typing import Any
 
 import numpy as np
-import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 from sqlalchemy import func, select
 
 from archive.store.archive import Archive
@@ -38,12 +40,21 @@ def plain_rows(arc: Archive, sql: str) -> list[tuple[Any, ...]]:
             cursor.close()
 
 
-def _times_us(values: Any) -> np.ndarray:
-    """Catalog times (aware datetimes from PostgreSQL, ISO text from SQLite) as integer
-    microseconds since 1970 UTC, vectorised; unknown times as :data:`OPEN`."""
-    t = pd.to_datetime(pd.Series(list(values), dtype=object), utc=True, format="ISO8601")
-    out = t.dt.as_unit("us").astype("int64").to_numpy()
-    return np.where(t.isna().to_numpy(), OPEN, out)
+def _times_us(values: list[Any]) -> np.ndarray:
+    """Catalog times (aware datetimes from PostgreSQL, naive UTC ISO text from SQLite) as
+    integer microseconds since 1970 UTC, vectorised; unknown times as :data:`OPEN`."""
+    if not values:
+        return np.zeros(0, dtype=np.int64)
+    if any(isinstance(v, str) for v in values):
+        text = pa.array(values, pa.string())
+        try:
+            t = text.cast(pa.timestamp("us"))
+        except pa.ArrowInvalid:  # text with a zone offset
+            t = pa.array([None if v is None else datetime.fromisoformat(v) for v in values],
+                         pa.timestamp("us", tz="UTC"))
+    else:
+        t = pa.array(values, pa.timestamp("us", tz="UTC"))
+    return pc.fill_null(t.cast(pa.int64()), OPEN).to_numpy()
 
 
 def catalog_counts(arc: Archive, survey_id: int) -> dict[str, Any]:
@@ -78,28 +89,32 @@ def harvest_status(arc: Archive, survey_id: int) -> dict[str, Any]:
     counts = catalog_counts(arc, survey_id)
     logs = plain_rows(arc, "SELECT node, n_fixes, t_first, t_last FROM raw_files WHERE "
                            f"survey_id = {int(survey_id)} AND fixes_hash IS NOT NULL")
-    log_node = np.array([r[0] for r in logs], dtype=object)
-    log_fixes = np.array([r[1] or 0 for r in logs], dtype=np.int64)
+    log_node = pa.array([r[0] for r in logs], pa.string())
+    log_fixes = pa.array([r[1] or 0 for r in logs], pa.int64())
     found = current_input(arc, survey_id, "deployments")
     dep = with_occupations(found[1]) if found is not None and found[1] is not None else None
     awaiting: list[dict[str, Any]] = []
-    deployed_nodes: set[str] = set()
+    deployed_nodes = pa.array([], pa.string())
     if dep is not None and dep.num_rows:
-        nodes = np.array(dep["node"].to_pylist(), dtype=object)
-        deployed_nodes = set(nodes.tolist())
-        ok = covered(nodes, us_array(dep["deployed"], OPEN), us_array(dep["retrieved"], OPEN),
-                     log_node, _times_us(r[2] for r in logs), _times_us(r[3] for r in logs))
+        nodes = dep["node"].combine_chunks().cast(pa.string())
+        deployed_nodes = pc.unique(nodes)
+        ok = covered(nodes.to_numpy(zero_copy_only=False), us_array(dep["deployed"], OPEN),
+                     us_array(dep["retrieved"], OPEN), log_node.to_numpy(zero_copy_only=False),
+                     _times_us([r[2] for r in logs]), _times_us([r[3] for r in logs]))
         rows = dep.select(["line", "point", "occupation", "node", "deployed", "retrieved"])
         for r in rows.take(np.flatnonzero(~ok)).to_pylist():  # one per deployment awaiting
             awaiting.append({"line": r["line"], "point": r["point"], "index": r["occupation"],
                              "node": r["node"], "deployed": r["deployed"],
                              "retrieved": r["retrieved"]})
-    stray = ~pd.Series(log_node, dtype=object).isin(deployed_nodes).to_numpy()  # hashed
-    frame = pd.DataFrame({"node": log_node[stray], "n_fixes": log_fixes[stray]})
-    orphans = frame.groupby("node").agg(n_logs=("n_fixes", "size"), n_fixes=("n_fixes", "sum"))
+    stray = pc.and_(pc.invert(pc.is_in(log_node, value_set=deployed_nodes)),
+                    pc.is_valid(log_node))
+    orphans = (pa.table({"node": log_node, "n_fixes": log_fixes}).filter(stray)
+               .group_by("node").aggregate([("n_fixes", "count"), ("n_fixes", "sum")])
+               .sort_by("node"))
     counts |= {"n_deployments": dep.num_rows if dep is not None else 0,
                "n_nodes_deployed": len(deployed_nodes), "n_awaiting": len(awaiting)}
     return {"counts": counts, "awaiting": awaiting,
-            "nodes_without_deployment": [{"node": str(k), "n_logs": int(r.n_logs),
-                                          "n_fixes": int(r.n_fixes)}
-                                         for k, r in orphans.sort_index().iterrows()]}
+            "nodes_without_deployment": [
+                {"node": k, "n_logs": int(c), "n_fixes": int(f)} for k, c, f in zip(
+                    orphans["node"].to_pylist(), orphans["n_fixes_count"].to_pylist(),
+                    orphans["n_fixes_sum"].to_pylist(), strict=True)]}
