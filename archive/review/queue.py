@@ -15,10 +15,9 @@ flagged stations, open and decided, per flag, all in stations.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 
@@ -36,6 +35,9 @@ from archive.solve.schema import FLAGS
 from archive.store.archive import Archive
 from archive.store.models import Survey
 from archive.survey.crs import survey_crs
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 @dataclass
@@ -145,6 +147,8 @@ def _figures(rows: pd.DataFrame, flags: list[str], unit_factor: float) -> dict[s
 
 
 def _when(v: Any) -> Any:
+    import pandas as pd
+
     return None if v is None or pd.isna(v) else v.to_pydatetime()
 
 
@@ -180,6 +184,7 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     """The flagged stations of a run (the newest by default) with their open and decided
     flags, the figures behind them (left empty without ``figures``: deciding needs none)
     and the last decision on each (see module doc)."""
+
     run = get_run(arc, survey_id, run_ref)
     table = positions if positions is not None else run_occupations(arc, run)
     with arc.session() as s:
@@ -188,7 +193,7 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
         epsg = s.get(Survey, survey_id).crs_epsg
     unit = survey_crs(epsg).unit_factor
     st = station_flags(table)
-    flagged = st[st["flags"] != ""]
+    flagged = st.filter(pc.not_equal(st["flags"], "")).to_pandas()
     # the delivered rows of the flagged stations (every part of a moved node)
     rows = table.filter(pc.fill_null(table["delivered"], False))
     if not figures:  # the windows need these columns only
@@ -215,24 +220,41 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
             figures=_figures(groups[key], flags, unit) if figures else {},
             last=last.get(key)))
     review = Review(run.id, survey_id, stations)
-    review.counts = _counts(review, table, st)
+    review.counts = _counts(run.id, table, st, [s.state for s in stations])
     return review
 
 
-def _counts(review: Review, table: pa.Table, st: Any) -> dict[str, Any]:
+def _counts(run_id: str, table: pa.Table, st: pa.Table, states: list[FlagState]
+            ) -> dict[str, Any]:
+    """The counts of :func:`review_counts` from the station flags and the states of the
+    flagged stations."""
     c = count_flags(table, st)
     open_per: dict[str, int] = {}
-    for s in review.stations:
-        for f in s.state.open:
+    for state in states:
+        for f in state.open:
             open_per[f] = open_per.get(f, 0) + 1
-    n_waiting = sum(1 for s in review.stations if s.waiting)
-    return c.as_dict() | {"run": review.run_id, "n_waiting": n_waiting,
+    n_waiting = sum(1 for state in states if state.open)
+    return c.as_dict() | {"run": run_id, "n_waiting": n_waiting,
                           "n_decided": c.n_flagged - n_waiting,
                           "open_per_flag": {k: open_per[k] for k in FLAGS if k in open_per}}
 
 
-def review_counts(arc: Archive, survey_id: int, run_ref: str | None = None) -> dict[str, Any]:
+def review_counts(arc: Archive, survey_id: int, run_ref: str | None = None, *,
+                  positions: pa.Table | None = None) -> dict[str, Any]:
     """Flagged stations of a run counted the one way (stations, i.e. occupations):
     ``n_stations``, ``n_flagged``, ``per_flag``, ``n_unlogged`` (clusters, not stations),
-    ``n_waiting`` (an open flag left), ``n_decided`` and ``open_per_flag``."""
-    return load_review(arc, survey_id, run_ref, figures=False).counts
+    ``n_waiting`` (an open flag left), ``n_decided`` and ``open_per_flag``; the same as
+    :func:`load_review`'s counts, without the windows and figures behind them.
+    ``positions``: the run's :func:`~archive.solve.occupancy.run_occupations`, when the
+    caller has them already."""
+    run = get_run(arc, survey_id, run_ref)
+    table = positions if positions is not None else run_occupations(arc, run)
+    with arc.session() as s:
+        in_force = in_force_by_occupation(s, survey_id)
+    st = station_flags(table)
+    flagged = st.filter(pc.not_equal(st["flags"], ""))
+    states = [split_flags(f.split(";"), in_force.get((float(a), float(b), int(o)), []))
+              for a, b, o, f in zip(flagged["line"].to_pylist(), flagged["point"].to_pylist(),
+                                    flagged["occupation"].to_pylist(),
+                                    flagged["flags"].to_pylist(), strict=True)]
+    return _counts(run.id, table, st, states)

@@ -15,8 +15,8 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from archive.solve.params import setting
 from archive.solve.schema import FLAGS
@@ -153,43 +153,70 @@ class FlagCounts:
                 "n_unlogged": self.n_unlogged}
 
 
-def station_flags(table: pa.Table) -> pd.DataFrame:
-    """One row per station (occupation) with delivered rows: line, point, occupation, node
-    and its flags (the union over its delivered rows, in the order of ``FLAGS``)."""
-    cols = ["line", "point", "index", "node", "kind", "delivered", "flags"]
-    df = table.select([c for c in cols if c in table.column_names]).to_pandas()
-    df["occupation"] = (table["occupation"].to_pandas() if "occupation" in table.column_names
-                        else df["index"])
-    df["occupation"] = df["occupation"].fillna(df["index"]).astype("int64")
-    df = df[df["delivered"].astype(bool) & (df["kind"] == "logged")]
-    keys = list(STATION_KEY)
-    if df.empty:
-        return pd.DataFrame({k: pd.Series(dtype="float64") for k in keys}
-                            | {"node": pd.Series(dtype="object"),
-                               "flags": pd.Series(dtype="object")})
-    df = df.assign(flags=df["flags"].fillna(""))
-    # most stations have one delivered row; only the parts of moved nodes need joining
-    several = df.duplicated(keys, keep=False).to_numpy()
-    parts = [df.loc[~several, [*keys, "node", "flags"]]]
-    if several.any():
-        parts.append(df[several].groupby(keys, sort=False).agg(
-            node=("node", "first"), flags=("flags", ";".join)).reset_index())
-    grouped = pd.concat(parts, ignore_index=True).sort_values(keys, ignore_index=True)
+STATION_SCHEMA = pa.schema([("line", pa.float64()), ("point", pa.float64()),
+                            ("occupation", pa.int64()), ("node", pa.string()),
+                            ("flags", pa.string())])
+"""The table of :func:`station_flags`."""
+
+
+def _flag_order(text: str) -> str:
+    """The distinct flags of ``text`` (";"-joined) in the order of ``FLAGS``."""
     order = {k: i for i, k in enumerate(FLAGS)}
-    grouped["flags"] = [";".join(sorted({f for f in s.split(";") if f}, key=order.get))
-                        for s in grouped["flags"]]
-    return grouped
+    return ";".join(sorted({f for f in text.split(";") if f}, key=order.get))
 
 
-def count_flags(table: pa.Table, stations: pd.DataFrame | None = None) -> FlagCounts:
+def station_flags(table: pa.Table) -> pa.Table:
+    """One row per station (occupation) with delivered rows, sorted by station: line,
+    point, occupation, node (the first given) and its flags (the union over its delivered
+    rows, in the order of ``FLAGS``; "" for none), as :data:`STATION_SCHEMA`."""
+    index = table["index"].cast(pa.int64())
+    occ = (pc.coalesce(table["occupation"].cast(pa.int64()), index)
+           if "occupation" in table.column_names else index)
+    keep = pc.fill_null(pc.and_(pc.fill_null(table["delivered"], False),
+                                pc.equal(table["kind"], "logged")), False)
+    t = pa.table({"line": table["line"].cast(pa.float64()),
+                  "point": table["point"].cast(pa.float64()), "occupation": occ,
+                  "node": table["node"].cast(pa.string()),
+                  "flags": pc.fill_null(table["flags"].cast(pa.string()), "")}).filter(keep)
+    if t.num_rows == 0:
+        return pa.Table.from_batches([], schema=STATION_SCHEMA)
+    t = t.take(pc.sort_indices(t, [(k, "ascending") for k in STATION_KEY]))  # stable
+    line, point = t["line"].to_numpy(), t["point"].to_numpy()
+    occ_n = t["occupation"].to_numpy()
+    first = np.ones(t.num_rows, dtype=bool)
+    first[1:] = (line[1:] != line[:-1]) | (point[1:] != point[:-1]) | (occ_n[1:] != occ_n[:-1])
+    flags, node = t["flags"].combine_chunks(), t["node"].combine_chunks()
+    if not first.all():  # most stations have one row; the parts of moved nodes are joined
+        starts = np.flatnonzero(first)
+        ends = np.append(starts[1:], t.num_rows)
+        several = ends - starts > 1
+        texts, nodes = flags.to_pylist(), node.to_pylist()
+        for a, b in zip(starts[several].tolist(), ends[several].tolist(),
+                        strict=True):  # one per moved node, not per row
+            texts[a] = ";".join(texts[a:b])
+            nodes[a] = next((x for x in nodes[a:b] if x is not None), None)
+        flags = pa.array([texts[i] for i in starts.tolist()], pa.string())
+        node = pa.array([nodes[i] for i in starts.tolist()], pa.string())
+        t = t.take(starts)
+    coded = pc.dictionary_encode(flags)  # a few distinct flag sets among many stations
+    ordered = pa.array([_flag_order(x) for x in coded.dictionary.to_pylist()], pa.string())
+    return pa.table({"line": t["line"], "point": t["point"], "occupation": t["occupation"],
+                     "node": node, "flags": ordered.take(coded.indices)}, schema=STATION_SCHEMA)
+
+
+def count_flags(table: pa.Table, stations: pa.Table | None = None) -> FlagCounts:
     """The review flags of a positions table counted per station (:class:`FlagCounts`);
     ``stations``: its :func:`station_flags`, when the caller has them already."""
     st = station_flags(table) if stations is None else stations
     per: dict[str, int] = {}
-    for text in st["flags"]:
-        for f in text.split(";") if text else ():
-            per[f] = per.get(f, 0) + 1
-    kind = table["kind"].to_pylist() if "kind" in table.column_names else []
-    return FlagCounts(n_stations=len(st), n_flagged=int((st["flags"] != "").sum()),
-                      per_flag={k: per[k] for k in FLAGS if k in per},
-                      n_unlogged=sum(1 for k in kind if k == "unlogged"))
+    n_flagged = 0
+    for item in pc.value_counts(st["flags"]).to_pylist():  # one per distinct flag set
+        text, n = item["values"], int(item["counts"])
+        if text:
+            n_flagged += n
+            for f in text.split(";"):
+                per[f] = per.get(f, 0) + n
+    n_unlogged = (int(pc.sum(pc.equal(table["kind"], "unlogged")).as_py() or 0)
+                  if "kind" in table.column_names else 0)
+    return FlagCounts(n_stations=st.num_rows, n_flagged=n_flagged,
+                      per_flag={k: per[k] for k in FLAGS if k in per}, n_unlogged=n_unlogged)
