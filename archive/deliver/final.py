@@ -293,18 +293,22 @@ def awaiting_harvest(positions: pa.Table, final: pa.Table) -> list[dict[str, Any
 
 
 def build_final(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None, *,
-                edits: list[Any] | None = None, merge: bool = False) -> Final:
+                edits: list[Any] | None = None, merge: bool = False,
+                positions: pa.Table | None = None) -> Final:
     """The run's delivered rows (one per occupation) plus the survey's edits in force (as of
     a time, if given); with ``merge``, statistically indistinguishable occupations of a
     station become one position.
 
-    ``edits`` overrides the edits applied (Edit rows, e.g. the set a delivery recorded).
+    ``edits`` overrides the edits applied (Edit rows, e.g. the set a delivery recorded);
+    ``positions`` is the run's :func:`~archive.solve.occupancy.run_occupations`, when the
+    caller has read them already.
     """
     from archive.solve.occupancy import run_occupations
     from archive.store.models import Survey
     from archive.survey.crs import survey_crs
 
-    positions = run_occupations(arc, run)
+    if positions is None:
+        positions = run_occupations(arc, run)
     delivered = positions.filter(pc.equal(positions["delivered"], True))
     if edits is None:
         edits, _ = edit_set(arc, survey_id, as_of=as_of)
@@ -357,9 +361,11 @@ def with_point_codes(table: pa.Table, stations: pa.Table) -> pa.Table:
 
 
 def final_positions(arc: Archive, survey_id: int, run: Run, as_of: datetime | None = None,
-                    *, edits: list[Any] | None = None, merge: bool = False) -> pa.Table:
+                    *, edits: list[Any] | None = None, merge: bool = False,
+                    positions: pa.Table | None = None) -> pa.Table:
     """The table of :func:`build_final`."""
-    return build_final(arc, survey_id, run, as_of, edits=edits, merge=merge).table
+    return build_final(arc, survey_id, run, as_of, edits=edits, merge=merge,
+                       positions=positions).table
 
 
 def _sorted(table: pa.Table) -> pa.Table:

@@ -3,8 +3,9 @@ whether the newest run is behind its inputs, what waits for review, and what cha
 the last delivery.
 
 Everything here comes from the catalog and from small tables (the deployment log, the
-newest run's positions, the delivered final tables); no fix table is read, so the answer
-stays well under a second on an archive of 10^8 fixes (bench/status.py).
+newest run's positions, the delivered final tables); no fix table is read, so the work
+stays under a second on an archive of 10^8 fixes (bench/status.py). The newest run's
+positions are read once, for the review counts and the comparison with the last delivery.
 
 Counts of review flags are **stations** (occupations), counted the one way ``solve``, ``qc``
 and ``review`` count them (:func:`archive.review.queue.review_counts`).
@@ -100,6 +101,7 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     position must have moved to count as moved since the last delivery."""
     from archive.deliver.changes import delivered_state
     from archive.deliver.final import final_positions
+    from archive.solve.occupancy import run_occupations
     from archive.solve.run import get_run
 
     with arc.session() as s:
@@ -123,11 +125,12 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
         run_info = {"id": run.id, "label": run.label, "created_at": run.created_at,
                     "positions": run.n_positions, "runs": int(n_runs),
                     "inputs_changed": behind, "up_to_date": not behind}
-        review = review_counts(arc, survey_id, run.id) | {"run": run.id}
+        positions = run_occupations(arc, run)  # read once for the counts and the changes
+        review = review_counts(arc, survey_id, run.id, positions=positions) | {"run": run.id}
         if last is not None:
             # the comparison 'deliver --changed-since' would make, in the delivery's own mode
             merge = merged_mode(arc, last)
-            final = final_positions(arc, survey_id, run, merge=merge)
+            final = final_positions(arc, survey_id, run, merge=merge, positions=positions)
             ch = compare_final(delivered_state(arc, last), final, last.id, DEFAULT_TOLERANCE,
                                unit_factor_of(arc, survey_id))
             counts = ch.counts()
