@@ -159,6 +159,9 @@ def load() -> None:
 
 def main(argv: list[str] | None = None) -> None:
     """Console entry point."""
+    from archive.cli import options
+
+    options.ONE_COMMAND_PROCESS = True
     cli.main(args=argv, prog_name="nodekeep")
 
 

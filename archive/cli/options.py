@@ -17,10 +17,20 @@ options of the ``nodekeep`` group, placed before the command name.
 
 from __future__ import annotations
 
+import gc
 from collections.abc import Callable
 from typing import Any
 
 import click
+
+ONE_COMMAND_PROCESS = False
+"""Set by the console entry point: this process runs one command and exits. The objects of
+the modules loaded by the time the archive opens (SQLAlchemy, pyarrow, numpy and the
+command's own) are then moved out of the garbage collector's sight (:func:`gc.freeze`):
+they live until the process ends anyway, and every full collection, the one at exit
+included, no longer walks them (0.3-0.4 s of a 2 s ``nodekeep status`` on a month's
+catalog). Commands run in a longer-lived process (tests, a library user) leave the
+collector alone."""
 
 
 def _set_flag(name: str) -> Callable[[click.Context, click.Parameter, Any], Any]:
@@ -123,6 +133,8 @@ class CliState:
                                          check_schema=check_schema, read_only=self.read_only)
             self.catalog = self._archive.catalog_name
             click.get_current_context().call_on_close(self._archive.close)
+            if ONE_COMMAND_PROCESS:
+                gc.freeze()
         if write:
             ctx = click.get_current_context()
             self._archive.require_writable(f"'nodekeep {ctx.command_path.split(' ', 1)[-1]}'")

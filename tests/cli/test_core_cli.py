@@ -122,3 +122,30 @@ def test_history_shows_the_declared_actor_and_the_database_user(tmp_path, runner
     header, _rule, row = text_out.splitlines()[:3]
     assert "actor" in header and "db user" in header
     assert "crew 7 party chief" in row and (login or "-") in row.split()
+
+
+FREEZE_PROBE = """
+import atexit, gc, sys
+atexit.register(lambda: sys.stderr.write(f"frozen={gc.get_freeze_count()}\\n"))
+from archive.cli.main import main
+main(sys.argv[1:])
+"""
+
+
+def test_a_one_command_process_hides_its_modules_from_the_collector(tmp_path, runner,
+                                                                    survey_arc):
+    """The console entry point freezes what is loaded once the archive is open (the
+    collector's walks, the one at exit included, skip it); a command run inside a longer
+    process (here, the test's) leaves the collector alone."""
+    import gc
+    import subprocess
+    import sys
+
+    done = subprocess.run([sys.executable, "-c", FREEZE_PROBE, "-A", str(survey_arc.root),
+                           "survey", "list"], capture_output=True, text=True, check=True)
+    frozen = int(done.stderr.strip().rsplit("frozen=", 1)[1])
+    assert frozen > 10_000  # SQLAlchemy, pyarrow and numpy alone hold far more objects
+    before = gc.get_freeze_count()
+    r = invoke(runner, survey_arc.root, "survey", "list")
+    assert r.exit_code == 0, r.output
+    assert gc.get_freeze_count() == before
