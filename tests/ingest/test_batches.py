@@ -8,6 +8,7 @@ import pytest
 from sqlalchemy import func, select
 
 from archive.ingest import load as load_mod
+from archive.ingest import recording as rec_mod
 from archive.ingest.load import load_fix_files
 from archive.store.ledger import payload_of
 from archive.store.models import LedgerEvent, RawFile
@@ -42,7 +43,7 @@ def test_failure_inside_a_batch_rolls_back_the_whole_batch_only(survey_arc, harv
     arc = survey_arc
     sid = survey_id(arc)
     calls = {"n": 0}
-    real = load_mod._Recorder._record
+    real = rec_mod.Recorder._record
 
     def failing(self, o, res):
         calls["n"] += 1
@@ -50,7 +51,7 @@ def test_failure_inside_a_batch_rolls_back_the_whole_batch_only(survey_arc, harv
             raise Boom("disk pulled")
         return real(self, o, res)
 
-    monkeypatch.setattr(load_mod._Recorder, "_record", failing)
+    monkeypatch.setattr(rec_mod.Recorder, "_record", failing)
     with pytest.raises(Boom):
         load_fix_files(arc, sid, [harvest], workers=1)
     nodes, events, n_rows, rows = _state(arc)
@@ -60,7 +61,7 @@ def test_failure_inside_a_batch_rolls_back_the_whole_batch_only(survey_arc, harv
     for r in rows:  # a recorded file has all its objects
         assert arc.objects.exists(r.object_hash) and arc.objects.exists(r.fixes_hash)
     assert verify_archive(arc).ok  # unreferenced objects only, the ledger whole
-    monkeypatch.setattr(load_mod._Recorder, "_record", real)
+    monkeypatch.setattr(rec_mod.Recorder, "_record", real)
     rep = load_fix_files(arc, sid, [harvest], workers=1)
     assert [f.status for f in rep.files] == ["already"] + ["loaded"] * 6
     nodes, events, n_rows, rows = _state(arc)
@@ -72,15 +73,15 @@ def test_failure_inside_a_batch_rolls_back_the_whole_batch_only(survey_arc, harv
 def test_batches_grow_and_every_file_gets_its_own_ledger_event(survey_arc, harvest,
                                                                monkeypatch):
     sizes: list[int] = []
-    real_flush = load_mod._Recorder.flush
+    real_flush = rec_mod.Recorder.flush
 
     def counting(self):
         if self.batch:
             sizes.append(len(self.batch))
         return real_flush(self)
 
-    monkeypatch.setattr(load_mod._Recorder, "flush", counting)
-    monkeypatch.setattr(load_mod, "BATCH_SECONDS", 3600.0)
+    monkeypatch.setattr(rec_mod.Recorder, "flush", counting)
+    monkeypatch.setattr(rec_mod, "BATCH_SECONDS", 3600.0)
     load_fix_files(survey_arc, survey_id(survey_arc), [harvest], workers=1)
     assert sizes == [1, 2, 4]  # the first file is committed at once, then batches double
     _, events, n_rows, _ = _state(survey_arc)
@@ -116,7 +117,7 @@ def test_small_files_are_flushed_per_batch_bytes_before_names(survey_arc, harves
 
     monkeypatch.setattr("os.fsync", counting_fsync)
     monkeypatch.setattr(ObjectStore, "sync_filesystem", watching)
-    monkeypatch.setattr(load_mod, "BATCH_SECONDS", 3600.0)
+    monkeypatch.setattr(rec_mod, "BATCH_SECONDS", 3600.0)
     named_before = sum(1 for p in arc.objects.root.glob("??/??/*") if p.is_file())
     rep = load_fix_files(arc, survey_id(arc), [harvest], workers=1)
     assert [f.status for f in rep.files] == ["loaded"] * 7
