@@ -162,7 +162,10 @@ def main(argv: list[str] | None = None) -> None:
     from archive.cli import options
 
     options.ONE_COMMAND_PROCESS = True
-    cli.main(args=argv, prog_name="nodekeep")
+    try:
+        cli.main(args=argv, prog_name="nodekeep")
+    finally:  # a caller that goes on after the command keeps its collector as it was
+        options.ONE_COMMAND_PROCESS = False
 
 
 if __name__ == "__main__":

@@ -28,7 +28,7 @@ ONE_COMMAND_PROCESS = False
 the modules loaded by the time the archive opens (SQLAlchemy, pyarrow, numpy and the
 command's own) are then moved out of the garbage collector's sight (:func:`gc.freeze`):
 they live until the process ends anyway, and every full collection, the one at exit
-included, no longer walks them (0.3-0.4 s of a 2 s ``nodekeep status`` on a month's
+included, no longer walks them (0.3-0.5 s of a 2 s ``nodekeep status`` on a month's
 catalog). Commands run in a longer-lived process (tests, a library user) leave the
 collector alone."""
 

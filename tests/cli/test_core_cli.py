@@ -149,3 +149,16 @@ def test_a_one_command_process_hides_its_modules_from_the_collector(tmp_path, ru
     r = invoke(runner, survey_arc.root, "survey", "list")
     assert r.exit_code == 0, r.output
     assert gc.get_freeze_count() == before
+    # the entry point called inside this process: once it returns, later commands freeze
+    # nothing of the caller's (the frozen modules stay frozen, harmlessly)
+    import pytest
+
+    from archive.cli.main import main
+
+    gc.unfreeze()
+    with pytest.raises(SystemExit):
+        main(["-A", str(survey_arc.root), "survey", "list"])
+    gc.unfreeze()
+    r = invoke(runner, survey_arc.root, "survey", "list")
+    assert r.exit_code == 0, r.output
+    assert gc.get_freeze_count() == 0
