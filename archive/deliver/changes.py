@@ -118,7 +118,7 @@ def _columns(table: pa.Table, *, dedupe: bool = False) -> pa.Table:
 
 
 def _missing(col: pa.ChunkedArray) -> np.ndarray:
-    """Null (or NaN) per element, as pandas' ``isna`` says of the column."""
+    """Missing per element: null, or NaN in a floating-point column."""
     import pyarrow.compute as pc
 
     return pc.is_null(col, nan_is_null=True).to_numpy(zero_copy_only=False)

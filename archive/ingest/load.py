@@ -147,7 +147,7 @@ def load_fix_files(arc: Archive, survey_id: int, paths: list[str | Path], *,
     set_known(known)
     tasks: list[tuple[int, dict[str, Any]]] = []
     # Files read whole are not flushed one by one: the recorder flushes the store's file
-    # system once per batch, before the catalog records it (see Recorder.flush in archive.ingest.recording).
+    # system once per batch, before the catalog records it (recording.Recorder.flush).
     deferred = arc.objects.can_sync_filesystem()
     for i, p in enumerate(files):
         o = outcomes[i]

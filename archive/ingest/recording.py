@@ -60,7 +60,6 @@ class FileOutcome:
     notes: list[dict[str, Any]] = field(default_factory=list)
 
 
-
 def _objects(res: dict[str, Any]) -> list[dict[str, Any]]:
     return [o for o in (res.get("raw"), res.get("fixes"), res.get("rejects_obj")) if o]
 

@@ -184,7 +184,6 @@ def load_review(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     """The flagged stations of a run (the newest by default) with their open and decided
     flags, the figures behind them (left empty without ``figures``: deciding needs none)
     and the last decision on each (see module doc)."""
-
     run = get_run(arc, survey_id, run_ref)
     table = positions if positions is not None else run_occupations(arc, run)
     with arc.session() as s:
@@ -246,7 +245,7 @@ def review_counts(arc: Archive, survey_id: int, run_ref: str | None = None, *,
     ``n_waiting`` (an open flag left), ``n_decided`` and ``open_per_flag``; the same as
     :func:`load_review`'s counts, without the windows and figures behind them.
     ``positions``: the run's :func:`~archive.solve.occupancy.run_occupations`, when the
-    caller has them already."""
+    caller has read them already (they must be that run's: they are not checked again)."""
     run = get_run(arc, survey_id, run_ref)
     table = positions if positions is not None else run_occupations(arc, run)
     with arc.session() as s:

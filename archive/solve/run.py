@@ -27,7 +27,7 @@ from archive.progress import NoProgress, Progress
 from archive.solve.flags import count_flags
 from archive.solve.schema import SORT_KEYS as RUN_ORDER
 from archive.store.archive import Archive
-from archive.store.hashing import canonical_hash, canonical_json, table_digest
+from archive.store.hashing import canonical_hash, canonical_json, sha256_bytes, table_digest
 from archive.store.models import Run, utcnow
 
 if TYPE_CHECKING:
@@ -209,9 +209,11 @@ def run_positions(arc: Archive, run: Run) -> pa.Table:
 
 def run_manifest(arc: Archive, run: Run) -> dict[str, Any]:
     """The run's manifest; IntegrityError when its bytes no longer give the run id."""
-    data = json.loads(arc.objects.read_bytes(run.manifest_hash))  # bytes checked on read
-    # stored canonically, its bytes hash to the run id: no need to write them out again
-    if run.manifest_hash != run.id and canonical_hash(data) != run.id:
+    raw = arc.objects.read_bytes(run.manifest_hash)
+    data = json.loads(raw)
+    # stored canonically (as every run is), its bytes hash to the run id: no need to write
+    # them out again; otherwise the canonical form of what they hold must
+    if sha256_bytes(raw) != run.id and canonical_hash(data) != run.id:
         raise IntegrityError(f"the manifest of run {run.id[:12]} does not hash to the run id",
                              hint="run 'nodekeep verify' to see what else changed")
     return data
