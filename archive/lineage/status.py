@@ -173,27 +173,27 @@ def status_text(st: SurveyStatus) -> str:
 
     ld = st.loaded
     lines = [f"survey    {st.survey['name']} ({st.survey['crs']})",
-             f"loaded    {ld['n_logs']} log(s) from {ld['n_nodes']} node(s), "
+             f"loaded    {ld['n_logs']:,} log(s) from {ld['n_nodes']:,} node(s), "
              f"{ld['n_fixes']:,} fixes ({ld['n_usable_fixes']:,} usable), fixes "
              f"{_when(ld['first_fix'])} to {_when(ld['last_fix'])}; last received "
              f"{_when(ld['last_received'])}"]
     if ld["n_logs"] > ld["n_logs_with_fixes"]:
-        lines.append(f"          {ld['n_logs'] - ld['n_logs_with_fixes']} log(s) hold no "
+        lines.append(f"          {ld['n_logs'] - ld['n_logs_with_fixes']:,} log(s) hold no "
                      "usable fix ('nodekeep logs' says why)")
-    lines.append("inputs    " + (", ".join(f"{i['kind']} v{i['version']} ({i['rows']} rows)"
+    lines.append("inputs    " + (", ".join(f"{i['kind']} v{i['version']} ({i['rows']:,} rows)"
                                            for i in st.inputs) or "none loaded"))
     aw = st.awaiting_harvest
-    lines.append(f"harvest   {aw['deployments']} deployment(s) of {aw['nodes']} node(s) "
+    lines.append(f"harvest   {aw['deployments']:,} deployment(s) of {aw['nodes']:,} node(s) "
                  "awaiting harvest (no loaded log covers the window)")
     for d in aw["list"]:
         lines.append(f"            node {d['node']} at {station_text(d['line'], d['point'], d['index'])}"
                      f", deployed {_when(d['deployed'])}, "
                      + (f"retrieved {_when(d['retrieved'])}" if d["retrieved"] else "still out"))
     if aw["deployments"] > len(aw["list"]):
-        lines.append(f"            ... and {aw['deployments'] - len(aw['list'])} more (--json)")
+        lines.append(f"            ... and {aw['deployments'] - len(aw['list']):,} more (--json)")
     nw = st.nodes_without_deployment
-    lines.append(f"          {nw['nodes']} logged node(s) without a deployment"
-                 + (": " + ", ".join(f"{n['node']} ({n['n_logs']} log(s), {n['n_fixes']:,} fixes)"
+    lines.append(f"          {nw['nodes']:,} logged node(s) without a deployment"
+                 + (": " + ", ".join(f"{n['node']} ({n['n_logs']:,} log(s), {n['n_fixes']:,} fixes)"
                                      for n in nw["list"]) if nw["list"] else ""))
     if st.run:
         r = st.run
@@ -201,23 +201,23 @@ def status_text(st: SurveyStatus) -> str:
                  "inputs changed since: " + "; ".join(r["inputs_changed"]))
         lines.append(f"run       {r['id'][:12]} ({_when(r['created_at'])}"
                      + (f", {r['label']}" if r["label"] else "")
-                     + f"): {r['positions']} positions; {state}")
+                     + f"): {r['positions']:,} positions; {state}")
     if st.review:
         rv = st.review
-        per = ", ".join(f"{k} {v}" for k, v in rv["open_per_flag"].items())
-        lines.append(f"review    {rv['n_waiting']} station(s) wait for review"
+        per = ", ".join(f"{k} {v:,}" for k, v in rv["open_per_flag"].items())
+        lines.append(f"review    {rv['n_waiting']:,} station(s) wait for review"
                      + (f" ({per}; counted by station)" if per else "")
-                     + f"; {rv['n_decided']} decided ('nodekeep review list' shows them)")
+                     + f"; {rv['n_decided']:,} decided ('nodekeep review list' shows them)")
     if st.delivery:
         d, since = st.delivery, st.delivery["since"]
         lines.append(f"delivery  #{d['id']} {d['format']} {d['file_name']} to {d['recipient']} "
-                     f"({_when(d['at'])}); since then: {since['new']} new, "
-                     f"{since['moved']} moved ({since['moved_beyond_shift']} by more than "
-                     f"{d['shift_m']:g} m), {since['height']} other height, {since['node']} "
-                     f"other node, {since['time']} other time, {since['flags']} other flags, "
-                     f"{since['edited']} edited, {since['removed']} no longer delivered")
+                     f"({_when(d['at'])}); since then: {since['new']:,} new, "
+                     f"{since['moved']:,} moved ({since['moved_beyond_shift']:,} by more than "
+                     f"{d['shift_m']:g} m), {since['height']:,} other height, {since['node']:,} "
+                     f"other node, {since['time']:,} other time, {since['flags']:,} other flags, "
+                     f"{since['edited']:,} edited, {since['removed']:,} no longer delivered")
         if since["records"]:
             lines.append(f"          'nodekeep deliver ... --changed-since {d['id']}' writes "
-                         f"those {since['records']} record(s)")
+                         f"those {since['records']:,} record(s)")
     lines += [f"note      {n}" for n in st.notes]
     return "\n".join(lines)
