@@ -117,7 +117,7 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     current = {v["kind"]: v for v in list_inputs(arc, survey_id)}
     inputs = [{"kind": k, "version": v["version"], "rows": v["rows"], "name": v["name"],
                "loaded_at": v["created_at"]} for k, v in current.items()]
-    harvest = harvest_status(arc, survey_id)
+    harvest = harvest_status(arc, survey_id, limit=LIST_LIMIT)
     notes: list[str] = []
     run_info = review = delivery = None
     if run is not None:
@@ -156,9 +156,9 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     awaiting, orphans = harvest["awaiting"], harvest["nodes_without_deployment"]
     return SurveyStatus(
         survey=sdict, loaded=harvest["counts"], inputs=inputs,
-        awaiting_harvest={"deployments": len(awaiting),
-                          "nodes": len({a["node"] for a in awaiting}),
-                          "list": awaiting[:LIST_LIMIT]},
+        awaiting_harvest={"deployments": harvest["counts"]["n_awaiting"],
+                          "nodes": harvest["counts"]["n_awaiting_nodes"],
+                          "list": awaiting},
         nodes_without_deployment={"nodes": len(orphans), "list": orphans[:LIST_LIMIT]},
         run=run_info, review=review, delivery=delivery, notes=notes)
 

@@ -73,12 +73,15 @@ def catalog_counts(arc: Archive, survey_id: int) -> dict[str, Any]:
             "first_fix": row[6], "last_fix": row[7], "last_received": row[8]}
 
 
-def harvest_status(arc: Archive, survey_id: int) -> dict[str, Any]:
+def harvest_status(arc: Archive, survey_id: int, limit: int | None = None) -> dict[str, Any]:
     """The survey's harvest state (module doc) as plain data:
 
-    - ``counts``: :func:`catalog_counts`, plus deployment records and nodes deployed;
+    - ``counts``: :func:`catalog_counts`, plus deployment records and nodes deployed, and
+      the deployments awaiting harvest and their distinct nodes (``n_awaiting``,
+      ``n_awaiting_nodes``);
     - ``awaiting``: each deployment no loaded log covers (line, point, occupation index,
-      node, deployed, retrieved), in the order of the deployment log;
+      node, deployed, retrieved), in the order of the deployment log; the first ``limit``
+      of them when a limit is given (a screen lists a few, the counts say how many);
     - ``nodes_without_deployment``: nodes with a loaded log but no deployment record (a
       serial typed wrong in the log, or a node not yet entered), with their log and fix
       counts.
@@ -95,14 +98,18 @@ def harvest_status(arc: Archive, survey_id: int) -> dict[str, Any]:
     dep = with_occupations(found[1]) if found is not None and found[1] is not None else None
     awaiting: list[dict[str, Any]] = []
     deployed_nodes = pa.array([], pa.string())
+    n_awaiting = n_awaiting_nodes = 0
     if dep is not None and dep.num_rows:
         nodes = dep["node"].combine_chunks().cast(pa.string())
         deployed_nodes = pc.unique(nodes)
         ok = covered(nodes.to_numpy(zero_copy_only=False), us_array(dep["deployed"], OPEN),
                      us_array(dep["retrieved"], OPEN), log_node.to_numpy(zero_copy_only=False),
                      _times_us([r[2] for r in logs]), _times_us([r[3] for r in logs]))
+        waiting = np.flatnonzero(~ok)
+        n_awaiting = len(waiting)
+        n_awaiting_nodes = len(pc.unique(nodes.take(waiting)))
         rows = dep.select(["line", "point", "occupation", "node", "deployed", "retrieved"])
-        for r in rows.take(np.flatnonzero(~ok)).to_pylist():  # one per deployment awaiting
+        for r in rows.take(waiting[:limit]).to_pylist():  # one per deployment listed
             awaiting.append({"line": r["line"], "point": r["point"], "index": r["occupation"],
                              "node": r["node"], "deployed": r["deployed"],
                              "retrieved": r["retrieved"]})
@@ -112,7 +119,8 @@ def harvest_status(arc: Archive, survey_id: int) -> dict[str, Any]:
                .group_by("node").aggregate([("n_fixes", "count"), ("n_fixes", "sum")])
                .sort_by("node"))
     counts |= {"n_deployments": dep.num_rows if dep is not None else 0,
-               "n_nodes_deployed": len(deployed_nodes), "n_awaiting": len(awaiting)}
+               "n_nodes_deployed": len(deployed_nodes), "n_awaiting": n_awaiting,
+               "n_awaiting_nodes": n_awaiting_nodes}
     return {"counts": counts, "awaiting": awaiting,
             "nodes_without_deployment": [
                 {"node": k, "n_logs": int(c), "n_fixes": int(f)} for k, c, f in zip(

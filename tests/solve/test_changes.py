@@ -34,6 +34,10 @@ def test_status_and_changes_through_a_harvest(tmp_path, db_url):
     assert st["counts"]["n_nodes"] == len({p.stem for p in loaded})
     assert st["counts"]["n_deployments"] == len(log)
     assert st["nodes_without_deployment"] == []
+    assert st["counts"]["n_awaiting"] == len(st["awaiting"])
+    assert st["counts"]["n_awaiting_nodes"] == len({a["node"] for a in st["awaiting"]})
+    few = harvest_status(arc, sid, limit=2)  # a screen's list: the first ones, same counts
+    assert few["awaiting"] == st["awaiting"][:2] and few["counts"] == st["counts"]
 
     first = solve_survey(arc, sid)
     assert inputs_changed_since(arc, sid)["changed"] is False
