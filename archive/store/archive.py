@@ -25,7 +25,6 @@ from pathlib import Path
 from typing import Any
 
 from sqlalchemy import Engine, select
-from sqlalchemy.dialects.postgresql import insert as pg_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Session
 
@@ -320,6 +319,8 @@ class Archive:
         """Record in the catalog that object ``h`` is referenced (idempotent)."""
         values = {"hash": h, "size": size, "kind": kind, "created_at": utcnow()}
         if self.engine.dialect.name == "postgresql":
+            from sqlalchemy.dialects.postgresql import insert as pg_insert
+
             stmt = pg_insert(StoredObject).values(**values).on_conflict_do_nothing()
         else:
             stmt = sqlite_insert(StoredObject).values(**values).on_conflict_do_nothing()
@@ -337,7 +338,11 @@ class Archive:
         now = utcnow()
         values = [{"hash": h, "size": size, "kind": kind, "created_at": now}
                   for h, size, kind in seen.values()]
-        insert = pg_insert if self.engine.dialect.name == "postgresql" else sqlite_insert
+        insert = sqlite_insert
+        if self.engine.dialect.name == "postgresql":  # its dialect loads when it is the one
+            from sqlalchemy.dialects.postgresql import insert as pg_insert
+
+            insert = pg_insert
         session.connection().execute(
             insert(StoredObject.__table__).on_conflict_do_nothing(), values)
 
