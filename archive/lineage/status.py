@@ -32,7 +32,7 @@ from archive.review.queue import review_counts
 from archive.store.archive import Archive
 from archive.store.models import Delivery, Run, Survey
 from archive.survey.inputs import list_inputs
-from archive.survey.status import harvest_status, plain_rows
+from archive.survey.status import harvest_status, parsed_logs
 
 LIST_LIMIT = 20
 """How many deployments, nodes or stations a list keeps (the counts are always whole)."""
@@ -57,9 +57,10 @@ class SurveyStatus:
         return asdict(self)
 
 
-def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, dict[str, Any]]
-                ) -> list[str]:
-    """What changed in the inputs since ``run`` was made (empty: it is up to date)."""
+def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, dict[str, Any]],
+                fixes: set[str]) -> list[str]:
+    """What changed in the inputs since ``run`` was made (empty: it is up to date);
+    ``fixes``: the fix tables of the survey's loaded logs."""
     from archive.edits.log import exclude_spans_in_force
     from archive.solve.run import run_manifest
 
@@ -75,9 +76,6 @@ def _run_behind(arc: Archive, survey_id: int, run: Run, current: dict[str, dict[
             was = versions.get(kind)
             changes.append(f"{kind} v{was if was is not None else '-'} -> "
                            f"v{now['version'] if now is not None else '-'}")
-    fixes = {r[0] for r in plain_rows(
-        arc, f"SELECT fixes_hash FROM raw_files WHERE survey_id = {int(survey_id)} "
-             "AND fixes_hash IS NOT NULL")}
     used = set(ins.get("fixes") or [])
     if (manifest.get("selection") or {}).get("stations") or \
             (manifest.get("selection") or {}).get("nodes"):
@@ -117,11 +115,12 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     current = {v["kind"]: v for v in list_inputs(arc, survey_id)}
     inputs = [{"kind": k, "version": v["version"], "rows": v["rows"], "name": v["name"],
                "loaded_at": v["created_at"]} for k, v in current.items()]
-    harvest = harvest_status(arc, survey_id, limit=LIST_LIMIT)
+    logs = parsed_logs(arc, survey_id)  # read once for the harvest and the run's inputs
+    harvest = harvest_status(arc, survey_id, limit=LIST_LIMIT, logs=logs)
     notes: list[str] = []
     run_info = review = delivery = None
     if run is not None:
-        behind = _run_behind(arc, survey_id, run, current)
+        behind = _run_behind(arc, survey_id, run, current, {r[4] for r in logs})
         run_info = {"id": run.id, "label": run.label, "created_at": run.created_at,
                     "positions": run.n_positions, "runs": int(n_runs),
                     "inputs_changed": behind, "up_to_date": not behind}

@@ -73,7 +73,16 @@ def catalog_counts(arc: Archive, survey_id: int) -> dict[str, Any]:
             "first_fix": row[6], "last_fix": row[7], "last_received": row[8]}
 
 
-def harvest_status(arc: Archive, survey_id: int, limit: int | None = None) -> dict[str, Any]:
+def parsed_logs(arc: Archive, survey_id: int) -> list[tuple[Any, ...]]:
+    """The catalog's rows of the survey's logs parsed into fixes, as plain tuples
+    ``(node, n_fixes, t_first, t_last, fixes_hash)``: what :func:`harvest_status` reads, and
+    what a caller comparing loaded fix tables with a run's may share with it."""
+    return plain_rows(arc, "SELECT node, n_fixes, t_first, t_last, fixes_hash FROM raw_files "
+                           f"WHERE survey_id = {int(survey_id)} AND fixes_hash IS NOT NULL")
+
+
+def harvest_status(arc: Archive, survey_id: int, limit: int | None = None,
+                   logs: list[tuple[Any, ...]] | None = None) -> dict[str, Any]:
     """The survey's harvest state (module doc) as plain data:
 
     - ``counts``: :func:`catalog_counts`, plus deployment records and nodes deployed, and
@@ -86,12 +95,13 @@ def harvest_status(arc: Archive, survey_id: int, limit: int | None = None) -> di
       serial typed wrong in the log, or a node not yet entered), with their log and fix
       counts.
 
-    The raw-file rows are read as plain tuples and handled column-wise: 20,000 nodes with
-    five logs each take a fraction of a second (bench/status.py).
+    The raw-file rows (``logs``: :func:`parsed_logs`, read here when not given) are plain
+    tuples handled column-wise: 20,000 nodes with five logs each take a fraction of a
+    second (bench/status.py).
     """
     counts = catalog_counts(arc, survey_id)
-    logs = plain_rows(arc, "SELECT node, n_fixes, t_first, t_last FROM raw_files WHERE "
-                           f"survey_id = {int(survey_id)} AND fixes_hash IS NOT NULL")
+    if logs is None:
+        logs = parsed_logs(arc, survey_id)
     log_node = pa.array([r[0] for r in logs], pa.string())
     log_fixes = pa.array([r[1] or 0 for r in logs], pa.int64())
     found = current_input(arc, survey_id, "deployments")
