@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 OPEN = np.iinfo(np.int64).max  # a window or log without an end
 
@@ -28,26 +29,36 @@ def covered(dep_node: np.ndarray, dep_start: np.ndarray, dep_end: np.ndarray,
 
     Times are integer microseconds; ``dep_end`` is :data:`OPEN` (or larger) for a node still
     out, ``log_first``/``log_last`` are :data:`OPEN` for a log whose extent is unknown
-    (which covers every window of its node). Vectorised: one join of deployments and logs
-    on the node, so it costs (deployments x logs per node), never anything per fix.
+    (which covers every window of its node). Vectorised: deployments and logs are paired on
+    the node (:func:`equal_pairs`), so it costs (deployments x logs per node), never
+    anything per fix.
     """
     n = len(dep_node)
     if n == 0 or len(log_node) == 0:
         return np.zeros(n, dtype=bool)
-    dep = pa.table({"row": np.arange(n, dtype=np.int64), "node": _strings(dep_node),
-                    "d0": np.asarray(dep_start, dtype=np.int64),
-                    "d1": np.asarray(dep_end, dtype=np.int64)})
-    logs = pa.table({"node": _strings(log_node),
-                     "l0": np.asarray(log_first, dtype=np.int64),
-                     "l1": np.asarray(log_last, dtype=np.int64)})
-    m = dep.join(logs, keys="node", join_type="inner")
-    row = m["row"].to_numpy()
-    d0, d1 = m["d0"].to_numpy(), m["d1"].to_numpy()
-    l0, l1 = m["l0"].to_numpy(), m["l1"].to_numpy()
+    codes = pc.dictionary_encode(pa.concat_arrays([_strings(dep_node), _strings(log_node)])
+                                 ).indices.to_numpy(zero_copy_only=False)
+    row, log = equal_pairs(codes[:n], codes[n:])  # each deployment with each log of its node
+    d0, d1 = np.asarray(dep_start, dtype=np.int64)[row], np.asarray(dep_end, dtype=np.int64)[row]
+    l0, l1 = np.asarray(log_first, dtype=np.int64)[log], np.asarray(log_last, dtype=np.int64)[log]
     overlap = (l0 == OPEN) | (l1 == OPEN) | ((l0 <= d1) & (l1 >= d0))
     out = np.zeros(n, dtype=bool)
     out[row[overlap]] = True
     return out
+
+
+def equal_pairs(left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Every pair ``(i, j)`` with ``left[i] == right[j]`` (integer codes), ordered by ``i``
+    then ``j``: an inner join of two key columns in numpy (a sort and two binary searches,
+    no per-row loop)."""
+    left, right = np.asarray(left, dtype=np.int64), np.asarray(right, dtype=np.int64)
+    order = np.argsort(right, kind="stable")
+    ordered = right[order]
+    lo = np.searchsorted(ordered, left, "left")
+    count = np.searchsorted(ordered, left, "right") - lo
+    i = np.repeat(np.arange(len(left), dtype=np.int64), count)
+    start = np.repeat(lo - (np.cumsum(count) - count), count)
+    return i, order[np.arange(int(count.sum()), dtype=np.int64) + start]
 
 
 def _strings(values: np.ndarray) -> pa.Array:

@@ -125,14 +125,16 @@ def harvest_status(arc: Archive, survey_id: int, limit: int | None = None,
                              "retrieved": r["retrieved"]})
     stray = pc.and_(pc.invert(pc.is_in(log_node, value_set=deployed_nodes)),
                     pc.is_valid(log_node))
-    orphans = (pa.table({"node": log_node, "n_fixes": log_fixes}).filter(stray)
-               .group_by("node").aggregate([("n_fixes", "count"), ("n_fixes", "sum")])
-               .sort_by("node"))
+    coded = pc.dictionary_encode(log_node.filter(stray))  # a few strays among many logs
+    per_node = coded.indices.to_numpy(zero_copy_only=False)
+    names = coded.dictionary.to_pylist()
+    n_logs = np.bincount(per_node, minlength=len(names))
+    n_fixes = np.bincount(per_node, weights=log_fixes.filter(stray).to_numpy(),
+                          minlength=len(names))
     counts |= {"n_deployments": dep.num_rows if dep is not None else 0,
                "n_nodes_deployed": len(deployed_nodes), "n_awaiting": n_awaiting,
                "n_awaiting_nodes": n_awaiting_nodes}
     return {"counts": counts, "awaiting": awaiting,
             "nodes_without_deployment": [
-                {"node": k, "n_logs": int(c), "n_fixes": int(f)} for k, c, f in zip(
-                    orphans["node"].to_pylist(), orphans["n_fixes_count"].to_pylist(),
-                    orphans["n_fixes_sum"].to_pylist(), strict=True)]}
+                {"node": names[k], "n_logs": int(n_logs[k]), "n_fixes": int(n_fixes[k])}
+                for k in sorted(range(len(names)), key=names.__getitem__)]}

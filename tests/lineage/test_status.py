@@ -78,6 +78,11 @@ def test_status_over_two_evenings(evening, runner):
     assert st.awaiting_harvest["deployments"] == len(expected_awaiting)
     assert {d["node"] for d in st.awaiting_harvest["list"]} == held
     assert [n["node"] for n in st.nodes_without_deployment["list"]] == [STRAY]
+    with arc.session() as s:  # its log and fix counts, as the catalog has them
+        stray_rows = s.scalars(select(RawFile).where(RawFile.node == STRAY)).all()
+    assert st.nodes_without_deployment["list"][0]["n_logs"] == len(stray_rows) > 0
+    assert st.nodes_without_deployment["list"][0]["n_fixes"] == sum(
+        r.n_fixes for r in stray_rows) > 0
     assert st.run["id"] == first_run and st.run["up_to_date"]
     assert st.delivery is None and "nothing delivered yet" in st.notes
     # review counts are stations (occupations: both parts of a moved node are one) whose

@@ -79,3 +79,14 @@ def test_awaiting_is_held_and_an_empty_loaded_log_is_unoccupied(small_sim):
     o = old.filter(pc.equal(old["node"], wait))
     assert set(o["kind"].to_pylist()) == {"logged"}
     assert all("unoccupied" in f for f in o["flags"].to_pylist())
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.integers(0, 5), max_size=15), st.lists(st.integers(0, 5), max_size=15))
+def test_equal_pairs_is_every_pair_of_equal_codes(left, right):
+    """Against the pairs written out one by one (a nested loop, in the same order)."""
+    from archive.survey.harvest import equal_pairs
+
+    i, j = equal_pairs(np.array(left, dtype=np.int64), np.array(right, dtype=np.int64))
+    assert list(zip(i.tolist(), j.tolist(), strict=True)) == [
+        (a, b) for a in range(len(left)) for b in range(len(right)) if left[a] == right[b]]
