@@ -62,13 +62,13 @@ def solve_inputs(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     return table, stats | more, unfinished
 
 
-def _engine_loader() -> Callable[[], None]:
+def _engine_loader() -> Callable[..., None]:
     """Start importing the engine (numba, scipy, pyproj) and loading its compiled kernels
     on a thread of its own; returns a function that waits until that is done. The
     partitions' fixes are read meanwhile: reading mostly runs outside the interpreter's
     lock, importing inside it, so on two cores the two overlap. A thread solving waits
     for the loader before it imports the engine itself (no two threads import it at
-    once)."""
+    once). ``wait(check=False)`` only waits, without raising the loader's error."""
     failed: list[BaseException] = []
 
     def load() -> None:
@@ -82,9 +82,9 @@ def _engine_loader() -> Callable[[], None]:
     thread = threading.Thread(target=load, name="nodekeep-engine-loader", daemon=True)
     thread.start()
 
-    def wait() -> None:
+    def wait(check: bool = True) -> None:
         thread.join()
-        if failed:
+        if failed and check:
             raise failed[0]
 
     return wait
@@ -98,7 +98,22 @@ def _map_local(arc: Archive, manifest: dict[str, Any], inp: SolveInputs,
     elevation model for itself, a raster handle is not shared between threads). The
     engine is loaded while the first partitions are read (:func:`_engine_loader`)."""
     epsg = manifest["survey"]["crs_epsg"]
+    if not parts:  # nothing to solve (every node reused): no engine to load
+        return []
     engine_ready = _engine_loader()
+    try:
+        return _solve_parts(arc, parts, inp, manifest, progress, epsg, engine_ready)
+    finally:
+        # never leave the loader importing compiled code when the command ends (an error,
+        # or nothing solved): a process exiting under it can abort in the compiler's
+        # library ("terminate called without an active exception")
+        engine_ready(check=False)
+
+
+def _solve_parts(arc: Archive, parts: list[Partition], inp: SolveInputs,
+                 manifest: dict[str, Any], progress: Progress, epsg: int,
+                 engine_ready: Callable[..., None]) -> list[tuple[pa.Table, dict[str, Any]]]:
+    """The partitions solved on up to :func:`solve_threads` threads (see :func:`_map_local`)."""
 
     def one(part: Partition) -> tuple[pa.Table, dict[str, Any]]:
         dem = inp.open_dem(arc)

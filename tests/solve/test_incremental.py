@@ -107,3 +107,49 @@ def test_second_solve_reuses_unchanged_nodes_bit_for_bit(tmp_path, runner):
 def _station_of(table: pa.Table, node: str) -> tuple[str, str]:
     rows = table.filter(pc.equal(table["node"], node))
     return str(rows["line"][0].as_py()), str(rows["point"][0].as_py())
+
+
+def _loaders() -> list:
+    import threading
+
+    return [t for t in threading.enumerate()
+            if t.name == "nodekeep-engine-loader" and t.is_alive()]
+
+
+def test_the_engine_loader_never_outlives_a_solve(tmp_path, monkeypatch):
+    """A solve that fails waits for the thread loading the compiled engine before the
+    error goes on: a process that ends while that thread is inside the compiler's library
+    can abort ("terminate called without an active exception")."""
+    import time
+
+    import archive.solve.engine as engine
+    import archive.solve.solving as solving
+    from tests.support.scenarios import scenario_archive
+
+    arc, sid, _run_id, sc = scenario_archive(tmp_path, seed=5)
+    started: list[int] = []
+    real_loader = solving._engine_loader
+
+    def counting_loader():
+        started.append(1)
+        return real_loader()
+
+    def slow_warm_up():
+        time.sleep(0.5)
+
+    def failing_part(*args, **kwargs):
+        raise RuntimeError("a fix table could not be read")
+
+    monkeypatch.setattr(solving, "_engine_loader", counting_loader)
+    monkeypatch.setattr(engine, "warm_up", slow_warm_up)
+    monkeypatch.setattr(solving, "_solve_part", failing_part)
+    with sc.deployments.open(newline="") as f:  # one node's window changes: it is solved
+        node = next(r["node"] for r in csv.DictReader(f) if r["retrieved_utc"])
+    _corrected_log(sc.deployments, tmp_path / "deployments_v2.csv", node)
+    load_input(arc, sid, "deployments", tmp_path / "deployments_v2.csv")
+    t0 = time.monotonic()
+    with pytest.raises(RuntimeError, match="could not be read"):
+        solve_survey(arc, sid)
+    assert started == [1] and _loaders() == []
+    assert time.monotonic() - t0 >= 0.5  # it waited for the loader
+    arc.close()
