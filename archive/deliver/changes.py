@@ -117,15 +117,6 @@ def _columns(table: pa.Table, *, dedupe: bool = False) -> pa.Table:
     return out
 
 
-def _key_codes(*tables: pa.Table) -> np.ndarray:
-    """One integer per record of the tables, in order, equal for records of equal key."""
-    import numpy as np
-
-    keys = np.concatenate([np.column_stack([t[k].to_numpy().astype(np.float64) for k in KEY])
-                           for t in tables]) if tables else np.zeros((0, len(KEY)))
-    return np.unique(keys, axis=0, return_inverse=True)[1].reshape(-1).astype(np.int64)
-
-
 def _missing(col: pa.ChunkedArray) -> np.ndarray:
     """Missing per element: null, or NaN in a floating-point column."""
     import pyarrow.compute as pc
@@ -157,11 +148,12 @@ def compare_final(previous: pa.Table, current: pa.Table, since: int,
     import numpy as np
     import pyarrow as pa
 
+    from archive.solve.flags import station_keys
+
     old, new = _columns(previous, dedupe=True), _columns(current)
     # each current record's earlier record of the same key (keys are unique in ``old``)
-    key = _key_codes(new, old)
-    key_new, key_old = key[:new.num_rows], key[new.num_rows:]
-    at = np.full(len(key) + 1, -1, dtype=np.int64)
+    key_new, key_old = station_keys(*(tuple(t[k].to_numpy() for k in KEY) for t in (new, old)))
+    at = np.full(new.num_rows + old.num_rows + 1, -1, dtype=np.int64)
     at[key_old] = np.arange(old.num_rows, dtype=np.int64)
     match = at[key_new]
     is_new = match < 0
@@ -212,7 +204,7 @@ def compare_final(previous: pa.Table, current: pa.Table, since: int,
         if edited[i]:
             entry["source_was"], entry["source"] = cols["source_was"][k], cols["source"][k]
         records.append(entry)
-    now = np.zeros(len(key) + 1, dtype=bool)
+    now = np.zeros(len(at), dtype=bool)
     now[key_new] = True
     gone = old.filter(pa.array(~now[key_old]))  # in the earlier table's order
     removed = [{"line": float(a), "point": float(b), "index": int(c), "node": d}
