@@ -23,12 +23,13 @@ import pyarrow.compute as pc
 OPEN = np.iinfo(np.int64).max  # a window or log without an end
 
 
-def covered(dep_node: np.ndarray, dep_start: np.ndarray, dep_end: np.ndarray,
-            log_node: np.ndarray, log_first: np.ndarray, log_last: np.ndarray) -> np.ndarray:
+def covered(dep_node: np.ndarray | pa.Array, dep_start: np.ndarray, dep_end: np.ndarray,
+            log_node: np.ndarray | pa.Array, log_first: np.ndarray, log_last: np.ndarray
+            ) -> np.ndarray:
     """Bool per deployment: a log of its node overlaps its window (see module doc).
 
-    Times are integer microseconds; ``dep_end`` is :data:`OPEN` (or larger) for a node still
-    out, ``log_first``/``log_last`` are :data:`OPEN` for a log whose extent is unknown
+    Node names are numpy or Arrow arrays; times are integer microseconds; ``dep_end`` is
+    :data:`OPEN` (or larger) for a node still out, ``log_first``/``log_last`` are :data:`OPEN` for a log whose extent is unknown
     (which covers every window of its node). Vectorised: deployments and logs are paired on
     the node (:func:`equal_pairs`), so it costs (deployments x logs per node), never
     anything per fix.
@@ -61,8 +62,10 @@ def equal_pairs(left: np.ndarray, right: np.ndarray) -> tuple[np.ndarray, np.nda
     return i, order[np.arange(int(count.sum()), dtype=np.int64) + start]
 
 
-def _strings(values: np.ndarray) -> pa.Array:
-    """Node names as an Arrow string column."""
+def _strings(values: np.ndarray | pa.Array) -> pa.Array:
+    """Node names as an Arrow string column (an Arrow column is taken as it is)."""
+    if isinstance(values, pa.Array):
+        return values.cast(pa.string())
     values = np.asarray(values, dtype=object)
     try:
         return pa.array(values, pa.string())

@@ -112,8 +112,8 @@ def harvest_status(arc: Archive, survey_id: int, limit: int | None = None,
     if dep is not None and dep.num_rows:
         nodes = dep["node"].combine_chunks().cast(pa.string())
         deployed_nodes = pc.unique(nodes)
-        ok = covered(nodes.to_numpy(zero_copy_only=False), us_array(dep["deployed"], OPEN),
-                     us_array(dep["retrieved"], OPEN), log_node.to_numpy(zero_copy_only=False),
+        ok = covered(nodes, us_array(dep["deployed"], OPEN),
+                     us_array(dep["retrieved"], OPEN), log_node,
                      _times_us([r[2] for r in logs]), _times_us([r[3] for r in logs]))
         waiting = np.flatnonzero(~ok)
         n_awaiting = len(waiting)
