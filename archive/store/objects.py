@@ -174,6 +174,30 @@ class ObjectStore:
             self._verified[h] = stamp
         return data
 
+    def read_buffer(self, h: str) -> pa.Buffer:
+        """Whole content of an object in memory Arrow owns, checked against its hash.
+
+        Parquet is parsed from such buffers, never from Python ``bytes``: Arrow's reader
+        threads may drop their last reference to the source a moment after a read returns,
+        and letting go of a buffer over a Python object needs the interpreter, which a
+        thread can no longer take once the process has begun to exit (the process then
+        aborts: "terminate called without an active exception")."""
+        try:
+            if self.root is not None:
+                with pa.OSFile(str(self.root / fanout(h)), "r") as fh:
+                    data = fh.read_buffer()
+            else:
+                with self._fs.open_input_stream(self.location(h)) as fh:
+                    data = fh.read_buffer()
+        except OSError as exc:
+            raise self._damaged(h, "is missing from the object store") from exc
+        if hashlib.sha256(data).hexdigest() != h:
+            raise self._damaged(h, "no longer matches its hash (its bytes were changed)")
+        stamp = self._stamp(h)
+        if stamp is not None:
+            self._verified[h] = stamp
+        return data
+
     def parquet_file(self, h: str, read_dictionary: list[str] | None = None
                      ) -> pq.ParquetFile:
         """A ParquetFile over a stored, checked Parquet object (for streaming by row group);
@@ -194,17 +218,17 @@ class ObjectStore:
         against its hash on those very bytes (one pass over the object instead of a
         re-hash and a second read); the columns of ``read_dictionary`` are read
         dictionary-encoded. For objects of a few megabytes, read whole anyway."""
-        data = self.read_bytes(h)
+        data = self.read_buffer(h)
         try:
-            return pq.ParquetFile(pa.py_buffer(data), read_dictionary=read_dictionary)
+            return pq.ParquetFile(data, read_dictionary=read_dictionary)
         except (pa.ArrowException, OSError) as exc:
             raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
 
     def read_table(self, h: str, columns: list[str] | None = None) -> pa.Table:
         """Read a stored Parquet object, checked against its hash, as an Arrow table."""
-        data = self.read_bytes(h)
+        data = self.read_buffer(h)
         try:
-            return pq.ParquetFile(pa.BufferReader(data)).read(columns=columns)
+            return pq.ParquetFile(data).read(columns=columns)
         except (pa.ArrowException, OSError) as exc:
             raise self._damaged(h, f"is not a readable Parquet table ({exc})") from exc
 
