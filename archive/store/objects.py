@@ -19,7 +19,7 @@ import tempfile
 import uuid
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import BinaryIO
+from typing import BinaryIO, TypeVar
 
 import pyarrow as pa
 import pyarrow.fs as pafs
@@ -34,6 +34,9 @@ from archive.store.remote import remote_filesystem
 STORAGE_ERRNOS = {errno.ENOSPC, errno.EDQUOT, errno.EROFS, errno.EACCES, errno.EPERM}
 
 PARQUET_OPTIONS = {"compression": "zstd", "compression_level": 3, "write_statistics": True}
+
+
+_Data = TypeVar("_Data", bytes, pa.Buffer)
 
 
 def fanout(h: str) -> str:
@@ -163,16 +166,21 @@ class ObjectStore:
         if rehash:
             self.ensure_intact(h)
 
-    def read_bytes(self, h: str) -> bytes:
-        """Whole content of an object, checked against its hash."""
-        with self.open(h) as fh:
-            data = fh.read()
+    def _checked(self, h: str, data: _Data) -> _Data:
+        """``data`` (the whole object just read) once it matches its hash; the object is
+        then noted as verified for as long as its file is unchanged."""
         if hashlib.sha256(data).hexdigest() != h:
             raise self._damaged(h, "no longer matches its hash (its bytes were changed)")
         stamp = self._stamp(h)
         if stamp is not None:
             self._verified[h] = stamp
         return data
+
+    def read_bytes(self, h: str) -> bytes:
+        """Whole content of an object, checked against its hash."""
+        with self.open(h) as fh:
+            data = fh.read()
+        return self._checked(h, data)
 
     def read_buffer(self, h: str) -> pa.Buffer:
         """Whole content of an object in memory Arrow owns, checked against its hash.
@@ -191,12 +199,7 @@ class ObjectStore:
                     data = fh.read_buffer()
         except OSError as exc:
             raise self._damaged(h, "is missing from the object store") from exc
-        if hashlib.sha256(data).hexdigest() != h:
-            raise self._damaged(h, "no longer matches its hash (its bytes were changed)")
-        stamp = self._stamp(h)
-        if stamp is not None:
-            self._verified[h] = stamp
-        return data
+        return self._checked(h, data)
 
     def parquet_file(self, h: str, read_dictionary: list[str] | None = None
                      ) -> pq.ParquetFile:
