@@ -167,8 +167,8 @@ class ObjectStore:
             self.ensure_intact(h)
 
     def _checked(self, h: str, data: _Data) -> _Data:
-        """``data`` (the whole object just read) once it matches its hash; the object is
-        then noted as verified for as long as its file is unchanged."""
+        """``data`` (the whole object just read) once it matches its hash; an object of a
+        local store is then noted as verified for as long as its file is unchanged."""
         if hashlib.sha256(data).hexdigest() != h:
             raise self._damaged(h, "no longer matches its hash (its bytes were changed)")
         stamp = self._stamp(h)
@@ -188,17 +188,19 @@ class ObjectStore:
         Parquet is parsed from such buffers, never from Python ``bytes``: Arrow's reader
         threads may drop their last reference to the source a moment after a read returns,
         and letting go of a buffer over a Python object needs the interpreter, which a
-        thread can no longer take once the process has begun to exit (the process then
-        aborts: "terminate called without an active exception")."""
+        thread can no longer take once the interpreter has begun to shut down (the process
+        then aborts: "terminate called without an active exception"). Both ways of opening
+        give a seekable Arrow file, whose whole-file read lands in Arrow's memory pool (a
+        forward-only stream would hand back Python bytes)."""
         try:
             if self.root is not None:
-                with pa.OSFile(str(self.root / fanout(h)), "r") as fh:
-                    data = fh.read_buffer()
+                fh = pa.OSFile(str(self.root / fanout(h)), "r")
             else:
-                with self._fs.open_input_stream(self.location(h)) as fh:
-                    data = fh.read_buffer()
+                fh = self._fs.open_input_file(self.location(h))
         except OSError as exc:
             raise self._damaged(h, "is missing from the object store") from exc
+        with fh:
+            data = fh.read_buffer()
         return self._checked(h, data)
 
     def parquet_file(self, h: str, read_dictionary: list[str] | None = None

@@ -8,9 +8,7 @@ import json
 import shutil
 
 import pandas as pd
-import pyarrow as pa
 import pyarrow.compute as pc
-import pyarrow.parquet as pq
 import pytest
 from sqlalchemy import select
 
@@ -63,7 +61,7 @@ def _fixes_in_tables(arc: Archive, sid: int) -> int:
     with arc.session() as s:
         hashes = s.scalars(select(RawFile.fixes_hash).where(RawFile.survey_id == sid,
                                                             RawFile.fixes_hash.is_not(None))).all()
-    return sum(pq.read_table(pa.BufferReader(arc.objects.read_bytes(h))).num_rows for h in hashes)
+    return sum(arc.objects.read_table(h).num_rows for h in hashes)
 
 
 def test_status_over_two_evenings(evening, runner):

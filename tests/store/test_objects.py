@@ -101,10 +101,16 @@ def test_parquet_is_parsed_from_memory_arrow_owns(tmp_path):
     assert pa.total_allocated_bytes() - before >= size
     assert hashlib.sha256(buf).hexdigest() == h
     del buf
+    # the Parquet readers go through read_buffer, not through Python bytes
+    store.read_bytes = _no_python_bytes
     assert store.read_table(h).equals(t)
     assert store.read_table(h, columns=["b"]).equals(t.select(["b"]))
     assert store.parquet_in_memory(h, read_dictionary=["b"]).read().column("b").to_pylist() \
         == t.column("b").to_pylist()
+
+
+def _no_python_bytes(h: str) -> bytes:
+    raise AssertionError(f"object {h[:12]} read into Python bytes for Parquet")
 
 
 def test_damaged_or_missing_parquet_is_refused_before_parsing(tmp_path):
@@ -114,22 +120,31 @@ def test_damaged_or_missing_parquet_is_refused_before_parsing(tmp_path):
     for read in (store.read_buffer, store.read_table, store.parquet_in_memory):
         with pytest.raises(IntegrityError, match="no longer matches its hash"):
             read(h)
-    for read in (store.read_buffer, store.read_table):
+    for read in (store.read_buffer, store.read_table, store.parquet_in_memory):
         with pytest.raises(IntegrityError, match="missing"):
             read("1" * 64)
 
 
-def test_read_buffer_through_a_filesystem_interface(tmp_path):
+def test_read_buffer_through_a_filesystem_interface(tmp_path, monkeypatch):
     # The same read through pyarrow's filesystem layer (the path remote stores take), with
-    # the local filesystem standing in for a bucket.
+    # the local filesystem standing in for a bucket: the buffer is Arrow's there too (a
+    # forward-only stream would have handed back Python bytes).
     import pyarrow.fs as pafs
 
+    import archive.store.objects as objects
+
     local = ObjectStore(tmp_path / "o")
-    t = pa.table({"x": [1.5, 2.5], "y": ["p", "q"]})
-    h, _ = local.put_table(t)
-    remote = ObjectStore(tmp_path / "o")
-    remote._fs, remote._base, remote.root = pafs.LocalFileSystem(), str(tmp_path / "o"), None
-    assert remote.read_buffer(h).to_pybytes() == local.local_path(h).read_bytes()
+    t = pa.table({"x": [float(i) for i in range(4000)], "y": ["p", "q"] * 2000})
+    h, size = local.put_table(t)
+    monkeypatch.setattr(objects, "remote_filesystem",
+                        lambda url: (pafs.LocalFileSystem(), str(tmp_path / "o")))
+    remote = ObjectStore("s3://bucket/o")
+    assert not remote.is_local
+    before = pa.total_allocated_bytes()
+    buf = remote.read_buffer(h)
+    assert pa.total_allocated_bytes() - before >= size
+    assert buf.to_pybytes() == local.local_path(h).read_bytes()
+    del buf
     assert remote.read_table(h).equals(t)
     with pytest.raises(IntegrityError, match="missing"):
         remote.read_buffer("2" * 64)
