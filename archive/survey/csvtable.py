@@ -7,7 +7,9 @@ file, the line, the column and what was expected: a half-read table is never loa
 
 from __future__ import annotations
 
+import csv
 import io
+import re
 
 import numpy as np
 import pandas as pd
@@ -96,19 +98,31 @@ class CsvColumns:
             self._fail(name, bad, f"a whole number from {lo} to {hi}")
         return values.astype(np.int64)
 
-    def times(self, name: str, *, required: bool = True) -> pa.Array:
-        """An ISO 8601 field as timestamp[us, UTC]; a time without offset is taken as UTC."""
+    def times(self, name: str, *, required: bool = True, date_only: bool = False
+              ) -> pa.Array:
+        """An ISO 8601 field as timestamp[us, UTC]; a time without offset is taken as UTC.
+        A date without a time of day (midnight) is refused unless ``date_only`` allows it,
+        and a year and month alone always (a record cut short inside its time reads so)."""
         raw = self.columns[name]
         empty = raw == ""
         parsed = pd.to_datetime(pd.Series(np.where(empty, None, raw), dtype=object),
                                 errors="coerce", utc=True, format="ISO8601")
-        bad = parsed.isna().to_numpy() & ~empty
+        shape = _DATE if date_only else _DATE_TIME
+        whole = pd.Series(raw, dtype=object).str.match(shape).to_numpy(dtype=bool)
+        bad = (parsed.isna().to_numpy() | ~whole) & ~empty
         if required:
             bad |= empty
         if bad.any():
-            self._fail(name, bad, "an ISO 8601 date and time, e.g. 2024-05-01T06:30:00Z"
-                       + (" (required)" if required else ""))
+            what = ("an ISO 8601 date, e.g. 2024-05-01, or date and time" if date_only
+                    else "an ISO 8601 date and time of day, e.g. 2024-05-01T06:30:00Z")
+            self._fail(name, bad, what + (" (required)" if required else ""))
         return pa.array(parsed.dt.as_unit("us"), type=pa.timestamp("us", tz="UTC"))
+
+
+_DATE = re.compile(r"\d{4}-\d{2}-\d{2}(?:$|[T ])")
+"""The start of an ISO 8601 calendar date: year, month and day."""
+_DATE_TIME = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}")
+"""The start of an ISO 8601 date and time of day: down to the minute at least."""
 
 
 def read_csv_columns(
@@ -152,6 +166,7 @@ def read_csv_columns(
                                   + (f" and optionally {','.join(optional)}" if optional else ""),
                          hint="name the columns with --columns field=Header if they differ")
     lines = _physical_lines(df)
+    _refuse_cut_record(data, path, len(df.columns), lines)
     if picked:
         filled = np.zeros(len(df), dtype=bool)
         for col in df.columns:
@@ -159,6 +174,29 @@ def read_csv_columns(
         picked = {k: v[filled] for k, v in picked.items()}
         lines = lines[filled]
     return CsvColumns(path, picked, lines)
+
+
+def _refuse_cut_record(data: bytes, path: str, n_fields: int, lines: np.ndarray) -> None:
+    """Refuse a file that ends without a line break in a record with fewer fields than the
+    header: the file was cut short (a copy interrupted, a download stopped) and the record's
+    last fields are lost, not empty. (A record short of fields elsewhere is left to the
+    fields' own checks: writers that drop trailing empty fields exist.)"""
+    if not data or data.endswith((b"\n", b"\r")) or not len(lines):
+        return
+    last = data.rsplit(b"\n", 1)[-1].decode("utf-8", errors="replace")
+    if not last.strip():
+        return
+    try:
+        n = len(next(csv.reader([last]), []))
+    except csv.Error:  # a NUL byte, say: the fields' own checks will name it
+        return
+    if n < n_fields:
+        raise InputError(path, f"the last record is cut short: {n} of the "
+                               f"header's {n_fields} fields, and the file ends without a "
+                               "line break", line=int(lines[-1]),
+                         expected="a whole record on the last line",
+                         hint="the file was probably truncated in a copy or download: "
+                              "load a complete copy")
 
 
 def _physical_lines(df: pd.DataFrame) -> np.ndarray:

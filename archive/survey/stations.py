@@ -128,7 +128,8 @@ def read_control(data: bytes, path: str, fmt: str | None = None) -> ParsedInput:
                           else np.ones(n, dtype=np.int64)).astype(np.int8),
                 "easting": c.floats("easting"), "northing": c.floats("northing"),
                 "height": pa.array(c.floats("height", required=False), from_pandas=True),
-                "surveyed": (c.times("surveyed_utc", required=False) if c.has("surveyed_utc")
+                "surveyed": (c.times("surveyed_utc", required=False, date_only=True)
+                             if c.has("surveyed_utc")
                              else pa.nulls(n, CONTROL_SCHEMA.field("surveyed").type)),
                 "method": pa.array(np.where(method == "", None, method).tolist(),
                                    type=pa.string()),

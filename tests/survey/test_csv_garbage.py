@@ -35,3 +35,43 @@ def test_garbage_never_crashes(kind, cells, tail):
     # every record kept points back at a line of the file
     assert t.num_rows <= data.count(b"\n") + 1
     assert all(1 < n <= data.count(b"\n") + 1 for n in t["src_line"].to_pylist())
+
+
+DEP_OK = ("node,line,point,deployed_utc,retrieved_utc\n"
+          "N101,1001,5001,2025-04-07T14:03:33Z,2025-04-07T23:02:30Z\n")
+
+
+def _refusal(data: bytes) -> InputError:
+    try:
+        read_deployments(data, "dep.csv")
+    except InputError as exc:
+        return exc
+    raise AssertionError("accepted")
+
+
+def test_a_deployment_time_needs_a_time_of_day():
+    # A record cut inside its time reads as a year and month (2025-04, the 1st at
+    # midnight to a lenient parser); a bare date is midnight too: a node is laid out at a
+    # moment, not on a day (ISO 8601 date-time: YYYY-MM-DDThh:mm[:ss][Z]).
+    for value in ("2025-04", "2025-04-07", "2025", "2025-04-07T14"):
+        exc = _refusal((DEP_OK + f"N102,1001,5002,{value},2025-04-07T23:05:07Z\n").encode())
+        assert exc.line == 3 and value in str(exc) and "time of day" in str(exc)
+    t = read_deployments((DEP_OK + "N102,1001,5002,2025-04-07 14:07+01:00,\n").encode(),
+                         "dep.csv").table
+    assert t["deployed"].to_pylist()[1].isoformat() == "2025-04-07T13:07:00+00:00"
+    assert t["retrieved"].to_pylist()[1] is None  # still in the ground
+
+
+def test_a_file_cut_inside_its_last_record_is_refused():
+    cut = (DEP_OK + "N102,1001,5002,2025-04-07T14:07:44Z").encode()  # retrieval lost
+    exc = _refusal(cut)
+    assert exc.line == 3 and "cut short: 4 of the header's 5 fields" in str(exc)
+    # the same record whole, or ending without a line break but with every field, loads
+    for data in (cut + b",\n", cut + b",2025-04-07T23:05:07Z"):
+        assert read_deployments(data, "dep.csv").table.num_rows == 2
+
+
+def test_a_control_point_may_carry_a_survey_date_alone():
+    data = (HEADERS["control"] + "1001,5001,583204.1,4062396.9,407.9,2025-04-02\n").encode()
+    t = read_control(data, "ctl.csv", "csv").table
+    assert t["surveyed"].to_pylist()[0].isoformat() == "2025-04-02T00:00:00+00:00"
