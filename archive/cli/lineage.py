@@ -56,17 +56,13 @@ def _edits_text(edits: list[dict[str, Any]]) -> list[str]:
 
 def _occupation_text(o: dict[str, Any], run_id: str = "") -> list[str]:
     out = [f"occupation index {o['index']}: node {o['node']}, {_window(o)}"]
-    d = o["delivery"]
-    if d:
-        p = d["position"]
-        out.append(f"  last delivered in delivery {d['id']} ({d['format']}, {d['file_name']}, "
-                   f"to {d['recipient']}, {_when(d['created_at'])} by {d['created_by']}): "
-                   f"E {_f(p['easting'])} N {_f(p['northing'])} H {_f(p['height'])} "
-                   f"source {p['source']}")
-        out.append(f"  delivered {len(o['deliveries'])} time(s): "
-                   + ", ".join(str(x["id"]) for x in o["deliveries"]))
+    if o["delivery"]:
+        out += _delivered_text(o["delivery"], o["deliveries"], "  ")
     else:
         out.append("  never delivered")
+    for p in o.get("parts_delivered") or []:  # a moved node's later part, its own index
+        out.append(f"  part delivered as index {p['index']}:")
+        out += _delivered_text(p["delivery"], p["deliveries"], "    ")
     for s in o["solution"]:
         out.append(f"  solved part {s['part']} node {s['node']}: E {_f(s['easting'])} "
                    f"N {_f(s['northing'])} r95 {_f(s['r95'], '{:.2f}')} m, window "
@@ -86,6 +82,16 @@ def _occupation_text(o: dict[str, Any], run_id: str = "") -> list[str]:
     return out
 
 
+def _delivered_text(d: dict[str, Any], history: list[dict[str, Any]], pad: str) -> list[str]:
+    """The latest delivery of a record and the deliveries that carried it."""
+    p = d["position"]
+    return [f"{pad}last delivered in delivery {d['id']} ({d['format']}, {d['file_name']}, "
+            f"to {d['recipient']}, {_when(d['created_at'])} by {d['created_by']}): "
+            f"E {_f(p['easting'])} N {_f(p['northing'])} H {_f(p['height'])} "
+            f"source {p['source']}",
+            f"{pad}delivered {len(history)} time(s): " + ", ".join(str(x["id"]) for x in history)]
+
+
 def _delivered_as(part: dict[str, Any]) -> str:
     """' (delivered as index 2)', or ' (delivered part)' when the index is not known."""
     k = part.get("index")
@@ -95,8 +101,11 @@ def _delivered_as(part: dict[str, Any]) -> str:
 def _station_text(t: dict[str, Any]) -> str:
     st = t["station"]
     occs = t["occupations"]
+    parts = sum(len(o.get("parts_delivered") or []) for o in occs)
     out = [f"station {station_text(st['line'], st['point'])}: {len(occs)} occupation(s)"
-           + (" (each delivered under its own point index)" if len(occs) > 1 else "")]
+           + (" (each delivered under its own point index)" if len(occs) > 1 else "")
+           + (f"; {parts} later part(s) of a moved node delivered under an index of their "
+              "own" if parts else "")]
     out += _run_text(t["run"])
     for o in occs:
         out += _occupation_text(o, t["run"].get("id", ""))

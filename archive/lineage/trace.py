@@ -84,26 +84,44 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
                   index: int | None = None, *, node: str | None = None) -> dict[str, Any]:
     """Everything behind station (line, point): per occupation (``index``/``node`` keep one)
     its deliveries, the run behind the latest one, its solution rows, the raw files whose
-    fixes were in its cloud with the fix counts, and the station's edits."""
+    fixes were in its cloud with the fix counts, and the station's edits.
+
+    ``index`` is a delivered point index: that of an occupation, or the one a moved node's
+    later part is delivered under, which leads to its occupation. An occupation whose parts
+    were delivered under several indices lists the deliveries of the others in
+    ``parts_delivered`` (its own index's in ``delivery``/``deliveries``)."""
     from archive.lineage.records import by_occupation, station_records
     from archive.solve.cloud import station_cloud
-    from archive.solve.occupancy import run_occupations
+    from archive.solve.occupancy import occupation_of_index, run_occupations
 
     records = station_records(arc, survey_id, line, point)
-    if index is not None:
-        records = [r for r in records if r["record"]["index"] == int(index)]
     if node is not None:
         records = [r for r in records if str(r["record"]["node"]) == str(node)]
-    delivered = by_occupation(records)
     run = get_run(arc, survey_id, records[-1]["run"] if records else None)
-    solved = [r for r in rows_at(run_occupations(arc, run), line, point, index, node,
-                                 index_column="occupation").to_pylist()
-              if r["kind"] == "logged"]
+    solved = [r for r in rows_at(run_occupations(arc, run), line, point, None, node)
+              .to_pylist() if r["kind"] == "logged"]
+
+    def occupation(k: int, record: dict[str, Any] | None = None) -> int:
+        """The occupation of delivered index ``k`` (the record's own, when it says)."""
+        if record is not None and record.get("occupation") is not None:
+            return int(record["occupation"])
+        return occupation_of_index(solved, k)
+
     edits = list_edits(arc, survey_id, all_edits=True, line=float(line), point=float(point))
-    if index is not None:
-        edits = [e for e in edits if e["index"] == int(index)]
     if node is not None:
         edits = [e for e in edits if edit_node(e) in (None, str(node))]
+    if index is not None:
+        wanted = occupation(int(index), next((r["record"] for r in records
+                                              if r["record"]["index"] == int(index)), None))
+        records = [r for r in records
+                   if occupation(int(r["record"]["index"]), r["record"]) == wanted]
+        solved = [r for r in solved if r["occupation"] == wanted]
+    delivered = by_occupation(records)
+    occ_of = {o["index"]: occupation(o["index"], o["delivered"]["record"]) for o in delivered}
+    if index is not None:
+        indices = {wanted} | set(occ_of) | {int(r["point_index"]) for r in solved
+                                            if r["delivered"] and r["point_index"]}
+        edits = [e for e in edits if e["index"] in indices]
     if not solved and not records and not edits:
         which = "".join(f" {k} {v}" for k, v in (("index", index), ("node", node)) if v)
         raise UsageError(f"station {station_text(line, point)}{which} is in no run, delivery or edit "
@@ -117,11 +135,14 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     for r in solved:
         r["solved_by"] = by[str(r["node"])]  # an earlier run when its rows were reused
     keys = sorted({int(r["occupation"]) for r in solved if r["occupation"] is not None}
-                  | {o["index"] for o in delivered})
+                  | set(occ_of.values()))
     occupations = []
     for k in keys:
         rows = [r for r in solved if r["occupation"] == k]
-        past = next((o for o in delivered if o["index"] == k), None)
+        mine = [o for o in delivered if occ_of[o["index"]] == k]
+        past = next((o for o in mine if o["index"] == k), mine[0] if mine else None)
+        own = {k} | {o["index"] for o in mine} | {int(r["point_index"]) for r in rows
+                                                   if r["delivered"] and r["point_index"]}
         fixes = {"fixes": {}, "fixes_by_part": [], "raw_files": []}
         if rows and cloud is not None:
             part = cloud.filter(pc.fill_null(pc.equal(cloud["occupation"], k), False))
@@ -132,10 +153,13 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
             "retrieved": first.get("retrieved"),
             "delivery": _carried(past["delivered"]) if past else None,
             "deliveries": [_carried(h) for h in past["history"]] if past else [],
+            "parts_delivered": [{"index": o["index"], "delivery": _carried(o["delivered"]),
+                                 "deliveries": [_carried(h) for h in o["history"]]}
+                                for o in mine if o is not past],
             "solution": [_solution_row(r) for r in rows],
             "fixes": fixes["fixes"], "fixes_by_part": fixes["fixes_by_part"],
             "raw_files": fixes["raw_files"],
-            "edits": [e for e in edits if e["index"] == k],
+            "edits": [e for e in edits if e["index"] in own],
         })
     return plain({
         "station": {"line": float(line), "point": float(point), "index": index, "node": node},

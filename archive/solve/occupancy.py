@@ -147,3 +147,15 @@ def run_occupations(arc: Any, run: Any) -> pa.Table:
     dep_hash = (run_manifest(arc, run).get("inputs") or {}).get("deployments")
     deployments = arc.objects.read_table(dep_hash) if dep_hash else None
     return upgrade_positions(positions, deployments)
+
+
+def occupation_of_index(rows: list[dict[str, Any]], index: int) -> int:
+    """The occupation delivered, wholly or in part, under point index ``index``, among one
+    station's rows of :func:`run_occupations` (as dicts): a moved node's later part is
+    delivered under an index of its own but belongs to its occupation. ``index`` itself
+    when no delivered row carries it (an occupation never delivered keeps its number)."""
+    for r in rows:
+        if (r.get("delivered") and r.get("point_index") == index
+                and r.get("occupation") is not None):
+            return int(r["occupation"])
+    return int(index)

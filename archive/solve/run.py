@@ -267,13 +267,18 @@ def station_solution(arc: Archive, survey_id: int, line: float, point: float,
                      index: int | None = None, run_ref: str | None = None, *,
                      node: str | None = None) -> dict[str, Any]:
     """A station's rows of a run (the newest by default) as plain data: every occupation
-    (and every part of a moved one), or the occupation ``index``/``node`` choose."""
-    from archive.solve.occupancy import run_occupations
+    (and every part of a moved one), or the occupation ``index``/``node`` choose (``index``
+    may be the point index a moved node's later part is delivered under: its occupation's
+    rows are given, every part)."""
+    from archive.solve.occupancy import occupation_of_index, run_occupations
     from archive.survey.keys import rows_at, station_text
 
     run = get_run(arc, survey_id, run_ref)
     pos = run_occupations(arc, run)
-    rows = rows_at(pos, line, point, index, node, index_column="occupation").to_pylist()
+    rows = rows_at(pos, line, point, None, node).to_pylist()
+    if index is not None:  # the occupation delivered (wholly or in part) under that index
+        occupation = occupation_of_index(rows, int(index))
+        rows = [r for r in rows if r["occupation"] == occupation]
     if not rows:
         every = rows_at(pos, line, point).to_pylist()
         have = ", ".join(sorted({f"index {r['occupation']} (node {r['node']})" for r in every

@@ -122,6 +122,32 @@ def test_trace_station_splits_fix_counts_by_part_of_a_moved_node(solved, runner)
     r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}",
                "--node", row["node"], "--json")
     assert json.loads(r.output)["occupations"][0]["fixes_by_part"] == o["fixes_by_part"]
+    # the index the later part is delivered under leads to the same occupation, its raw
+    # files and fixes (not to an empty entry of its own)
+    later = trace_station(arc, sid, row["line"], row["point"], row["point_index"])
+    [o2] = later["occupations"]
+    assert o2["index"] == row["occupation"] and o2["fixes"] == o["fixes"]
+    assert o2["raw_files"] and o2["raw_files"] == o["raw_files"]
+    r = invoke(runner, base / "archive", "show", f"{row['line']:g}", f"{row['point']:g}",
+               "--index", str(row["point_index"]), "--json")
+    assert r.exit_code == 0, r.stderr
+    shown = json.loads(r.output)
+    assert {x["part"] for x in shown["rows"]} >= {1, 2}
+    assert {x["occupation"] for x in shown["rows"]} == {row["occupation"]}
+    # once delivered, the occupation carries both records: its own index and the later part's
+    res = deliver(arc, sid, run_id, "csv", base / "r_moved.csv", "processing",
+                  allow_flags=True, force=True)
+    [o3] = trace_station(arc, sid, row["line"], row["point"], row["point_index"])["occupations"]
+    assert o3["delivery"]["id"] == res.delivery_id
+    assert o3["delivery"]["position"]["index"] == row["occupation"]
+    [p] = o3["parts_delivered"]
+    assert p["index"] == row["point_index"] and p["delivery"]["id"] == res.delivery_id
+    assert p["delivery"]["position"]["easting"] == pytest.approx(row["easting"], abs=1e-3)
+    r = invoke(runner, base / "archive", "trace", f"{row['line']:g}", f"{row['point']:g}",
+               "--index", str(row["point_index"]))
+    assert r.exit_code == 0, r.stderr
+    assert "1 occupation(s); 1 later part(s) of a moved node" in r.output
+    assert f"part delivered as index {row['point_index']}:" in r.output
 
 
 def test_trace_station_after_edit_and_delivery(solved, runner):
