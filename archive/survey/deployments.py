@@ -79,6 +79,31 @@ def number_occupations(table: pa.Table, path: str, previous: pa.Table | None = N
                          "(SPS rev 2.1 writes point indices 1-9)") from None
 
 
+def drop_repeated(table: pa.Table) -> tuple[pa.Table, list[dict[str, Any]]]:
+    """The log without records that repeat an earlier one field for field (node, station,
+    index, both times): a record copied twice is one occupation, not two at the same place
+    and time (which would be solved and delivered twice). Each dropped record is a
+    ``repeated-record`` problem on its line, naming the line it repeats."""
+    if table.num_rows < 2:
+        return table, []
+    key = pd.DataFrame({
+        "node": table["node"].to_numpy(zero_copy_only=False),
+        "line": table["line"].to_numpy(), "point": table["point"].to_numpy(),
+        "index": table["index"].to_numpy(),
+        "deployed": table["deployed"].cast(pa.int64()).to_numpy(),
+        "retrieved": us_array(table["retrieved"], OPEN_END),
+    })
+    again = key.duplicated(keep="first").to_numpy()
+    if not again.any():
+        return table, []
+    src = table["src_line"].to_numpy()
+    group = key.groupby(list(key.columns), sort=False).ngroup().to_numpy()
+    first_src = pd.Series(src).groupby(group).transform("first").to_numpy()
+    out = [problem("repeated-record", f"this record repeats the one on line {int(first_src[i])}"
+                   " field for field: kept once", int(src[i])) for i in np.flatnonzero(again)]
+    return table.filter(pa.array(~again)), out
+
+
 def check_deployments(table: pa.Table, stations: pa.Table | None) -> list[dict[str, Any]]:
     """Every problem of a deployment table, sorted by line."""
     out = unknown_stations(table, stations, "deployment")

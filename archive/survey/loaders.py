@@ -61,6 +61,8 @@ def parse_deployments(ctx: LoadContext) -> ParsedInput:
 
     name = str(ctx.path)
     parsed = deployments.read_deployments(ctx.read(), name, ctx.options.get("columns"))
+    parsed.table, repeated = deployments.drop_repeated(parsed.table)
+    parsed.warnings += repeated
     parsed.warnings += deployments.check_deployments(parsed.table,
                                                      _current_table(ctx, "stations"))
     previous = current_input(ctx.arc, ctx.survey.id, "deployments")

@@ -122,3 +122,26 @@ def test_unreadable_time_names_line_and_column(arc_pre, tmp_path):
 def test_without_a_preplot_the_station_check_is_reported(survey_arc, tmp_path):
     res = load(survey_arc, tmp_path, HEAD + "KF-0001,1001,2001,2024-05-01T06:00:00Z,\n")
     assert codes(res) == [(None, "no-stations")]
+
+
+def test_a_record_repeated_field_for_field_is_kept_once(arc_pre, tmp_path):
+    # A row copied twice (an export glitch, a paste) is one occupation: loaded as two, the
+    # station would be solved and delivered twice under two indices.
+    rows = ["KF-0001,1001,2001,2024-05-01T06:00:00Z,2024-05-05T06:00:00Z\n",
+            "KF-0002,1001,2002,2024-05-01T06:10:00Z,\n"]
+    res = load(arc_pre, tmp_path, HEAD + rows[0] + rows[1] + rows[0] + rows[1] + rows[1])
+    assert codes(res) == [(4, "repeated-record"), (5, "repeated-record"),
+                          (6, "repeated-record")]
+    assert [w["message"].split(" field")[0] for w in res.warnings] == [
+        "this record repeats the one on line 2", "this record repeats the one on line 3",
+        "this record repeats the one on line 3"]
+    t = res.table
+    assert t.num_rows == 2 and t["src_line"].to_pylist() == [2, 3]
+    assert t["occupation"].to_pylist() == [1, 1]
+    # the same node at the same station later, or with another retrieval, is not a repeat
+    res = load(arc_pre, tmp_path, HEAD + rows[0]
+               + "KF-0001,1001,2001,2024-05-01T06:00:00Z,2024-05-05T07:00:00Z\n", name="b.csv")
+    assert "repeated-record" not in {w["code"] for w in res.warnings}
+    assert res.table.num_rows == 2
+    with pytest.raises(Refused, match="repeats the one on line 2"):
+        load(arc_pre, tmp_path, HEAD + rows[0] + rows[0], name="c.csv", strict=True)
