@@ -33,6 +33,8 @@ from archive.qc.review_list import (
     cloud_section,
     decided_list,
     decided_table,
+    occupation_count,
+    records_with_edits,
     review_list,
     review_table,
     with_occupation,
@@ -189,11 +191,15 @@ def _figures(data: RunData, result: QcResult, review: Any, progress: Progress) -
     return figs
 
 
-def _verdict(result: QcResult, beyond_n: int, n_waiting: int) -> str:
+def _verdict(result: QcResult, beyond_n: int, n_waiting: int, records: tuple[int, int]
+             ) -> str:
     """The tiles at the top: delivered, checked, accuracy, beyond tolerance, flagged."""
     s = result.comparison.solved.horizontal
     p = result.comparison.preplot.horizontal
-    tiles = [(f"{result.n_delivered:,}", "stations delivered"),
+    n_final, n_rejected = records
+    tiles = [(f"{n_final:,}", "positions to deliver with the edits in force (one per "
+              "occupation, or per part of a moved node)"
+              + (f"; {n_rejected:,} occupation(s) rejected" if n_rejected else "")),
              (f"{result.n_checked:,}", "with an RTK check point"),
              (f"{html.num(s.mean, '{:.2f}')} m",
               f"mean to check, solved (preplot {html.num(p.mean, '{:.2f}')} m)"),
@@ -220,13 +226,16 @@ def _page(data: RunData, result: QcResult, figs: list[str], review: Any, clouds_
     beyond_n = int(review["beyond"].sum()) if len(review) else 0
     waiting = review[review["flags"] != ""][OCC_KEY].drop_duplicates() if len(review) else []
     decided = decided_list(data)
+    n_occ = occupation_count(review)
+    counted = f"{n_occ:,}" + (f" occupations, {len(review):,} delivered records"
+                              if n_occ != len(review) else "")
     cautions = html.section("cautions", "Read this first", "<ul>" + "".join(
         f"<li>{escape(c)}</li>" for c in notes.CAUTIONS) + "</ul>", cls="caution")
     body = "".join([
-        _verdict(result, beyond_n, len(waiting)), cautions, _lineage_section(data), _summary_section(result),
+        _verdict(result, beyond_n, len(waiting), records_with_edits(data)), cautions, _lineage_section(data), _summary_section(result),
         _no_quality_section(data),
         html.section("figures", "Maps and distributions", LEGEND + "".join(figs)),
-        html.section("review", f"Stations to review ({len(review):,})",
+        html.section("review", f"Stations to review ({counted})",
                      review_table(review, set(range(drawn))) + clouds_html),
         html.section("decided", f"Decided flags ({len(decided):,})",
                      "<p>Flags a person settled: accepted (acknowledged), the station "

@@ -74,7 +74,10 @@ def decided_list(data: RunData) -> pd.DataFrame:
     pos = with_occupation(delivered(data.positions).select(
         [c for c in ("line", "point", "index", "occupation", "node", "flags")
          if c in data.positions.column_names]).to_pandas())
-    pos = pos[pos["flags"] != ""].drop_duplicates(OCC_KEY)
+    # the flags of an occupation are those of all its parts (a moved node's later part is
+    # far from plan too, its earlier part not), as the decisions name the occupation
+    pos = (pos[pos["flags"] != ""].groupby(OCC_KEY, sort=False, as_index=False)
+           .agg(node=("node", "first"), flags=("flags", _union)))
     rows = []
     for r, st in zip(pos.itertuples(index=False), _states(pos, data.decisions), strict=True):
         by_edit: dict[int, list[str]] = {}
@@ -87,6 +90,11 @@ def decided_list(data: RunData) -> pd.DataFrame:
                              d["reason"], d["edit"]))
     return pd.DataFrame(rows, columns=cols).sort_values(
         ["line", "point", "occupation", "edit"], kind="stable").reset_index(drop=True)
+
+
+def _union(flags: pd.Series) -> str:
+    """The flags of several records of one occupation, each once, in order of appearance."""
+    return ";".join(dict.fromkeys(f for x in flags for f in x.split(";") if f))
 
 
 def decided_table(df: pd.DataFrame) -> str:
@@ -117,6 +125,37 @@ def with_occupation(df: pd.DataFrame) -> pd.DataFrame:
     return df
 
 
+def _record_index(r: Any) -> int:
+    """The point index a row is delivered under: its own for a moved node's later part, the
+    occupation's otherwise (runs made before parts had indices)."""
+    k = getattr(r, "point_index", None)
+    return int(k) if k is not None and not pd.isna(k) and int(k) > 0 else int(r.occupation)
+
+
+def records_with_edits(data: RunData) -> tuple[int, int]:
+    """(records a delivery of the run carries with the edits in force, occupations a
+    ``reject-station`` keeps out): the run's delivered records less those of rejected
+    occupations, a moved node whose position a person set counting once (``set-position``
+    makes the occupation one record again)."""
+    pos = with_occupation(delivered(data.positions).select(
+        [c for c in ("line", "point", "index", "occupation")
+         if c in data.positions.column_names]).to_pandas())
+    per = pos.groupby(["line", "point", "occupation"]).size()
+    n, rejected = len(pos), 0
+    for (line, point, occ), k in per.items():
+        kinds = {e.kind for e in data.decisions.get((float(line), float(point), int(occ)), [])}
+        if "reject-station" in kinds:
+            n, rejected = n - int(k), rejected + 1
+        elif "set-position" in kinds:
+            n -= int(k) - 1
+    return n, rejected
+
+
+def occupation_count(df: pd.DataFrame) -> int:
+    """How many occupations the rows of ``df`` (delivered records) belong to."""
+    return len(df[OCC_KEY].drop_duplicates()) if len(df) else 0
+
+
 def review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
     """The review list as an HTML table (stations drawn with a cloud link to it)."""
     if df.empty:
@@ -125,7 +164,7 @@ def review_table(df: pd.DataFrame, with_clouds: set[int]) -> str:
     for i, r in enumerate(df.head(MAX_TABLE_ROWS).itertuples()):
         name = station_text(r.line, r.point)
         link = f'<a href="#cloud-{i}">{escape(name)}</a>' if i in with_clouds else escape(name)
-        rows.append((link, r.occupation, escape(spreadsheet_text(str(r.node))),
+        rows.append((link, _record_index(r), escape(spreadsheet_text(str(r.node))),
                      escape(r.reasons.replace(";", ", ")),
                      html.num(r.dist, "{:.2f}"), html.num(r.dist_preplot, "{:.2f}"),
                      html.num(r.r95, "{:.2f}"), f"{r.n_used:,}", f"{r.n_rejected:,}",
