@@ -241,8 +241,9 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
         files = [(n, h, c) for n, h, c, _, _ in rows]
     deployments = with_coverage(deployments, rows)
     datum = json.loads(dem_v.meta or "{}").get("vertical_datum", "") if dem_v else ""
-    retired = ((json.loads(dep_v.meta or "{}").get("occupations") or {}).get("retired") or []
-               if dep_v else [])
+    occupations = (json.loads(dep_v.meta or "{}").get("occupations") or {}) if dep_v else {}
+    retired = occupations.get("retired") or []
+    later_parts = occupations.get("later_parts") or []
     return SolveInputs(
         survey=sdict, stations=stations, stations_hash=st_hash, deployments=deployments,
         deployments_hash=dep_hash, dem_hash=dem_hash, dem_datum=datum,
@@ -250,7 +251,7 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
                   "deployments": dep_v.version if dep_v else None,
                   "dem": dem_v.version if dem_v else None},
         fix_files=files, edits=edits, station_keys=keys,
-        used=used_indices(dep_all, stations, retired))
+        used=used_indices(dep_all, stations, retired, later_parts))
 
 
 def with_coverage(deployments: pa.Table, logs: Sequence[Any]) -> pa.Table:

@@ -13,9 +13,10 @@ those retired from earlier versions of the log, and the preplot's stations) and 
 of k among the log's occupation indices there (1 for the lowest). So the index depends only
 on the deployment log and the preplot: the same in every run that reads them whatever moves
 other occupations show, unique at the line and point, and never one an occupation or a
-retired occupation holds. A later deployment log that adds an occupation at the station
-raises M, and the later part then takes the next index up; the lineage manifest and
-``where`` name each record's node and time, so the two are never confused.
+retired occupation holds. A later part once delivered keeps the index it was delivered
+under: the deployment log's version keeps those indices (``later_parts``, read from the
+deliveries when the log is loaded), a new occupation is numbered above them, and M counts
+them, so other parts never take them either.
 """
 
 from __future__ import annotations
@@ -30,13 +31,19 @@ import pyarrow as pa
 from archive.survey.occupations import occupation_array
 
 USED_SCHEMA = pa.schema([pa.field("line", pa.float64()), pa.field("point", pa.float64()),
-                         pa.field("index", pa.int64()), pa.field("occupied", pa.bool_())])
+                         pa.field("index", pa.int64()), pa.field("occupied", pa.bool_()),
+                         pa.field("part_of", pa.int64())])
+"""Point indices in use at each line and point; ``part_of`` is the occupation whose later
+part keeps that index (delivered under it before), -1 for every other index."""
 
 
 def used_indices(deployments: pa.Table, stations: pa.Table | None = None,
-                 retired: Iterable[dict[str, Any]] = ()) -> pa.Table:
+                 retired: Iterable[dict[str, Any]] = (),
+                 later_parts: Iterable[dict[str, Any]] = ()) -> pa.Table:
     """Every point index used at each line and point: the occupations of the (whole)
-    deployment log (``occupied``), those retired from earlier versions, the preplot's."""
+    deployment log (``occupied``), those retired from earlier versions, the preplot's, and
+    those moved nodes' later parts were delivered under (``later_parts``: line, point,
+    occupation, index, as the deployment log's version keeps them)."""
     line = [deployments["line"].to_numpy().astype(np.float64)]
     point = [deployments["point"].to_numpy().astype(np.float64)]
     index = [occupation_array(deployments)]
@@ -52,8 +59,16 @@ def used_indices(deployments: pa.Table, stations: pa.Table | None = None,
         point.append(stations["point"].to_numpy().astype(np.float64))
         index.append(stations["index"].to_numpy().astype(np.int64))
         occupied.append(np.zeros(stations.num_rows, dtype=bool))
-    return pa.table([pa.array(np.concatenate(x)) for x in (line, point, index, occupied)],
-                    schema=USED_SCHEMA)
+    part_of = [np.full(sum(len(x) for x in index), -1, dtype=np.int64)]
+    kept = list(later_parts)
+    if kept:
+        line.append(np.array([float(r["line"]) for r in kept]))
+        point.append(np.array([float(r["point"]) for r in kept]))
+        index.append(np.array([int(r["index"]) for r in kept], dtype=np.int64))
+        occupied.append(np.zeros(len(kept), dtype=bool))
+        part_of.append(np.array([int(r["occupation"]) for r in kept], dtype=np.int64))
+    return pa.table([pa.array(np.concatenate(x))
+                     for x in (line, point, index, occupied, part_of)], schema=USED_SCHEMA)
 
 
 def later_part_index(line: np.ndarray, point: np.ndarray, occupation: np.ndarray,
@@ -74,4 +89,18 @@ def later_part_index(line: np.ndarray, point: np.ndarray, occupation: np.ndarray
     m = q.merge(occ[["line", "point", "index", "rank"]], on=["line", "point", "index"],
                 how="left").merge(top.reset_index(), on=["line", "point"], how="left")
     out = (m["top"] + m["rank"]).to_numpy()
-    return np.where(np.isfinite(out), out, 0).astype(np.int64)
+    out = np.where(np.isfinite(out), out, 0).astype(np.int64)
+    if "part_of" in used.column_names:  # a later part delivered before keeps its index
+        kept = u.assign(part_of=used["part_of"].to_numpy())
+        held = occ.set_index(["line", "point", "index"]).index
+        kept = kept[(kept["part_of"] >= 0)
+                    & ~kept.set_index(["line", "point", "index"]).index.isin(held)]
+        # (an index an occupation of the log holds is never a later part's, whatever an
+        # archive delivered before indices were kept)
+        kept = kept.drop_duplicates(["line", "point", "part_of"], keep="last")
+        if len(kept):
+            k = q.merge(kept.rename(columns={"index": "kept", "part_of": "index"})[
+                ["line", "point", "index", "kept"]], on=["line", "point", "index"],
+                how="left")["kept"].to_numpy()
+            out = np.where(np.isfinite(k), np.nan_to_num(k), out).astype(np.int64)
+    return out

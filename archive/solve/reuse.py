@@ -71,6 +71,8 @@ def result_keys(inp: Any, manifest: dict[str, Any]) -> dict[str, str]:
     used: dict[tuple[float, float], list[dict[str, Any]]] = {}
     if inp.used is not None:
         for r in inp.used.to_pylist():  # one entry per point index in use
+            if r.get("part_of", -1) < 0:  # as the keys of runs before parts were kept
+                r.pop("part_of", None)
             used.setdefault((r["line"], r["point"]), []).append(r)
     spans: dict[str, list[dict[str, Any]]] = {}
     for e in manifest.get("edits") or []:

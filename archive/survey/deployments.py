@@ -67,13 +67,17 @@ def read_deployments(data: bytes, path: str,
 
 def number_occupations(table: pa.Table, path: str, previous: pa.Table | None = None,
                        retired: list[dict[str, Any]] | tuple = (),
-                       preplot: pa.Table | None = None) -> tuple[pa.Table, list[dict[str, Any]]]:
+                       preplot: pa.Table | None = None,
+                       later_parts: list[dict[str, Any]] | tuple = ()
+                       ) -> tuple[pa.Table, list[dict[str, Any]]]:
     """The log with its ``occupation`` column numbered against the previous version, the
     occupations retired before and the preplot's point indices
     (:func:`archive.survey.occupations.number_log`); a station occupied too often is
-    refused. Returns the table and the retired occupations to keep with the version."""
+    refused. Returns the table and the retired occupations to keep with the version.
+    ``later_parts`` are the indices moved nodes' later parts were delivered under, which
+    no new occupation takes."""
     try:
-        return number_log(table, previous, retired, preplot)
+        return number_log(table, previous, retired, preplot, later_parts)
     except ValueError as exc:
         raise InputError(path, str(exc), expected="at most 127 occupations of one station "
                          "(SPS rev 2.1 writes point indices 1-9)") from None

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import json
+from typing import Any
 
 from archive.errors import Refused, UsageError
 from archive.survey.kinds import LoadContext
@@ -66,14 +67,17 @@ def parse_deployments(ctx: LoadContext) -> ParsedInput:
     parsed.warnings += deployments.check_deployments(parsed.table,
                                                      _current_table(ctx, "stations"))
     previous = current_input(ctx.arc, ctx.survey.id, "deployments")
-    retired = (json.loads(previous[0].meta or "{}").get("occupations") or {}).get(
-        "retired", []) if previous else []
+    before = (json.loads(previous[0].meta or "{}").get("occupations") or {}) if previous else {}
+    retired = before.get("retired", [])
+    later = delivered_later_parts(ctx.arc, ctx.survey.id, before.get("later_parts", []))
     parsed.table, gone = deployments.number_occupations(
         parsed.table, name, previous[1] if previous else None, retired,
-        _current_table(ctx, "stations"))
+        _current_table(ctx, "stations"), later)
     parsed.warnings += occupation_warnings(parsed.table)
     parsed.warnings.sort(key=lambda w: (w["line"] or 0, w["code"]))
     parsed.meta["occupations"] = occupation_summary(parsed.table) | {"retired": gone}
+    if later:
+        parsed.meta["occupations"]["later_parts"] = later
     if previous is not None:
         parsed.meta["occupations"]["numbered_after_version"] = previous[0].version
     parsed.meta["strict"] = bool(ctx.options.get("strict", False))
@@ -85,6 +89,37 @@ def parse_deployments(ctx: LoadContext) -> ParsedInput:
                       hint="correct the log, or load it without --strict to keep the "
                            "warnings with the version")
     return parsed
+
+
+def delivered_later_parts(arc, survey_id: int, earlier: list[dict[str, Any]] | tuple = ()
+                          ) -> list[dict[str, Any]]:
+    """The point index each moved node's later part was last delivered under (line, point,
+    occupation, index), from the records of the survey's deliveries, with those the
+    previous version of the log kept (``earlier``). A record a recipient holds keeps its
+    meaning: a later log that adds an occupation at the station numbers it above them, and
+    the part keeps its index in every later run (:mod:`archive.solve.parts`)."""
+    import pyarrow.compute as pc
+    from sqlalchemy import select
+
+    from archive.store.models import Delivery
+
+    found = {(float(r["line"]), float(r["point"]), int(r["occupation"])): int(r["index"])
+             for r in earlier}
+    with arc.session() as s:
+        hashes = s.scalars(select(Delivery.final_hash).where(Delivery.survey_id == survey_id)
+                           .order_by(Delivery.id)).all()
+    cols = ["line", "point", "occupation", "part", "index"]
+    for h in dict.fromkeys(hashes):  # oldest first: the latest delivery has the last word
+        t = arc.objects.read_table(h)
+        if not set(cols) <= set(t.column_names):
+            continue  # delivered before parts had indices of their own
+        t = t.select(cols)
+        t = t.filter(pc.fill_null(pc.and_(pc.equal(t["part"], 2),
+                                          pc.not_equal(t["index"], t["occupation"])), False))
+        for r in t.to_pylist():  # later parts only: a few per survey
+            found[(float(r["line"]), float(r["point"]), int(r["occupation"]))] = int(r["index"])
+    return [{"line": a, "point": b, "occupation": k, "index": v}
+            for (a, b, k), v in sorted(found.items())]
 
 
 def parse_dem(ctx: LoadContext) -> ParsedInput:

@@ -249,12 +249,16 @@ def with_occupations(table: pa.Table) -> pa.Table:
 
 def number_log(table: pa.Table, previous: pa.Table | None = None,
                retired: Sequence[dict[str, Any]] = (),
-               preplot: pa.Table | None = None) -> tuple[pa.Table, list[dict[str, Any]]]:
+               preplot: pa.Table | None = None,
+               later_parts: Sequence[dict[str, Any]] = ()
+               ) -> tuple[pa.Table, list[dict[str, Any]]]:
     """A newly read deployment log with its ``occupation`` column numbered against the
     previous version (``previous``) and the occupations retired before (``retired``, as the
     previous version's meta keeps them), keeping clear of the point indices the ``preplot``
-    uses. Returns the table and the retired occupations to keep with it: every earlier
-    occupation this log no longer holds, with the index it had (never given out again)."""
+    uses and of those moved nodes' later parts have been delivered under (``later_parts``:
+    line, point, occupation, index). Returns the table and the retired occupations to keep
+    with it: every earlier occupation this log no longer holds, with the index it had
+    (never given out again)."""
     rec = Records.of(table)
     parts, occs, flags = [], [], []
     if previous is not None and previous.num_rows:
@@ -274,6 +278,8 @@ def number_log(table: pa.Table, previous: pa.Table | None = None,
         for a, b, k in zip(preplot["line"].to_pylist(), preplot["point"].to_pylist(),
                            preplot["index"].to_pylist(), strict=True):
             reserved.setdefault((float(a), float(b)), set()).add(int(k))
+    for p in later_parts:
+        reserved.setdefault((float(p["line"]), float(p["point"])), set()).add(int(p["index"]))
     numbered = number_occupations(rec, earlier, earlier_occ, retired=is_retired,
                                   reserved=reserved)
     gone: list[dict[str, Any]] = []

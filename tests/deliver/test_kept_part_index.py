@@ -1,0 +1,76 @@
+"""A delivered record keeps its meaning: a moved node's later part keeps the point index it
+was delivered under when a later deployment log adds an occupation at its station.
+
+Before, the log numbered the new occupation first (M + 1) and the part took the next index
+up, so the key the recipient held (line, point, index of the part) came to name another
+node. The rule now (docs/delivery.md): indices a later part was delivered under are kept
+with the log's version; new occupations are numbered above them.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+from datetime import datetime, timedelta
+
+import pyarrow.compute as pc
+
+from archive.deliver.deliveries import deliver
+from archive.lineage.reproduce import reproduce
+from archive.solve.occupancy import run_occupations
+from archive.solve.run import get_run, solve_survey
+from archive.survey.inputs import current_input, load_input
+from tests.support.scenarios import scenario_archive
+
+RECIPIENT = "Harrow Basin Energy processing centre"
+
+
+def _rows(path) -> list[dict[str, str]]:
+    with open(path, newline="", encoding="utf-8") as fh:
+        return list(csv.DictReader(fh))
+
+
+def _station(table, line: float, point: float) -> list[dict]:
+    mask = pc.and_(pc.equal(table["line"], line), pc.equal(table["point"], point))
+    return table.filter(mask).to_pylist()
+
+
+def test_a_delivered_later_part_keeps_its_index(tmp_path):
+    arc, sid, run_id, sc = scenario_archive(tmp_path, seed=11, dem=True)
+    try:
+        moved = next(p for p in sc.problems if p["kind"] == "moved")
+        line, point = float(moved["line"]), float(moved["point"])
+        deliver(arc, sid, run_id, "csv", tmp_path / "first.csv", RECIPIENT, allow_flags=True)
+        first = [r for r in _rows(tmp_path / "first.csv")
+                 if (float(r["line"]), float(r["point"])) == (line, point)]
+        assert [r["index"] for r in first] == ["1", "2"]  # before and after the move
+        node = first[0]["node"]
+
+        # the crew lays another node there after the moved one came up (not harvested yet)
+        dep = _rows(sc.deployments)
+        ours = next(r for r in dep if r["node"] == node)
+        later = datetime.fromisoformat(ours["retrieved_utc"].replace("Z", "+00:00"))
+        extra = {**ours, "node": "KF-LATE", "deployed_utc":
+                 (later + timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                 "retrieved_utc": ""}
+        v2 = tmp_path / "deployments-v2.csv"
+        with open(v2, "w", newline="", encoding="utf-8") as fh:
+            w = csv.DictWriter(fh, fieldnames=list(dep[0]))
+            w.writeheader()
+            w.writerows([*dep, extra])
+        load_input(arc, sid, "deployments", v2)
+        version, table = current_input(arc, sid, "deployments")
+        kept = json.loads(version.meta)["occupations"]["later_parts"]
+        assert {"line": line, "point": point, "occupation": 1, "index": 2} in kept
+        added = [r for r in _station(table, line, point) if r["node"] == "KF-LATE"]
+        assert [r["occupation"] for r in added] == [3]  # above the kept index, not 2
+
+        run2 = solve_survey(arc, sid).run_id
+        rows = [r for r in _station(run_occupations(arc, get_run(arc, sid, run2)), line, point)
+                if r["delivered"]]
+        assert sorted((r["node"], r["part"], r["point_index"]) for r in rows) == [
+            (node, 1, 1), (node, 2, 2)]
+        # the run is still what its archived inputs give
+        assert reproduce(arc, run2, sid)["identical"]
+    finally:
+        arc.close()
