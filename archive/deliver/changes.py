@@ -186,7 +186,9 @@ def compare_final(previous: pa.Table, current: pa.Table, since: int,
                for c in np.unique(code[changed]).tolist()}  # a few distinct combinations
     sub = j.take(changed)
     cols = {c: sub[c].to_pylist() for c in ("line", "point", "index", "node", "flags",
-                                            "flags_was", "node_was", "source", "source_was")}
+                                            "flags_was", "flags_acknowledged",
+                                            "flags_acknowledged_was", "node_was", "source",
+                                            "source_was")}
     records = []
     for k, i in enumerate(changed.tolist()):  # one entry per changed record, not per fix
         entry: dict[str, Any] = {
@@ -199,6 +201,8 @@ def compare_final(previous: pa.Table, current: pa.Table, since: int,
             entry["height_change_m"] = round(float(dh[i]), 4)
         if flags[i]:
             entry["flags_was"], entry["flags"] = cols["flags_was"][k], cols["flags"][k]
+            entry["flags_acknowledged_was"] = cols["flags_acknowledged_was"][k]
+            entry["flags_acknowledged"] = cols["flags_acknowledged"][k]
         if node[i]:
             entry["node_was"] = cols["node_was"][k]
         if edited[i]:
@@ -322,7 +326,13 @@ def describe(change: dict[str, Any]) -> str:
         elif reason == "height" and "height_change_m" in change:
             parts.append(f"height changed {change['height_change_m']:.3f} m")
         elif reason == "flags":
-            parts.append(f"flags {change.get('flags_was') or '-'} -> {change.get('flags') or '-'}")
+            was, now = change.get("flags_was") or "-", change.get("flags") or "-"
+            ack_was = change.get("flags_acknowledged_was") or "-"
+            ack = change.get("flags_acknowledged") or "-"
+            said = [f"flags {was} -> {now}"] if was != now else []
+            if ack_was != ack:  # an acknowledgement moves a flag from one to the other
+                said.append(f"acknowledged {ack_was} -> {ack}")
+            parts.append(", ".join(said) or f"flags {was} -> {now}")
         elif reason == "node":
             parts.append(f"node {change.get('node_was')} -> {change.get('node')}")
         else:

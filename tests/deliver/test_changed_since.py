@@ -165,3 +165,29 @@ def test_older_tables_and_grids_in_feet(solved):
     assert ch.table.num_rows == 0  # 0.3048 m is under 0.31 m
     ch = compare_final(cur, moved, since=1, tolerance=0.30, unit_factor=us_foot)
     assert ch.records[0]["shift_m"] == pytest.approx(us_foot, abs=1e-4)
+
+
+def test_an_acknowledgement_is_a_change_said_as_such(solved, tmp_path):
+    from archive.deliver.changes import describe
+    from archive.review.acknowledge import ack_flag
+
+    arc, sid, run_id, base, _stations = solved
+    flagged = next(r for r in run_occupations(arc, get_run(arc, sid, run_id)).to_pylist()
+                   if r["kind"] == "logged" and r["delivered"] and r["flags"]
+                   and r["part"] == 0)
+    flag = flagged["flags"].split(";")[0]
+    first = deliver(arc, sid, run_id, "csv", tmp_path / "before.csv", PROCESSING,
+                    allow_flags=True)
+    ack_flag(arc, sid, flagged["line"], flagged["point"], int(flagged["occupation"]), flag=flag,
+             reason="seen on the evening review")
+    second = deliver(arc, sid, run_id, "csv", tmp_path / "after.csv", PROCESSING,
+                     allow_flags=True, changed_since=first.delivery_id)
+    [change] = [c for c in second.changes["records"]
+                if (c["line"], c["point"]) == (flagged["line"], flagged["point"])]
+    # the open flags lose the one acknowledged, which the acknowledged ones gain
+    assert change["reasons"] == ["flags"]
+    rest = ";".join(f for f in flagged["flags"].split(";") if f != flag)
+    assert (change["flags_was"], change["flags"]) == (flagged["flags"], rest)
+    assert (change["flags_acknowledged_was"] or "", change["flags_acknowledged"]) == ("", flag)
+    assert describe(change).endswith(f"flags {flagged['flags']} -> {rest or '-'}, "
+                                     f"acknowledged - -> {flag}")
