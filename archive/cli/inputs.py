@@ -83,7 +83,8 @@ def inputs(state: CliState, all_versions: bool, survey_name: str | None) -> None
     arc = state.archive()
     rows = list_inputs(arc, survey_for(arc, survey_name).id, all_versions=all_versions)
     emit(state, rows, lambda: table(
-        [(r["kind"], r["version"], "yes" if r["current"] else "", r["name"], r["rows"],
+        [(r["kind"], r["version"], "yes" if r["current"] else "", r["name"],
+          r["rows"] if r["table_hash"] is not None else "-",
           r["n_warnings"], r["source_hash"][:12], r["created_at"].strftime("%Y-%m-%d %H:%M:%SZ"),
           r["created_by"]) for r in rows],
         ["kind", "version", "current", "file", "rows", "warnings", "source", "loaded (UTC)",

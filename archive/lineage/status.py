@@ -114,7 +114,8 @@ def survey_status(arc: Archive, survey_id: int, shift: float = DEFAULT_SHIFT
     run = get_run(arc, survey_id, None) if n_runs else None  # the newest, as solve names it
     current = {v["kind"]: v for v in list_inputs(arc, survey_id)}
     inputs = [{"kind": k, "version": v["version"], "rows": v["rows"], "name": v["name"],
-               "loaded_at": v["created_at"]} for k, v in current.items()]
+               "table": v["table_hash"] is not None, "loaded_at": v["created_at"]}
+              for k, v in current.items()]
     logs = parsed_logs(arc, survey_id)  # read once for the harvest and the run's inputs
     harvest = harvest_status(arc, survey_id, limit=LIST_LIMIT, logs=logs)
     notes: list[str] = []
@@ -179,8 +180,10 @@ def status_text(st: SurveyStatus) -> str:
     if ld["n_logs"] > ld["n_logs_with_fixes"]:
         lines.append(f"          {ld['n_logs'] - ld['n_logs_with_fixes']:,} log(s) hold no "
                      "usable fix ('nodekeep logs' says why)")
-    lines.append("inputs    " + (", ".join(f"{i['kind']} v{i['version']} ({i['rows']:,} rows)"
-                                           for i in st.inputs) or "none loaded"))
+    lines.append("inputs    " + (", ".join(
+        f"{i['kind']} v{i['version']} "
+        + (f"({i['rows']:,} rows)" if i.get("table", True) else f"({i['name']})")
+        for i in st.inputs) or "none loaded"))
     aw = st.awaiting_harvest
     lines.append(f"harvest   {aw['deployments']:,} deployment(s) of {aw['nodes']:,} node(s) "
                  "awaiting harvest (no loaded log covers the window)")

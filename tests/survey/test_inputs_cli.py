@@ -46,6 +46,12 @@ def test_load_list_and_sample(survey_arc, runner, tmp_path):
     tif = write_tif(tmp_path / "m.tif", CHECK_Z, gt)
     r = invoke(runner, root, "load", "dem", str(tif), "--vertical-datum", "NAVD88 (GEOID18)")
     assert r.exit_code == 0 and "3x3 pixels, EPSG:32614, pixel-is-area" in r.output
+    # a raster has no rows: the listing and the status screen name it instead of "0 rows"
+    r = invoke(runner, root, "inputs")
+    [dem_line] = [x for x in r.output.splitlines() if x.startswith("dem ")]
+    assert dem_line.split()[3:5] == ["m.tif", "-"]
+    r = invoke(runner, root, "status")
+    assert "dem v1 (m.tif)" in r.output and "0 rows" not in r.output
     r = invoke(runner, root, "dem", "sample", "612002", "3890004")
     assert r.exit_code == 0 and r.output.strip().endswith("12.000 m (NAVD88 (GEOID18))")
     lon, lat = -97.7775, 35.1505  # well outside this 6 m model
