@@ -374,10 +374,15 @@ def _sorted(table: pa.Table) -> pa.Table:
 
 
 def unacknowledged_flags(final: pa.Table) -> dict[str, int]:
-    """How many stations carry each flag still unacknowledged."""
-    counts: dict[str, int] = {}
-    for text in final.column("flags").to_pylist():
-        for f in (text or "").split(";"):
+    """How many stations (occupations, as status, qc and review count) carry each flag
+    still unacknowledged: the two records of a moved node count once, with the flags of
+    either."""
+    occ = (pc.coalesce(final["occupation"].cast(pa.int64()), final["index"].cast(pa.int64()))
+           if "occupation" in final.column_names else final["index"].cast(pa.int64()))
+    holders: dict[str, set[tuple[float, float, int]]] = {}
+    for line, point, k, text in zip(final["line"].to_pylist(), final["point"].to_pylist(),
+                                    occ.to_pylist(), final["flags"].to_pylist(), strict=True):
+        for f in (text or "").split(";"):  # one pass over the records, not the fixes
             if f:
-                counts[f] = counts.get(f, 0) + 1
-    return dict(sorted(counts.items()))
+                holders.setdefault(f, set()).add((line, point, k))
+    return {f: len(holders[f]) for f in sorted(holders)}
