@@ -179,8 +179,9 @@ def deliver(arc: Archive, survey_id: int, run_ref: str | None, fmt: str, to: str
         raise UsageError("a delivery needs a recipient", hint="say who gets it with --recipient")
     target = Path(to)
     lineage_path = target.with_name(target.name + LINEAGE_SUFFIX)
-    check_target(target, force)
-    check_target(lineage_path, force)
+    kept = "earlier deliveries stay in the archive by hash"
+    check_target(target, force, kept)
+    check_target(lineage_path, force, kept)
 
     run = get_run(arc, survey_id, run_ref)
     manifest = run_manifest(arc, run)

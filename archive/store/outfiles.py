@@ -150,16 +150,18 @@ def write_file(target: Path, data: bytes) -> None:
         raise
 
 
-def check_target(path: Path, force: bool) -> None:
+def check_target(path: Path, force: bool, kept: str = "") -> None:
     """Refuse an output path that cannot be written: a folder, an existing file without
-    ``force``, a missing or unwritable parent folder. Called before any work is stored."""
+    ``force``, a missing or unwritable parent folder. Called before any work is stored.
+    ``kept`` says what the archive keeps of an overwritten file (a delivery keeps its bytes
+    by hash; a report or a provenance file is written again from the archive)."""
     if path.is_dir():
         raise UsageError(f"{path} is a folder, not a file name",
                          hint="give --to a file name, e.g. --to FOLDER/receivers.sps")
     if path.exists() and not force:
         raise Refused(f"{path} already exists",
-                      hint="pass --force to overwrite it (earlier deliveries stay in the "
-                           "archive by hash), or choose another --to")
+                      hint="pass --force to overwrite it" + (f" ({kept})" if kept else "")
+                           + ", or choose another --to")
     parent = path.parent
     if not parent.is_dir():
         raise UsageError(f"the folder {parent} does not exist",
