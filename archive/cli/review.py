@@ -19,7 +19,8 @@ def _last(d: dict[str, Any] | None) -> str:
     if not d:
         return ""
     what = d["kind"] + (f" {d['flag']}" if d.get("flag") else "")
-    return f"{what}, {d['by']} {_when(d['at'])}: {d['reason'][:40]}"
+    reason = d["reason"] if len(d["reason"]) <= 40 else d["reason"][:39] + "…"
+    return f"{what}, {d['by']} {_when(d['at'])}: {reason}"
 
 
 def queue_text(data: dict[str, Any], stations: list[Any], show_all: bool) -> str:

@@ -113,3 +113,17 @@ def test_the_queue_gives_the_figures_behind_each_flag(same_day) -> None:
         fig = st.figures["short-span"]
         assert 0 < fig["span_h"] < fig["window_h"]
     assert all(s.last is None for s in review.stations)  # nothing decided yet
+
+
+def test_a_long_reason_is_cut_visibly_in_the_table():
+    from datetime import UTC, datetime
+
+    from archive.cli.review import _last
+
+    d = {"kind": "ack-flag", "flag": "moved", "by": "data manager",
+         "at": datetime(2025, 4, 8, 6, 30, tzinfo=UTC)}
+    short = _last(d | {"reason": "kicked by cattle"})
+    assert short.endswith(": kicked by cattle")
+    long = _last(d | {"reason": "kicked by cattle during the night; each part holds for its time"})
+    assert long.endswith(": kicked by cattle during the night; each…")
+    assert len(long.split(": ", 1)[1]) == 40
