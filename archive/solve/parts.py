@@ -48,25 +48,24 @@ def used_indices(deployments: pa.Table, stations: pa.Table | None = None,
     point = [deployments["point"].to_numpy().astype(np.float64)]
     index = [occupation_array(deployments)]
     occupied = [np.ones(deployments.num_rows, dtype=bool)]
-    gone = list(retired)
-    if gone:
-        line.append(np.array([float(r["line"]) for r in gone]))
-        point.append(np.array([float(r["point"]) for r in gone]))
-        index.append(np.array([int(r["index"]) for r in gone], dtype=np.int64))
-        occupied.append(np.zeros(len(gone), dtype=bool))
+    part_of = [np.full(deployments.num_rows, -1, dtype=np.int64)]
+
+    def add(rows: list[dict[str, Any]], owner: str | None = None) -> None:
+        """Entries given as dicts (line, point, index; ``owner`` names the occupation
+        whose later part keeps the index), none of them an occupation of the log."""
+        line.append(np.array([float(r["line"]) for r in rows]))
+        point.append(np.array([float(r["point"]) for r in rows]))
+        index.append(np.array([int(r["index"]) for r in rows], dtype=np.int64))
+        occupied.append(np.zeros(len(rows), dtype=bool))
+        part_of.append(np.array([int(r[owner]) if owner else -1 for r in rows],
+                                dtype=np.int64))
+
+    if gone := list(retired):
+        add(gone)
     if stations is not None and stations.num_rows:
-        line.append(stations["line"].to_numpy().astype(np.float64))
-        point.append(stations["point"].to_numpy().astype(np.float64))
-        index.append(stations["index"].to_numpy().astype(np.int64))
-        occupied.append(np.zeros(stations.num_rows, dtype=bool))
-    part_of = [np.full(sum(len(x) for x in index), -1, dtype=np.int64)]
-    kept = list(later_parts)
-    if kept:
-        line.append(np.array([float(r["line"]) for r in kept]))
-        point.append(np.array([float(r["point"]) for r in kept]))
-        index.append(np.array([int(r["index"]) for r in kept], dtype=np.int64))
-        occupied.append(np.zeros(len(kept), dtype=bool))
-        part_of.append(np.array([int(r["occupation"]) for r in kept], dtype=np.int64))
+        add(stations.select(["line", "point", "index"]).to_pylist())
+    if kept := list(later_parts):
+        add(kept, "occupation")
     return pa.table([pa.array(np.concatenate(x))
                      for x in (line, point, index, occupied, part_of)], schema=USED_SCHEMA)
 
