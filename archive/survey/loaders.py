@@ -109,7 +109,8 @@ def delivered_later_parts(arc, survey_id: int, earlier: list[dict[str, Any]] | t
         hashes = s.scalars(select(Delivery.final_hash).where(Delivery.survey_id == survey_id)
                            .order_by(Delivery.id)).all()
     cols = ["line", "point", "occupation", "part", "index"]
-    for h in dict.fromkeys(hashes):  # oldest first: the latest delivery has the last word
+    # each table once, in the order of its latest delivery: the latest has the last word
+    for h in list(dict.fromkeys(reversed(hashes)))[::-1]:
         t = arc.objects.read_table(h)
         if not set(cols) <= set(t.column_names):
             continue  # delivered before parts had indices of their own
