@@ -112,9 +112,11 @@ def _concat(a: Records, b: Records) -> Records:
 
 def _number_group(new: list[int], rec: Records, earlier: list[int], erec: Records | None,
                   eocc: np.ndarray | None, is_retired: np.ndarray | None, reserved: set[int],
-                  out: np.ndarray, matched: np.ndarray) -> None:
+                  out: np.ndarray, matched: np.ndarray, later: frozenset[int] = frozenset()) -> None:
     """Number the records ``new`` (indices into ``rec``, in time order) of one line/point
-    against the ``earlier`` occupations there (indices into ``erec``)."""
+    against the ``earlier`` occupations there (indices into ``erec``); ``later`` holds the
+    indices moved nodes' later parts were delivered under there, which no new occupation
+    takes, not even as its own station index."""
     taken: set[int] = set()
     kept: dict[int, int] = {}
     if erec is not None and earlier:
@@ -141,13 +143,14 @@ def _number_group(new: list[int], rec: Records, earlier: list[int], erec: Record
                 matched[best] = True
     used = set(kept.values())
     before = {int(eocc[j]) for j in earlier} if eocc is not None else set()
-    taken_idx = used | before | reserved | {int(rec.index[i]) for i in new}
+    taken_idx = used | before | reserved | set(later) | {int(rec.index[i]) for i in new}
     for i in new:
         if i in kept:
             out[i] = kept[i]
             continue
         own = int(rec.index[i])
-        k = own if own not in used and own not in before else max(taken_idx) + 1
+        k = (own if own not in used and own not in before and own not in later
+             else max(taken_idx) + 1)
         used.add(k)
         taken_idx.add(k)
         out[i] = k
@@ -171,14 +174,17 @@ def station_codes(line: np.ndarray, point: np.ndarray) -> np.ndarray:
 def number_occupations(rec: Records, earlier: Records | None = None,
                        earlier_occ: np.ndarray | None = None, *,
                        retired: np.ndarray | None = None,
-                       reserved: dict[tuple[float, float], set[int]] | None = None
+                       reserved: dict[tuple[float, float], set[int]] | None = None,
+                       later: dict[tuple[float, float], set[int]] | None = None
                        ) -> Numbering:
     """The delivered point index of every record (see the module doc).
 
     ``earlier``/``earlier_occ`` are the occupations numbered before (the previous version's
     records, then the retired ones, ``retired`` marking those) with their indices; an index
     any of them held is never given to a new occupation. ``reserved`` holds the point
-    indices the preplot uses at each (line, point), which a later occupation never takes.
+    indices the preplot uses at each (line, point), which a later occupation never takes;
+    ``later`` those moved nodes' later parts were delivered under, which no occupation
+    takes (a record whose own index is one of them is numbered above them).
     Only lines/points with more than one record, or with an earlier numbering other than
     the station index, are numbered one by one; the rest keep their station's index.
     """
@@ -201,6 +207,10 @@ def number_occupations(rec: Records, earlier: Records | None = None,
             busy |= np.array([(a, b) in odd for a, b in zip(rec.line.tolist(),
                                                              rec.point.tolist(),
                                                              strict=True)], dtype=bool)
+    if later:  # a record whose own index a delivered later part holds is numbered too
+        busy |= np.array([int(k) in later.get((float(a), float(b)), ())
+                          for a, b, k in zip(rec.line.tolist(), rec.point.tolist(),
+                                             rec.index.tolist(), strict=True)], dtype=bool)
     todo = np.flatnonzero(busy)
     if len(todo):
         todo = todo[np.lexsort((rec.order[todo], rec.start[todo], rec.point[todo],
@@ -211,7 +221,8 @@ def number_occupations(rec: Records, earlier: Records | None = None,
         is_ret = retired if retired is not None else np.zeros(n_earlier, dtype=bool)
         for k, members in groups.items():
             _number_group(members, rec, groups_earlier.get(k, []), earlier, earlier_occ,
-                          is_ret, (reserved or {}).get(k, set()), out, continued)
+                          is_ret, (reserved or {}).get(k, set()), out, continued,
+                          frozenset((later or {}).get(k, ())))
     if n_earlier:  # a single record that keeps its station index continues its match
         lone = np.flatnonzero(~busy)
         if len(lone):
@@ -278,10 +289,11 @@ def number_log(table: pa.Table, previous: pa.Table | None = None,
         for a, b, k in zip(preplot["line"].to_pylist(), preplot["point"].to_pylist(),
                            preplot["index"].to_pylist(), strict=True):
             reserved.setdefault((float(a), float(b)), set()).add(int(k))
+    later: dict[tuple[float, float], set[int]] = {}
     for p in later_parts:
-        reserved.setdefault((float(p["line"]), float(p["point"])), set()).add(int(p["index"]))
+        later.setdefault((float(p["line"]), float(p["point"])), set()).add(int(p["index"]))
     numbered = number_occupations(rec, earlier, earlier_occ, retired=is_retired,
-                                  reserved=reserved)
+                                  reserved=reserved, later=later)
     gone: list[dict[str, Any]] = []
     if earlier is not None:
         for j in np.flatnonzero(~numbered.continued).tolist():

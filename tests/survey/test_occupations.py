@@ -207,3 +207,22 @@ def test_a_station_occupied_beyond_the_sps_digit_is_a_warning_and_beyond_int8_re
     with pytest.raises(InputError, match="more than 127 occupations"):
         number_occupations(many, "deployments.csv")
     assert np.all(np.diff(with_occupations(_log(rows))["occupation"].to_numpy()) == 1)
+
+
+def test_an_index_a_later_part_was_delivered_under_is_never_an_occupations():
+    # 1001/5002 was occupied once by N1, which moved: its later part was delivered as
+    # index 2 (docs/delivery.md, moved parts). A later log adds N2 there, once with no
+    # index column (it would be 2) and once naming index 2 outright; and a log where a
+    # single record at 1001/5003 names the index 3 a later part holds there.
+    v1 = with_occupations(_log([("N1", 1001, 5002, 0.0, 20.0)]))
+    kept = [{"line": 1001.0, "point": 5002.0, "occupation": 1, "index": 2},
+            {"line": 1001.0, "point": 5003.0, "occupation": 1, "index": 3}]
+    rows = [("N1", 1001, 5002, 0.0, 20.0), ("N2", 1001, 5002, 30.0, 50.0)]
+    for index in (None, [1, 2]):
+        t, _ = number_log(_log(rows, index), v1, later_parts=kept)
+        assert _numbers(t) == {("N1", 1001.0, 5002.0): 1, ("N2", 1001.0, 5002.0): 3}
+    t, _ = number_log(_log([("N5", 1001, 5003, 0.0, 20.0)], [3]), None, later_parts=kept)
+    assert _numbers(t) == {("N5", 1001.0, 5003.0): 4}
+    # without kept indices the numbering is the plain rule
+    t, _ = number_log(_log(rows), v1)
+    assert _numbers(t) == {("N1", 1001.0, 5002.0): 1, ("N2", 1001.0, 5002.0): 2}
