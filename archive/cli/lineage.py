@@ -101,7 +101,7 @@ def _delivered_as(part: dict[str, Any]) -> str:
 def _station_text(t: dict[str, Any]) -> str:
     st = t["station"]
     occs = t["occupations"]
-    parts = sum(len(o.get("parts_delivered") or []) for o in occs)
+    parts = sum(1 for o in occs if o.get("parts_delivered"))  # one later part a moved node
     out = [f"station {station_text(st['line'], st['point'])}: {len(occs)} occupation(s)"
            + (" (each delivered under its own point index)" if len(occs) > 1 else "")
            + (f"; {parts} later part(s) of a moved node delivered under an index of their "

@@ -97,9 +97,13 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     records = station_records(arc, survey_id, line, point)
     if node is not None:
         records = [r for r in records if str(r["record"]["node"]) == str(node)]
-    run = get_run(arc, survey_id, records[-1]["run"] if records else None)
-    solved = [r for r in rows_at(run_occupations(arc, run), line, point, None, node)
-              .to_pylist() if r["kind"] == "logged"]
+
+    def solved_rows(ref: str | None) -> tuple[Any, list[dict[str, Any]]]:
+        run = get_run(arc, survey_id, ref)
+        return run, [r for r in rows_at(run_occupations(arc, run), line, point, None, node)
+                     .to_pylist() if r["kind"] == "logged"]
+
+    run, solved = solved_rows(records[-1]["run"] if records else None)
 
     def occupation(k: int, record: dict[str, Any] | None = None) -> int:
         """The occupation of delivered index ``k`` (the record's own, when it says)."""
@@ -111,17 +115,20 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     if node is not None:
         edits = [e for e in edits if edit_node(e) in (None, str(node))]
     if index is not None:
-        wanted = occupation(int(index), next((r["record"] for r in records
+        # the occupation the index names now: that of its latest record (an index a later
+        # part once had may since be an occupation's), else of the run's rows
+        wanted = occupation(int(index), next((r["record"] for r in reversed(records)
                                               if r["record"]["index"] == int(index)), None))
         records = [r for r in records
                    if occupation(int(r["record"]["index"]), r["record"]) == wanted]
+        if records and records[-1]["run"] != run.id:  # the run behind its latest delivery
+            run, solved = solved_rows(records[-1]["run"])
         solved = [r for r in solved if r["occupation"] == wanted]
-    delivered = by_occupation(records)
-    occ_of = {o["index"]: occupation(o["index"], o["delivered"]["record"]) for o in delivered}
+    occ_of_record = [occupation(int(r["record"]["index"]), r["record"]) for r in records]
+    keys = sorted({int(r["occupation"]) for r in solved if r["occupation"] is not None}
+                  | set(occ_of_record))
     if index is not None:
-        indices = {wanted} | set(occ_of) | {int(r["point_index"]) for r in solved
-                                            if r["delivered"] and r["point_index"]}
-        edits = [e for e in edits if e["index"] in indices]
+        edits = [e for e in edits if e["index"] == wanted]
     if not solved and not records and not edits:
         which = "".join(f" {k} {v}" for k, v in (("index", index), ("node", node)) if v)
         raise UsageError(f"station {station_text(line, point)}{which} is in no run, delivery or edit "
@@ -134,15 +141,13 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
     by = solved_by(arc, run, {r["node"] for r in solved})
     for r in solved:
         r["solved_by"] = by[str(r["node"])]  # an earlier run when its rows were reused
-    keys = sorted({int(r["occupation"]) for r in solved if r["occupation"] is not None}
-                  | set(occ_of.values()))
     occupations = []
     for k in keys:
         rows = [r for r in solved if r["occupation"] == k]
-        mine = [o for o in delivered if occ_of[o["index"]] == k]
+        # its records grouped by the index each was delivered under (edits name the
+        # occupation by its own index)
+        mine = by_occupation([r for r, o in zip(records, occ_of_record, strict=True) if o == k])
         past = next((o for o in mine if o["index"] == k), mine[0] if mine else None)
-        own = {k} | {o["index"] for o in mine} | {int(r["point_index"]) for r in rows
-                                                   if r["delivered"] and r["point_index"]}
         fixes = {"fixes": {}, "fixes_by_part": [], "raw_files": []}
         if rows and cloud is not None:
             part = cloud.filter(pc.fill_null(pc.equal(cloud["occupation"], k), False))
@@ -159,7 +164,7 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
             "solution": [_solution_row(r) for r in rows],
             "fixes": fixes["fixes"], "fixes_by_part": fixes["fixes_by_part"],
             "raw_files": fixes["raw_files"],
-            "edits": [e for e in edits if e["index"] in own],
+            "edits": [e for e in edits if e["index"] == k],
         })
     return plain({
         "station": {"line": float(line), "point": float(point), "index": index, "node": node},
