@@ -119,10 +119,11 @@ class CsvColumns:
         return pa.array(parsed.dt.as_unit("us"), type=pa.timestamp("us", tz="UTC"))
 
 
-_DATE = re.compile(r"\d{4}-\d{2}-\d{2}(?:$|[T ])")
-"""The start of an ISO 8601 calendar date: year, month and day."""
-_DATE_TIME = re.compile(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}")
-"""The start of an ISO 8601 date and time of day: down to the minute at least."""
+_DATE = re.compile(r"\d{4}-?\d{2}-?\d{2}(?:$|[T ])")
+"""The start of an ISO 8601 calendar date: year, month and day (extended or basic)."""
+_DATE_TIME = re.compile(r"(?:\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}|\d{8}T\d{4})")
+"""The start of an ISO 8601 date and time of day, down to the minute at least, in the
+extended (2024-05-01T06:30) or the basic format (20240501T0630)."""
 
 
 def read_csv_columns(
@@ -131,8 +132,14 @@ def read_csv_columns(
     required: tuple[str, ...],
     optional: tuple[str, ...] = (),
     mapping: dict[str, str] | None = None,
+    *,
+    whole_last_record: bool = False,
 ) -> CsvColumns:
     """Read a CSV file with a header row into string columns of the wanted fields.
+
+    With ``whole_last_record``, a file that ends without a line break in a record short of
+    the header's fields is refused as cut short (where an empty last field means something,
+    as an empty retrieval time does in a deployment log).
 
     ``mapping`` maps a field to the header that holds it (default: the field's own name);
     headers match case-insensitively and ignoring surrounding blanks. Blank records are
@@ -166,7 +173,8 @@ def read_csv_columns(
                                   + (f" and optionally {','.join(optional)}" if optional else ""),
                          hint="name the columns with --columns field=Header if they differ")
     lines = _physical_lines(df)
-    _refuse_cut_record(data, path, len(df.columns), lines)
+    if whole_last_record:
+        _refuse_cut_record(data, path, len(df.columns), lines)
     if picked:
         filled = np.zeros(len(df), dtype=bool)
         for col in df.columns:
@@ -179,22 +187,23 @@ def read_csv_columns(
 def _refuse_cut_record(data: bytes, path: str, n_fields: int, lines: np.ndarray) -> None:
     """Refuse a file that ends without a line break in a record with fewer fields than the
     header: the file was cut short (a copy interrupted, a download stopped) and the record's
-    last fields are lost, not empty. (A record short of fields elsewhere is left to the
-    fields' own checks: writers that drop trailing empty fields exist.)"""
+    last fields are lost, not empty. The last record is read whole from the physical line
+    it starts on (a quoted field may hold line breaks; LF, CRLF or CR line ends). A record
+    cut just after a field separator cannot be told from one whose last field is empty."""
     if not data or data.endswith((b"\n", b"\r")) or not len(lines):
         return
-    last = data.rsplit(b"\n", 1)[-1].decode("utf-8", errors="replace")
-    if not last.strip():
+    text = data.decode("utf-8-sig", errors="replace").splitlines(keepends=True)
+    start = int(lines[-1]) - 1
+    if not 0 <= start < len(text):
         return
     try:
-        n = len(next(csv.reader([last]), []))
+        n = len(next(csv.reader(io.StringIO("".join(text[start:]), newline="")), []))
     except csv.Error:  # a NUL byte, say: the fields' own checks will name it
         return
     if n < n_fields:
-        raise InputError(path, f"the last record is cut short: {n} of the "
-                               f"header's {n_fields} fields, and the file ends without a "
-                               "line break", line=int(lines[-1]),
-                         expected="a whole record on the last line",
+        raise InputError(path, f"the last record is cut short: {n} of the header's "
+                               f"{n_fields} fields, and the file ends without a line break",
+                         line=int(lines[-1]), expected="a whole record on the last line",
                          hint="the file was probably truncated in a copy or download: "
                               "load a complete copy")
 

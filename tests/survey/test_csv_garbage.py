@@ -60,15 +60,32 @@ def test_a_deployment_time_needs_a_time_of_day():
                          "dep.csv").table
     assert t["deployed"].to_pylist()[1].isoformat() == "2025-04-07T13:07:00+00:00"
     assert t["retrieved"].to_pylist()[1] is None  # still in the ground
+    # the basic format (ISO 8601 section 4.3.2) is a date and time too; its bare date is not
+    t = read_deployments((DEP_OK + "N102,1001,5002,20250407T140744Z,\n").encode(),
+                         "dep.csv").table
+    assert t["deployed"].to_pylist()[1].isoformat() == "2025-04-07T14:07:44+00:00"
+    assert "20250407" in str(_refusal((DEP_OK + "N102,1001,5002,20250407,\n").encode()))
 
 
 def test_a_file_cut_inside_its_last_record_is_refused():
     cut = (DEP_OK + "N102,1001,5002,2025-04-07T14:07:44Z").encode()  # retrieval lost
-    exc = _refusal(cut)
-    assert exc.line == 3 and "cut short: 4 of the header's 5 fields" in str(exc)
-    # the same record whole, or ending without a line break but with every field, loads
-    for data in (cut + b",\n", cut + b",2025-04-07T23:05:07Z"):
-        assert read_deployments(data, "dep.csv").table.num_rows == 2
+    for ends in (b"\n", b"\r\n", b"\r"):  # LF, CRLF and CR line ends
+        exc = _refusal(cut.replace(b"\n", ends))
+        assert exc.line == 3 and "cut short: 4 of the header's 5 fields" in str(exc)
+        # the same record whole, or ending without a line break but with every field, loads
+        for data in (cut + b",\n", cut + b",2025-04-07T23:05:07Z"):
+            assert read_deployments(data.replace(b"\n", ends), "dep.csv").table.num_rows == 2
+    # a quoted field holding a line break in a whole last record is not a cut
+    quoted = (DEP_OK.replace("retrieved_utc", "retrieved_utc,note")
+              .replace("23:02:30Z", '23:02:30Z,"ok"')
+              + 'N102,1001,5002,2025-04-07T14:07:44Z,,"found on its side\nset upright"')
+    t = read_deployments(quoted.encode(), "dep.csv").table
+    assert t.num_rows == 2 and t["src_line"].to_pylist() == [2, 3]
+
+
+def test_a_control_file_may_end_without_its_optional_fields():
+    data = (HEADERS["control"] + "1001,5001,583204.1,4062396.9,407.9").encode()
+    assert read_control(data, "ctl.csv", "csv").table.num_rows == 1
 
 
 def test_a_control_point_may_carry_a_survey_date_alone():
