@@ -117,10 +117,20 @@ def _current(arc: Archive, survey_id: int, kind: str) -> InputVersion | None:
             .order_by(InputVersion.version.desc()).limit(1)).first()
 
 
-def _by_hash(arc: Archive, survey_id: int, kind: str, h: str | None) -> InputVersion | None:
+def _by_hash(arc: Archive, survey_id: int, kind: str, h: str | None,
+             version: int | None = None) -> InputVersion | None:
+    """The input version a run read: the ``version`` its manifest names when that version
+    holds the hash (two versions may hold the same table with different notes kept beside
+    it, such as the point indices later parts keep), else the oldest that holds it."""
     if h is None:
         return None
     with arc.session() as s:
+        if version is not None:
+            v = s.scalars(select(InputVersion).where(
+                InputVersion.survey_id == survey_id, InputVersion.kind == kind,
+                InputVersion.version == int(version))).first()
+            if v is not None and h in (v.table_hash, v.source_hash):
+                return v
         return s.scalars(select(InputVersion).where(
             InputVersion.survey_id == survey_id, InputVersion.kind == kind,
             (InputVersion.table_hash == h) | (InputVersion.source_hash == h))
@@ -210,9 +220,11 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
         sdict = manifest["survey"]
         ins = manifest["inputs"]
         st_hash, dep_hash, dem_hash = ins["stations"], ins["deployments"], ins["dem"]
-        st_v, dep_v = (_by_hash(arc, survey_id, "stations", st_hash),
-                       _by_hash(arc, survey_id, "deployments", dep_hash))
-        dem_v = _by_hash(arc, survey_id, "dem", dem_hash)
+        recorded = manifest.get("input_versions") or {}
+        st_v, dep_v = (_by_hash(arc, survey_id, "stations", st_hash, recorded.get("stations")),
+                       _by_hash(arc, survey_id, "deployments", dep_hash,
+                                recorded.get("deployments")))
+        dem_v = _by_hash(arc, survey_id, "dem", dem_hash, recorded.get("dem"))
         edits = manifest["edits"]
     stations = arc.objects.read_table(st_hash)
     # occupations are numbered over the whole log, before any selection or partition

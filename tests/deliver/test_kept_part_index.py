@@ -74,3 +74,49 @@ def test_a_delivered_later_part_keeps_its_index(tmp_path):
         assert reproduce(arc, run2, sid)["identical"]
     finally:
         arc.close()
+
+
+def test_a_run_is_reproduced_from_the_log_version_it_read(tmp_path):
+    # v2 adds an occupation before anything is delivered (the later part is then numbered
+    # above it, 3), a delivery carries the part as 3, and v3 is the original file again:
+    # the same table as v1, but its version keeps index 3 for the part. A recompute of the
+    # run solved from v3 must read v3's notes, not v1's (which would give the part 2).
+    arc, sid, run1, sc = scenario_archive(tmp_path, seed=11, dem=True)
+    try:
+        moved = next(p for p in sc.problems if p["kind"] == "moved")
+        line, point = float(moved["line"]), float(moved["point"])
+        dep = _rows(sc.deployments)
+        ours = next(r for r in dep if (float(r["line"]), float(r["point"])) == (line, point))
+        later = datetime.fromisoformat(ours["retrieved_utc"].replace("Z", "+00:00"))
+        extra = {**ours, "node": "KF-LATE", "deployed_utc":
+                 (later + timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M:%SZ"),
+                 "retrieved_utc": ""}
+        v2 = tmp_path / "deployments-v2.csv"
+        with open(v2, "w", newline="", encoding="utf-8") as fh:
+            w = csv.DictWriter(fh, fieldnames=list(dep[0]))
+            w.writeheader()
+            w.writerows([*dep, extra])
+        load_input(arc, sid, "deployments", v2)
+        run2 = solve_survey(arc, sid).run_id
+        deliver(arc, sid, run2, "csv", tmp_path / "d2.csv", RECIPIENT, allow_flags=True)
+        load_input(arc, sid, "deployments", sc.deployments)
+        v3, _ = current_input(arc, sid, "deployments")
+        v1 = [v for v in _versions(arc, sid) if v.version == 1][0]
+        assert v3.table_hash == v1.table_hash
+        run3 = solve_survey(arc, sid).run_id
+        part = [r for r in _station(run_occupations(arc, get_run(arc, sid, run3)), line, point)
+                if r["delivered"] and r["part"] == 2]
+        assert [r["point_index"] for r in part] == [3]  # as delivered
+        assert reproduce(arc, run3, sid)["identical"]
+    finally:
+        arc.close()
+
+
+def _versions(arc, sid):
+    from sqlalchemy import select
+
+    from archive.store.models import InputVersion
+
+    with arc.session() as s:
+        return s.scalars(select(InputVersion).where(InputVersion.survey_id == sid,
+                                                   InputVersion.kind == "deployments")).all()
