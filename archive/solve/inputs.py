@@ -255,7 +255,7 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
     datum = json.loads(dem_v.meta or "{}").get("vertical_datum", "") if dem_v else ""
     occupations = (json.loads(dep_v.meta or "{}").get("occupations") or {}) if dep_v else {}
     retired = occupations.get("retired") or []
-    later_parts = occupations.get("later_parts") or []
+    later_parts = _later_parts(dep_v, occupations, st_v)
     return SolveInputs(
         survey=sdict, stations=stations, stations_hash=st_hash, deployments=deployments,
         deployments_hash=dep_hash, dem_hash=dem_hash, dem_datum=datum,
@@ -264,6 +264,22 @@ def survey_inputs(arc: Archive, survey_id: int, selection: dict[str, Any], *,
                   "dem": dem_v.version if dem_v else None},
         fix_files=files, edits=edits, station_keys=keys,
         used=used_indices(dep_all, stations, retired, later_parts))
+
+
+def _later_parts(dep_v: InputVersion | None, occupations: dict[str, Any],
+                 st_v: InputVersion | None) -> list[dict[str, Any]]:
+    """The indices moved nodes' later parts keep (as delivered), as the deployment log's and
+    the preplot's versions keep them (each read them from the deliveries when it was
+    loaded); where both name a part, the version loaded later says."""
+    got = [(v, parts) for v, parts in (
+        (dep_v, occupations.get("later_parts") or []),
+        (st_v, json.loads(st_v.meta or "{}").get("later_parts") or [] if st_v else []))
+        if v is not None and parts]
+    got.sort(key=lambda vp: (vp[0].created_at, vp[0].id))
+    kept: dict[tuple[float, float, int], dict[str, Any]] = {}
+    for _, parts in got:
+        kept.update({(p["line"], p["point"], p["occupation"]): p for p in parts})
+    return [kept[k] for k in sorted(kept)]
 
 
 def with_coverage(deployments: pa.Table, logs: Sequence[Any]) -> pa.Table:

@@ -33,7 +33,29 @@ def parse_stations(ctx: LoadContext) -> ParsedInput:
     check_dropped(parsed.table, current[1] if current else None,
                   current[0].version if current else None, str(ctx.path),
                   bool(ctx.options.get("replace")), parsed.meta)
+    # a preplot raises M for moved nodes' later parts too: those already delivered keep
+    # their index, kept with this version as with the deployment log's
+    earlier = json.loads(current[0].meta or "{}").get("later_parts", []) if current else []
+    later = delivered_later_parts(ctx.arc, ctx.survey.id, earlier)
+    if later:
+        parsed.meta["later_parts"] = later
+        parsed.warnings += _preplot_on_later_parts(parsed.table, later)
     return parsed
+
+
+def _preplot_on_later_parts(table, later: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """A warning for each preplot station whose point index a moved node's later part was
+    delivered under (the two share a key until one of them is resolved)."""
+    from archive.survey.keys import station_text
+    from archive.survey.parsed import problem
+
+    held = {(p["line"], p["point"], p["index"]) for p in later}
+    return [problem("later-part-index", f"station {station_text(a, b, k)} has the point index "
+                    "a moved node's later part was delivered under", int(n))
+            for a, b, k, n in zip(table["line"].to_pylist(), table["point"].to_pylist(),
+                                  table["index"].to_pylist(), table["src_line"].to_pylist(),
+                                  strict=True)
+            if (float(a), float(b), int(k)) in held]
 
 
 def parse_control(ctx: LoadContext) -> ParsedInput:

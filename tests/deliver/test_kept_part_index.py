@@ -72,6 +72,27 @@ def test_a_delivered_later_part_keeps_its_index(tmp_path):
             (node, 1, 1), (node, 2, 2)]
         # the run is still what its archived inputs give
         assert reproduce(arc, run2, sid)["identical"]
+
+        # a preplot that gives the station a point index 2 of its own raises M too: the
+        # part keeps 2 (the load warns that the two share the key)
+        _, stations = current_input(arc, sid, "stations")
+        pre = tmp_path / "preplot-v2.csv"
+        with open(pre, "w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh)
+            w.writerow(["line", "point", "index", "easting", "northing", "elevation"])
+            for r in stations.to_pylist():
+                w.writerow([r["line"], r["point"], r["index"], r["easting"], r["northing"],
+                            r["elevation"]])
+                if (r["line"], r["point"], r["index"]) == (line, point, 1):
+                    w.writerow([line, point, 2, r["easting"] + 5.0, r["northing"],
+                                r["elevation"]])
+        res = load_input(arc, sid, "stations", pre)
+        assert [w["code"] for w in res.warnings] == ["later-part-index"]
+        run3 = solve_survey(arc, sid).run_id
+        rows = [r for r in _station(run_occupations(arc, get_run(arc, sid, run3)), line, point)
+                if r["delivered"] and r["node"] == node]
+        assert sorted((r["part"], r["point_index"]) for r in rows) == [(1, 1), (2, 2)]
+        assert reproduce(arc, run3, sid)["identical"]
     finally:
         arc.close()
 
