@@ -133,10 +133,10 @@ def delivered_later_parts(arc, survey_id: int, earlier: list[dict[str, Any]] | t
     cols = ["line", "point", "occupation", "part", "index"]
     # each table once, in the order of its latest delivery: the latest has the last word
     for h in list(dict.fromkeys(reversed(hashes)))[::-1]:
-        t = arc.objects.read_table(h)
-        if not set(cols) <= set(t.column_names):
+        f = arc.objects.parquet_file(h)  # checked against its hash; five columns decoded
+        if not set(cols) <= set(f.schema_arrow.names):
             continue  # delivered before parts had indices of their own
-        t = t.select(cols)
+        t = f.read(columns=cols)
         t = t.filter(pc.fill_null(pc.and_(pc.equal(t["part"], 2),
                                           pc.not_equal(t["index"], t["occupation"])), False))
         for r in t.to_pylist():  # later parts only: a few per survey
