@@ -294,8 +294,8 @@ def write_report(arc: Archive, survey_id: int, run_ref: str | None, path: str | 
     renamed, so a failure never leaves half a report.
     """
     path = Path(path)
-    check_target(path, force, "a report is not archived: the archive can write it again "
-                              "from the run")
+    check_target(path, force, "a report is not archived; written again, it shows the run "
+                              "with the edits in force then")
     t0 = time.perf_counter()
     data = load_run_data(arc, survey_id, run_ref)
     result = qc_of(data, tolerance)

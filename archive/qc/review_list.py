@@ -148,6 +148,11 @@ def records_with_edits(data: RunData) -> tuple[int, int]:
             n, rejected = n - int(k), rejected + 1
         elif "set-position" in kinds:
             n -= int(k) - 1
+    have = {(float(a), float(b), int(c)) for a, b, c in per.index}
+    for key, edits in data.decisions.items():  # a position set where the run has none
+        kinds = {e.kind for e in edits}
+        if key not in have and "set-position" in kinds and "reject-station" not in kinds:
+            n += 1
     return n, rejected
 
 

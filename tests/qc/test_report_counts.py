@@ -62,6 +62,9 @@ def test_records_to_deliver_follow_the_edits():
     assert records_with_edits(data) == (4, 1)
     data.decisions[(1001.0, 5001.0, 1)] = [_edit(8, "set-position", 5001.0, "pegged")]
     assert records_with_edits(data) == (3, 1)  # the moved node is one record again
+    # a position set for an occupation the run did not position is a record of its own
+    data.decisions[(1001.0, 5009.0, 1)] = [_edit(9, "set-position", 5009.0, "RTK shot")]
+    assert records_with_edits(data) == (4, 1)
 
 
 def test_review_rows_carry_their_delivered_index():
