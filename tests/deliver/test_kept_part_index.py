@@ -12,6 +12,7 @@ from __future__ import annotations
 import csv
 import json
 from datetime import datetime, timedelta
+from pathlib import Path
 
 import pyarrow.compute as pc
 
@@ -35,6 +36,22 @@ def _station(table, line: float, point: float) -> list[dict]:
     return table.filter(mask).to_pylist()
 
 
+def _with_late_node(sc, line: float, point: float, folder: Path) -> Path:
+    """The scenario's deployment log plus node KF-LATE laid at (line, point) an hour after
+    the node there came up, still out: a second version of the log, written to ``folder``."""
+    dep = _rows(sc.deployments)
+    ours = next(r for r in dep if (float(r["line"]), float(r["point"])) == (line, point))
+    later = datetime.fromisoformat(ours["retrieved_utc"].replace("Z", "+00:00"))
+    extra = {**ours, "node": "KF-LATE", "deployed_utc":
+             (later + timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M:%SZ"), "retrieved_utc": ""}
+    path = folder / "deployments-v2.csv"
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(dep[0]))
+        w.writeheader()
+        w.writerows([*dep, extra])
+    return path
+
+
 def test_a_delivered_later_part_keeps_its_index(tmp_path):
     arc, sid, run_id, sc = scenario_archive(tmp_path, seed=11, dem=True)
     try:
@@ -47,18 +64,7 @@ def test_a_delivered_later_part_keeps_its_index(tmp_path):
         node = first[0]["node"]
 
         # the crew lays another node there after the moved one came up (not harvested yet)
-        dep = _rows(sc.deployments)
-        ours = next(r for r in dep if r["node"] == node)
-        later = datetime.fromisoformat(ours["retrieved_utc"].replace("Z", "+00:00"))
-        extra = {**ours, "node": "KF-LATE", "deployed_utc":
-                 (later + timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M:%SZ"),
-                 "retrieved_utc": ""}
-        v2 = tmp_path / "deployments-v2.csv"
-        with open(v2, "w", newline="", encoding="utf-8") as fh:
-            w = csv.DictWriter(fh, fieldnames=list(dep[0]))
-            w.writeheader()
-            w.writerows([*dep, extra])
-        load_input(arc, sid, "deployments", v2)
+        load_input(arc, sid, "deployments", _with_late_node(sc, line, point, tmp_path))
         version, table = current_input(arc, sid, "deployments")
         kept = json.loads(version.meta)["occupations"]["later_parts"]
         assert {"line": line, "point": point, "occupation": 1, "index": 2} in kept
@@ -106,18 +112,7 @@ def test_a_run_is_reproduced_from_the_log_version_it_read(tmp_path):
     try:
         moved = next(p for p in sc.problems if p["kind"] == "moved")
         line, point = float(moved["line"]), float(moved["point"])
-        dep = _rows(sc.deployments)
-        ours = next(r for r in dep if (float(r["line"]), float(r["point"])) == (line, point))
-        later = datetime.fromisoformat(ours["retrieved_utc"].replace("Z", "+00:00"))
-        extra = {**ours, "node": "KF-LATE", "deployed_utc":
-                 (later + timedelta(hours=1)).strftime("%Y-%m-%dT%H:%M:%SZ"),
-                 "retrieved_utc": ""}
-        v2 = tmp_path / "deployments-v2.csv"
-        with open(v2, "w", newline="", encoding="utf-8") as fh:
-            w = csv.DictWriter(fh, fieldnames=list(dep[0]))
-            w.writeheader()
-            w.writerows([*dep, extra])
-        load_input(arc, sid, "deployments", v2)
+        load_input(arc, sid, "deployments", _with_late_node(sc, line, point, tmp_path))
         run2 = solve_survey(arc, sid).run_id
         deliver(arc, sid, run2, "csv", tmp_path / "d2.csv", RECIPIENT, allow_flags=True)
         load_input(arc, sid, "deployments", sc.deployments)
