@@ -261,6 +261,7 @@ def campaign(
     seed: int,
     backend: str = "sqlite",
     rerun: Callable[[Path], tuple[int, str]] | None = None,
+    window: tuple[float, float] | None = None,
 ) -> Campaign:
     """Measure one uninterrupted run, then ``n`` killed runs each followed by a re-run.
 
@@ -271,7 +272,9 @@ def campaign(
 
     Kill moments: the uninterrupted run gives the whole duration; a second run on its
     finished archive (nothing left to do) gives the start-up cost. Delays are stratified
-    over [0.6 x start-up, 1.05 x whole duration] so most kills land while the command works.
+    over [0.6 x start-up, 1.05 x whole duration] so most kills land while the command works;
+    ``window`` (fractions of the whole duration) moves them, e.g. to the end of a command
+    that writes only there.
     """
     env = child_env()
 
@@ -298,7 +301,9 @@ def campaign(
                            f"{idle.stderr[-2000:]}")
     result = Campaign(name, backend, duration, startup)
     # start-up varies with the machine's load: begin the window well before it ends
-    delays = kill_delays(1.05 * duration, n, seed, start=0.6 * min(startup, duration))
+    lo, hi = ((0.6 * min(startup, duration), 1.05 * duration) if window is None
+              else (window[0] * duration, window[1] * duration))
+    delays = kill_delays(hi, n, seed, start=lo)
     for i, delay in enumerate(delays):
         t1 = time.monotonic()
         # The machine's load changes how long the command takes: when it finished before
@@ -337,13 +342,23 @@ def spread_campaign(name: str, template: ArchiveTemplate, workdir: Path,
     """:func:`campaign`, drawn again with the next seed (up to ``tries`` campaigns, every
     trial kept) while its kills all landed in one phase: on a busy machine the measured
     durations can put every stratified kill in one phase, which tests less than it should
-    but is no fault of the command."""
+    but is no fault of the command. A command that writes only in its last moments (a load
+    records its files in one batch at the end) leaves every kill "before any write": the
+    next campaigns then kill in the last tenth of the run, a little later each time (a
+    kill after the end is drawn again earlier, see :func:`campaign`); one whose kills all
+    came too late kills earlier."""
     result = campaign(name, template, workdir / "0", argv_for, result_of, n=n, seed=seed,
                       backend=backend, rerun=rerun)
     for k in range(1, tries):
-        if len(result.phases()) >= 2:
+        seen = result.phases()
+        if len(seen) >= 2:
             break
+        window = None
+        if set(seen) == {"before any write"}:
+            window = (0.82 + 0.06 * k, 0.96 + 0.03 * k)  # (0.88, 0.99), then (0.94, 1.02)
+        elif set(seen) <= {"after the end", "after the last commit"}:
+            window = (0.2, 0.8)
         more = campaign(name, template, workdir / str(k), argv_for, result_of, n=n,
-                        seed=seed + k, backend=backend, rerun=rerun)
+                        seed=seed + k, backend=backend, rerun=rerun, window=window)
         result.trials += more.trials
     return result
