@@ -132,14 +132,11 @@ def read_csv_columns(
     required: tuple[str, ...],
     optional: tuple[str, ...] = (),
     mapping: dict[str, str] | None = None,
-    *,
-    whole_last_record: bool = False,
 ) -> CsvColumns:
     """Read a CSV file with a header row into string columns of the wanted fields.
 
-    With ``whole_last_record``, a file that ends without a line break in a record short of
-    the header's fields is refused as cut short (where an empty last field means something,
-    as an empty retrieval time does in a deployment log).
+    A file that ends without a line break in a record short of the header's fields, whose
+    missing fields the other records fill, is refused as cut short.
 
     ``mapping`` maps a field to the header that holds it (default: the field's own name);
     headers match case-insensitively and ignoring surrounding blanks. Blank records are
@@ -173,8 +170,7 @@ def read_csv_columns(
                                   + (f" and optionally {','.join(optional)}" if optional else ""),
                          hint="name the columns with --columns field=Header if they differ")
     lines = _physical_lines(df)
-    if whole_last_record:
-        _refuse_cut_record(data, path, len(df.columns), lines)
+    _refuse_cut_record(data, path, df, lines)
     if picked:
         filled = np.zeros(len(df), dtype=bool)
         for col in df.columns:
@@ -184,28 +180,31 @@ def read_csv_columns(
     return CsvColumns(path, picked, lines)
 
 
-def _refuse_cut_record(data: bytes, path: str, n_fields: int, lines: np.ndarray) -> None:
+def _refuse_cut_record(data: bytes, path: str, df: pd.DataFrame, lines: np.ndarray) -> None:
     """Refuse a file that ends without a line break in a record with fewer fields than the
-    header: the file was cut short (a copy interrupted, a download stopped) and the record's
-    last fields are lost, not empty. The last record is read whole from the physical line
-    it starts on (a quoted field may hold line breaks; LF, CRLF or CR line ends). A record
-    cut just after a field separator cannot be told from one whose last field is empty."""
-    if not data or data.endswith((b"\n", b"\r")) or not len(lines):
+    header, when the fields it lacks hold values in the other records: the file was cut
+    short (a copy interrupted, a download stopped) and the record's last fields are lost,
+    not empty. (A writer that leaves off trailing fields empty in every record is fine; a
+    record cut just after a field separator cannot be told from one with an empty field.)
+    The file is parsed whole, with any line ends and quoted fields holding line breaks."""
+    if not data or data.rstrip(b" \t").endswith((b"\n", b"\r")) or not len(lines):
         return
-    text = data.decode("utf-8-sig", errors="replace").splitlines(keepends=True)
-    start = int(lines[-1]) - 1
-    if not 0 <= start < len(text):
-        return
+    text = data.decode("utf-8-sig", errors="replace")
     try:
-        n = len(next(csv.reader(io.StringIO("".join(text[start:]), newline="")), []))
+        rows = [r for r in csv.reader(io.StringIO(text, newline="")) if any(f.strip() for f in r)]
     except csv.Error:  # a NUL byte, say: the fields' own checks will name it
         return
-    if n < n_fields:
-        raise InputError(path, f"the last record is cut short: {n} of the header's "
-                               f"{n_fields} fields, and the file ends without a line break",
-                         line=int(lines[-1]), expected="a whole record on the last line",
-                         hint="the file was probably truncated in a copy or download: "
-                              "load a complete copy")
+    n, n_fields = (len(rows[-1]), len(df.columns)) if len(rows) > 1 else (0, 0)
+    if n >= n_fields:
+        return
+    others = df.iloc[:-1, n:].fillna("")
+    if not len(others) or not others.apply(lambda c: c.str.strip().ne("").any()).any():
+        return  # those fields are empty in every other record too
+    raise InputError(path, f"the last record is cut short: {n} of the header's {n_fields} "
+                           "fields, and the file ends without a line break",
+                     line=int(lines[-1]), expected="a whole record on the last line",
+                     hint="the file was probably truncated in a copy or download: "
+                          "load a complete copy")
 
 
 def _physical_lines(df: pd.DataFrame) -> np.ndarray:

@@ -39,7 +39,7 @@ def read_deployments(data: bytes, path: str,
     """Parse a deployment log CSV into DEPLOYMENT_LOG_SCHEMA (no cross-record checks, no
     occupation numbering yet: the loader numbers occupations against the previous version)."""
     mapping = parse_column_mapping(columns, FIELDS)
-    c = read_csv_columns(data, path, REQUIRED, OPTIONAL, mapping, whole_last_record=True)
+    c = read_csv_columns(data, path, REQUIRED, OPTIONAL, mapping)
     if len(c) == 0:
         raise InputError(path, "no deployment records found",
                          expected="one row per deployment under the header")

@@ -92,3 +92,32 @@ def test_a_control_point_may_carry_a_survey_date_alone():
     data = (HEADERS["control"] + "1001,5001,583204.1,4062396.9,407.9,2025-04-02\n").encode()
     t = read_control(data, "ctl.csv", "csv").table
     assert t["surveyed"].to_pylist()[0].isoformat() == "2025-04-02T00:00:00+00:00"
+
+
+def test_whole_files_are_not_taken_for_cut_ones():
+    head = "node,line,point,deployed_utc,retrieved_utc,note\n"
+    rec = "N101,1001,5001,2025-04-07T14:03:33Z,2025-04-07T23:02:30Z,"
+    last = "N102,1001,5002,2025-04-07T14:07:44Z,2025-04-07T23:05:07Z,ok"
+    for note in ('"a\u2028b"', '"a\x0cb"', '"a\x85b"', '"a\x1eb"', '"a\rb"', '"a\nb"'):
+        data = (head + rec + note + "\n" + last).encode()
+        assert read_deployments(data, "dep.csv").table.num_rows == 2, repr(note)
+    # CR line ends with a quoted CR; trailing blanks after the last line end
+    cr = (head + rec + '"a\rb"\n' + last).replace("\n", "\r").encode()
+    assert read_deployments(cr, "dep.csv").table.num_rows == 2
+    assert read_deployments((head + rec + "x\n" + last + "\n   ").encode(),
+                            "dep.csv").table.num_rows == 2
+    # ... and a cut one still is, whatever the line ends
+    cut = (head + rec + '"a\rb"\n' + "N102,1001,5002,2025-04-07T14:07:44Z")
+    for text in (cut, cut.replace("\n", "\r")):
+        assert "cut short" in str(_refusal(text.encode()))
+
+
+def test_a_preplot_cut_inside_a_number_is_refused():
+    data = (b"line,point,index,easting,northing,elevation\n"
+            b"1001,5001,1,583204.1,4062396.9,407.9\n1001,5002,1,583229.1,40623")
+    try:
+        read_stations(data, "pre.csv", "csv")
+    except InputError as exc:
+        assert "cut short: 5 of the header's 6 fields" in str(exc) and exc.line == 3
+    else:
+        raise AssertionError("accepted")
