@@ -121,8 +121,9 @@ def trace_station(arc: Archive, survey_id: int, line: float, point: float,
                                               if r["record"]["index"] == int(index)), None))
         records = [r for r in records
                    if occupation(int(r["record"]["index"]), r["record"]) == wanted]
-        if records and records[-1]["run"] != run.id:  # the run behind its latest delivery
-            run, solved = solved_rows(records[-1]["run"])
+        latest = records[-1]["run"] if records else None  # None: the newest run
+        if latest != run.id:  # the run behind its latest delivery, or the newest
+            run, solved = solved_rows(latest)
         solved = [r for r in solved if r["occupation"] == wanted]
     occ_of_record = [occupation(int(r["record"]["index"]), r["record"]) for r in records]
     keys = sorted({int(r["occupation"]) for r in solved if r["occupation"] is not None}

@@ -14,9 +14,9 @@ of k among the log's occupation indices there (1 for the lowest). So the index d
 on the deployment log and the preplot: the same in every run that reads them whatever moves
 other occupations show, unique at the line and point, and never one an occupation or a
 retired occupation holds. A later part once delivered keeps the index it was delivered
-under: the deployment log's version keeps those indices (``later_parts``, read from the
-deliveries when the log is loaded), a new occupation is numbered above them, and M counts
-them, so other parts never take them either.
+under: the deployment log's and the preplot's versions keep those indices (``later_parts``,
+read from the deliveries when each is loaded; the one loaded later says), a new occupation
+is numbered above them, and M counts them, so other parts never take them either.
 """
 
 from __future__ import annotations

@@ -51,7 +51,9 @@ def _preplot_on_later_parts(table, later: list[dict[str, Any]]) -> list[dict[str
 
     held = {(p["line"], p["point"], p["index"]) for p in later}
     return [problem("later-part-index", f"station {station_text(a, b, k)} has the point index "
-                    "a moved node's later part was delivered under", int(n))
+                    "a moved node's later part was delivered under: the part keeps it, so "
+                    "an occupation or an edit of this station under that index would give "
+                    "two records one key (a delivery refuses that)", int(n))
             for a, b, k, n in zip(table["line"].to_pylist(), table["point"].to_pylist(),
                                   table["index"].to_pylist(), table["src_line"].to_pylist(),
                                   strict=True)

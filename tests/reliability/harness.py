@@ -314,7 +314,7 @@ def campaign(
             if killed:
                 break
             shutil.rmtree(root, ignore_errors=True)
-            delay *= 0.6
+            delay = lo + (delay - lo) * 0.6  # earlier, inside the window
         if not killed:
             root = template.clone(workdir / f"trial-{i:03d}")
             killed, _ = run_killed(argv_for(root), delay, env=env)
