@@ -377,12 +377,6 @@ def unacknowledged_flags(final: pa.Table) -> dict[str, int]:
     """How many stations (occupations, as status, qc and review count) carry each flag
     still unacknowledged: the two records of a moved node count once, with the flags of
     either."""
-    occ = (pc.coalesce(final["occupation"].cast(pa.int64()), final["index"].cast(pa.int64()))
-           if "occupation" in final.column_names else final["index"].cast(pa.int64()))
-    holders: dict[str, set[tuple[float, float, int]]] = {}
-    for line, point, k, text in zip(final["line"].to_pylist(), final["point"].to_pylist(),
-                                    occ.to_pylist(), final["flags"].to_pylist(), strict=True):
-        for f in (text or "").split(";"):  # one pass over the records, not the fixes
-            if f:
-                holders.setdefault(f, set()).add((line, point, k))
-    return {f: len(holders[f]) for f in sorted(holders)}
+    from archive.solve.flags import count_flags
+
+    return dict(sorted(count_flags(final).per_flag.items()))

@@ -168,12 +168,16 @@ def _flag_order(text: str) -> str:
 def station_flags(table: pa.Table) -> pa.Table:
     """One row per station (occupation) with delivered rows, sorted by station: line,
     point, occupation, node (the first given) and its flags (the union over its delivered
-    rows, in the order of ``FLAGS``; "" for none), as :data:`STATION_SCHEMA`."""
+    rows, in the order of ``FLAGS``; "" for none), as :data:`STATION_SCHEMA`. A table
+    without ``delivered`` and ``kind`` (a delivery's final table) is delivered whole."""
     index = table["index"].cast(pa.int64())
     occ = (pc.coalesce(table["occupation"].cast(pa.int64()), index)
            if "occupation" in table.column_names else index)
-    keep = pc.fill_null(pc.and_(pc.fill_null(table["delivered"], False),
-                                pc.equal(table["kind"], "logged")), False)
+    if {"delivered", "kind"} <= set(table.column_names):
+        keep = pc.fill_null(pc.and_(pc.fill_null(table["delivered"], False),
+                                    pc.equal(table["kind"], "logged")), False)
+    else:
+        keep = pa.array(np.ones(table.num_rows, dtype=bool))
     t = pa.table({"line": table["line"].cast(pa.float64()),
                   "point": table["point"].cast(pa.float64()), "occupation": occ,
                   "node": table["node"].cast(pa.string()),

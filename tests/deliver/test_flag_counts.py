@@ -14,6 +14,7 @@ def test_parts_of_a_moved_node_count_once():
         "point": [5001.0, 5001.0, 5002.0, 5002.0, 5001.0],
         "index": pa.array([1, 2, 1, 2], pa.int8()).to_pylist() + [1],
         "occupation": pa.array([1, 1, 1, 2, None], pa.int8()),  # 5002: occupied twice
+        "node": ["N1", "N1", "N2", "N3", "N4"],
         "flags": ["moved", "moved;far-from-plan", "few-fixes", "few-fixes", "moved"],
     })
     # moved: 1001/5001 (two records) and 1002/5001 (no occupation column value: its index);
