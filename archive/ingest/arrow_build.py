@@ -92,3 +92,17 @@ def dictionary_codes(codes: np.ndarray, names: list[str], valid: np.ndarray | No
 def constant_dictionary(value: str, n: int) -> pa.Array:
     """``n`` copies of ``value``, dictionary-encoded."""
     return dictionary_codes(np.zeros(n, np.int32), [value])
+
+
+def values_view(column: pa.Array | pa.ChunkedArray, dtype: np.dtype | str) -> np.ndarray:
+    """The values of a fixed-width column without nulls as a numpy array of ``dtype``
+    (a view of its buffer for one chunk, a copy joining several), read from the buffers:
+    ``to_numpy`` would look for pandas first, as ``pyarrow.array`` does."""
+    dtype = np.dtype(dtype)
+    chunks = column.chunks if isinstance(column, pa.ChunkedArray) else [column]
+    views = [np.frombuffer(c.buffers()[1], dtype=dtype, count=len(c),
+                           offset=c.offset * dtype.itemsize)
+             for c in chunks if len(c)]
+    if not views:
+        return np.zeros(0, dtype)
+    return views[0] if len(views) == 1 else np.concatenate(views)

@@ -78,15 +78,26 @@ def scan_window(data, final: bool, checksummed: bool, arrays: tuple | None = Non
 
 def _epoch_cut(iv: np.ndarray, tod: np.ndarray, a: int, b: int) -> int:
     """Index of the first record of the last epoch starting in records ``a .. b-1`` (it may
-    go on in the next window); ``b`` when they hold no time at all."""
-    kind = iv[ns.S_KIND, a:b]
-    timed = _TIMED[kind] & (iv[ns.S_STATUS, a:b] == ns.ST_ACCEPTED) & (tod[a:b] >= 0)
-    tb = np.flatnonzero(timed)
-    if tb.size == 0:
-        return b
-    t = tod[a:b][tb]
-    change = np.flatnonzero(t[1:] != t[:-1])
-    return a + int(tb[change[-1] + 1] if change.size else tb[0])
+    go on in the next window); ``b`` when they hold no time at all.
+
+    Read from the end in growing tails (64 records, then 16 times more each time): the
+    answer lies in the last few records of a window, and the whole window need not be
+    looked at."""
+    lo, span = b, 64
+    while lo > a:
+        lo = max(a, b - span)
+        kind = iv[ns.S_KIND, lo:b]
+        timed = _TIMED[kind] & (iv[ns.S_STATUS, lo:b] == ns.ST_ACCEPTED) & (tod[lo:b] >= 0)
+        tb = np.flatnonzero(timed)
+        if tb.size:
+            t = tod[lo:b][tb]
+            change = np.flatnonzero(t[1:] != t[:-1])
+            if change.size:  # the last change of time lies in this tail
+                return lo + int(tb[change[-1] + 1])
+            if lo == a:
+                return a + int(tb[0])
+        span *= 16
+    return b
 
 
 def _type_matrix(buf: np.ndarray, at: np.ndarray) -> np.ndarray:

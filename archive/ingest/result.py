@@ -10,7 +10,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
 
-from archive.ingest.arrow_build import coded_strings, constant_strings, from_numpy
+from archive.ingest.arrow_build import coded_strings, constant_strings, from_numpy, values_view
 from archive.ingest.schema import FIX_SCHEMA, REJECT_REASONS, REJECT_SCHEMA
 
 __all__ = ["ParseResult", "constant_strings", "line_texts", "rejects_table", "empty_fixes",
@@ -116,15 +116,16 @@ def empty_rejects() -> pa.Table:
 
 
 def _in_order(table: pa.Table) -> bool:
-    """True when ``table`` is already sorted by time, then raw line (no nulls in either)."""
+    """True when ``table`` is already sorted by time, then raw line (no nulls in either;
+    both 64-bit integers underneath, :data:`archive.ingest.schema.FIX_SCHEMA`)."""
     t, r = table.column("time"), table.column("raw_line")
     if t.null_count or r.null_count:
         return False
-    dt = np.diff(t.cast(pa.int64()).to_numpy())
+    dt = np.diff(values_view(t, np.int64))
     if (dt < 0).any():
         return False
     same = dt == 0
-    return not (same.any() and (np.diff(r.to_numpy())[same] < 0).any())
+    return not (same.any() and (np.diff(values_view(r, np.int64))[same] < 0).any())
 
 
 def sort_fixes(table: pa.Table) -> pa.Table:

@@ -98,3 +98,47 @@ def test_windows_read_ahead_are_the_windows_in_order_and_errors_arrive_in_order(
     gen = read_ahead(file_windows(path, 4096))
     next(gen)
     gen.close()  # stopping early ends the reading thread
+
+
+def _epoch_cut_whole(iv, tod, a, b):
+    """The cut read from every record of the window (the rule of ``_epoch_cut``'s
+    docstring, written out directly)."""
+    from archive.ingest import nmea_scan as ns
+    from archive.ingest.nmea_chunks import _TIMED
+
+    timed = [i for i in range(a, b) if _TIMED[iv[ns.S_KIND, i]]
+             and iv[ns.S_STATUS, i] == ns.ST_ACCEPTED and tod[i] >= 0]
+    if not timed:
+        return b
+    last = timed[-1]
+    first_of_last = last
+    for i in reversed(timed):
+        if tod[i] != tod[last]:
+            break
+        first_of_last = i
+    return first_of_last
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.lists(st.tuples(st.integers(1, 3000), st.booleans()), min_size=0, max_size=8),
+       st.integers(0, 2**32 - 1), st.integers(0, 50))
+def test_epoch_cut_read_from_the_end_matches_the_whole_window(runs, seed, lead):
+    """The cut is found from growing tails of the window: an epoch of thousands of records
+    (a 20 Hz log's window holds many; a run of untimed lines) must give the cut the whole
+    window gives."""
+    from archive.ingest import nmea_scan as ns
+    from archive.ingest.nmea_chunks import _epoch_cut
+
+    rng = np.random.default_rng(seed)
+    n = lead + sum(k for k, _ in runs)
+    iv, tod, _ = ns.record_arrays(np.zeros(0, np.uint8), None, n + 2)
+    kinds = [ns.K_GGA, ns.K_RMC, ns.K_GNS, ns.K_GLL, ns.K_ZDA, ns.K_GSA]
+    iv[ns.S_KIND, :n] = rng.choice(kinds, n)
+    iv[ns.S_STATUS, :n] = np.where(rng.random(n) < 0.9, ns.ST_ACCEPTED, ns.ST_CHECKSUM)
+    at = lead
+    tod[:n] = -1
+    for t, (k, timed) in enumerate(runs, start=1):  # runs of one time each (or untimed)
+        if timed:
+            tod[at:at + k] = t * 1_000_000
+        at += k
+    assert _epoch_cut(iv, tod, lead, n) == _epoch_cut_whole(iv, tod, lead, n)
