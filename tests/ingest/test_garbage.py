@@ -21,20 +21,24 @@ SAMPLE = write_nmea(np.array(["2024-03-01T23:59:58", "2024-03-01T23:59:59",
                     [1.5, 1.6, 1.7], [1.2, 1.3, 1.4])
 
 
-def n_records(data: bytes) -> int:
+def n_records(data: bytes, sentences: bool = True) -> int:
     """Records counted independently of the reader: the lines between line ends (CR, LF or
-    CR LF), plus one for every '$' after the first of a line (a line holding several
-    sentences, joined by a lost line end, gives one record per sentence)."""
+    CR LF), plus, in an NMEA log (``sentences``), one for every '$' after the first of a
+    line (a line holding several sentences, joined by a lost line end, gives one record
+    per sentence; a delimited log has one record a line whatever it holds)."""
     if not data:
         return 0
     parts = re.split(rb"\r\n|\r|\n", data)
     if parts[-1] == b"":
         parts = parts[:-1]
+    if not sentences:
+        return len(parts)
     return sum(1 + max(0, p.count(b"$") - 1) for p in parts)
 
 
-def check(r, data: bytes) -> None:
-    assert r.n_accepted + r.n_rejected + r.n_ignored == r.n_lines == n_records(data)
+def check(r, data: bytes, sentences: bool = True) -> None:
+    assert r.n_accepted + r.n_rejected + r.n_ignored == r.n_lines == \
+        n_records(data, sentences)
     assert r.rejects.num_rows == r.n_rejected
     assert r.fixes.schema.equals(FIX_SCHEMA, check_metadata=False)
     assert r.rejects.schema.equals(REJECT_SCHEMA, check_metadata=False)
@@ -73,4 +77,14 @@ PROFILE = profile_from_dict({"columns": {"time": "t", "lat": "lat", "lon": "lon"
                                            b"x,y,z", b"", b"# comment"])), max_size=12))
 def test_delimited_random_lines(lines):
     data = b"t,lat,lon,q\n" + b"\n".join(lines)
-    check(parse_delimited(data, profile=PROFILE, node="n", raw_hash="0" * 64), data)
+    check(parse_delimited(data, profile=PROFILE, node="n", raw_hash="0" * 64), data,
+          sentences=False)
+
+
+def test_a_delimited_line_of_dollar_signs_is_one_record():
+    """Found by the test above: '$$' in a delimited log is one unreadable line (the
+    sentence rule of NMEA logs does not apply)."""
+    data = b"t,lat,lon,q\n$$"
+    r = parse_delimited(data, profile=PROFILE, node="n", raw_hash="0" * 64)
+    check(r, data, sentences=False)
+    assert (r.n_lines, r.n_rejected, r.n_ignored) == (2, 1, 1)
