@@ -1,5 +1,5 @@
 """``python -m archive`` runs the nodekeep command."""
 
-from archive.cli.main import main
+from archive.cli.main import entry
 
-main()
+entry()
