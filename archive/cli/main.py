@@ -181,17 +181,20 @@ def entry() -> None:
 
 def end_process(code: Any) -> None:
     """End this process as the interpreter would after ``sys.exit(code)``, less the
-    tearing down of every module and object it holds.
+    tearing down of its modules and objects.
 
-    Everything the interpreter does at exit that reaches outside the process is done, in
-    its order: threads that are not daemons are waited for (the thread pools told to
-    stop first), the ``atexit`` functions run (temporary folders, child processes,
-    logging), stdout and stderr are flushed. Then the process ends at once: the teardown
-    only frees memory, and after a solve it takes 0.3-0.45 s of one core (numba, scipy,
-    pandas, SQLAlchemy and their objects freed one by one). Files and connections are
-    closed by the commands themselves (``with`` blocks; the archive closes with the
-    command's context), never by a finalizer at exit. Where the interpreter lacks the
-    hooks used here, the exit is the usual one.
+    What the interpreter does at exit before that teardown is done, in its order: threads
+    that are not daemons are waited for (the thread pools told to stop first), the
+    ``atexit`` functions run (temporary folders, child processes, logging), stdout and
+    stderr are flushed (a failed flush gives status 120, as it does); an error while
+    waiting (Ctrl-C) is reported and the status kept. Then the process ends at once. The
+    teardown skipped frees every object, running the finalizers of those still alive
+    (an unclosed file flushed, a connection still checked out closed): the commands rely
+    on none of that (files are written in ``with`` blocks and made durable before they are
+    recorded, the archive's catalog closes with the command's context, child processes
+    and temporary folders end by the commands or ``atexit``). After a solve it took
+    0.3-0.45 s of one core. Where the interpreter lacks the hooks used here, the exit is
+    the usual one.
     """
     import atexit
     import sys
@@ -208,15 +211,44 @@ def end_process(code: Any) -> None:
     else:  # sys.exit("message"): printed, status 1, as the interpreter does
         print(code, file=sys.stderr)
         status = 1
-    shutdown()
-    run_exitfuncs()
-    for stream in (sys.stdout, sys.stderr):
+    try:
         try:
-            if stream is not None:
-                stream.flush()
-        except (OSError, ValueError):  # a closed pipe: the interpreter's status for it
-            status = status or 120
-    os._exit(status)
+            shutdown()
+        except BaseException as exc:  # noqa: BLE001 - reported, the status kept
+            _ignored("while waiting for threads at exit", exc)
+        try:
+            run_exitfuncs()  # reports its functions' errors itself
+        except BaseException as exc:  # noqa: BLE001
+            _ignored("in the exit functions", exc)
+        out_ok = _flushed(sys.stdout, report=True)
+        err_ok = _flushed(sys.stderr, report=False)
+        if not (out_ok and err_ok):
+            status = 120
+    finally:
+        os._exit(status)
+
+
+def _ignored(where: str, exc: BaseException) -> None:
+    """Say on stderr that an error at exit was ignored (the interpreter's wording)."""
+    import contextlib
+    import sys
+
+    with contextlib.suppress(Exception):  # stderr itself may be gone
+        print(f"Exception ignored {where}: {exc!r}", file=sys.stderr, flush=True)
+
+
+def _flushed(stream: Any, report: bool) -> bool:
+    """Flush a standard stream unless it is missing or closed; False when that fails
+    (reported for stdout, as the interpreter does)."""
+    if stream is None or getattr(stream, "closed", False):
+        return True
+    try:
+        stream.flush()
+    except Exception as exc:  # noqa: BLE001 - a closed pipe, a full disk
+        if report:
+            _ignored("on flushing sys.stdout", exc)
+        return False
+    return True
 
 
 if __name__ == "__main__":
