@@ -99,6 +99,12 @@ def values_view(column: pa.Array | pa.ChunkedArray, dtype: np.dtype | str) -> np
     (a view of its buffer for one chunk, a copy joining several), read from the buffers:
     ``to_numpy`` would look for pandas first, as ``pyarrow.array`` does."""
     dtype = np.dtype(dtype)
+    typ = column.type
+    if not pa.types.is_integer(typ) and not pa.types.is_floating(typ) \
+            and not pa.types.is_temporal(typ) or typ.bit_width != 8 * dtype.itemsize:
+        raise TypeError(f"a column of {typ} cannot be read as {dtype}")
+    if column.null_count:
+        raise TypeError("a column with nulls cannot be read from its values alone")
     chunks = column.chunks if isinstance(column, pa.ChunkedArray) else [column]
     views = [np.frombuffer(c.buffers()[1], dtype=dtype, count=len(c),
                            offset=c.offset * dtype.itemsize)

@@ -137,8 +137,27 @@ def test_epoch_cut_read_from_the_end_matches_the_whole_window(runs, seed, lead):
     iv[ns.S_STATUS, :n] = np.where(rng.random(n) < 0.9, ns.ST_ACCEPTED, ns.ST_CHECKSUM)
     at = lead
     tod[:n] = -1
-    for t, (k, timed) in enumerate(runs, start=1):  # runs of one time each (or untimed)
+    for k, timed in runs:  # runs of one time each (or untimed); times may repeat or go back
         if timed:
-            tod[at:at + k] = t * 1_000_000
+            tod[at:at + k] = int(rng.integers(0, 3)) * 1_000_000
         at += k
     assert _epoch_cut(iv, tod, lead, n) == _epoch_cut_whole(iv, tod, lead, n)
+
+
+def test_values_view_reads_sliced_and_chunked_columns_and_refuses_others():
+    """The buffers read as they are: a slice starts at its offset, chunks join; a column
+    of another width, or with nulls, is refused (compared with pyarrow's own to_pylist)."""
+    from archive.ingest.arrow_build import values_view
+
+    a = pa.array(np.arange(10, dtype=np.int64))
+    col = pa.chunked_array([a.slice(3, 4), pa.array(np.arange(5, dtype=np.int64))[:0],
+                            a.slice(7)])
+    assert values_view(col, np.int64).tolist() == col.to_pylist()
+    t = pa.array(np.array([5, 7], dtype="datetime64[us]")).cast(pa.timestamp("us", "UTC"))
+    assert values_view(t, np.int64).tolist() == [5, 7]
+    with pytest.raises(TypeError):
+        values_view(pa.array(np.arange(3, dtype=np.int32)), np.int64)
+    with pytest.raises(TypeError):
+        values_view(pa.array([1, None], pa.int64()), np.int64)
+    with pytest.raises(TypeError):
+        values_view(pa.array([True, False]), np.int8)
