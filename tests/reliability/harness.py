@@ -76,6 +76,48 @@ def run_killed(argv: list[str], delay: float, *, env: dict[str, str] | None = No
         return True, proc.returncode
 
 
+def objects_of(root: Path) -> Path:
+    """The object folder of the archive at ``root`` (its configuration's ``objects``)."""
+    import tomllib
+
+    with open(root / CONFIG_NAME, "rb") as fh:
+        where = tomllib.load(fh)["archive"].get("objects", "objects")
+    return root / where
+
+
+def _stamp(folder: Path) -> int | None:
+    """The modification time of a folder (ns), None when it does not exist."""
+    try:
+        return os.stat(folder).st_mtime_ns
+    except FileNotFoundError:
+        return None
+
+
+def run_killed_after_write(argv: list[str], objects: Path, delay: float, *,
+                           env: dict[str, str] | None = None) -> tuple[bool, int | None]:
+    """Start a command and SIGKILL it ``delay`` seconds after its first write into the
+    object store at ``objects`` (the first temporary file made in its ``tmp`` folder, or
+    that folder made: either changes a folder's modification time, watched every
+    millisecond). Returns as :func:`run_killed`: not killed when it finished first."""
+    watched = (objects, objects / "tmp")
+    start = [_stamp(f) for f in watched]
+    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+                            env=env or child_env(), cwd=REPO)
+    while proc.poll() is None:
+        if [_stamp(f) for f in watched] != start:
+            break
+        time.sleep(0.001)
+    else:
+        return False, proc.returncode
+    try:
+        proc.wait(timeout=delay)
+        return False, proc.returncode
+    except subprocess.TimeoutExpired:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+        return True, proc.returncode
+
+
 def kill_delays(duration: float, n: int, seed: int, *, start: float = 0.0) -> list[float]:
     """``n`` kill delays, one drawn uniformly in each of ``n`` equal slices of
     ``[start, duration]`` (stratified sampling), shuffled by the seeded generator."""
@@ -262,6 +304,7 @@ def campaign(
     backend: str = "sqlite",
     rerun: Callable[[Path], tuple[int, str]] | None = None,
     window: tuple[float, float] | None = None,
+    after_write: bool = False,
 ) -> Campaign:
     """Measure one uninterrupted run, then ``n`` killed runs each followed by a re-run.
 
@@ -274,7 +317,11 @@ def campaign(
     finished archive (nothing left to do) gives the start-up cost. Delays are stratified
     over [0.6 x start-up, 1.05 x whole duration] so most kills land while the command works;
     ``window`` (fractions of the whole duration) moves them, e.g. to the end of a command
-    that writes only there.
+    that writes only there. ``after_write`` counts the delays from the command's first
+    write into the object store instead of from its start (:func:`run_killed_after_write`),
+    stratified over the first 0.1 s plus a fiftieth of the duration: a command whose writes
+    take its last few hundredths of a second is killed among them, however long the
+    moments before them take on a busy machine.
     """
     env = child_env()
 
@@ -301,23 +348,28 @@ def campaign(
                            f"{idle.stderr[-2000:]}")
     result = Campaign(name, backend, duration, startup)
     # start-up varies with the machine's load: begin the window well before it ends
-    lo, hi = ((0.6 * min(startup, duration), 1.05 * duration) if window is None
-              else (window[0] * duration, window[1] * duration))
+    if after_write:
+        lo, hi = 0.0, 0.1 + 0.02 * duration
+    elif window is None:
+        lo, hi = 0.6 * min(startup, duration), 1.05 * duration
+    else:
+        lo, hi = window[0] * duration, window[1] * duration
     delays = kill_delays(hi, n, seed, start=lo)
     for i, delay in enumerate(delays):
         t1 = time.monotonic()
         # The machine's load changes how long the command takes: when it finished before
         # the kill, start again from a fresh copy with an earlier kill (up to 3 tries).
-        for _attempt in range(3):
+        for _attempt in range(4):
             root = template.clone(workdir / f"trial-{i:03d}")
-            killed, _ = run_killed(argv_for(root), delay, env=env)
-            if killed:
+            if after_write:
+                killed, _ = run_killed_after_write(argv_for(root), objects_of(root), delay,
+                                                   env=env)
+            else:
+                killed, _ = run_killed(argv_for(root), delay, env=env)
+            if killed or _attempt == 3:
                 break
             shutil.rmtree(root, ignore_errors=True)
             delay = lo + (delay - lo) * 0.6  # earlier, inside the window
-        if not killed:
-            root = template.clone(workdir / f"trial-{i:03d}")
-            killed, _ = run_killed(argv_for(root), delay, env=env)
         after = snapshot(root)
         ok, problems, dangling = check_archive(root)
         code, message = rerun(root)
@@ -353,12 +405,14 @@ def spread_campaign(name: str, template: ArchiveTemplate, workdir: Path,
         seen = result.phases()
         if len(seen) >= 2:
             break
-        window = None
+        window, after_write = None, False
         if set(seen) == {"before any write"}:
-            window = (0.82 + 0.06 * k, 0.96 + 0.03 * k)  # (0.88, 0.99), then (0.94, 1.02)
+            # from the first write; then the last tenth of the run, timed from the start
+            after_write, window = k == 1, (None if k == 1 else (0.88, 0.99))
         elif set(seen) <= {"after the end", "after the last commit"}:
             window = (0.2, 0.8)
         more = campaign(name, template, workdir / str(k), argv_for, result_of, n=n,
-                        seed=seed + k, backend=backend, rerun=rerun, window=window)
+                        seed=seed + k, backend=backend, rerun=rerun, window=window,
+                        after_write=after_write)
         result.trials += more.trials
     return result
