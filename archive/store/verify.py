@@ -143,7 +143,15 @@ def _lenient_text(data: bytes) -> str:
 
 def _verify_content(arc: Archive, report: VerifyReport, *, rehash: bool,
                     progress: Progress) -> None:
+    """The checks on one snapshot of the catalog: the ledger and the rows are read by
+    several statements, and a writer committing between them (a crew member loading logs
+    meanwhile, or a killed writer whose last commit the server was still finishing) must
+    not show up as a row without its event. SQLite's read transaction is one snapshot
+    already (write-ahead log); PostgreSQL's default gives each statement its own, so the
+    transaction is made REPEATABLE READ there."""
     with arc.session() as s:
+        if arc.engine.dialect.name != "sqlite":
+            s.connection(execution_options={"isolation_level": "REPEATABLE READ"})
         if arc.engine.dialect.name == "sqlite":
             raw = s.connection().connection.driver_connection
             raw.text_factory = _lenient_text
