@@ -80,16 +80,21 @@ class DevTools:
 def browser():
     path = _browser_path()
     profile = tempfile.mkdtemp(prefix="nk-chromium-")
+    log = open(Path(profile) / "stderr.txt", "wb")  # noqa: SIM115 - closed below
     proc = subprocess.Popen([path, *FLAGS, f"--user-data-dir={profile}", "about:blank"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+                            stdout=subprocess.DEVNULL, stderr=log)
     try:
         port_file = Path(profile) / "DevToolsActivePort"
-        for _ in range(300):
-            if port_file.is_file() and port_file.read_text().strip():
-                break
+        # a first start beside the crash campaigns on a busy 2-core machine took over 30 s
+        # once: wait up to 90 s, and say so at once if the browser ended instead
+        end = time.monotonic() + 90
+        while not (port_file.is_file() and port_file.read_text().strip()):
+            if proc.poll() is not None or time.monotonic() > end:
+                said = (Path(profile) / "stderr.txt").read_bytes()[-1500:].decode(
+                    "utf-8", "replace")
+                pytest.fail(f"chromium did not open its DevTools port (exit code "
+                            f"{proc.poll()}; its last words: {said!r})")
             time.sleep(0.1)
-        else:
-            pytest.fail("chromium did not open its DevTools port within 30 s")
         port = int(port_file.read_text().splitlines()[0])
         with urllib.request.urlopen(f"http://127.0.0.1:{port}/json/list", timeout=10) as r:
             pages = [t for t in json.load(r) if t.get("type") == "page"]
@@ -102,6 +107,7 @@ def browser():
             proc.wait(timeout=10)
         except subprocess.TimeoutExpired:
             proc.kill()
+        log.close()
         shutil.rmtree(profile, ignore_errors=True)
 
 
