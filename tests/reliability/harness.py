@@ -59,14 +59,23 @@ def run(argv: list[str], *, timeout: float = 300, env: dict[str, str] | None = N
                           env=env or child_env(), cwd=REPO, check=False)
 
 
-def run_killed(argv: list[str], delay: float, *, env: dict[str, str] | None = None
-               ) -> tuple[bool, int | None]:
-    """Start a command and SIGKILL it after ``delay`` seconds.
+def run_killed(argv: list[str], delay: float, *, env: dict[str, str] | None = None,
+               after_write: Path | None = None) -> tuple[bool, int | None]:
+    """Start a command and SIGKILL it after ``delay`` seconds: counted from its start, or,
+    with ``after_write`` (an object folder), from its first write into that object store
+    (the first temporary file made in its ``tmp`` folder, or that folder made: either
+    changes a folder's modification time, watched every millisecond).
 
     Returns (killed, returncode): ``killed`` is False when it had already finished.
     """
+    watched = (after_write, after_write / "tmp") if after_write is not None else ()
+    start = [_stamp(f) for f in watched]
     proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
                             env=env or child_env(), cwd=REPO)
+    while watched and [_stamp(f) for f in watched] == start:
+        if proc.poll() is not None:
+            return False, proc.returncode
+        time.sleep(0.001)
     try:
         proc.wait(timeout=delay)
         return False, proc.returncode
@@ -91,31 +100,6 @@ def _stamp(folder: Path) -> int | None:
         return os.stat(folder).st_mtime_ns
     except FileNotFoundError:
         return None
-
-
-def run_killed_after_write(argv: list[str], objects: Path, delay: float, *,
-                           env: dict[str, str] | None = None) -> tuple[bool, int | None]:
-    """Start a command and SIGKILL it ``delay`` seconds after its first write into the
-    object store at ``objects`` (the first temporary file made in its ``tmp`` folder, or
-    that folder made: either changes a folder's modification time, watched every
-    millisecond). Returns as :func:`run_killed`: not killed when it finished first."""
-    watched = (objects, objects / "tmp")
-    start = [_stamp(f) for f in watched]
-    proc = subprocess.Popen(argv, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-                            env=env or child_env(), cwd=REPO)
-    while proc.poll() is None:
-        if [_stamp(f) for f in watched] != start:
-            break
-        time.sleep(0.001)
-    else:
-        return False, proc.returncode
-    try:
-        proc.wait(timeout=delay)
-        return False, proc.returncode
-    except subprocess.TimeoutExpired:
-        proc.send_signal(signal.SIGKILL)
-        proc.wait()
-        return True, proc.returncode
 
 
 def kill_delays(duration: float, n: int, seed: int, *, start: float = 0.0) -> list[float]:
@@ -318,7 +302,7 @@ def campaign(
     over [0.6 x start-up, 1.05 x whole duration] so most kills land while the command works;
     ``window`` (fractions of the whole duration) moves them, e.g. to the end of a command
     that writes only there. ``after_write`` counts the delays from the command's first
-    write into the object store instead of from its start (:func:`run_killed_after_write`),
+    write into the object store instead of from its start (:func:`run_killed`),
     stratified over the first 0.1 s plus a fiftieth of the duration: a command whose writes
     take its last few hundredths of a second is killed among them, however long the
     moments before them take on a busy machine.
@@ -361,11 +345,8 @@ def campaign(
         # the kill, start again from a fresh copy with an earlier kill (up to 3 tries).
         for _attempt in range(4):
             root = template.clone(workdir / f"trial-{i:03d}")
-            if after_write:
-                killed, _ = run_killed_after_write(argv_for(root), objects_of(root), delay,
-                                                   env=env)
-            else:
-                killed, _ = run_killed(argv_for(root), delay, env=env)
+            killed, _ = run_killed(argv_for(root), delay, env=env,
+                                   after_write=objects_of(root) if after_write else None)
             if killed or _attempt == 3:
                 break
             shutil.rmtree(root, ignore_errors=True)
