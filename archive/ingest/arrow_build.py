@@ -100,8 +100,8 @@ def values_view(column: pa.Array | pa.ChunkedArray, dtype: np.dtype | str) -> np
     ``to_numpy`` would look for pandas first, as ``pyarrow.array`` does."""
     dtype = np.dtype(dtype)
     typ = column.type
-    if not pa.types.is_integer(typ) and not pa.types.is_floating(typ) \
-            and not pa.types.is_temporal(typ) or typ.bit_width != 8 * dtype.itemsize:
+    numeric = pa.types.is_integer(typ) or pa.types.is_floating(typ) or pa.types.is_temporal(typ)
+    if not numeric or typ.bit_width != 8 * dtype.itemsize:
         raise TypeError(f"a column of {typ} cannot be read as {dtype}")
     if column.null_count:
         raise TypeError("a column with nulls cannot be read from its values alone")
