@@ -150,8 +150,6 @@ def _verify_content(arc: Archive, report: VerifyReport, *, rehash: bool,
     already (write-ahead log); PostgreSQL's default gives each statement its own, so the
     transaction is made REPEATABLE READ there."""
     with arc.session() as s:
-        if arc.engine.dialect.name != "sqlite":
-            s.connection(execution_options={"isolation_level": "REPEATABLE READ"})
         if arc.engine.dialect.name == "sqlite":
             raw = s.connection().connection.driver_connection
             raw.text_factory = _lenient_text
@@ -160,6 +158,7 @@ def _verify_content(arc: Archive, report: VerifyReport, *, rehash: bool,
             finally:
                 raw.text_factory = str
         else:
+            s.connection(execution_options={"isolation_level": "REPEATABLE READ"})
             _verify_rows(arc, s, report, rehash=rehash, progress=progress)
 
 

@@ -37,7 +37,7 @@ same rule without any earlier version.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from typing import Any
@@ -258,6 +258,14 @@ def with_occupations(table: pa.Table) -> pa.Table:
     return _table_with(table, number_occupations(Records.of(table)).occupation)
 
 
+def _by_station(entries: Iterable[tuple[Any, Any, Any]]) -> dict[tuple[float, float], set[int]]:
+    """The point indices of (line, point, index) entries, gathered per line and point."""
+    out: dict[tuple[float, float], set[int]] = {}
+    for a, b, k in entries:
+        out.setdefault((float(a), float(b)), set()).add(int(k))
+    return out
+
+
 def number_log(table: pa.Table, previous: pa.Table | None = None,
                retired: Sequence[dict[str, Any]] = (),
                preplot: pa.Table | None = None,
@@ -284,14 +292,10 @@ def number_log(table: pa.Table, previous: pa.Table | None = None,
     if parts:
         earlier = parts[0] if len(parts) == 1 else _concat(parts[0], parts[1])
         earlier_occ, is_retired = np.concatenate(occs), np.concatenate(flags)
-    reserved: dict[tuple[float, float], set[int]] = {}
-    if preplot is not None and preplot.num_rows:
-        for a, b, k in zip(preplot["line"].to_pylist(), preplot["point"].to_pylist(),
-                           preplot["index"].to_pylist(), strict=True):
-            reserved.setdefault((float(a), float(b)), set()).add(int(k))
-    later: dict[tuple[float, float], set[int]] = {}
-    for p in later_parts:
-        later.setdefault((float(p["line"]), float(p["point"])), set()).add(int(p["index"]))
+    reserved = _by_station(zip(preplot["line"].to_pylist(), preplot["point"].to_pylist(),
+                               preplot["index"].to_pylist(), strict=True)
+                           if preplot is not None else ())
+    later = _by_station((p["line"], p["point"], p["index"]) for p in later_parts)
     numbered = number_occupations(rec, earlier, earlier_occ, retired=is_retired,
                                   reserved=reserved, later=later)
     gone: list[dict[str, Any]] = []
